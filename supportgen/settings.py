@@ -77,9 +77,11 @@ class Printer:
     film_gap_mm: float = _f(0.05, 0.001, 1.0, "mm", "practice",
                             "liquid gap between cured layer and film as it starts to separate (5-50 um "
                             "oxygen-inhibited layer on a silicone window is common practice)")
-    force_calibration: float = _f(0.01, 1e-6, 10.0, "", "memory",
+    force_calibration: float = _f(0.02, 1e-6, 10.0, "", "memory",
                                   "factor on the rigid-gap squeeze-film law: flexible films pull off far "
                                   "below it; fit it from measurements with `supportgen calibrate`")
+    layer_cycle_s: float = _f(9.0, 0.5, 600.0, "s", "practice",
+                              "time per layer: exposure (2-3 s) plus lift, peel and return (5-8 s)")
     rated_force_n: float = _f(80.0, 0.1, 5000.0, "N", "memory", "largest separation force the machine is meant to take")
 
 
@@ -104,10 +106,12 @@ class SupportRules:
     overhang_angle_deg: float = _f(35.0, 0.0, 89.0, "deg", "practice",
                                    "a down-facing surface tilted less than this from horizontal needs "
                                    "support (30-45 deg is common practice)")
-    contact_spacing_mm: float = _f(2.5, 0.3, 20.0, "mm", "practice", "distance between contacts on an overhang (1.5-5 mm)")
-    max_reach_mm: float = _f(1.5, 0.05, 3.0, "mm", "practice",
-                             "largest distance a layer may cure past the layer below it (flat overhangs "
-                             "deform beyond about 1.5 mm)")
+    contact_spacing_mm: float = _f(2.0, 0.3, 20.0, "mm", "practice",
+                                   "least distance between contacts on a horizontal overhang (1.5-5 mm); "
+                                   "1.5x this at the critical angle")
+    max_reach_mm: float = _f(2.0, 0.05, 3.0, "mm", "practice",
+                             "largest distance a newly cured pixel may lie from material in the layer "
+                             "below (flat overhangs deform beyond spans of about 1.5-3 mm)")
     tip_diameter_mm: float = _f(0.4, 0.05, 3.0, "mm", "practice", "contact diameter before sizing (0.2-0.6 mm)")
     tip_min_mm: float = _f(0.15, 0.05, 3.0, "mm", "practice", "smallest tip: 2-3 pixels is the smallest reliable feature")
     tip_max_mm: float = _f(0.7, 0.05, 5.0, "mm", "practice", "largest tip, the largest scar you accept")
