@@ -1,0 +1,1 @@
+"""Command-line layer of supportgen (installed as the ``supportgen`` command)."""

@@ -1,0 +1,277 @@
+"""Pipeline: wire the stages for one part, time each, return a :class:`Result`.
+
+No maths lives here: each step calls the stage module that owns it.
+
+load -> place -> overhangs -> contacts (samples, minima) -> layers (islands,
+reach: more contacts) -> forces (loads per contact; densify while a tip would
+need more than the largest diameter) -> strategy (plan) -> sizing -> geometry
+(union) -> verify (re-slice the result; contacts added at any island left and
+the plan rebuilt, once) -> report.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import trimesh
+
+from . import report as rpt
+from .contacts import contacts_at, merge_contacts, sample_overhangs
+from .forces import ForceProfile, ForceTracker
+from .geometry import Solids, combine
+from .layers import Grid, LayerStack, analyse_layers
+from .meshio import LoadedMesh, atomic_write, atomic_write_text, load_mesh, prepare_mesh, write_mesh
+from .overhangs import find_overhangs
+from .placement import place
+from .plan import Contacts, SupportPlan
+from .settings import Settings, load_settings
+from .sizing import SizedPlan, densify_points, required_tip_diameter, size_plan, tip_diameter
+from .strategies import get_strategy
+from .verify import Verification, verify
+
+__all__ = ["Result", "generate", "check", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
+
+DEFAULT_STRATEGY = "straight"
+MAX_DENSIFY_ROUNDS = 4
+
+
+@dataclass(frozen=True)
+class Result:
+    """Everything one run made: solids, contacts, plan, analyses and the report dict."""
+
+    name: str
+    combined: trimesh.Trimesh
+    supports: trimesh.Trimesh
+    contacts: Contacts
+    plan: SupportPlan
+    report: dict
+    layers: LayerStack = field(repr=False)
+    forces: ForceProfile = field(repr=False)
+    verification: Verification = field(repr=False)
+
+    def save(self, outdir: str | Path) -> dict[str, Path]:
+        """Write ``NAME.supported.stl``, ``NAME.supports.stl``, ``NAME.report.json``,
+        ``NAME.report.md`` and its plots into ``outdir``; return the paths by role.
+
+        Each file is written atomically; if any write fails, the files of this
+        part already written are removed, so no partial set is left.
+        """
+        outdir = Path(outdir)
+        outdir.mkdir(parents=True, exist_ok=True)
+        n = self.name
+        paths = {"combined": outdir / f"{n}.supported.stl", "supports": outdir / f"{n}.supports.stl",
+                 "report": outdir / f"{n}.report.json", "summary": outdir / f"{n}.report.md",
+                 "layers_plot": outdir / f"{n}.layers.png", "tips_plot": outdir / f"{n}.tips.png"}
+        report = dict(self.report)
+        report["outputs"] = {k: str(p) for k, p in paths.items()}
+        written: list[Path] = []
+        try:
+            write_mesh(self.combined, paths["combined"]); written.append(paths["combined"])
+            write_mesh(self.supports, paths["supports"]); written.append(paths["supports"])
+            f = self.forces
+            atomic_write(paths["layers_plot"], rpt.plot_layers(
+                self.layers.z_mm, self.layers.area_mm2, f.force_n, f"{n}: area and separation force per layer",
+                report["settings"]["printer"]["rated_force_n"]))
+            written.append(paths["layers_plot"])
+            atomic_write(paths["tips_plot"], rpt.plot_tips(np.asarray(report["supports"]["tip_safety_factors"]),
+                                                           f"{n}: tip safety factors"))
+            written.append(paths["tips_plot"])
+            images = {"area and force per layer": paths["layers_plot"].name, "tip safety factors": paths["tips_plot"].name}
+            atomic_write_text(paths["summary"], rpt.markdown(report, n, images)); written.append(paths["summary"])
+            atomic_write_text(paths["report"], rpt.to_json(report)); written.append(paths["report"])
+        except BaseException:
+            for p in written:
+                p.unlink(missing_ok=True)
+            raise
+        return paths
+
+
+class _Timer:
+    def __init__(self):
+        self.seconds: dict[str, float] = {}
+
+    @contextlib.contextmanager
+    def __call__(self, stage: str):
+        t0 = time.perf_counter()
+        try:
+            yield
+        finally:
+            self.seconds[stage] = self.seconds.get(stage, 0.0) + time.perf_counter() - t0
+
+
+def _resolve_settings(settings, overrides) -> Settings:
+    if settings is None:
+        settings = Settings()
+    elif not isinstance(settings, Settings):
+        settings = load_settings(settings)
+    return settings.override(overrides) if overrides else settings
+
+
+def _layer_contacts(part, stack: LayerStack, settings: Settings) -> Contacts:
+    """Contacts under every island and wherever a layer reaches too far."""
+    sp, lh = settings.supports, settings.printer.layer_mm
+    xyz = []
+    for isl in stack.islands:
+        xy = isl.points(sp.contact_spacing_mm, sp.seed)
+        xyz.append(np.column_stack([xy, np.full(len(xy), isl.z_mm - lh)]))
+    island = contacts_at(part, np.vstack(xyz) if xyz else np.zeros((0, 3)), "island", sp.tip_diameter_mm)
+    reach_xyz = [[*o.xy, o.z_mm - lh] for o in stack.overreach]
+    reach = contacts_at(part, np.array(reach_xyz).reshape(-1, 3), "reach", sp.tip_diameter_mm)
+    return merge_contacts(island, reach, sp.contact_spacing_mm / 2)
+
+
+def _forces(part, grid: Grid, contacts: Contacts, settings: Settings, progress: bool) -> ForceProfile:
+    tracker = ForceTracker(grid, settings.printer.layer_mm, contacts.points, settings)
+    pr = settings.printer
+    analyse_layers(part, pr.pixel_mm, pr.layer_mm, settings.supports.max_reach_mm, grid=grid,
+                   observers=(tracker,), progress=progress)
+    return tracker.result()
+
+
+def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
+             name: str | None = None, centre: bool = False, progress: bool = False, **overrides) -> Result:
+    """Support one part end to end.
+
+    Parameters
+    ----------
+    source : str, Path or trimesh.Trimesh
+        A mesh file (STL, OBJ, PLY, 3MF) or a mesh, oriented as it will print.
+    settings : Settings, str or Path, optional
+        Settings, a built-in profile name or a TOML profile path; defaults if None.
+    strategy : str
+        A name from :data:`supportgen.strategies.STRATEGIES`.
+    name : str, optional
+        Name used for output files (default: the file's stem, or "part").
+    centre : bool
+        Centre the part on the plate.
+    progress : bool
+        Progress bars over the layer passes.
+    **overrides
+        Single settings by name, e.g. ``contact_spacing_mm=1.8``.
+
+    Returns
+    -------
+    Result
+
+    Raises
+    ------
+    supportgen.errors.SupportGenError
+        Bad input, settings or geometry; the message names the input.
+    """
+    t_total = time.perf_counter()
+    settings = _resolve_settings(settings, overrides)
+    plan_fn = get_strategy(strategy)
+    timer = _Timer()
+    sp, pr = settings.supports, settings.printer
+    with timer("load"):
+        if isinstance(source, trimesh.Trimesh):
+            name = name or "part"
+            loaded: LoadedMesh = prepare_mesh(source, name)
+        else:
+            name = name or Path(source).name.split(".")[0]
+            loaded = load_mesh(source)
+    with timer("placement"):
+        part = place(loaded.mesh, settings, centre=centre, name=name).mesh
+    with timer("overhangs"):
+        oh = find_overhangs(part, sp.overhang_angle_deg, floor_z=0.0)
+    with timer("contacts"):
+        contacts = sample_overhangs(part, oh, sp.contact_spacing_mm, sp.overhang_angle_deg, sp.tip_diameter_mm, sp.seed)
+        minima = contacts_at(part, oh.minima - [0, 0, 1e-3], "minimum", sp.tip_diameter_mm)
+        contacts = merge_contacts(contacts, minima, sp.tip_diameter_mm)
+    with timer("layers"):
+        stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, sp.max_reach_mm, progress=progress)
+        contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), sp.tip_diameter_mm)
+    warnings: list[dict] = []
+    densified = 0
+    for _ in range(MAX_DENSIFY_ROUNDS):
+        with timer("forces"):
+            profile = _forces(part, stack.grid, contacts, settings, progress)
+        over = required_tip_diameter(profile.contact_loads, settings) > sp.tip_max_mm
+        if not over.any():
+            break
+        with timer("contacts"):
+            more = densify_points(contacts, over, part, settings)
+        if len(more) == len(contacts):
+            break
+        densified += len(more) - len(contacts)
+        contacts = more
+    contacts = contacts.replace(diameters=tip_diameter(profile.contact_loads, settings),
+                                loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
+    for attempt in range(2):
+        with timer("routing"):
+            plan = plan_fn(part, contacts, settings)
+        with timer("sizing"):
+            sized: SizedPlan = size_plan(plan, contacts.loads, settings)
+        with timer("geometry"):
+            solids: Solids = combine(part, sized.plan, settings)
+        with timer("verify"):
+            ver = verify(solids.combined, settings, tip_safety=sized.tip_safety_factor, progress=progress, name=name)
+        if ver.islands == 0 or attempt == 1:
+            break
+        # Hold what the first plan missed, then plan again.
+        xyz = [[*i["xy_mm"], i["z_mm"] - pr.layer_mm] for i in ver.first_islands]
+        extra = contacts_at(part, np.array(xyz).reshape(-1, 3), "island", sp.tip_diameter_mm)
+        if len(extra) == 0:
+            break
+        contacts = merge_contacts(contacts, extra.replace(diameters=np.full(len(extra), sp.tip_max_mm)), 0.0)
+    warnings += [{"code": c, "message": m} for c, m in profile.warnings]
+    warnings += [{"code": "repair", "message": f"{name}: {r}"} for r in loaded.repairs]
+    if sized.tips_over_capacity:
+        warnings.append({"code": "tips-over-capacity",
+                         "message": f"{name}: {sized.tips_over_capacity} tip(s) need more than {sp.tip_max_mm} mm "
+                                    "even after adding contacts; add supports by hand or reorient the part"})
+    if plan.landings:
+        warnings.append({"code": "landings", "message": f"{name}: {plan.landings} post(s) stand on the part; "
+                                                        "expect small marks there"})
+    timer.seconds["total"] = time.perf_counter() - t_total
+    layers = int(np.ceil(solids.combined.bounds[1, 2] / pr.layer_mm))
+    volume_ml = (part.volume + solids.supports_volume_mm3) / 1000.0
+    sized_dict = sized.to_dict()
+    report = {
+        "input": {"path": None if isinstance(source, trimesh.Trimesh) else str(source), "name": name,
+                  "faces": int(len(loaded.mesh.faces)), "volume_mm3": float(loaded.mesh.volume),
+                  "repairs": list(loaded.repairs)},
+        "settings": settings.to_dict(),
+        "outputs": None,
+        "supports": {"strategy": strategy, "contacts": len(contacts), "landings": plan.landings,
+                     "contacts_by_kind": {k: int(np.count_nonzero(contacts.kinds == k)) for k in np.unique(contacts.kinds)},
+                     "contacts_added_by_densifying": densified,
+                     "tip_diameter_mm": sized_dict["tip_diameter_mm"],
+                     "tip_safety_factors": sized_dict["tip_safety_factor"],
+                     "volume_mm3": solids.supports_volume_mm3, "base_volume_mm3": solids.base_volume_mm3,
+                     "overhang_area_mm2": oh.area_mm2, "contact_area_mm2": float(np.sum(np.pi * contacts.diameters**2 / 4)),
+                     "braces": sized_dict.get("braces_added", 0),
+                     "contact_points": contacts.to_records()},
+        "forces": {**profile.to_dict(), "min_safety_factor": sized.min_safety_factor,
+                   "tips_over_capacity": sized.tips_over_capacity,
+                   "posts": {k: v for k, v in sized_dict.items() if k.startswith("post")}},
+        "verification": ver.to_dict(),
+        "layers": stack.to_dict(),
+        "estimates": {"layers": layers, "print_time_s": layers * pr.layer_cycle_s, "resin_ml": volume_ml,
+                      "resin_cost": volume_ml / 1000.0 * settings.resin.price_per_l},
+        "timing_s": timer.seconds,
+        "warnings": warnings,
+    }
+    return Result(name, solids.combined, solids.supports, contacts, sized.plan, report, stack, profile, ver)
+
+
+def check(mesh, settings: Settings | str | Path | None = None, *, progress: bool = False, **overrides) -> Verification:
+    """Verify an already supported mesh (a path or a trimesh) standing on the plate.
+
+    Raises
+    ------
+    supportgen.errors.SupportGenError
+        The file cannot be read.
+    """
+    settings = _resolve_settings(settings, overrides)
+    if isinstance(mesh, trimesh.Trimesh):
+        name, tm = "mesh", mesh
+    else:
+        name = Path(mesh).name
+        tm = load_mesh(mesh).mesh
+    return verify(tm, settings, progress=progress, name=name)
+
