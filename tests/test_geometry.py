@@ -1,0 +1,66 @@
+"""Solids: tips, posts and base joined with the part into one closed solid."""
+
+import manifold3d as m3d
+import numpy as np
+import pytest
+import trimesh
+
+from supportgen.contacts import sample_overhangs
+from supportgen.geometry import combine, frustum, to_manifold
+from supportgen.overhangs import find_overhangs
+from supportgen.placement import place
+from supportgen.settings import Settings
+from supportgen.strategies import plan_straight
+
+
+def _supported(part, s):
+    part = place(part, s).mesh
+    sp = s.supports
+    oh = find_overhangs(part, sp.overhang_angle_deg, floor_z=0.0)
+    c = sample_overhangs(part, oh, sp.contact_spacing_mm, sp.overhang_angle_deg, sp.tip_diameter_mm)
+    plan = plan_straight(part, c, s)
+    return part, plan, combine(part, plan, s)
+
+
+@pytest.mark.parametrize("base", ["raft", "pads"])
+def test_combined_is_one_closed_solid_with_the_union_volume(base):
+    s = Settings().override(base=base)
+    part, plan, sol = _supported(trimesh.creation.box((12, 10, 4)), s)
+    # trimesh (reference library): closed and oriented, one body.
+    assert sol.combined.is_watertight and sol.combined.is_volume
+    assert len(sol.combined.split(only_watertight=False)) == 1
+    # manifold3d (reference library): the volume of part + supports unioned afresh.
+    ref = to_manifold(part) + to_manifold(sol.supports)
+    assert sol.combined.volume == pytest.approx(ref.volume(), rel=1e-6)
+    # The union cannot exceed the sum of its pieces, nor fall below the larger one.
+    assert part.volume < sol.combined.volume < part.volume + sol.supports_volume_mm3
+    # The base stands on the plate.
+    assert sol.combined.bounds[0, 2] == pytest.approx(0.0, abs=1e-6)
+
+
+def test_frustum_volume_is_the_cone_frustum_formula():
+    # Exact geometry: V = pi h (r0^2 + r0 r1 + r1^2) / 3, for a 256-gon within 0.1 %.
+    r0, r1, h = 0.5, 0.2, 3.0
+    s = frustum([1, 2, 3], [1, 2 + h * 0.6, 3 - h * 0.8], r0, r1, segments=256)
+    exact = np.pi * h * (r0**2 + r0 * r1 + r1**2) / 3
+    assert s.volume() == pytest.approx(exact, rel=1e-3)
+    assert s.status() == m3d.Error.NoError
+
+
+def test_landing_post_stands_on_the_part_below():
+    # A shelf over a lower block: contacts under the shelf that are above the block
+    # must land on it (model-to-model), the others reach the base.
+    import manifold3d as m
+
+    from supportgen.geometry import to_trimesh
+
+    shelf = m.Manifold.cube((20, 10, 2)).translate((-10, -5, 12))
+    wall = m.Manifold.cube((2, 10, 14)).translate((-10, -5, 0))
+    block = m.Manifold.cube((8, 10, 4)).translate((0, -5, 0))
+    part = to_trimesh(shelf + wall + block)
+    s = Settings().override(lift_mm=0.0)
+    placed, plan, sol = _supported(part, s)
+    assert plan.landings > 0
+    land_pts = plan.tip_points[plan.tip_contact < 0]
+    assert np.all(land_pts[:, 0] >= -1e-6) and np.allclose(land_pts[:, 2], 4.0)
+    assert sol.combined.is_watertight
