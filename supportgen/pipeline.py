@@ -29,7 +29,7 @@ from .overhangs import find_overhangs
 from .placement import place
 from .plan import Contacts, SupportPlan
 from .settings import Settings, load_settings
-from .sizing import SizedPlan, densify_points, required_tip_diameter, size_plan, tip_diameter
+from .sizing import SizedPlan, densify_points, over_capacity, size_plan, tip_diameter
 from .strategies import get_strategy
 from .verify import Verification, verify
 
@@ -77,8 +77,9 @@ class Result:
                 self.layers.z_mm, self.layers.area_mm2, f.force_n, f"{n}: area and separation force per layer",
                 report["settings"]["printer"]["rated_force_n"]))
             written.append(paths["layers_plot"])
-            atomic_write(paths["tips_plot"], rpt.plot_tips(np.asarray(report["supports"]["tip_safety_factors"]),
-                                                           f"{n}: tip safety factors"))
+            atomic_write(paths["tips_plot"], rpt.plot_tips(
+                np.asarray(report["supports"]["tip_safety_factors"], float), report["forces"]["target_safety_factor"],
+                f"{n}: tip safety factors"))
             written.append(paths["tips_plot"])
             images = {"area and force per layer": paths["layers_plot"].name, "tip safety factors": paths["tips_plot"].name}
             atomic_write_text(paths["summary"], rpt.markdown(report, n, images)); written.append(paths["summary"])
@@ -190,7 +191,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     for _ in range(MAX_DENSIFY_ROUNDS):
         with timer("forces"):
             profile = _forces(part, stack.grid, contacts, settings, progress)
-        over = required_tip_diameter(profile.contact_loads, settings) > sp.tip_max_mm
+        over = over_capacity(profile.contact_loads, settings)
         if not over.any():
             break
         with timer("contacts"):
@@ -209,7 +210,8 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         with timer("geometry"):
             solids: Solids = combine(part, sized.plan, settings)
         with timer("verify"):
-            ver = verify(solids.combined, settings, tip_safety=sized.tip_safety_factor, progress=progress, name=name)
+            ver = verify(solids.combined, settings, tip_safety=sized.tip_safety_factor / sp.safety_factor,
+                             progress=progress, name=name)
         if ver.islands == 0 or attempt == 1:
             break
         # Hold what the first plan missed, then plan again.
@@ -241,14 +243,17 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
                      "contacts_by_kind": {k: int(np.count_nonzero(contacts.kinds == k)) for k in np.unique(contacts.kinds)},
                      "contacts_added_by_densifying": densified,
                      "tip_diameter_mm": sized_dict["tip_diameter_mm"],
-                     "tip_safety_factors": sized_dict["tip_safety_factor"],
+                     "tip_safety_factors": sized_dict["tips"]["safety_factor"],
+                     "post_diameter_mm": sized_dict["post_diameter_mm"],
                      "volume_mm3": solids.supports_volume_mm3, "base_volume_mm3": solids.base_volume_mm3,
                      "overhang_area_mm2": oh.area_mm2, "contact_area_mm2": float(np.sum(np.pi * contacts.diameters**2 / 4)),
-                     "braces": sized_dict.get("braces_added", 0),
+                     "braces": sized_dict["braces"],
                      "contact_points": contacts.to_records()},
         "forces": {**profile.to_dict(), "min_safety_factor": sized.min_safety_factor,
                    "tips_over_capacity": sized.tips_over_capacity,
-                   "posts": {k: v for k, v in sized_dict.items() if k.startswith("post")}},
+                   "min_tip_safety_factor": sized_dict["min_tip_safety_factor"],
+                   "min_post_safety_factor": sized_dict["min_post_safety_factor"],
+                   "target_safety_factor": sp.safety_factor},
         "verification": ver.to_dict(),
         "layers": stack.to_dict(),
         "estimates": {"layers": layers, "print_time_s": layers * pr.layer_cycle_s, "resin_ml": volume_ml,

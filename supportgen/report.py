@@ -94,10 +94,11 @@ def plot_layers(z_mm: np.ndarray, area_mm2: np.ndarray, force_n: np.ndarray | No
     if force_n is not None:
         ax = axes[0, 1]
         ax.plot(force_n, z_mm, color="#b5502d", lw=1)
-        if rated_force_n:
+        if rated_force_n and np.nanmax(force_n, initial=0.0) >= 0.3 * rated_force_n:
             ax.axvline(rated_force_n, color="k", ls="--", lw=0.8, label="printer's rated force")
             ax.legend(loc="lower right", fontsize=8)
-        ax.set_xlabel("separation force per layer (N)")
+        ax.set_xlabel("separation force per layer (N)" if not rated_force_n else
+                      f"separation force per layer (N; printer rated {rated_force_n:g} N)")
         ax.grid(alpha=0.3)
     fig.suptitle(title, fontsize=10)
     fig.tight_layout()
@@ -106,16 +107,16 @@ def plot_layers(z_mm: np.ndarray, area_mm2: np.ndarray, force_n: np.ndarray | No
     return data
 
 
-def plot_tips(safety: np.ndarray, title: str) -> bytes:
-    """PNG bytes: histogram of the tips' safety factors (capacity over peak load)."""
+def plot_tips(safety: np.ndarray, target: float, title: str) -> bytes:
+    """PNG bytes: histogram of the tips' safety factors (capacity over peak load), with the target."""
     plt = _figure()
     fig, ax = plt.subplots(figsize=(5, 3.4))
     s = np.asarray(safety, float)
     s = s[np.isfinite(s)]
     if len(s):
         ax.hist(np.clip(s, 0, 50), bins=30, color="#4f772d")
-    ax.axvline(1.0, color="k", ls="--", lw=0.8, label="tears off below 1")
-    ax.set_xlabel("tip safety factor (capacity / factored peak load, capped at 50)")
+    ax.axvline(target, color="k", ls="--", lw=0.8, label=f"required safety factor {target:g}")
+    ax.set_xlabel("tip safety factor (capacity / peak load, capped at 50)")
     ax.set_ylabel("tips")
     ax.legend(fontsize=8)
     ax.set_title(title, fontsize=10)
