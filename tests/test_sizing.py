@@ -1,0 +1,314 @@
+"""Tests of supportgen.sizing against published laws, exact geometry and invariants.
+
+Sources named beside each check:
+- Euler load and its worked values: Timoshenko & Gere, Theory of Elastic Stability (1961),
+  values derived in /work/shared/REFERENCE.md section 3.
+- Effective-length factors: AISC Specification commentary, effective-length table.
+- Johnson parabola: Shigley's Mechanical Engineering Design, columns chapter (section from memory).
+- Tip capacity: axial stress sigma = F / A of a round bar.
+"""
+
+import json
+import math
+
+import numpy as np
+import pytest
+import trimesh
+from hypothesis import given, settings as hsettings, strategies as st
+
+from supportgen.plan import Contacts, SupportPlan
+from supportgen.settings import Settings
+from supportgen.sizing import (
+    EFFECTIVE_LENGTH, MAX_SLENDERNESS, SizingError, column_critical_load, densify_points, euler_critical_load,
+    flow_loads, johnson_critical_load, over_capacity, required_post_diameter, required_tip_diameter, size_plan,
+    tip_capacity, tip_diameter,
+)
+
+S = Settings()
+FAST = hsettings(max_examples=40, deadline=None)
+
+
+def make_plan(nodes, edges, tips, feet, braces=()):
+    """tips: (node, contact) pairs; contact -1 makes a landing tip at that node."""
+    nodes = np.asarray(nodes, float)
+    tips = np.asarray(tips, int).reshape(-1, 2)
+    return SupportPlan("test", nodes, np.asarray(edges, int).reshape(-1, 2), np.full(len(edges), 0.5),
+                       nodes[tips[:, 0]] + [0, 0, 1.5], tips[:, 0], np.full(len(tips), 0.4), tips[:, 1],
+                       np.asarray(feet, int), np.asarray(braces, int).reshape(-1, 2))
+
+
+def merge_plan():
+    """Two tips (contacts 0 and 1) on branches that join at J and go down one trunk to a foot."""
+    nodes = [(-3, 0, 20), (3, 0, 20), (0, 0, 15), (0, 0, 1)]
+    return make_plan(nodes, [(0, 2), (1, 2), (2, 3)], [(0, 0), (1, 1)], [3])
+
+
+def grid_plan(height=40.0, pitch=4.0):
+    """Four vertical posts on a 2 x 2 grid, one edge each from the top node down to the foot."""
+    xy = [(0, 0), (pitch, 0), (0, pitch), (pitch, pitch)]
+    nodes = [(x, y, 1.0 + height) for x, y in xy] + [(x, y, 1.0) for x, y in xy]
+    return make_plan(nodes, [(i, i + 4) for i in range(4)], [(i, i) for i in range(4)], [4, 5, 6, 7])
+
+
+# --- Euler, effective length, Johnson --------------------------------------------------------
+
+@pytest.mark.parametrize("K, expected", [(2.0, 1.57), (1.0, 6.28), (0.7, 12.81), (0.5, 25.12)])
+def test_euler_worked_values(K, expected):
+    # REFERENCE.md s.3 [derived from Timoshenko & Gere]: d = 0.6 mm, L = 5 mm, E = 2.5 GPa; values given to 0.01 N
+    assert float(euler_critical_load(2500.0, 0.6, 5.0, K)) == pytest.approx(expected, abs=0.006)
+
+
+def test_effective_length_table():
+    # AISC commentary effective-length table (REFERENCE.md s.3): theoretical / design K
+    expected = {"fixed-fixed": (0.5, 0.65), "fixed-pinned": (0.7, 0.80), "pinned-pinned": (1.0, 1.0),
+                "fixed-free": (2.0, 2.1)}
+    for name, (theory, design) in expected.items():
+        assert EFFECTIVE_LENGTH[name] == (theory, design)
+        assert design >= theory  # design values never below the theoretical ones in that table
+
+
+@FAST
+@given(st.floats(0.1, 5.0), st.floats(0.5, 100.0), st.floats(100.0, 5000.0), st.floats(5.0, 80.0))
+def test_johnson_below_euler_and_tangent(d, L, E, sigma):
+    # Derived: Euler - Johnson = A (pi sqrt(E)/lam - sigma lam/(2 pi sqrt(E)))**2 >= 0, zero at lam_c
+    euler = float(euler_critical_load(E, d, L, 1.0))
+    johnson = float(johnson_critical_load(E, sigma, d, L, 1.0))
+    assert johnson <= euler * (1 + 1e-9)
+    lam_c = math.sqrt(2 * math.pi**2 * E / sigma)     # Shigley: tangent slenderness
+    L_c = lam_c * d / 4                                # r = d/4 for a round section
+    area = math.pi * d**2 / 4
+    assert float(johnson_critical_load(E, sigma, d, L_c, 1.0)) == pytest.approx(area * sigma / 2, rel=1e-9)
+    assert float(euler_critical_load(E, d, L_c, 1.0)) == pytest.approx(area * sigma / 2, rel=1e-9)
+
+
+@FAST
+@given(st.one_of(st.just(0.0), st.floats(1e-6, 50.0)), st.floats(0.5, 80.0), st.sampled_from([0.65, 0.8, 1.0, 2.1]), st.floats(1.0, 5.0))
+def test_post_diameter_inverts_column_load(load, L, K, sf):
+    # round trip: the sized diameter fails at exactly SF times the load (Euler or Johnson branch)
+    d = float(required_post_diameter(load, S.resin.green_modulus_mpa, S.resin.green_tensile_mpa, L, K, sf))
+    if load == 0:
+        assert d == 0.0
+        return
+    p = float(column_critical_load(S.resin.green_modulus_mpa, S.resin.green_tensile_mpa, d, L, K))
+    assert p == pytest.approx(sf * load, rel=1e-9)
+
+
+# --- tips ---------------------------------------------------------------------------------------
+
+def test_tip_capacity_formula():
+    # sigma * pi * d^2 / 4: 20 MPa on a 0.5 mm disc = 20 * 0.19635 mm^2 = 3.92699 N (hand computed)
+    assert float(tip_capacity(0.5, 20.0)) == pytest.approx(3.926991, rel=1e-6)
+    assert tip_capacity([0.2, 0.4], 30.0) == pytest.approx([30 * math.pi * 0.01, 30 * math.pi * 0.04])
+
+
+@FAST
+@given(st.floats(0.05, 3.0), st.floats(1.0, 100.0), st.floats(1.0, 10.0))
+def test_tip_sizing_round_trip(d, sigma, sf):
+    # sizing inverts sigma*pi*d^2/4: the diameter for capacity/SF at factor SF is d again
+    load = float(tip_capacity(d, sigma)) / sf
+    assert float(required_tip_diameter(load, sigma, sf)) == pytest.approx(d, rel=1e-12)
+
+
+def test_tip_diameter_clamps_and_flags():
+    s = S.supports
+    f_max = float(tip_capacity(s.tip_max_mm, S.resin.green_tensile_mpa)) / s.safety_factor
+    loads = np.array([0.0, 0.5 * f_max, 0.999 * f_max, 1.001 * f_max, 10 * f_max])
+    d = tip_diameter(loads, S)
+    assert np.all((d >= s.tip_min_mm) & (d <= s.tip_max_mm))
+    assert d[0] == s.tip_min_mm and d[-1] == s.tip_max_mm
+    assert over_capacity(loads, S).tolist() == [False, False, False, True, True]
+    with pytest.raises(SizingError, match="load_n"):
+        tip_diameter([-1.0], S)
+
+
+@FAST
+@given(st.lists(st.floats(0.0, 50.0), min_size=1, max_size=20), st.floats(1.0, 5.0))
+def test_more_load_never_thinner_tip(loads, scale):
+    loads = np.array(loads)
+    assert np.all(tip_diameter(loads * scale, S) >= tip_diameter(loads, S))
+
+
+@FAST
+@given(st.lists(st.floats(0.0, 50.0), min_size=1, max_size=20), st.floats(0.5, 100.0), st.floats(0.5, 100.0))
+def test_stronger_resin_never_thicker_tip(loads, a, b):
+    weak, strong = sorted((a, b))
+    d_weak = tip_diameter(loads, S.override(green_tensile_mpa=weak))
+    d_strong = tip_diameter(loads, S.override(green_tensile_mpa=strong))
+    assert np.all(d_strong <= d_weak)
+
+
+# --- load flow and posts ------------------------------------------------------------------------
+
+def test_merge_trunk_carries_sum():
+    plan, loads = merge_plan(), np.array([0.4, 0.9])
+    sized = size_plan(plan, loads, S)
+    # statics: a joint with no other way down passes on the sum of what reaches it
+    assert sized.edge_tension_n == pytest.approx([0.4, 0.9, 1.3])
+    assert sized.edge_compression_n == pytest.approx([0.4, 0.9, 1.3])   # default: squeeze = pull
+    r = sized.plan.edge_radius
+    assert r[2] >= max(r[0], r[1])
+    assert sized.plan.tip_diameters == pytest.approx(tip_diameter(loads, S))
+    # tension margin: sigma * pi * d^2 / 4 over the load, at least the safety factor
+    cap = S.resin.green_tensile_mpa * math.pi * (2 * r) ** 2 / 4
+    assert np.all(cap / sized.edge_tension_n >= S.supports.safety_factor * (1 - 1e-9))
+
+
+def test_split_equally_and_landing_tip():
+    # node 0 has two ways down: to foot 1, and to node 2 that lands on the part (contact -1)
+    nodes = [(0, 0, 10), (0, -2, 1), (0, 2, 5)]
+    plan = make_plan(nodes, [(0, 1), (0, 2)], [(0, 0), (2, -1)], [1])
+    node_n, edge_n, tip_n = flow_loads(plan, [3.0])
+    assert edge_n == pytest.approx([1.5, 1.5])
+    assert tip_n == pytest.approx([3.0, 1.5])          # the landing tip takes the post's load into the part
+    assert node_n == pytest.approx([3.0, 1.5, 1.5])
+
+
+def test_compression_loads_used_for_buckling():
+    plan = merge_plan()
+    light = size_plan(plan, [0.4, 0.9], S)
+    squeezed = size_plan(plan, [0.4, 0.9], S, compression_loads=[4.0, 9.0])
+    assert squeezed.edge_compression_n == pytest.approx([4.0, 9.0, 13.0])
+    assert np.all(squeezed.plan.edge_radius >= light.plan.edge_radius)
+    assert np.all(squeezed.edge_buckling_load_n >= S.supports.safety_factor * squeezed.edge_compression_n * (1 - 1e-9))
+
+
+def test_tension_governs_without_squeeze():
+    # no squeeze: each post is the round bar whose stress at SF times its load is the green strength
+    loads = np.array([2.0, 3.0])
+    sized = size_plan(merge_plan(), loads, S, compression_loads=[0.0, 0.0])
+    tension = np.array([2.0, 3.0, 5.0])
+    d = np.sqrt(4 * S.supports.safety_factor * tension / (math.pi * S.resin.green_tensile_mpa))
+    assert np.all(d > 0.5 * S.supports.post_diameter_mm)          # above the floor, so the formula governs
+    assert 2 * sized.plan.edge_radius == pytest.approx(d, rel=1e-12)
+    assert sized.edge_safety_factor == pytest.approx(np.full(3, S.supports.safety_factor))  # exactly SF
+
+
+def test_posts_never_thinner_than_their_tips():
+    # tiny loads: tips clamp up to tip_min_mm, which is above the need and the post floor (0.5 * 0.2 mm)
+    s = S.override(post_diameter_mm=0.2)
+    sized = size_plan(merge_plan(), [1e-4, 1e-4], s, compression_loads=[0.0, 0.0])
+    assert sized.plan.tip_diameters == pytest.approx([s.supports.tip_min_mm] * 2)
+    assert 2 * sized.plan.edge_radius == pytest.approx([s.supports.tip_min_mm] * 3)
+
+
+def split_plan():
+    """A heavy tip on a long post that splits low down into two short legs to two feet."""
+    nodes = [(0, 0, 30), (0, 0, 5), (-3, 0, 1), (3, 0, 1)]
+    return make_plan(nodes, [(0, 1), (1, 2), (1, 3)], [(0, 0)], [2, 3])
+
+
+def test_diameters_monotone_down_the_flow():
+    assert size_plan(split_plan(), [2.0], S).edge_tension_n == pytest.approx([2.0, 1.0, 1.0])
+    for plan, loads in ((merge_plan(), [2.0, 0.1]), (grid_plan(), [0.5, 1.0, 0.1, 2.0]), (split_plan(), [2.0])):
+        sized = size_plan(plan, loads, S)
+        p = sized.plan
+        d = 2 * p.edge_radius
+        for e, (u, _) in enumerate(p.edges):
+            above = np.flatnonzero(p.edges[:, 1] == u)
+            assert np.all(d[e] >= d[above] - 1e-12)
+            assert np.all(d[e] >= p.tip_diameters[p.tip_nodes == u] - 1e-12)
+        assert np.all(d >= 0.5 * S.supports.post_diameter_mm - 1e-12)
+
+
+def test_end_conditions_follow_sway_restraint():
+    # one foot: the part can sway on it, every run fixed-free (design K 2.1, AISC table)
+    assert np.all(size_plan(merge_plan(), [1.0, 1.0], S).edge_k == 2.1)
+    # four feet spanning an area: foot runs fixed-pinned (design K 0.80)
+    assert np.all(size_plan(grid_plan(10.0), [0.1] * 4, S).edge_k == 0.80)
+
+
+def test_slender_post_gets_braced():
+    s = S.override(post_diameter_mm=0.5)
+    plan, loads = grid_plan(40.0), np.full(4, 0.5)
+    bare = size_plan(plan, loads, s, max_brace_rounds=0)
+    assert bare.braces_added == 0 and len(bare.plan.braces) == 0
+    sized = size_plan(plan, loads, s)
+    p = sized.plan
+    assert sized.braces_added == len(p.braces) >= 8            # two directions per post
+    lo, hi = p.nodes[p.braces[:, 0]], p.nodes[p.braces[:, 1]]
+    rise = np.degrees(np.arctan2(hi[:, 2] - lo[:, 2], np.linalg.norm(hi[:, :2] - lo[:, :2], axis=1)))
+    assert np.all(rise >= 45.0)                                  # printable brace (common practice)
+    E, sigma, sf = s.resin.green_modulus_mpa, s.resin.green_tensile_mpa, s.supports.safety_factor
+    feet_edges = np.flatnonzero(np.isin(p.edges[:, 1], p.feet))
+    for e in feet_edges:
+        L = float(np.linalg.norm(p.nodes[p.edges[e, 0]] - p.nodes[p.edges[e, 1]]))
+        assert L == pytest.approx(20.0)                          # unbraced length halved
+        d = 2 * p.edge_radius[e]
+        lam = 4 * 0.8 * L / d
+        assert lam >= math.sqrt(2 * math.pi**2 * E / sigma)      # slender: Euler applies (Shigley)
+        p_cr = math.pi**2 * E * (math.pi * d**4 / 64) / (0.8 * L) ** 2   # Timoshenko & Gere, K = 0.8 (AISC)
+        assert p_cr >= sf * sized.edge_compression_n[e] * (1 - 1e-9)
+        assert lam <= MAX_SLENDERNESS
+    assert np.all(sized.edge_buckling_load_n >= sf * sized.edge_compression_n * (1 - 1e-9))
+    assert p.edge_radius.max() < bare.plan.edge_radius.min()    # bracing let the posts be thinner
+    assert sized.min_safety_factor >= sf * (1 - 1e-9)
+
+
+@FAST
+@given(st.lists(st.floats(0.0, 3.0), min_size=4, max_size=4), st.floats(1.0, 10.0))
+def test_heavier_plan_never_thinner(loads, scale):
+    loads = np.array(loads)
+    for plan, rounds in ((merge_plan(), 3), (grid_plan(), 0)):
+        light = size_plan(plan, loads[: len(plan.tip_nodes)], S, max_brace_rounds=rounds)
+        heavy = size_plan(plan, loads[: len(plan.tip_nodes)] * scale, S, max_brace_rounds=rounds)
+        assert np.all(heavy.plan.edge_radius >= light.plan.edge_radius)
+        assert np.all(heavy.plan.tip_diameters >= light.plan.tip_diameters)
+
+
+def test_over_capacity_reported():
+    f_max = float(tip_capacity(S.supports.tip_max_mm, S.resin.green_tensile_mpa)) / S.supports.safety_factor
+    sized = size_plan(merge_plan(), [2 * f_max, 0.1], S)
+    assert sized.tips_over_capacity == 1 and sized.tip_over.tolist() == [True, False]
+    # the over tip holds only (f_max * SF) / (2 f_max) = SF / 2 times its load
+    assert sized.tip_safety_factor[0] == pytest.approx(S.supports.safety_factor / 2)
+    assert sized.min_safety_factor == pytest.approx(S.supports.safety_factor / 2)
+    assert sized.contacts_over_capacity(3).tolist() == [True, False, False]
+    report = sized.to_dict()
+    json.dumps(report, allow_nan=False)
+    assert report["tips_over_capacity"] == 1
+    assert report["tip_diameter_mm"]["max"] == pytest.approx(S.supports.tip_max_mm)
+
+
+def test_bad_plans_rejected():
+    with pytest.raises(SizingError, match="cycle"):
+        size_plan(make_plan([(0, 0, 5), (0, 0, 3)], [(0, 1), (1, 0)], [(0, 0)], [1]), [1.0], S)
+    with pytest.raises(SizingError, match="contact"):
+        size_plan(merge_plan(), [1.0], S)
+    with pytest.raises(SizingError, match="contact_loads"):
+        size_plan(merge_plan(), [1.0, np.nan], S)
+
+
+# --- densify ------------------------------------------------------------------------------------
+
+def _one(point, normal):
+    return Contacts([point], [normal], ["overhang"], [0.4], loads=[50.0])
+
+
+def test_densify_ring_on_flat_underside():
+    box = trimesh.creation.box((10, 10, 4))
+    box.apply_translation((0, 0, 7))                      # underside at z = 5
+    out = densify_points(_one((0, 0, 5), (0, 0, -1)), [True], box, S)
+    new = out.points[1:]
+    r = 0.5 * S.supports.contact_spacing_mm
+    assert len(out) == 7 and set(out.kinds[1:]) == {"densify"}
+    # exact geometry: a ring of radius r in the plane of the face stays on it
+    assert np.linalg.norm(new[:, :2], axis=1) == pytest.approx(np.full(6, r))
+    assert new[:, 2] == pytest.approx(np.full(6, 5.0))
+    assert out.normals[1:] == pytest.approx(np.tile([0, 0, -1.0], (6, 1)))
+    # a second pass over the same contact finds its ring taken: nothing added, the loop ends
+    again = densify_points(out, [True] + [False] * 6, box, S)
+    assert len(again) == len(out)
+    assert densify_points(out, [False] * 7, box, S) is out
+
+
+def test_densify_keeps_only_down_facing_points():
+    # sphere radius 5 centred at z = 10: exact normal is radial, so down-facing means z < 10
+    sphere = trimesh.creation.icosphere(subdivisions=4, radius=5.0)
+    sphere.apply_translation((0, 0, 10))
+    out = densify_points(_one((5, 0, 10), (1, 0, 0)), [True], sphere, S)
+    new = out.points[1:]
+    # ring in the tangent plane at 60 degree steps: 3 of 6 points lie below the equator
+    assert len(new) == 3
+    assert np.all(new[:, 2] < 10.0) and np.all(out.normals[1:, 2] < 0)
+    _, dist, _ = trimesh.proximity.closest_point(sphere, new)
+    assert dist == pytest.approx(np.zeros(3), abs=1e-9)  # projected onto the surface
