@@ -5,8 +5,8 @@ No maths lives here: each step calls the stage module that owns it.
 load -> place -> overhangs -> contacts (samples, minima) -> layers (islands,
 reach: more contacts) -> forces (loads per contact; densify while a tip would
 need more than the largest diameter) -> strategy (plan) -> sizing -> geometry
-(union) -> verify (re-slice the result; contacts added at any island left and
-the plan rebuilt, once) -> report.
+(union) -> verify (re-slice the result; where an island is left or a layer reaches
+too far, contacts are added there and the plan rebuilt, at most twice) -> report.
 """
 
 from __future__ import annotations
@@ -37,6 +37,7 @@ __all__ = ["Result", "generate", "check", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUND
 
 DEFAULT_STRATEGY = "straight"
 MAX_DENSIFY_ROUNDS = 4
+MAX_REPAIR_ROUNDS = 2
 
 
 @dataclass(frozen=True)
@@ -187,7 +188,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, sp.max_reach_mm, progress=progress)
         contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), sp.tip_diameter_mm)
     warnings: list[dict] = []
-    densified = 0
+    densified = repaired = 0
     for _ in range(MAX_DENSIFY_ROUNDS):
         with timer("forces"):
             profile = _forces(part, stack.grid, contacts, settings, progress)
@@ -202,7 +203,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         contacts = more
     contacts = contacts.replace(diameters=tip_diameter(profile.contact_loads, settings),
                                 loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
-    for attempt in range(2):
+    for attempt in range(MAX_REPAIR_ROUNDS + 1):
         with timer("routing"):
             plan = plan_fn(part, contacts, settings)
         with timer("sizing"):
@@ -211,15 +212,21 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
             solids: Solids = combine(part, sized.plan, settings)
         with timer("verify"):
             ver = verify(solids.combined, settings, tip_safety=sized.tip_safety_factor / sp.safety_factor,
-                             progress=progress, name=name)
-        if ver.islands == 0 or attempt == 1:
+                         progress=progress, name=name)
+        if (ver.islands == 0 and ver.max_unsupported_reach_mm <= sp.max_reach_mm) or attempt == MAX_REPAIR_ROUNDS:
             break
-        # Hold what the first plan missed, then plan again.
-        xyz = [[*i["xy_mm"], i["z_mm"] - pr.layer_mm] for i in ver.first_islands]
-        extra = contacts_at(part, np.array(xyz).reshape(-1, 3), "island", sp.tip_diameter_mm)
-        if len(extra) == 0:
+        # Hold what the plan missed (islands left, layers reaching too far), then plan again.
+        with timer("contacts"):
+            extra = _layer_contacts(part, ver.layers, settings)
+            extra = extra.replace(diameters=np.full(len(extra), sp.tip_diameter_mm))
+            more = merge_contacts(contacts, extra, sp.tip_diameter_mm)
+        if len(more) == len(contacts):
             break
-        contacts = merge_contacts(contacts, extra.replace(diameters=np.full(len(extra), sp.tip_max_mm)), 0.0)
+        repaired += len(more) - len(contacts)
+        with timer("forces"):
+            profile = _forces(part, stack.grid, more, settings, progress)
+        contacts = more.replace(diameters=tip_diameter(profile.contact_loads, settings),
+                                loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
     warnings += [{"code": c, "message": m} for c, m in profile.warnings]
     warnings += [{"code": "repair", "message": f"{name}: {r}"} for r in loaded.repairs]
     if sized.tips_over_capacity:
@@ -242,6 +249,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         "supports": {"strategy": strategy, "contacts": len(contacts), "landings": plan.landings,
                      "contacts_by_kind": {k: int(np.count_nonzero(contacts.kinds == k)) for k in np.unique(contacts.kinds)},
                      "contacts_added_by_densifying": densified,
+                     "contacts_added_after_check": repaired,
                      "tip_diameter_mm": sized_dict["tip_diameter_mm"],
                      "tip_safety_factors": sized_dict["tips"]["safety_factor"],
                      "post_diameter_mm": sized_dict["post_diameter_mm"],

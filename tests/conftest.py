@@ -19,6 +19,12 @@ def corpus_path(name: str) -> Path:
 
 
 @pytest.fixture
+def corpus():
+    """The function :func:`corpus_path`, as a fixture."""
+    return corpus_path
+
+
+@pytest.fixture
 def coarse():
     """Default settings on a coarser pixel/layer grid, so end-to-end tests stay quick on 2 cores."""
     from supportgen import Settings
