@@ -140,11 +140,13 @@ def cmd_profiles(args) -> int:
 
 
 def cmd_calibrate(args) -> int:
-    from supportgen.calibration import calibrate_file
+    from supportgen.calibration import calibrated_settings, fit_calibration, read_measurements
+    from supportgen.meshio import atomic_write_text
 
     settings = _settings(args)
-    fit, text = calibrate_file(Path(args.measurements), settings, Path(args.output))
-    print(text)
+    fit = fit_calibration(read_measurements(args.measurements), settings)
+    print(fit.to_text())
+    atomic_write_text(Path(args.output), calibrated_settings(fit, settings).to_toml())
     print(f"profile written: {args.output}")
     return EXIT_OK
 

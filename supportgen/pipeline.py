@@ -186,7 +186,8 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         contacts = merge_contacts(contacts, minima, sp.tip_diameter_mm)
     with timer("layers"):
         stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, sp.max_reach_mm, progress=progress)
-        contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), sp.tip_diameter_mm)
+        # Island and reach points closer than the spacing to a contact are already held by it.
+        contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), sp.contact_spacing_mm)
     warnings: list[dict] = []
     densified = repaired = 0
     for _ in range(MAX_DENSIFY_ROUNDS):

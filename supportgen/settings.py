@@ -80,6 +80,9 @@ class Printer:
     force_calibration: float = _f(0.02, 1e-6, 10.0, "", "memory",
                                   "factor on the rigid-gap squeeze-film law: flexible films pull off far "
                                   "below it; fit it from measurements with `supportgen calibrate`")
+    force_area_n_mm2: float = _f(0.0, 0.0, 10.0, "N/mm2", "practice",
+                                 "force per mm2 of layer area added to the squeeze-film law (adhesion to "
+                                 "the film); 0 unless `supportgen calibrate` finds the data call for it")
     layer_cycle_s: float = _f(9.0, 0.5, 600.0, "s", "practice",
                               "time per layer: exposure (2-3 s) plus lift, peel and return (5-8 s)")
     rated_force_n: float = _f(80.0, 0.1, 5000.0, "N", "memory", "largest separation force the machine is meant to take")
