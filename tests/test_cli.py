@@ -1,0 +1,124 @@
+"""The command line: exit codes, one-line errors, atomic outputs, the demo, check and calibrate."""
+
+import json
+import shutil
+import struct
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import trimesh
+
+from supportgen.forces import torsion_constant
+from supportgen_cli.main import main
+
+COARSE = ["--set", "pixel_mm=0.2", "--set", "layer_mm=0.2", "--set", "tip_min_mm=0.4", "--set", "tip_max_mm=1.0",
+          "--quiet"]
+
+
+def _box_stl(path, lift=6.0, size=(8, 8, 3)):
+    box = trimesh.creation.box(size)
+    box.apply_translation((0, 0, lift + size[2] / 2))
+    box.export(path)
+    return path
+
+
+def _bad_files(folder):
+    (folder / "empty.stl").write_bytes(b"")
+    (folder / "garbage.ply").write_bytes(b"\x00\x01 not a mesh at all \xff" * 10)
+    good = trimesh.creation.box((5, 5, 5)).export(file_type="stl")
+    declared = struct.unpack("<I", good[80:84])[0]
+    assert declared == 12
+    (folder / "truncated.stl").write_bytes(good[: 84 + 50 * 5])   # header says 12 triangles, 5 present
+    return ["empty", "garbage", "truncated"]
+
+
+def test_generate_goes_on_past_bad_files_and_leaves_no_partial_output(tmp_path, capsys):
+    src = tmp_path / "in"
+    src.mkdir()
+    good = _box_stl(src / "good.stl")
+    bad = _bad_files(src)
+    out = tmp_path / "out"
+    code = main(["generate", str(good), *(str(src / f) for f in ("empty.stl", "garbage.ply", "truncated.stl")),
+                 "-o", str(out), *COARSE])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 1
+    # One line per bad file, naming it; no traceback.
+    assert len(err) == 3 and all(line.startswith("supportgen: error: ") for line in err)
+    for name, line in zip(bad, err):
+        assert name in line
+    assert "Traceback" not in "\n".join(err)
+    written = sorted(p.name for p in out.iterdir())
+    assert all(n.startswith("good.") for n in written), written
+    assert "good.supported.stl" in written and "good.report.json" in written
+    assert not any(n.endswith(".tmp") or ".tmp" in n for n in written)
+
+
+def test_usage_errors_exit_2(tmp_path, capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["generate", "x.stl", "--strategy", "pillars"])
+    assert exc.value.code == 2
+    assert main(["generate", str(_box_stl(tmp_path / "b.stl")), "--set", "spacing=2", "-o", str(tmp_path)]) == 2
+    assert "unknown setting 'spacing'" in capsys.readouterr().err
+    assert main([]) == 2
+
+
+def test_check_passes_generated_output_and_fails_an_unsupported_part(tmp_path, capsys):
+    out = tmp_path / "out"
+    assert main(["generate", str(_box_stl(tmp_path / "part.stl")), "-o", str(out), *COARSE]) == 0
+    assert main(["check", str(out / "part.supported.stl"), "--json", *COARSE]) == 0
+    line = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
+    assert line["passed"] and line["islands"] == 0
+    # The same box lifted with nothing under it starts in mid-air: an island.
+    floating = _box_stl(tmp_path / "floating.stl")
+    assert main(["check", str(floating), *COARSE]) == 1
+    err = capsys.readouterr().err
+    assert "island" in err and "layer" in err
+
+
+def test_profiles_lists_every_setting_with_its_source(capsys):
+    assert main(["profiles", "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    names = {r["name"] for r in data["settings"]}
+    assert {"pixel_mm", "contact_spacing_mm", "green_tensile_mpa", "mechanism"} <= names
+    assert all(r["source"] in {"pub", "practice", "memory"} for r in data["settings"])
+
+
+def test_calibrate_recovers_a_known_factor(tmp_path, capsys):
+    # Synthetic measurements made from a known factor with the squeeze-film law
+    # F = c 3 mu v J / h^3 (Stefan 1874; Reynolds) on discs, J = pi R^4 / 2 (exact).
+    mu, v, h, c = 0.5e-6, 1.0, 0.05, 0.013   # N s/mm^2, mm/s, mm
+    rows = ["area_mm2,torsion_mm4,peak_force_n"]
+    for R in (2.0, 4.0, 6.0, 9.0):
+        J = np.pi * R**4 / 2
+        rows.append(f"{np.pi * R**2},{J},{c * 3 * mu * v * J / h**3}")
+    csv = tmp_path / "peaks.csv"
+    csv.write_text("\n".join(rows) + "\n")
+    out = tmp_path / "fitted.toml"
+    assert main(["calibrate", str(csv), "-o", str(out)]) == 0
+    import supportgen
+
+    fitted = supportgen.load_settings(out)
+    assert fitted.printer.force_calibration == pytest.approx(c, rel=0.02)
+
+
+def test_torsion_constant_used_by_calibration_is_the_disc_value():
+    # Cross-check of the CSV column's meaning: a pixel disc's J against pi R^4/2 (exact).
+    R, p = 3.0, 0.05
+    y, x = np.mgrid[-70:71, -70:71] * p
+    assert torsion_constant(x**2 + y**2 <= R**2, p) == pytest.approx(np.pi * R**4 / 2, rel=0.01)
+
+
+def test_installed_command_and_demo(tmp_path):
+    exe = shutil.which("supportgen")
+    cmd = [exe] if exe else [sys.executable, "-m", "supportgen_cli"]
+    help_text = subprocess.run([*cmd, "--help"], capture_output=True, text=True, check=True).stdout
+    assert "generate" in help_text and "demo" in help_text
+    run = subprocess.run([*cmd, "demo", "-o", str(tmp_path / "demo"), *COARSE], capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr
+    solids = sorted((tmp_path / "demo").glob("*.supported.stl"))
+    assert len(solids) == 3
+    for path in solids:
+        mesh = trimesh.load(path)
+        assert mesh.is_watertight   # trimesh (reference library)
