@@ -1,0 +1,326 @@
+"""Tests of supportgen.layers against exact geometry, trimesh/shapely sections and scipy.
+
+Pixel error bound used throughout (derived here): a pixel is cured when its centre
+is inside the section S, so the cured area differs from area(S) only on points x
+whose pixel centre c(x) lies on the other side of the boundary; then the segment
+x-c(x) crosses the boundary and x lies within delta = pixel/sqrt(2) (half a
+pixel diagonal) of it.  Hence |A_pixels - A(S)| <= area(boundary dilated by delta),
+which for a convex polygon boundary of perimeter P is at most 2*P*delta + pi*delta^2
+(Steiner's formula for the outer parallel set; the inner one loses at most P*delta).
+"""
+
+from __future__ import annotations
+
+import json
+from functools import lru_cache
+from pathlib import Path
+
+import numpy as np
+import pytest
+import trimesh
+from hypothesis import given, settings as hsettings, strategies as st
+from scipy import ndimage
+from shapely.geometry import LineString, Polygon, box as sbox
+from shapely.ops import unary_union
+
+from supportgen.errors import MeshError, SettingsError
+from supportgen.layers import Grid, analyse_layers, component_stats, iter_layers
+
+m3 = pytest.importorskip("manifold3d")
+CORPUS = Path(__file__).parents[1] / ".." / "shared" / "corpus"
+S8 = np.ones((3, 3), bool)
+
+
+def _steiner(perimeter, pixel):
+    """Bound on |pixel area - area| for a convex boundary (module docstring)."""
+    d = pixel / np.sqrt(2)
+    return 2 * perimeter * d + np.pi * d * d
+
+
+def _mesh(man) -> trimesh.Trimesh:
+    """A manifold3d solid as a trimesh mesh (status checked)."""
+    assert man.status() == m3.Error.NoError
+    out = man.to_mesh()
+    return trimesh.Trimesh(np.asarray(out.vert_properties)[:, :3], np.asarray(out.tri_verts), process=False)
+
+
+# ---------------------------------------------------------------- exact geometry
+
+
+def test_sphere_areas_and_perimeters_match_the_ball():
+    # Exact geometry: an icosphere with vertices on the sphere of radius R is convex, lies
+    # inside the ball of radius R and contains the ball of radius rho (its nearest face
+    # plane), so its section at height z has area in [pi(rho^2-z^2), pi(R^2-z^2)].
+    R, zc, pixel = 10.0, 11.0, 0.1
+    mesh = trimesh.creation.icosphere(subdivisions=4, radius=R)
+    rho = float(np.min(np.abs(np.einsum("ij,ij->i", mesh.face_normals, mesh.triangles[:, 0]))))
+    mesh.apply_translation((0.3, -0.2, zc))
+    stack = analyse_layers(mesh, pixel, 0.25, 2.0)
+    z = stack.z_mm - zc
+    inside = np.abs(z) < R * 0.9
+    r = np.sqrt(R * R - z[inside] ** 2)
+    bound = np.pi * (R * R - rho * rho) + _steiner(2 * np.pi * r, pixel)
+    assert np.all(np.abs(stack.area_mm2[inside] - np.pi * r * r) <= bound)
+    assert np.all(stack.area_mm2[np.abs(z) > R] == 0)
+    # Cauchy-Crofton (Lehmann & Legland 2012) with 4 directions: for a convex section between
+    # radii r_in and r, the continuous estimate lies in [2 pi r_in, 2 pi r]; counting lines
+    # through pixel centres is off by at most 4 lines of each direction (derived).
+    r_in = np.sqrt(np.maximum(rho * rho - z[inside] ** 2, 0))
+    tol = 2 * np.pi * (r - r_in) + np.pi * (2 * pixel + 2 * pixel / np.sqrt(2))
+    assert np.all(np.abs(stack.perimeter_mm[inside] - 2 * np.pi * r) <= tol)
+    assert stack.n_components[inside].tolist() == [1] * int(inside.sum())
+    assert stack.inverted_pixels == 0
+
+
+def test_cone_areas_are_those_of_its_polygons():
+    # Exact geometry: trimesh's cone with n sections has, at height z, a regular n-gon section
+    # of circumradius r = R (1 - z / H): area (n/2) r^2 sin(2 pi / n), perimeter 2 n r sin(pi / n).
+    R, H, n, pixel = 8.0, 16.0, 64, 0.1
+    mesh = trimesh.creation.cone(radius=R, height=H, sections=n)
+    assert np.allclose(mesh.bounds[:, 2], [0, H])
+    stack = analyse_layers(mesh, pixel, 0.2, 2.0)
+    r = R * (1 - stack.z_mm / H)
+    exact = n / 2 * r * r * np.sin(2 * np.pi / n)
+    bound = _steiner(2 * n * r * np.sin(np.pi / n), pixel)
+    assert np.all(np.abs(stack.area_mm2 - exact) <= bound)
+    assert stack.islands == ()                       # stands on the plate, narrows upwards
+    assert stack.max_reach_mm == 0.0
+
+
+def test_torus_areas_are_those_of_its_annuli():
+    # Exact geometry: trimesh's torus is a polygon revolved in n planar trapezoid steps, so its
+    # section at height z lies between two regular n-gons whose circumradii are where the
+    # profile polygon (vertices in the half-plane y = 0, x > 0) meets the line at height z.
+    n, pixel, lift = 96, 0.1, 5.0
+    mesh = trimesh.creation.torus(major_radius=12.0, minor_radius=4.0, major_sections=n, minor_sections=48)
+    v = mesh.vertices
+    prof = v[(np.abs(v[:, 1]) < 1e-9) & (v[:, 0] > 0)][:, [0, 2]]
+    prof = prof[np.argsort(np.arctan2(prof[:, 1], prof[:, 0] - 12.0))]
+    profile = Polygon(prof)
+    mesh.apply_translation((0.0, 0.0, lift))
+    stack = analyse_layers(mesh, pixel, 0.25, 2.0)
+    checked = 0
+    for z, area in zip(stack.z_mm, stack.area_mm2):
+        cut = profile.intersection(LineString([(0, z - lift), (20, z - lift)]))
+        if cut.is_empty or cut.length == 0:
+            assert area == 0
+            continue
+        r_in, r_out = cut.bounds[0], cut.bounds[2]
+        exact = n / 2 * np.sin(2 * np.pi / n) * (r_out ** 2 - r_in ** 2)
+        bound = _steiner(2 * n * r_out * np.sin(np.pi / n), pixel) + _steiner(2 * n * r_in * np.sin(np.pi / n), pixel)
+        assert abs(area - exact) <= bound
+        checked += 1
+    assert checked > 25
+
+
+def test_overlapping_shells_print_as_their_union():
+    # Reference: shapely's union of the boxes present at each height.  Box edges lie on pixel
+    # boundaries (x = (i + 1/2) * pixel, exact binary fractions), so the pixel count is exact.
+    p, h = 0.125, 0.25
+    a = ((1.0625, 1.0625, 0.0), (5.0625, 3.0625, 2.0))
+    b = ((3.0625, 2.0625, 1.0), (6.0625, 6.0625, 3.0))
+    boxes = [trimesh.creation.box(bounds=np.array(x)) for x in (a, b)]
+    mesh = trimesh.util.concatenate(boxes)              # two intersecting shells, not unioned
+    grid = Grid(0.0, 0.0, p, 60, 60)
+    stack = analyse_layers(mesh, p, h, 2.0, grid=grid)
+    for z, area, ncomp in zip(stack.z_mm, stack.area_mm2, stack.n_components):
+        present = [sbox(x[0][0], x[0][1], x[1][0], x[1][1]) for x in (a, b) if x[0][2] < z < x[1][2]]
+        assert area == pytest.approx(unary_union(present).area, abs=1e-12)
+        assert ncomp == 1
+    assert stack.inverted_pixels == 0
+
+
+def test_cavities_and_inside_out_shells():
+    # Winding numbers (Jacobson et al. 2013): an inward-facing inner shell cancels the outer
+    # one (a sealed cavity, area = shapely difference); an inverted shell alone never cures
+    # and every pixel it covers is counted as inverted.
+    p, h = 0.125, 0.5
+    outer = trimesh.creation.box(bounds=np.array(((0.0625, 0.0625, 0.0), (4.0625, 4.0625, 3.0))))
+    inner = trimesh.creation.box(bounds=np.array(((1.0625, 1.0625, 1.0), (3.0625, 3.0625, 2.0))))
+    inner.invert()
+    grid = Grid(-1.0, -1.0, p, 48, 48)
+    stack = analyse_layers(trimesh.util.concatenate([outer, inner]), p, h, 2.0, grid=grid)
+    ring = sbox(0.0625, 0.0625, 4.0625, 4.0625).difference(sbox(1.0625, 1.0625, 3.0625, 3.0625)).area
+    expect = [16.0 if not 1 < z < 2 else ring for z in stack.z_mm]
+    assert stack.area_mm2.tolist() == pytest.approx(expect, abs=1e-12)
+    assert stack.inverted_pixels == 0
+    alone = analyse_layers(inner, p, h, 2.0, grid=grid)
+    assert alone.area_mm2.max() == 0
+    assert alone.inverted_pixels == 16 * 16 * 2         # 2 mm x 2 mm of pixels, 2 layers inside
+
+
+def test_components_match_scipy_label():
+    # Reference library: scipy.ndimage.label (8-connectivity) on each streamed mask.
+    mesh, _ = _cones_plate()
+    seen = []
+
+    def observer(layer, labels, n):
+        ref, n_ref = ndimage.label(layer.mask, S8)
+        seen.append((n == n_ref, np.array_equal(labels, ref)))
+        a, c = component_stats(labels, n, Grid.covering(mesh.bounds, 0.2))
+        assert a.sum() == pytest.approx(layer.mask.sum() * 0.04)
+
+    stack = analyse_layers(mesh, 0.2, 0.4, 2.0, observers=(observer,))
+    assert len(seen) == len(stack.z_mm) and all(x and y for x, y in seen)
+    assert stack.n_components.max() == 4
+
+
+# ---------------------------------------------------------------- reference library on the corpus
+
+
+def _corpus(name):
+    path = CORPUS / name
+    if not path.exists():
+        pytest.skip(f"shared corpus mesh {path} not found")
+    mesh = trimesh.load(path, force="mesh")
+    mesh.merge_vertices(merge_tex=True, merge_norm=True)   # spot: texture seams split vertices
+    if not mesh.is_watertight:
+        mesh.fill_holes()
+    if not mesh.is_watertight:
+        pytest.skip(f"{name} is not closed even after merging vertices and filling holes")
+    mesh.apply_scale(50.0 / mesh.extents.max())           # 50 mm on the longest side
+    mesh.apply_translation(-mesh.bounds[0])
+    return mesh
+
+
+@pytest.mark.parametrize("name", ["spot.obj", "fandisk.obj", "stanford-bunny.obj"])
+def test_corpus_areas_match_trimesh_sections(name):
+    # Reference libraries: trimesh.section_multiplane and shapely polygon areas; bound: the
+    # area of the section boundary dilated by half a pixel diagonal (module docstring).
+    mesh = _corpus(name)
+    pixel = 0.2
+    stack = analyse_layers(mesh, pixel, 0.5, 2.0)
+    sections = mesh.section_multiplane([0, 0, 0], [0, 0, 1], stack.z_mm)
+    for z, area, sec in zip(stack.z_mm, stack.area_mm2, sections):
+        polys = [] if sec is None else list(sec.polygons_full)
+        ref = sum(q.area for q in polys)
+        bound = sum(q.boundary.buffer(pixel / np.sqrt(2)).area for q in polys) + 1e-9
+        assert abs(area - ref) <= bound, f"{name} z={z}: {area} vs {ref} (bound {bound})"
+    assert stack.inverted_pixels == 0
+
+
+# ---------------------------------------------------------------- islands and reach
+
+
+def test_lifted_ball_is_one_island_at_its_lowest_layer():
+    h, p = 0.25, 0.1
+    mesh = _mesh(m3.Manifold.sphere(4.0, 48).translate((1.23, -0.77, 7.0)))
+    stack = analyse_layers(mesh, p, h, 2.0)
+    assert len(stack.islands) == 1
+    isl = stack.islands[0]
+    k_low = int(np.floor(mesh.bounds[0, 2] / h))          # the layer holding the lowest point
+    assert isl.layer in (k_low, k_low + 1)
+    assert isl.layer == int(np.flatnonzero(stack.area_mm2)[0])
+    assert np.hypot(*(np.array(isl.centroid_xy) - (1.23, -0.77))) <= 2 * p
+    assert isl.area_mm2 == pytest.approx(isl.mask.sum() * p * p)
+
+
+@lru_cache(maxsize=None)
+def _cones_plate():
+    """A plate (8-10 mm up) held by four downward cones whose tips are at different heights."""
+    tips = ((2.37, 3.11, 2.0), (12.62, 2.93, 2.6), (3.08, 12.71, 3.3), (13.18, 13.39, 4.1))
+    parts = [m3.Manifold.cube((16.0, 16.0, 2.0)).translate((0.0, 0.0, 8.0))]
+    for x, y, z in tips:
+        parts.append(m3.Manifold.cylinder(8.5 - z, 0.0, 1.2, 32).translate((x, y, z)))
+    return _mesh(m3.Manifold.batch_boolean(parts, m3.OpType.Add)), tips
+
+
+def test_plate_on_downward_cones_has_an_island_at_each_tip():
+    mesh, tips = _cones_plate()
+    h, p = 0.25, 0.1
+    stack = analyse_layers(mesh, p, h, 1.0)
+    assert len(stack.islands) == len(tips)
+    for isl, (x, y, z) in zip(sorted(stack.islands, key=lambda i: i.layer), sorted(tips, key=lambda t: t[2])):
+        assert isl.layer in (int(np.floor(z / h)), int(np.floor(z / h)) + 1)
+        assert np.hypot(isl.centroid_xy[0] - x, isl.centroid_xy[1] - y) <= 2 * p
+        pts = isl.points(1.0, seed=0)
+        assert len(pts) >= 1
+        r, c = stack.grid.index(pts)
+        assert isl.mask[r - isl.row0, c - isl.col0].all()
+    # The plate's underside reaches out from the cones: over the limit, and reported.
+    assert stack.max_reach_mm > 1.0 and len(stack.overreach) >= 1
+    assert all(o.reach_mm > 1.0 for o in stack.overreach)
+
+
+def test_mushroom_on_the_plate_reaches_by_its_overhang():
+    # Exact geometry: a cap of radius 6 on a stem of radius 2 overhangs by 4 mm; pixel centres
+    # discretise both rims, so the reach is 4 mm within two pixels.
+    p, h = 0.1, 0.2
+    stem = m3.Manifold.cylinder(5.0, 2.0, 2.0, 96)
+    cap = m3.Manifold.cylinder(2.0, 6.0, 6.0, 96).translate((0, 0, 5.0))
+    mesh = _mesh((stem + cap).translate((0.31, 0.17, 0.0)))
+    stack = analyse_layers(mesh, p, h, 1.5)
+    assert stack.islands == ()
+    assert abs(stack.max_reach_mm - 4.0) <= 2 * p
+    assert stack.max_reach_layer == int(np.floor(5.0 / h - 0.5)) + 1   # first layer sampled in the cap
+    assert len(stack.overreach) == 1 and stack.overreach[0].layer == stack.max_reach_layer
+    xy = np.array(stack.reach_xy[stack.max_reach_layer])
+    assert abs(np.hypot(*(xy - (0.31, 0.17))) - 6.0) <= 2 * p
+    assert np.isnan(stack.reach_xy[0]).all() and stack.reach_mm[0] == 0
+
+
+def test_island_points_cover_a_flat_island():
+    # A lifted 10 x 6 mm slab: one island, its whole underside; farthest-point samples cover it.
+    p, spacing = 0.1, 2.0
+    slab = trimesh.creation.box(bounds=np.array(((0.03, 0.04, 3.0), (10.03, 6.04, 4.0))))
+    stack = analyse_layers(slab, p, 0.25, 2.0)
+    (isl,) = stack.islands
+    assert isl.area_mm2 == pytest.approx(60.0, abs=_steiner(32.0, p))
+    pts = isl.points(spacing, seed=3)
+    r, c = np.nonzero(isl.mask)
+    xy = stack.grid.xy(r + isl.row0, c + isl.col0)
+    far = np.sqrt(((xy[:, None] - pts[None]) ** 2).sum(-1)).min(1).max()
+    assert far <= spacing / np.sqrt(2) + spacing / 4
+    assert np.hypot(*(pts[0] - isl.centroid_xy)) <= p
+    gaps = np.sqrt(((pts[:, None] - pts[None]) ** 2).sum(-1)) + np.eye(len(pts)) * 1e9
+    assert gaps.min() >= spacing / np.sqrt(2) - 1e-9
+    assert 60.0 / spacing ** 2 / 2 <= len(pts) <= 60.0 / spacing ** 2 * 2
+
+
+@hsettings(max_examples=8, deadline=None)
+@given(st.integers(-15, 15), st.integers(-15, 15))
+def test_whole_pixel_shifts_change_no_count(dx, dy):
+    # Invariance: the grid follows the mesh by whole pixels, so every count must be equal.
+    mesh, _ = _cones_plate()
+    p, h = 0.25, 0.5
+    base = analyse_layers(mesh, p, h, 1.0)
+    moved = mesh.copy()
+    moved.apply_translation((dx * p, dy * p, 0.0))
+    stack = analyse_layers(moved, p, h, 1.0)
+    assert stack.n_components.tolist() == base.n_components.tolist()
+    assert stack.area_mm2.tolist() == base.area_mm2.tolist()
+    assert [i.layer for i in stack.islands] == [i.layer for i in base.islands]
+    assert len(stack.overreach) == len(base.overreach)
+    assert stack.reach_mm == pytest.approx(base.reach_mm)
+    shift = np.array([i.centroid_xy for i in stack.islands]) - [i.centroid_xy for i in base.islands]
+    assert shift == pytest.approx(np.tile([dx * p, dy * p], (len(base.islands), 1)))
+
+
+# ---------------------------------------------------------------- streaming, report, errors
+
+
+def test_iter_layers_streams_a_window_of_layers():
+    mesh = trimesh.creation.box(bounds=np.array(((0.0, 0.0, 0.0), (2.0, 2.0, 3.0))))
+    grid = Grid.covering(mesh.bounds, 0.25)
+    full = [layer.mask for layer in iter_layers(mesh, grid, 0.5)]
+    part = list(iter_layers(mesh, grid, 0.5, first=2, last=7))
+    assert len(full) == 6 and [layer.index for layer in part] == list(range(2, 8))
+    assert all(np.array_equal(a.mask, b) for a, b in zip(part, full[2:]))
+    assert not part[-1].mask.any() and part[0].z_mm == pytest.approx(1.25)
+
+
+def test_to_dict_is_json():
+    stack = analyse_layers(_cones_plate()[0], 0.25, 0.5, 1.0)
+    d = json.loads(json.dumps(stack.to_dict()))
+    assert d["islands"] == 4 and len(d["area_mm2"]) == len(stack.z_mm)
+    assert d["max_reach_mm"] == pytest.approx(stack.max_reach_mm, abs=1e-4)
+
+
+def test_bad_inputs_raise_clear_errors():
+    mesh = trimesh.creation.box()
+    with pytest.raises(SettingsError, match="layer_mm"):
+        analyse_layers(mesh, 0.1, 0.0, 1.0)
+    with pytest.raises(SettingsError, match="grid pitch"):
+        analyse_layers(mesh, 0.1, 0.1, 1.0, grid=Grid(0, 0, 0.2, 10, 10))
+    with pytest.raises(MeshError, match="no faces"):
+        analyse_layers(trimesh.Trimesh(), 0.1, 0.1, 1.0)
