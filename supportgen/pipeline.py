@@ -33,7 +33,12 @@ from .sizing import SizedPlan, densify_points, over_capacity, size_plan, tip_dia
 from .strategies import get_strategy
 from .verify import Verification, verify
 
-__all__ = ["Result", "generate", "check", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
+__all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
+
+#: What :meth:`Result.save` writes for a part NAME: role -> file name suffix.
+OUTPUTS = {"combined": ".supported.stl", "supports": ".supports.stl", "report": ".report.json",
+           "summary": ".report.md", "layers_plot": ".layers.png", "tips_plot": ".tips.png",
+           "preview": ".preview.png"}
 
 DEFAULT_STRATEGY = "straight"
 MAX_DENSIFY_ROUNDS = 4
@@ -42,11 +47,13 @@ MAX_REPAIR_ROUNDS = 2
 
 @dataclass(frozen=True)
 class Result:
-    """Everything one run made: solids, contacts, plan, analyses and the report dict."""
+    """Everything one run made: solids (``part`` is the placed part alone), contacts,
+    plan, analyses and the report dict."""
 
     name: str
     combined: trimesh.Trimesh
     supports: trimesh.Trimesh
+    part: trimesh.Trimesh
     contacts: Contacts
     plan: SupportPlan
     report: dict
@@ -56,7 +63,8 @@ class Result:
 
     def save(self, outdir: str | Path) -> dict[str, Path]:
         """Write ``NAME.supported.stl``, ``NAME.supports.stl``, ``NAME.report.json``,
-        ``NAME.report.md`` and its plots into ``outdir``; return the paths by role.
+        ``NAME.report.md`` and its plots (preview, layers, tips) into ``outdir``;
+        return the paths by role.
 
         Each file is written atomically; if any write fails, the files of this
         part already written are removed, so no partial set is left.
@@ -64,9 +72,7 @@ class Result:
         outdir = Path(outdir)
         outdir.mkdir(parents=True, exist_ok=True)
         n = self.name
-        paths = {"combined": outdir / f"{n}.supported.stl", "supports": outdir / f"{n}.supports.stl",
-                 "report": outdir / f"{n}.report.json", "summary": outdir / f"{n}.report.md",
-                 "layers_plot": outdir / f"{n}.layers.png", "tips_plot": outdir / f"{n}.tips.png"}
+        paths = {role: outdir / f"{n}{suffix}" for role, suffix in OUTPUTS.items()}
         report = dict(self.report)
         report["outputs"] = {k: str(p) for k, p in paths.items()}
         written: list[Path] = []
@@ -82,7 +88,11 @@ class Result:
                 np.asarray(report["supports"]["tip_safety_factors"], float), report["forces"]["target_safety_factor"],
                 f"{n}: tip safety factors"))
             written.append(paths["tips_plot"])
-            images = {"area and force per layer": paths["layers_plot"].name, "tip safety factors": paths["tips_plot"].name}
+            atomic_write(paths["preview"], rpt.plot_preview(self.part, self.supports, f"{n}: part on its supports"))
+            written.append(paths["preview"])
+            images = {"part on its supports": paths["preview"].name,
+                      "area and force per layer": paths["layers_plot"].name,
+                      "tip safety factors": paths["tips_plot"].name}
             atomic_write_text(paths["summary"], rpt.markdown(report, n, images)); written.append(paths["summary"])
             atomic_write_text(paths["report"], rpt.to_json(report)); written.append(paths["report"])
         except BaseException:
@@ -270,7 +280,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         "timing_s": timer.seconds,
         "warnings": warnings,
     }
-    return Result(name, solids.combined, solids.supports, contacts, sized.plan, report, stack, profile, ver)
+    return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver)
 
 
 def check(mesh, settings: Settings | str | Path | None = None, *, progress: bool = False, **overrides) -> Verification:
