@@ -20,12 +20,16 @@ At ``s = 1`` this puts the boundary on the pixel edges, so the region solved is
 exactly the union of cured pixels, with an ``O(h^2)`` error (convergence table
 in ``benchmarks/bench_forces.py``; a square 32 pixels wide is 0.4 % high).
 
-Coarse grid.  With ``w = 2A/P`` (area over half the pixel-edge perimeter; ``R``
-for a disc, about the width for a strip) the coarse factor is the largest ``s``
-with ``w / (s h) >= 12``.  Measured against the pixel solve over a disc, a 5:1
-rectangle, a ring, an L and a triangle at four grid offsets, the coarse ``J`` is
-within 1.1 % at ``w/H >= 12`` (2.4 % at ``w/H`` = 9, 4 % at 3): the stated bound
-is 2 % (``python benchmarks/bench_forces.py --convergence`` prints the table).
+Coarse grid.  With ``w = 2A/P`` (area over half the pixel-edge perimeter; about
+``0.79 R`` for a pixelated disc, the width for a strip) the coarse factor is the
+largest ``s`` with ``w / (s h) >= 12``.  :func:`solve_components` places the blocks
+at multiples of ``s`` in the image, so a part meets them at any offset in
+``[0, s)``.  Measured against the pixel solve over a disc, a 5:1 rectangle, a
+ring, an L and a triangle at eight block offsets spread over ``[0, s)``, the
+coarse ``J`` is within 1.1 % at ``w/H >= 12`` (2.4 % at ``w/H`` = 9, 4 % at 3):
+the stated bound is 2 % (``python benchmarks/bench_forces.py --convergence``
+prints the table).  Kept solves (:mod:`supportgen.loadpath`) return the fresh
+coarse answer to a 1e-10 residual, so they add nothing to the bound.
 
 Examples
 --------
@@ -59,41 +63,143 @@ __all__ = [
     "slide_force",
     "tilt_force",
     "SEPARATION",
+    "READS_LABELS",
     "separation",
     "force_unit_n",
 ]
 
 #: Coarse cells across the half-width ``2A/P`` the coarse grid keeps (see Notes above).
 CELLS_ACROSS = 12
-_STEPS = ((0, 1), (0, -1), (1, 0), (-1, 0))
+_STEPS = ((-1, 0), (0, -1), (0, 1), (1, 0))          # up, left, right, down: index order
+
+
+def _system(frac: np.ndarray):
+    """Cells solved (``frac >= 1/2``) and the SPD matrix of the scheme (Notes above), scaled by H^2.
+
+    Built column by column in index order (up, left, self, right, down), so the CSC
+    arrays come out sorted without a sort; O(cells).
+    """
+    inside = frac >= 0.5
+    n = int(inside.sum())
+    pin, pfr = np.pad(inside, 1), np.pad(frac, 1)
+    index = np.full(pin.shape, -1, dtype=np.int64)
+    index[pin] = np.arange(n)
+    f = frac[inside]
+    diag = np.zeros(n)
+    cols, ok = np.zeros((n, 5), np.int64), np.zeros((n, 5), bool)
+    vals = np.full((n, 5), -1.0)
+    ny, nx = pin.shape
+    for slot, (dr, dc) in zip((0, 1, 3, 4), _STEPS):
+        sl = (slice(1 + dr, ny - 1 + dr), slice(1 + dc, nx - 1 + dc))
+        nb = pin[sl][inside]
+        d = np.clip(f + pfr[sl][inside] - 0.5, 0.02, 1.0)
+        diag += np.where(nb, 1.0, 1.0 / d)
+        cols[:, slot], ok[:, slot] = index[sl][inside], nb
+    cols[:, 2], vals[:, 2], ok[:, 2] = np.arange(n), diag, True
+    indptr = np.concatenate([[0], np.cumsum(ok.sum(axis=1))])
+    return inside, sp.csc_matrix((vals[ok], cols[ok], indptr), shape=(n, n))
 
 
 def _solve_fraction(frac: np.ndarray, cell_mm: float) -> np.ndarray:
     """phi on cells of side ``cell_mm`` covered by fraction ``frac`` (0 outside)."""
-    inside = frac >= 0.5
-    n = int(inside.sum())
+    return _factor_solve(frac, cell_mm)[0]
+
+
+#: Conjugate-gradient steps with a kept factorisation as preconditioner before
+#: factorising afresh, and the residual (max norm, relative to the right-hand side)
+#: they must reach: the reused answer is the fresh one to this tolerance, so reuse
+#: adds nothing to the stated error bound.
+REFINE_STEPS, REFINE_TOL = 8, 1e-10
+
+
+def _pcg(a, b, lu):
+    """Preconditioned CG on ``a x = b`` from ``lu.solve(b)``; x, or None if not converged."""
+    x = lu.solve(b)
+    r = b - a @ x
+    z = lu.solve(r)
+    p, rz = z.copy(), r @ z
+    for _ in range(REFINE_STEPS):
+        if np.abs(r).max() <= REFINE_TOL * np.abs(b).max():
+            return x
+        q = a @ p
+        alpha = rz / (p @ q)
+        x, r = x + alpha * p, r - alpha * q
+        z = lu.solve(r)
+        rz, rz_old = r @ z, rz
+        p = z + (rz / rz_old) * p
+    return x if np.abs(r).max() <= REFINE_TOL * np.abs(b).max() else None
+
+
+def _factor_solve(frac: np.ndarray, cell_mm: float, kept=None):
+    """phi on cells, and the state ``(frac, inside, lu, phi)`` a later call can reuse.
+
+    ``kept`` (a state from an earlier call, or None): the same ``frac`` returns its
+    phi unchanged; the same solved cells (``frac >= 1/2``, the coarse mask) keep its
+    LU factors as the preconditioner of conjugate gradients (the matrices differ only
+    in boundary diagonal terms, so a few steps reach ``REFINE_TOL``); otherwise, or
+    if CG has not converged in ``REFINE_STEPS``, ``scipy.sparse.linalg.splu``
+    factorises afresh.
+    """
+    if kept is not None and kept[0].shape == frac.shape and np.array_equal(kept[0], frac):
+        return kept[3], kept
     phi = np.zeros(frac.shape)
+    inside, a = _system(frac)
+    n = a.shape[0]
     if n == 0:
-        return phi
-    index = np.full(frac.shape, -1, dtype=np.int64)
-    index[inside] = np.arange(n)
-    r, c = np.nonzero(inside)
-    pin, pfr = np.pad(inside, 1), np.pad(frac, 1)
-    diag = np.zeros(n)
-    rows, cols = [], []
-    for dr, dc in _STEPS:
-        nb = pin[r + 1 + dr, c + 1 + dc]
-        diag[nb] += 1.0
-        d = np.clip(frac[r, c] + pfr[r + 1 + dr, c + 1 + dc] - 0.5, 0.02, 1.0)
-        diag[~nb] += 1.0 / d[~nb]
-        rows.append(index[r[nb], c[nb]])
-        cols.append(index[r[nb] + dr, c[nb] + dc])
-    rows, cols = np.concatenate(rows), np.concatenate(cols)
-    ar = np.arange(n)
-    a = sp.csc_matrix((np.concatenate([diag, -np.ones(rows.size)]),
-                       (np.concatenate([ar, rows]), np.concatenate([ar, cols]))), shape=(n, n))
-    phi[inside] = spl.spsolve(a, np.full(n, cell_mm * cell_mm))
-    return phi
+        return phi, (frac, inside, None, phi)
+    b = np.full(n, cell_mm * cell_mm)
+    if kept is not None and kept[2] is not None and np.array_equal(kept[1], inside):
+        x = _pcg(a, b, kept[2])
+        if x is not None:
+            phi[inside] = x
+            return phi, (frac, inside, kept[2], phi)
+    lu = spl.splu(a, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+    phi[inside] = lu.solve(b)
+    return phi, (frac, inside, lu, phi)
+
+
+def _mask_runs(mask: np.ndarray, r0: int = 0, c0: int = 0):
+    """Row runs of a bool image: (rows, starts, ends) int64, sorted, end exclusive, offset by (r0, c0)."""
+    ny, nx = mask.shape
+    p = np.zeros((ny, nx + 2), bool)
+    p[:, 1:-1] = mask
+    t = np.flatnonzero(p.ravel()[1:] != p.ravel()[:-1]) + 1
+    st, en = t[0::2], t[1::2]
+    return st // (nx + 2) + r0, st % (nx + 2) - 1 + c0, en % (nx + 2) - 1 + c0
+
+
+def _run_fraction(rows, starts, ends, s: int):
+    """Covered fraction of the ``s x s`` blocks (aligned to multiples of ``s``) under runs.
+
+    Returns the (nI, nJ) fractions and the block index (I0, J0) of their corner.
+    Cost O(runs + nI nJ s).
+    """
+    i0, j0 = int(rows.min()) // s, int(starts.min()) // s
+    ni, nj = int(rows.max()) // s - i0 + 1, (int(ends.max()) - 1) // s - j0 + 1
+    width = nj * s + 1
+    bi = rows // s - i0
+    diff = np.bincount(bi * width + starts - j0 * s, minlength=ni * width).astype(np.int64)
+    diff -= np.bincount(bi * width + ends - j0 * s, minlength=ni * width)
+    cover = np.cumsum(diff.reshape(ni, width)[:, :-1], axis=1)
+    return cover.reshape(ni, nj, s).sum(axis=2) / float(s * s), (i0, j0)
+
+
+def _component(rows, starts, ends, edges: int, pixel_mm: float, origin, kept=None, factor=None):
+    """J, area, pressure samples and ``((s, I0, J0), state)`` of one component given by its runs.
+
+    ``kept``: dict of earlier states by block key ``(s, I0, J0)``; the one with this
+    component's key, if any, is offered to :func:`_factor_solve`.
+    """
+    area = int((ends - starts).sum())
+    s = int(coarse_factor(area, edges)) if factor is None else max(1, int(factor))
+    frac, (i0, j0) = _run_fraction(rows, starts, ends, s)
+    cell = s * pixel_mm
+    phi, state = _factor_solve(frac, cell, None if kept is None else kept.get((s, i0, j0)))
+    w = phi * frac * cell * cell
+    r, c = np.nonzero(w > 0)
+    pts = np.column_stack([origin[0] + ((j0 + c) * s + (s - 1) / 2) * pixel_mm,
+                           origin[1] + ((i0 + r) * s + (s - 1) / 2) * pixel_mm])
+    return 4.0 * float(w.sum()), area * pixel_mm**2, pts, w[r, c], ((s, i0, j0), state)
 
 
 def _pads(mask: np.ndarray, s: int) -> tuple[int, int]:
@@ -211,7 +317,8 @@ def _edges(crop: np.ndarray) -> int:
     return int((p[1:, :] != p[:-1, :]).sum() + (p[:, 1:] != p[:, :-1]).sum())
 
 
-def solve_components(labels: np.ndarray, ids, pixel_mm: float, origin=(0.0, 0.0), objects=None):
+def solve_components(labels: np.ndarray, ids, pixel_mm: float, origin=(0.0, 0.0), objects=None,
+                     factor: int | None = None):
     """Torsion constant and pressure samples of chosen labelled components.
 
     Parameters
@@ -226,6 +333,8 @@ def solve_components(labels: np.ndarray, ids, pixel_mm: float, origin=(0.0, 0.0)
         Centre of pixel ``[0, 0]`` (mm).
     objects : list of slices, optional
         ``scipy.ndimage.find_objects(labels)``, if already known.
+    factor : int, optional
+        Coarse factor for every component; default :func:`coarse_factor` of each.
 
     Returns
     -------
@@ -235,25 +344,20 @@ def solve_components(labels: np.ndarray, ids, pixel_mm: float, origin=(0.0, 0.0)
 
     Notes
     -----
-    Each component gets its own coarse factor (:func:`coarse_factor`); cost about
-    ``A_i / s_i^2`` unknowns each, i.e. roughly ``(w/h)^(-2) A/h^2 * 144``.
+    Each component gets its own coarse factor (:func:`coarse_factor`); its blocks sit
+    at multiples of ``s`` in ``labels`` (not centred on the component), so a
+    component's coarse mask does not move with its bounding box and a solve can be
+    kept from layer to layer (:mod:`supportgen.loadpath`).  Cost: O(pixels of each
+    component's box) to find its runs, then one sparse LU of about ``A_i / s_i^2``
+    unknowns, i.e. roughly ``144 A / w^2`` for ``w = 2A/P``.
     """
     objects = ndimage.find_objects(labels) if objects is None else objects
     out = {}
     for i in ids:
         sl = objects[i - 1]
         crop = labels[sl] == i
-        area = int(crop.sum())
-        s = int(coarse_factor(area, _edges(crop)))
-        frac = _block_fraction(crop, s)
-        cell = s * pixel_mm
-        phi = _solve_fraction(frac, cell)
-        w = phi * frac * cell * cell
-        r, c = np.nonzero(w > 0)
-        py, px = _pads(crop, s)
-        pts = np.column_stack([origin[0] + (sl[1].start - px + c * s + (s - 1) / 2) * pixel_mm,
-                               origin[1] + (sl[0].start - py + r * s + (s - 1) / 2) * pixel_mm])
-        out[i] = (4.0 * float(w.sum()), area * pixel_mm**2, pts, w[r, c])
+        rows, starts, ends = _mask_runs(crop, sl[0].start, sl[1].start)
+        out[i] = _component(rows, starts, ends, _edges(crop), pixel_mm, origin, factor=factor)[:4]
     return out
 
 
@@ -315,6 +419,8 @@ class LayerShape:
 
     ``labels`` (ny, nx) int labels of the suction region (cured pixels plus sealed
     cavities), ``area_mm2`` and ``torsion_mm4`` per label 1..n (index 0 = label 1).
+    Laws not named in ``READS_LABELS`` use only the per-label arrays and may be given
+    an empty (0, 0) ``labels``.
     """
 
     labels: np.ndarray
@@ -329,12 +435,14 @@ def force_unit_n(settings) -> float:
 
 
 def pull_force(shape: LayerShape, settings) -> np.ndarray:
-    """Squeeze-film force per component, pulling straight off: ``c 3 mu v J / h^3`` (N).
+    """Squeeze-film force per component, pulling straight off: ``c 3 mu v J / h^3 + b A`` (N).
 
     Notes
     -----
     Reynolds' thin-film equation on a rigid flat gap; ``c`` is
-    ``printer.force_calibration`` (a flexible film pulls off far below the rigid law).
+    ``printer.force_calibration`` (a flexible film pulls off far below the rigid law)
+    and ``b`` is ``printer.force_area_n_mm2``, an adhesion term per unit area that
+    is zero unless a calibration found the measurements call for it.
     Cost O(components).
 
     References
@@ -343,7 +451,8 @@ def pull_force(shape: LayerShape, settings) -> np.ndarray:
     Fundamentals of Fluid Film Lubrication (2004).
     """
     p = settings.printer
-    return p.force_calibration * force_unit_n(settings) * 3.0 * shape.torsion_mm4 / p.film_gap_mm**3
+    squeeze = p.force_calibration * force_unit_n(settings) * 3.0 * shape.torsion_mm4 / p.film_gap_mm**3
+    return squeeze + p.force_area_n_mm2 * np.asarray(shape.area_mm2, float)
 
 
 def slide_force(shape: LayerShape, settings, shear_calibration: float = 1.0) -> np.ndarray:
@@ -406,6 +515,9 @@ def tilt_force(shape: LayerShape, settings, band_mm: float = 2.0) -> np.ndarray:
 
 #: Separation mechanisms by name: ``f(shape: LayerShape, settings) -> (n,) N``.
 SEPARATION = {"pull": pull_force, "slide": slide_force, "tilt": tilt_force}
+#: The mechanisms whose law reads ``LayerShape.labels``; the others are given an
+#: empty (0, 0) label image by :class:`supportgen.loadpath.ForceTracker`.
+READS_LABELS = frozenset({"tilt"})
 
 
 def separation(name: str):

@@ -1,10 +1,25 @@
 """Load path: which contacts hold each layer, and the load each one carries.
 
 :class:`ForceTracker` watches the layers stream past in print order.  For each
-layer it fills sealed cavities (:func:`~supportgen.forces.sealed_cavities`), solves
-the pressure field of each component (reusing the layer below's when the mask
-barely changed), applies the printer's separation law, and shares each
-component's force among the contacts that hold it.
+layer it fills sealed cavities (the cavities of
+:func:`~supportgen.forces.sealed_cavities`), solves the pressure field of each
+component, applies the printer's separation law, and shares each component's force
+among the contacts that hold it.
+
+Cost.  A layer is read once, to find its row runs inside its bounding box
+(O(pixels of the box), a few byte passes); everything after works on the runs
+(O(runs log runs)): overlaps with the layer below, cavities, the component
+perimeters ``P`` that set the coarse factor, the coarse cell fractions.  The
+supplied labels are only looked up at run starts, never relabelled.  A
+component's coarse solve is kept by its block position ``(s, I0, J0)``: identical
+cell fractions reuse phi as is; the same coarse mask reuses the LU factors as the
+preconditioner of conjugate gradients to a 1e-10 residual
+(:data:`supportgen.forces.REFINE_TOL`).  Either way the answer is the fresh coarse
+solve to round-off, so the error stays the coarse-grid bound of
+:mod:`supportgen.forces` (2 % against the pixel solve);
+``tests/test_forces.py`` checks the tracker layer by layer against full-image
+labelling and fresh solves.  About 4 ms per 1000 x 1000 layer on one core
+(``benchmarks/bench_forces.py``).
 
 Holding contacts.  A contact attaches at the first layer at or above its z where a
 cured pixel lies within its tip radius; it holds the 3-D component (union-find over
@@ -20,17 +35,13 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage
+import scipy.sparse as sp
+from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from . import forces as fz
 
-__all__ = ["ForceTracker", "ForceProfile", "REUSE_CHANGE"]
-
-#: Reuse a component's solve when |symmetric difference| < this fraction of its area;
-#: J is scaled by (A/A_below)^2 (exact for a similar shape).
-REUSE_CHANGE = 0.005
-_EIGHT = np.ones((3, 3), bool)
+__all__ = ["ForceTracker", "ForceProfile"]
 
 
 @dataclass(frozen=True)
@@ -74,6 +85,11 @@ class ForceProfile:
         }
 
 
+#: Unheld force below which no warning is given (N): a thousandth of the smallest
+#: tip's capacity at common green strengths.
+UNHELD_TOLERANCE_N = 1e-3
+
+
 class ForceTracker:
     """Per-layer observer that builds a :class:`ForceProfile`.
 
@@ -96,13 +112,16 @@ class ForceTracker:
     8-connected ``scipy.ndimage.label`` of ``layer.mask``), then :meth:`result`.
     After each call ``last_loads`` (n,) and ``last_unheld_n`` hold that layer's
     shares, which sum to its force.
-    Cost per layer: O(pixels of the layer's box) for labelling and overlaps, plus one
-    coarse solve per changed component (see :mod:`supportgen.forces`).
+    After each call ``last_torsion_mm4`` holds J of that layer's suction components.
+    Cost per layer: O(pixels of the layer's box) once to find its runs, O(runs log
+    runs) for overlaps, cavities and perimeters, plus one coarse solve per component
+    whose cell fractions changed (kept factorisations, see the module notes).
     """
 
     def __init__(self, grid, layer_mm: float, contact_points, settings):
         self.grid, self.layer_mm, self.settings = grid, float(layer_mm), settings
         self.law = fz.separation(settings.printer.mechanism)
+        self._paints = settings.printer.mechanism in fz.READS_LABELS
         pts = np.asarray(contact_points, float).reshape(-1, 3)
         self.points = pts
         r = max(settings.supports.tip_diameter_mm / 2.0, grid.pixel_mm / 2.0)
@@ -115,11 +134,12 @@ class ForceTracker:
         self._node = np.full(len(pts), -1)        # union-find node each contact holds
         self._parent: list[int] = []
         self._held: dict[int, list[int]] = {}     # root -> contacts
-        self._prev = None                          # the layer below: masks, labels, nodes, solves
+        self._prev = None                          # the layer below: runs, labels, nodes, solves
         self._force, self._area, self._unheld = {}, {}, {}
         self._peak = np.zeros(len(pts))
         self._peak_layer = np.full(len(pts), -1)
         self.last_loads, self.last_unheld_n = np.zeros(len(pts)), 0.0
+        self.last_torsion_mm4 = np.zeros(0)
 
     # union-find -----------------------------------------------------------------
     def _find(self, a: int) -> int:
@@ -139,26 +159,23 @@ class ForceTracker:
     def __call__(self, layer, labels: np.ndarray, n_labels: int) -> None:
         mask, k, h = layer.mask, int(layer.index), self.grid.pixel_mm
         prev = self._prev
-        sealed = fz.sealed_cavities(mask, None if prev is None else prev["mask"], None if prev is None else prev["sealed"])
-        if sealed.any():
-            flab, nf = ndimage.label(mask | sealed, _EIGHT)
-            fmap = np.zeros(n_labels + 1, int)
-            fmap[labels[mask]] = flab[mask]
-        else:
-            flab, nf, fmap = labels, n_labels, np.arange(n_labels + 1)
+        runs = _layer_runs(mask)
+        lab = labels[runs[0], runs[1]].astype(np.int64)
         node0 = len(self._parent)
         self._parent.extend(range(node0, node0 + n_labels))
-        pairs = None
-        if prev is not None:                      # 3-D connectivity with the layer below
-            pairs = _pairs(labels, n_labels, prev["labels"], prev["n"])
-            for a, b in pairs[0]:
-                self._union(node0 + int(a) - 1, prev["node0"] + int(b) - 1)
+        if prev is not None and runs[0].size and prev["runs"][0].size:   # 3-D connectivity with the layer below
+            ia, ib, _ = _overlaps(runs, prev["runs"])
+            base = int(prev["lab"].max()) + 1
+            for code in np.unique(lab[ia] * base + prev["lab"][ib]).tolist():
+                self._union(node0 + code // base - 1, prev["node0"] + code % base - 1)
         self._attach(layer, labels, node0)
-        same = prev is not None and flab is labels and prev["flab"] is prev["labels"]
-        geo, cache = self._geometry(flab, nf, prev, pairs if same else None)
+        suction, fmap, nf, edges = _suction(runs, lab, n_labels, None if prev is None else prev["suction"])
+        geo, cache = self._geometry(suction, nf, edges, {} if prev is None else prev["cache"])
         area = np.array([geo[i][1] for i in range(1, nf + 1)])
         jt = np.array([geo[i][0] for i in range(1, nf + 1)])
-        comp_force = np.asarray(self.law(fz.LayerShape(flab, h, area, jt), self.settings), float)
+        shape = fz.LayerShape(_paint(suction, labels.shape) if self._paints else np.zeros((0, 0), np.int32),
+                              h, area, jt)
+        comp_force = np.asarray(self.law(shape, self.settings), float)
         holders: list[set] = [set() for _ in range(nf + 1)]
         for a in range(1, n_labels + 1):
             holders[fmap[a]].update(self._held.get(self._find(node0 + a - 1), ()))
@@ -175,13 +192,13 @@ class ForceTracker:
                 share = _tributary(self.points[hold, :2], pts, w)
                 load[hold] += comp_force[i - 1] * share / max(share.sum(), 1e-300)
         self.last_loads, self.last_unheld_n = load, float(unheld)   # this layer, for checks
+        self.last_torsion_mm4 = jt
         up = load > self._peak
         self._peak[up], self._peak_layer[up] = load[up], k
         self._force[k] = float(comp_force.sum())
-        self._area[k] = float(mask.sum()) * h * h
+        self._area[k] = float((runs[2] - runs[1]).sum()) * h * h
         self._unheld[k] = float(unheld)
-        self._prev = {"mask": mask, "sealed": sealed, "labels": labels, "n": n_labels, "node0": node0,
-                      "flab": flab, "nf": nf, "cache": cache}
+        self._prev = {"runs": runs, "lab": lab, "node0": node0, "suction": suction[:3], "cache": cache}
 
     def _attach(self, layer, labels, node0) -> None:
         """Attach pending contacts whose tip disc touches this layer's cured pixels."""
@@ -200,32 +217,20 @@ class ForceTracker:
             self._node[j] = node
             self._held.setdefault(node, []).append(int(j))
 
-    def _geometry(self, flab, nf, prev, pairs=None):
-        """J, area and pressure samples per suction component, reusing the layer below."""
-        h, g = self.grid.pixel_mm, self.grid
-        objects = ndimage.find_objects(flab)
-        geo, todo = {}, []
-        pairs_prev = None
-        if prev is not None and nf and prev["nf"]:
-            pairs_prev, counts = pairs if pairs is not None else _pairs(flab, nf, prev["flab"], prev["nf"])
-            a_now = np.bincount(flab.ravel(), minlength=nf + 1)
-            best = {}
-            for (a, b), c in zip(pairs_prev, counts):
-                if c > best.get(a, (0, 0))[1]:
-                    best[a] = (b, c)
+    def _geometry(self, suction, nf, edges, kept):
+        """J, area and pressure samples per suction component; solves kept by coarse block key."""
+        g = self.grid
+        rows, starts, ends, comp = suction
+        order = np.argsort(comp, kind="stable")
+        cut = np.searchsorted(comp[order], np.arange(1, nf + 2))
+        geo, cache = {}, {}
         for i in range(1, nf + 1):
-            if pairs_prev is not None and i in best:
-                b, c = best[i]
-                old = prev["cache"].get(int(b))
-                if old is not None:
-                    a_old = old[1] / (h * h)
-                    if a_now[i] + a_old - 2 * c < REUSE_CHANGE * a_now[i]:
-                        scale = (a_now[i] / a_old) ** 2
-                        geo[i] = (old[0] * scale, a_now[i] * h * h, old[2], old[3] * scale)
-                        continue
-            todo.append(i)
-        geo.update(fz.solve_components(flab, todo, h, (g.x0, g.y0), objects))
-        return geo, geo
+            o = order[cut[i - 1]: cut[i]]
+            *out, (key, state) = fz._component(rows[o], starts[o], ends[o], int(edges[i - 1]), g.pixel_mm,
+                                               (g.x0, g.y0), kept)
+            geo[i] = tuple(out)
+            cache[key] = state
+        return geo, cache
 
     def result(self) -> ForceProfile:
         """The :class:`ForceProfile` of the layers seen so far."""
@@ -247,26 +252,111 @@ class ForceTracker:
             warns.append(("contact-unattached",
                           f"{never.size} contact(s) never touched a cured pixel within the tip radius "
                           f"(first: #{never[0]}); check the contact points against the part"))
-        if len(self.points) and (unheld > 0).any():
-            first = int(np.nonzero(unheld > 0)[0][0])
+        # Slivers of a pixel or two the rasteriser splits off an edge pull with
+        # micro-newtons: only a share that matters to a tip is worth a warning.
+        significant = unheld > np.maximum(UNHELD_TOLERANCE_N, 1e-3 * force)
+        if len(self.points) and significant.any():
+            first = int(np.nonzero(significant)[0][0])
             warns.append(("force-unheld",
-                          f"{int((unheld > 0).sum())} layer(s) pull on parts no contact holds yet (first: layer "
-                          f"{first}); add contacts under them"))
+                          f"{int(significant.sum())} layer(s) pull on parts no contact holds yet (first: layer "
+                          f"{first}, {unheld[first]:.3g} N); add contacts under them"))
         return ForceProfile(force, area, unheld, peak, peak_f, self._peak.copy(),
                             np.where(self._peak > 0, self._peak_layer, -1), tuple(warns))
 
 
-def _pairs(lab_a, na, lab_b, nb):
-    """Overlapping label pairs (a, b) of two label images and their pixel counts."""
-    both = (lab_a > 0) & (lab_b > 0)
-    a, b = lab_a[both].astype(np.int64), lab_b[both].astype(np.int64)
-    if (na + 1) * (nb + 1) <= 4_000_000:
-        counts = np.bincount(a * (nb + 1) + b, minlength=(na + 1) * (nb + 1))
-        code = np.nonzero(counts)[0]
-        counts = counts[code]
-    else:
-        code, counts = np.unique(a * (nb + 1) + b, return_counts=True)
-    return np.column_stack([code // (nb + 1), code % (nb + 1)]), counts
+def _layer_runs(mask: np.ndarray):
+    """Row runs (rows, starts, ends) of a layer's cured pixels, found inside its bounding box."""
+    rr = np.flatnonzero(mask.any(axis=1))
+    if rr.size == 0:
+        return (np.zeros(0, np.int64),) * 3
+    r0, r1 = int(rr[0]), int(rr[-1]) + 1
+    cc = np.flatnonzero(mask[r0:r1].any(axis=0))
+    return fz._mask_runs(mask[r0:r1, int(cc[0]): int(cc[-1]) + 1], r0, int(cc[0]))
+
+
+def _overlaps(a, b):
+    """Runs of ``a`` and ``b`` (each (rows, starts, ends), sorted) sharing a row and columns.
+
+    Returns index arrays ``ia, ib`` and the overlap lengths (all > 0).  Cost
+    O((|a| + |b|) log |b| + pairs).
+    """
+    ra, sa, ea = a[:3]
+    rb, sb, eb = b[:3]
+    width = int(max(ea.max(initial=0), eb.max(initial=0))) + 1
+    lo = np.searchsorted(rb * width + eb, ra * width + sa, "right")    # first b ending after a starts
+    hi = np.searchsorted(rb * width + sb, ra * width + ea, "left")     # b starting before a ends
+    cnt = np.maximum(hi - lo, 0)
+    ia = np.repeat(np.arange(ra.size), cnt)
+    ib = np.arange(int(cnt.sum())) - np.repeat(np.cumsum(cnt) - cnt - lo, cnt)
+    return ia, ib, np.minimum(ea[ia], eb[ib]) - np.maximum(sa[ia], sb[ib])
+
+
+def _components(n: int, ia, ib):
+    """Connected components of ``n`` nodes joined by edges ``(ia, ib)``: (count, label per node)."""
+    ia, ib = np.asarray(ia, np.int32), np.asarray(ib, np.int32)
+    order = np.argsort(ia, kind="stable")
+    indptr = np.r_[0, np.cumsum(np.bincount(ia, minlength=n))].astype(np.int32)
+    graph = sp.csr_matrix((np.ones(ia.size), ib[order], indptr), shape=(n, n))
+    return connected_components(graph, directed=False)
+
+
+def _suction(runs, lab, n_labels: int, below):
+    """Suction region of a layer (cured runs plus sealed cavities) from its runs.
+
+    Parameters: the layer's runs and their 8-connected labels, and ``below`` the
+    layer below's suction runs (None for the first layer: every hole is vented).
+    Returns the suction runs ``(rows, starts, ends, component)`` sorted by row and
+    start, the map label -> component (components of ``mask | sealed``, 8-connected),
+    the component count and each component's pixel-edge perimeter.
+
+    The same cavities as :func:`supportgen.forces.sealed_cavities` (4-connected empty
+    space): an empty gap between two runs of a row is open when the row above or below
+    is empty there (outside its first and last run), joins the gaps it shares columns
+    with in the rows above and below, and is vented when the layer below's suction
+    runs do not cover it.  A sealed gap's two neighbouring runs belong to one suction
+    component: every cured part 4-adjacent to a hole is met along some row.
+    Cost O(runs log runs): no pass over the pixels.
+    """
+    r, s, e = runs
+    fmap, nf, sealed = np.arange(n_labels + 1), n_labels, np.zeros(0, np.int64)
+    gi = np.flatnonzero(r[1:] == r[:-1])                   # gap between run i and run i + 1
+    if below is not None and gi.size:
+        gaps = (r[gi], e[gi], s[gi + 1])
+        first, last = np.r_[True, r[1:] != r[:-1]], np.r_[r[1:] != r[:-1], True]
+        span_s = np.full(int(r[-1] - r[0]) + 3, np.iinfo(np.int64).max)
+        span_e = np.full(span_s.size, -1)
+        span_s[r[first] - r[0] + 1], span_e[r[last] - r[0] + 1] = s[first], e[last]
+        vent = np.zeros(gi.size, bool)
+        for d in (-1, 1):
+            j = gaps[0] - r[0] + 1 + d
+            vent |= (gaps[1] < span_s[j]) | (gaps[2] > span_e[j])
+        ja, jb, ln = _overlaps(gaps, below)
+        vent |= np.bincount(ja, ln, gi.size) < gaps[2] - gaps[1]
+        if not vent.any():                                 # every gap sealed: no need to join them
+            sealed = gi
+        elif not vent.all():
+            nc, cl = _components(gi.size, *_overlaps(gaps, (gaps[0] - 1, gaps[1], gaps[2]))[:2])
+            sealed = gi[~(np.bincount(cl, vent, nc) > 0)[cl]]
+    if sealed.size:
+        nf, cl = _components(n_labels, lab[sealed] - 1, lab[sealed + 1] - 1) if n_labels > 1 else (1, np.zeros(1, int))
+        fmap = np.r_[0, cl + 1]
+    comp = fmap[lab]
+    suc = [np.r_[r, r[sealed]], np.r_[s, e[sealed]], np.r_[e, s[sealed + 1]], np.r_[comp, comp[sealed]]]
+    order = np.lexsort((suc[1], suc[0]))
+    suc = tuple(x[order] for x in suc)
+    ia, _, ln = _overlaps(suc, (suc[0] - 1, suc[1], suc[2]))  # cured length shared with the next row
+    area = np.bincount(suc[3] - 1, suc[2] - suc[1], nf)
+    merged = np.bincount(comp - 1, minlength=nf) - np.bincount(comp[sealed] - 1, minlength=nf)
+    edges = 2 * merged + 2 * area - 2 * np.bincount(suc[3][ia] - 1, ln, nf)
+    return suc, fmap, nf, np.rint(edges).astype(np.int64)
+
+
+def _paint(suction, shape) -> np.ndarray:
+    """(ny, nx) int32 image of the suction components from their runs; O(pixels)."""
+    rows, starts, ends, comp = suction
+    base, n = rows * shape[1], shape[0] * shape[1]
+    d = np.bincount(base + starts, comp, n + 1) - np.bincount(base + ends, comp, n + 1)
+    return np.rint(np.cumsum(d[:-1])).astype(np.int32).reshape(shape)
 
 
 def _tributary(contacts_xy, pts, w):

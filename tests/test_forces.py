@@ -283,6 +283,14 @@ def test_calibration_round_trip_with_area_term(tmp_path):
     assert fit.uses_area
     assert fit.factor == pytest.approx(0.004, rel=0.02)
     assert fit.area_n_mm2 == pytest.approx(0.002, rel=0.02)
+    # The fitted area term goes into the profile and the pull law adds b*A to the
+    # squeeze-film force (the model the fit assumed).
+    s = calibrated_settings(fit, Settings())
+    assert s.printer.force_area_n_mm2 == pytest.approx(fit.area_n_mm2)
+    shape = fz.LayerShape(np.zeros((0, 0), int), PX, np.array([100.0]), np.array([1000.0]))
+    no_area = s.override(force_area_n_mm2=0.0)
+    extra = fz.pull_force(shape, s) - fz.pull_force(shape, no_area)
+    assert extra[0] == pytest.approx(100.0 * fit.area_n_mm2)
 
 
 def test_bad_measurement_row_is_named(tmp_path):
@@ -290,3 +298,147 @@ def test_bad_measurement_row_is_named(tmp_path):
     path.write_text("area_mm2,torsion_mm4,peak_force_n\n10,20,3\n10,-1,3\n")
     with pytest.raises(SettingsError, match=r"bad\.csv: row 3: torsion_mm4"):
         read_measurements(path)
+
+
+# --- run-length tracker and kept factorisations against the uncached solve ---------
+
+def reference_layers(masks):
+    """Second method: per-layer J from full-image labelling (scipy.ndimage) and fresh solves."""
+    out, below, below_sealed = [], None, None
+    for m in masks:
+        sealed = fz.sealed_cavities(m, below, below_sealed)
+        flab, n = ndimage.label(m | sealed, EIGHT)
+        sol = fz.solve_components(flab, range(1, n + 1), PX)
+        out.append((flab, np.array([sol[i][0] for i in range(1, n + 1)]),
+                    np.array([sol[i][1] for i in range(1, n + 1)])))
+        below, below_sealed = m, sealed
+    return out
+
+
+def cup_sequence():
+    """A cup closing over a cavity with an island inside it, a side vent, a second part,
+    a stretch of identical layers, a slowly growing rim and an empty layer (0.05 mm pixels)."""
+    yy, xx = centred(90)
+    r2 = xx**2 + yy**2
+    base = r2 < 80**2
+    masks = [base, base]
+    for k in range(14):
+        ro = 80 + k // 3                                       # growing rim: coarse mask mostly kept
+        ring = (r2 < ro**2) & (r2 > 50**2)
+        if 4 <= k < 7:
+            ring |= r2 < 12**2                                 # an island inside the sealed cavity
+        if 7 <= k < 9:
+            ring &= ~((np.abs(yy) < 3) & (xx > 0))             # a slot vents the cavity
+        if k >= 9:
+            ring |= (np.abs(xx + 70) < 10) & (np.abs(yy - 70) < 10)   # a second part in a corner
+        masks.append(ring)
+    return masks + [masks[-1]] * 3 + [np.zeros_like(base), base]   # an empty layer, then a new part
+
+
+@pytest.mark.parametrize("mechanism", ["pull", "tilt"])
+def test_tracker_matches_uncached_full_image_solve(mechanism):
+    # The tracker works on row runs, keeps solves between layers and never labels the
+    # image; the reference labels the whole image with scipy.ndimage, seals cavities with
+    # sealed_cavities and solves every component afresh. J and area must agree per layer
+    # to solver round-off, and so must the layer force (the tilt law reads the labels).
+    masks = cup_sequence()
+    ref = reference_layers(masks)
+    s = Settings().override(mechanism=mechanism)
+    seen = []
+
+    def check(tr, k):
+        flab, J, A = ref[k]
+        assert np.sort(tr.last_torsion_mm4) == pytest.approx(np.sort(J), rel=1e-8, abs=0)
+        shape = fz.LayerShape(flab, PX, A, J)
+        assert tr._force[k] == pytest.approx(fz.separation(mechanism)(shape, s).sum(), rel=1e-8)
+        seen.append(k)
+
+    run(masks, settings=s, check=check)
+    assert seen == list(range(len(masks)))
+    # the sequence exercises sealing, venting and several suction components
+    assert any(r[1].size > 1 for r in ref) and any(fz.sealed_cavities(m, b, None).any()
+                                                  for m, b in zip(masks[1:], masks[:-1]))
+
+
+def test_tracker_matches_uncached_solve_on_random_masks():
+    # Noisy random layers (many holes, diagonal-only contacts, empty layers): the run-based
+    # cavities, components and perimeters must give the reference's J in every layer.
+    rng = np.random.default_rng(7)
+    for _ in range(12):
+        n = int(rng.integers(20, 48))
+        base = rng.random((n, n)) < rng.uniform(0.3, 0.8)
+        masks = []
+        for _ in range(5):
+            m = base ^ (rng.random((n, n)) < rng.uniform(0, 0.15)) if rng.random() < 0.6 else base.copy()
+            if rng.random() < 0.15:
+                m[:] = False
+            masks.append(m)
+            base = m if rng.random() < 0.7 else base
+        ref = reference_layers(masks)
+
+        def check(tr, k):
+            assert np.sort(tr.last_torsion_mm4) == pytest.approx(np.sort(ref[k][1]), rel=1e-8, abs=1e-15)
+
+        run(masks, check=check)
+
+
+def test_tracker_kept_factorisations_match_fresh_solves(monkeypatch):
+    # A square widening by one pixel column per layer (s = 8): its coarse mask stays the
+    # same for several layers, so the tracker solves by CG preconditioned with a kept LU.
+    # Those answers must be the fresh solves' (reference as above) to round-off.
+    used, pcg = [], fz._pcg
+
+    def counted(*args):
+        x = pcg(*args)
+        used.append(x is not None)
+        return x
+
+    monkeypatch.setattr(fz, "_pcg", counted)
+    masks = []
+    for k in range(10):
+        m = np.zeros((260, 260), bool)
+        m[30:230, 30:230 + k] = True
+        masks.append(m)
+    ref = reference_layers(masks)
+
+    def check(tr, k):
+        assert tr.last_torsion_mm4 == pytest.approx(ref[k][1], rel=1e-8, abs=0)
+
+    run(masks, check=check)
+    assert any(used)
+
+
+def test_kept_factorisation_gives_the_fresh_solve():
+    # Conjugate gradients preconditioned by the LU of a system with the same coarse mask
+    # converge to the fresh solve (second method: a new factorisation); same fractions return the
+    # same phi without solving.
+    yy, xx = centred(16)
+    frac1 = np.clip(13.4 - np.hypot(xx, yy), 0, 1)
+    part = (frac1 > 0) & (frac1 < 1)                              # move the boundary, keep the coarse mask
+    frac2 = np.where(part & (frac1 < 0.5), 0.9 * frac1, np.where(part, 0.5 + 0.9 * (frac1 - 0.5), frac1))
+    assert np.array_equal(frac1 >= 0.5, frac2 >= 0.5) and not np.array_equal(frac1, frac2)
+    _, kept = fz._factor_solve(frac1, 0.4)
+    phi, state = fz._factor_solve(frac2, 0.4, kept)
+    assert state[2] is kept[2]                                   # LU kept
+    assert phi == pytest.approx(fz._factor_solve(frac2, 0.4)[0], rel=1e-9, abs=1e-15)
+    again, same = fz._factor_solve(frac2, 0.4, state)
+    assert again is phi and same is state
+    frac3 = np.clip(14.6 - np.hypot(xx, yy), 0, 1)               # coarse mask grew: factorised afresh
+    phi3, state3 = fz._factor_solve(frac3, 0.4, state)
+    assert state3[2] is not state[2]
+    assert phi3 == pytest.approx(fz._factor_solve(frac3, 0.4)[0], rel=1e-12, abs=1e-15)
+
+
+@pytest.mark.parametrize("offset", [0, 3, 7, 11, 17, 23])
+def test_coarse_bound_holds_for_any_block_alignment(offset):
+    # Coarse blocks sit at multiples of s in the image, so a part meets them at any
+    # offset in [0, s): the 2 % bound of the module Notes must hold at every one.
+    # Second method: the same scheme on the pixels. Disc R = 128 px (s = 8), ring 128/80 (s = 3).
+    yy, xx = centred(140)
+    disc_ = xx**2 + yy**2 < 128**2
+    ring = disc_ & (xx**2 + yy**2 > 80**2)
+    for mask in (disc_, ring):
+        shifted = np.pad(mask, ((offset, 0), (2 * offset % 29, 0)))
+        lab, _ = ndimage.label(shifted, EIGHT)
+        assert fz.coarse_factor(mask.sum(), fz._edges(mask)) >= 3
+        assert fz.solve_components(lab, [1], PX)[1][0] == pytest.approx(fz.torsion_constant(mask, PX), rel=0.02)
