@@ -1,0 +1,285 @@
+"""Tests of supportgen.batch and ``supportgen batch``: folders in parallel, faults, resume, Dask.
+
+References used beside the checks:
+- the filesystem itself (which files exist, their bytes, their modification times);
+- hashlib's sha256 (the manifest's hashes recomputed here);
+- Python's csv and json readers (the summary files read back);
+- Dask distributed's LocalCluster (a second engine: its outputs against the local pool's).
+Parts are small solids from trimesh.creation on coarse settings, so the file stays quick.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import hashlib
+import json
+import multiprocessing
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+import trimesh
+
+from supportgen import Settings
+from supportgen.batch import (
+    OUTPUT_SUFFIXES,
+    discover,
+    estimate_peak_mb,
+    mesh_footprint,
+    run_batch,
+    settings_hash,
+)
+
+GOOD = ("good_box.stl", "nested/good_sphere.STL", "nested/deeper/good_block.obj")
+BAD = {  # file -> words its reason must contain (the meshio reader's own message)
+    "empty.stl": "empty",
+    "nested/garbage.ply": "PLY",
+    "nested/deeper/truncated.stl": "truncated",
+}
+
+
+def _coarse() -> Settings:
+    return Settings().override(pixel_mm=0.2, layer_mm=0.2, tip_min_mm=0.4, tip_max_mm=1.0)
+
+
+def _write_good(folder: Path, names=GOOD) -> None:
+    """Lifted solids about 10 mm across (trimesh.creation), one per name."""
+    makers = [lambda: trimesh.creation.box((10.0, 8.0, 4.0)),
+              lambda: trimesh.creation.icosphere(subdivisions=2, radius=5.0),
+              lambda: trimesh.creation.cylinder(radius=4.0, height=6.0, sections=24)]
+    for i, name in enumerate(names):
+        mesh = makers[i % len(makers)]()
+        mesh.apply_translation((0.0, 0.0, 5.0 - mesh.bounds[0, 2]))
+        path = folder / name
+        path.parent.mkdir(parents=True, exist_ok=True)
+        mesh.export(path, file_type=path.suffix.lower()[1:])
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory) -> Path:
+    root = tmp_path_factory.mktemp("batch") / "in"
+    _write_good(root)
+    (root / "empty.stl").write_bytes(b"")
+    (root / "nested").mkdir(exist_ok=True)
+    (root / "nested" / "garbage.ply").write_bytes(b"ply\nformat nonsense\n" + bytes(range(256)) * 4)
+    whole = trimesh.creation.box((5.0, 5.0, 5.0)).export(file_type="stl")
+    (root / "nested" / "deeper" / "truncated.stl").write_bytes(whole[: len(whole) // 2])
+    (root / "nested" / "notes.txt").write_text("not a mesh")
+    return root
+
+
+@pytest.fixture(scope="module")
+def runs(folder) -> dict:
+    """The folder through 2 local workers, 1 local worker and (if installed) Dask, each into the same
+    output path in turn (moved aside afterwards), so the reports' output paths are the same strings."""
+    out, done = folder.parent / "out", {}
+    for label, kw in (("w2", {"workers": 2}), ("w1", {"workers": 1, "pattern": "*good*"})):
+        done[label] = run_batch(folder, out, _coarse(), progress=False, **kw)
+        out.rename(folder.parent / label)
+    return done
+
+
+def _files(root: Path) -> dict[str, bytes]:
+    return {p.relative_to(root).as_posix(): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+def _same_outputs(a: Path, b: Path) -> None:
+    """Byte-identical part outputs; report.json identical once its stage timings are removed."""
+    fa = {k: v for k, v in _files(a).items() if not k.startswith("batch-summary")}
+    fb = {k: v for k, v in _files(b).items() if not k.startswith("batch-summary")}
+    assert sorted(fa) == sorted(fb)
+    for name in fa:
+        if name.endswith(".report.json"):
+            ja, jb = json.loads(fa[name]), json.loads(fb[name])
+            ja.pop("timing_s"), jb.pop("timing_s")
+            assert ja == jb, name
+        elif name.endswith(".batch.json"):
+            ja, jb = json.loads(fa[name]), json.loads(fb[name])
+            ja.pop("seconds"), jb.pop("seconds")
+            assert ja == jb, name
+        else:
+            assert fa[name] == fb[name], name
+
+
+def test_discover_pattern_and_exclude(tmp_path):
+    names = ["a.STL", "b.obj", "c.Ply", "d.3mf", "sub/lid.stl", "sub/deep/lid2.OBJ", "notes.txt", "e.stl.bak"]
+    for name in names:
+        (tmp_path / name).parent.mkdir(parents=True, exist_ok=True)
+        (tmp_path / name).write_bytes(b"x")
+    (tmp_path / "out" / "sub").mkdir(parents=True)
+    (tmp_path / "out" / "sub" / "lid.supported.stl").write_bytes(b"x")       # an earlier run's output
+    # Expected lists from os.walk and the suffix rule, independently of discover().
+    walked = sorted(Path(d, f).relative_to(tmp_path).as_posix() for d, _, fs in os.walk(tmp_path) for f in fs
+                    if os.path.splitext(f)[1].lower() in (".stl", ".obj", ".ply", ".3mf"))
+    assert [p.as_posix() for p in discover(tmp_path)] == walked
+    got = [p.as_posix() for p in discover(tmp_path, exclude=tmp_path / "out")]
+    assert got == [w for w in walked if not w.startswith("out/")] == sorted(names[:6])
+    assert [p.as_posix() for p in discover(tmp_path, "*lid*", exclude=tmp_path / "out")] == ["sub/deep/lid2.OBJ",
+                                                                                            "sub/lid.stl"]
+    assert [p.as_posix() for p in discover(tmp_path, "sub/*.stl", exclude=tmp_path / "out")] == ["sub/lid.stl"]
+
+
+def test_folder_good_bad_nested(folder, runs):
+    summary, out = runs["w2"], folder.parent / "w2"
+    # Discovery against the filesystem: every mesh suffix in any case, nothing else.
+    assert sorted(p.as_posix() for p in discover(folder)) == sorted([*GOOD, *BAD])
+    by_file = {r.file: r for r in summary.results}
+    assert sorted(by_file) == sorted([*GOOD, *BAD])            # summary complete
+    for name in GOOD:
+        row = by_file[name]
+        assert (row.status, row.passed) == ("ok", True), row
+        stem = Path(name).name.split(".")[0]
+        # The output tree mirrors the input tree, and holds exactly what Result.save writes plus the manifest.
+        made = {p.name for p in (out / Path(name).parent).iterdir() if p.name.startswith(f"{stem}.")}
+        assert made == {f"{stem}{suffix}" for suffix in (*OUTPUT_SUFFIXES, ".batch.json")}
+        manifest = json.loads((out / Path(name).parent / f"{stem}.batch.json").read_text())
+        assert manifest["input_sha256"] == hashlib.sha256((folder / name).read_bytes()).hexdigest()
+        report = json.loads((out / Path(name).parent / f"{stem}.report.json").read_text())
+        assert row.contacts == report["supports"]["contacts"] > 0
+    for name, words in BAD.items():
+        row = by_file[name]
+        assert row.status == "failed" and words in row.reason and name in row.reason, row
+        assert not list((out / Path(name).parent).glob(f"{Path(name).name.split('.')[0]}.*"))
+    assert summary.exit_code == 1
+    with open(out / "batch-summary.csv", newline="") as handle:
+        rows = list(csv.DictReader(handle))
+    doc = json.loads((out / "batch-summary.json").read_text())
+    assert [r["file"] for r in rows] == [f["file"] for f in doc["files"]] == sorted([*GOOD, *BAD])
+    assert {r["file"]: r["status"] for r in rows} == {r.file: r.status for r in summary.results}
+    assert doc["counts"]["ok"] == len(GOOD) and doc["counts"]["failed"] == len(BAD) and doc["exit_code"] == 1
+    assert not list(out.rglob("*.tmp"))
+
+
+def test_same_outputs_with_one_or_two_workers(folder, runs):
+    assert [r.status for r in runs["w1"].results] == ["ok"] * len(GOOD)
+    _same_outputs(folder.parent / "w1", folder.parent / "w2")
+
+
+def test_dask_local_cluster_matches_local_pool(folder, runs):
+    distributed = pytest.importorskip("distributed", reason="Dask distributed not installed (extra 'cluster')")
+    out = folder.parent / "out"
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, host="127.0.0.1", protocol="tcp://",
+                                  dashboard_address=":0") as cluster:
+        summary = run_batch(folder, out, _coarse(), cluster=cluster.scheduler_address, pattern="*good*",
+                            progress=False)
+    assert [r.status for r in summary.results] == ["ok"] * len(GOOD)
+    # Same output path as the 1-worker local run, so even the paths inside report.json agree.
+    _same_outputs(out, folder.parent / "w1")
+
+
+CHILD = """
+import sys
+from supportgen import Settings
+from supportgen.batch import run_batch
+if __name__ == "__main__":
+    settings = Settings().override(pixel_mm=0.2, layer_mm=0.2, tip_min_mm=0.4, tip_max_mm=1.0)
+    sys.exit(run_batch(sys.argv[1], sys.argv[2], settings, workers=1, progress=False).exit_code)
+"""
+
+
+def test_ctrl_c_then_resume(tmp_path):
+    names = ("a_first.stl", "sub/b_second.stl", "sub/c_third.stl")
+    _write_good(tmp_path / "in", names)
+    out = tmp_path / "out"
+    script = tmp_path / "child.py"
+    script.write_text(CHILD)
+    # Ctrl-C as a terminal sends it: SIGINT to the whole process group, once the first file is saved.
+    child = subprocess.Popen([sys.executable, str(script), str(tmp_path / "in"), str(out)], start_new_session=True,
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    manifest = out / "a_first.batch.json"
+    deadline = time.monotonic() + 120
+    while not manifest.exists() and child.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    os.killpg(child.pid, signal.SIGINT)
+    _, err = child.communicate(timeout=60)
+    assert child.returncode == 130, err.decode()
+    doc = json.loads((out / "batch-summary.json").read_text())
+    assert doc["interrupted"] is True and doc["files"][0]["file"] == "a_first.stl"
+    assert len(doc["files"]) + doc["pending"] == len(names)
+    stamp = manifest.stat().st_mtime_ns
+    # Every output set left is complete and has its manifest; no temporary file anywhere.
+    assert not list(out.rglob("*.tmp")) and not list(out.rglob(".*"))
+    for m in out.rglob("*.batch.json"):
+        assert all((m.parent / f"{m.name.split('.')[0]}{s}").is_file() for s in OUTPUT_SUFFIXES)
+    assert len(list(out.rglob("*.supported.stl"))) == len(list(out.rglob("*.batch.json"))) == len(doc["files"])
+
+    second = run_batch(tmp_path / "in", out, _coarse(), workers=1, resume=True, progress=False)
+    statuses = {r.file: r.status for r in second.results}
+    assert statuses["a_first.stl"] == "skipped" and set(statuses) == set(names)
+    assert all(statuses[f["file"]] == "skipped" for f in doc["files"])          # nothing finished is redone
+    assert all(statuses[n] == "ok" for n in names if n not in {f["file"] for f in doc["files"]})
+    assert manifest.stat().st_mtime_ns == stamp
+    assert second.exit_code == 0 and not list(out.rglob("*.tmp"))
+    # A changed setting makes every file stale again (hashes from hashlib, not the manifest's word).
+    other = _coarse().override(contact_spacing_mm=2.5)
+    assert settings_hash(other, "straight") != json.loads(manifest.read_text())["settings_sha256"]
+
+
+def test_crashed_worker_is_recorded(tmp_path):
+    src = tmp_path / "in"
+    big = trimesh.creation.icosphere(subdivisions=4, radius=20.0)
+    big.apply_translation((0.0, 0.0, 25.0))
+    src.mkdir()
+    big.export(src / "a_slow.stl")
+    (src / "b_empty.stl").write_bytes(b"")
+
+    def kill_workers(row):               # b_empty fails at once, while a_slow is still running
+        for proc in multiprocessing.active_children():
+            os.kill(proc.pid, signal.SIGKILL)
+
+    summary = run_batch(src, tmp_path / "out", _coarse(), workers=2, progress=False, on_result=kill_workers)
+    rows = {r.file: r for r in summary.results}
+    assert rows["b_empty.stl"].status == "failed"
+    assert rows["a_slow.stl"].status == "crashed" and "SIGKILL" in rows["a_slow.stl"].reason
+    assert summary.exit_code == 1 and not list((tmp_path / "out").glob("a_slow*"))
+
+
+def test_timeout_and_memory_refusal(tmp_path):
+    src = tmp_path / "in"
+    _write_good(src, ("slow_sphere.stl",))
+    plate = trimesh.creation.box((120.0, 70.0, 1.0))
+    plate.apply_translation((0.0, 0.0, 5.0))
+    plate.export(src / "wide_plate.stl")
+    settings = _coarse()
+    small = estimate_peak_mb(*mesh_footprint(src / "slow_sphere.stl"), settings)
+    big = estimate_peak_mb(*mesh_footprint(src / "wide_plate.stl"), settings)
+    assert big > small              # 120 x 70 mm against 10 x 10 mm of layer grid
+    summary = run_batch(src, tmp_path / "out", settings, workers=1, progress=False, timeout_s=0.2,
+                        memory_limit_mb=(small + big) / 2)
+    rows = {r.file: r for r in summary.results}
+    assert rows["wide_plate.stl"].status == "refused" and "MB" in rows["wide_plate.stl"].reason
+    assert rows["slow_sphere.stl"].status == "timeout" and "0.2 s" in rows["slow_sphere.stl"].reason
+    assert summary.exit_code == 1
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["batch-summary.csv", "batch-summary.json"]
+
+
+def test_command_line(folder, runs, tmp_path, capsys):
+    from supportgen_cli.batch import add_parser
+
+    common = argparse.ArgumentParser(add_help=False)      # the options cli/main.py passes as parents
+    common.add_argument("--profile")
+    common.add_argument("--set", action="append")
+    common.add_argument("--quiet", action="store_true")
+    common.add_argument("--debug", action="store_true")
+    parser = argparse.ArgumentParser(prog="supportgen")
+    add_parser(parser.add_subparsers(dest="command"), [common])
+    out = tmp_path / "out"
+    shutil.copytree(folder.parent / "w2", out)
+    sets = [a for kv in ("pixel_mm=0.2", "layer_mm=0.2", "tip_min_mm=0.4", "tip_max_mm=1.0") for a in ("--set", kv)]
+    args = parser.parse_args(["batch", str(folder), "-o", str(out), "--resume", "--pattern", "*good*", *sets])
+    assert args.func(args) == 0                                  # all up to date: nothing redone
+    assert {r["status"] for r in json.loads((out / "batch-summary.json").read_text())["files"]} == {"skipped"}
+    assert "3 skipped" in capsys.readouterr().out
+    with pytest.raises(SystemExit):
+        parser.parse_args(["batch", str(folder), "-o", str(out), "--workers", "0"])
+    assert "--workers" in capsys.readouterr().err
+    args = parser.parse_args(["batch", str(folder), "-o", str(out), "--pattern", "empty*", "--quiet", *sets])
+    assert args.func(args) == 1
+    assert "failed: empty.stl:" in capsys.readouterr().err
+    assert os.path.exists(out / "good_box.supported.stl")       # other files' outputs untouched
