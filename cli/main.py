@@ -193,6 +193,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("measurements", metavar="MEASUREMENTS.csv")
     p.add_argument("-o", "--output", default="calibrated.toml", metavar="PROFILE.toml")
     p.set_defaults(func=cmd_calibrate)
+
+    from . import batch as batch_cmd
+    from . import bench as bench_cmd
+
+    batch_cmd.add_parser(sub, [common])
+    bench_cmd.add_parser(sub, [common])
     return parser
 
 
