@@ -167,7 +167,10 @@ def build_parser() -> argparse.ArgumentParser:
     gen_opts = argparse.ArgumentParser(add_help=False)
     from supportgen.strategies import STRATEGIES
 
-    gen_opts.add_argument("--strategy", default="straight", choices=sorted(STRATEGIES), help="support strategy")
+    from supportgen.pipeline import DEFAULT_STRATEGY
+
+    gen_opts.add_argument("--strategy", default=DEFAULT_STRATEGY, choices=sorted(STRATEGIES),
+                          help=f"support strategy (default: {DEFAULT_STRATEGY})")
     gen_opts.add_argument("--lift", type=float, metavar="MM", help="height of the part's lowest point above the plate")
     gen_opts.add_argument("--centre", action="store_true", help="centre each part on the plate")
 

@@ -144,31 +144,43 @@ def sample_overhangs(mesh: trimesh.Trimesh, overhangs: Overhangs, spacing: float
     return Contacts(pts[keep], normals[keep], np.full(len(keep), "overhang"), np.full(len(keep), diameter))
 
 
-def contacts_at(mesh: trimesh.Trimesh, xyz: np.ndarray, kind: str, diameter: float) -> Contacts:
+def contacts_at(mesh: trimesh.Trimesh, xyz: np.ndarray, kind: str, diameter: float,
+                reach_mm: float = 0.0) -> Contacts:
     """Contacts on the part's surface straight above the given points.
 
     Each point ``(x, y, z)`` is moved to the first surface crossing of an
-    upward ray from it (the underside a tip would reach); points whose ray
-    meets no surface are dropped.
+    upward ray from it (the underside a tip would reach).  A ray that meets no
+    down-facing surface (a sliver thinner than the ray's aim) falls back to the
+    nearest point of the surface, if that lies within ``reach_mm``; other
+    points are dropped.
 
     Notes
     -----
-    One ray query per point (trimesh's BVH ray intersector).
+    One ray query per point (trimesh's BVH ray intersector), one nearest-point
+    query per miss.
     """
     xyz = np.asarray(xyz, float).reshape(-1, 3)
     if len(xyz) == 0:
         return Contacts.empty()
     dirs = np.tile([0.0, 0.0, 1.0], (len(xyz), 1))
     locs, ray_idx, tri_idx = mesh.ray.intersects_location(xyz, dirs, multiple_hits=True)
-    if len(locs) == 0:
-        return Contacts.empty()
-    # First hit per ray: the lowest z above the origin.
-    order = np.lexsort((locs[:, 2], ray_idx))
-    ray_sorted = ray_idx[order]
-    first = order[np.r_[True, ray_sorted[1:] != ray_sorted[:-1]]]
-    pts, nrm = locs[first], mesh.face_normals[tri_idx[first]]
-    down = nrm[:, 2] < 0
-    return Contacts(pts[down], nrm[down], np.full(down.sum(), kind), np.full(down.sum(), diameter))
+    pts = np.full((len(xyz), 3), np.nan)
+    nrm = np.full((len(xyz), 3), np.nan)
+    if len(locs):
+        # First hit per ray: the lowest z above the origin.
+        order = np.lexsort((locs[:, 2], ray_idx))
+        ray_sorted = ray_idx[order]
+        first = order[np.r_[True, ray_sorted[1:] != ray_sorted[:-1]]]
+        pts[ray_idx[first]], nrm[ray_idx[first]] = locs[first], mesh.face_normals[tri_idx[first]]
+    hit = nrm[:, 2] < 0
+    miss = np.flatnonzero(~hit)
+    if reach_mm > 0 and len(miss):
+        near, dist, tri = trimesh.proximity.closest_point(mesh, xyz[miss])
+        ok = dist <= reach_mm
+        pts[miss[ok]], nrm[miss[ok]] = near[ok], mesh.face_normals[tri[ok]]
+        hit[miss[ok]] = True
+    n = int(hit.sum())
+    return Contacts(pts[hit], nrm[hit], np.full(n, kind), np.full(n, diameter))
 
 
 def merge_contacts(existing: Contacts, new: Contacts, min_distance: float) -> Contacts:

@@ -31,7 +31,7 @@ from .plan import Contacts, SupportPlan
 from .settings import Settings, load_settings
 from .sizing import SizedPlan, densify_points, over_capacity, size_plan, tip_diameter
 from .strategies import get_strategy
-from .verify import Verification, verify
+from .verify import Verification, speck_area_mm2, verify
 
 __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
 
@@ -40,7 +40,9 @@ OUTPUTS = {"combined": ".supported.stl", "supports": ".supports.stl", "report": 
            "summary": ".report.md", "layers_plot": ".layers.png", "tips_plot": ".tips.png",
            "preview": ".preview.png"}
 
-DEFAULT_STRATEGY = "straight"
+#: ``tree`` verifies on the demo and the shared corpus with less support volume
+#: than ``straight`` (benchmarks/compare_strategies.py).
+DEFAULT_STRATEGY = "tree"
 MAX_DENSIFY_ROUNDS = 4
 MAX_REPAIR_ROUNDS = 2
 
@@ -124,15 +126,22 @@ def _resolve_settings(settings, overrides) -> Settings:
 
 
 def _layer_contacts(part, stack: LayerStack, settings: Settings) -> Contacts:
-    """Contacts under every island and wherever a layer reaches too far."""
+    """Contacts under every island and wherever a layer reaches too far.
+
+    A point whose upward ray misses the part (a feature a pixel or two wide)
+    takes the nearest surface point within two layers and a pixel.
+    """
     sp, lh = settings.supports, settings.printer.layer_mm
+    near = 2 * lh + settings.printer.pixel_mm
     xyz = []
     for isl in stack.islands:
+        if isl.area_mm2 < speck_area_mm2(settings.printer.pixel_mm):
+            continue   # no tip can hold a speck; verify reports it
         xy = isl.points(sp.contact_spacing_mm, sp.seed)
         xyz.append(np.column_stack([xy, np.full(len(xy), isl.z_mm - lh)]))
-    island = contacts_at(part, np.vstack(xyz) if xyz else np.zeros((0, 3)), "island", sp.tip_diameter_mm)
+    island = contacts_at(part, np.vstack(xyz) if xyz else np.zeros((0, 3)), "island", sp.tip_diameter_mm, near)
     reach_xyz = [[*o.xy, o.z_mm - lh] for o in stack.overreach]
-    reach = contacts_at(part, np.array(reach_xyz).reshape(-1, 3), "reach", sp.tip_diameter_mm)
+    reach = contacts_at(part, np.array(reach_xyz).reshape(-1, 3), "reach", sp.tip_diameter_mm, near)
     return merge_contacts(island, reach, sp.contact_spacing_mm / 2)
 
 
@@ -244,6 +253,11 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         warnings.append({"code": "tips-over-capacity",
                          "message": f"{name}: {sized.tips_over_capacity} tip(s) need more than {sp.tip_max_mm} mm "
                                     "even after adding contacts; add supports by hand or reorient the part"})
+    if ver.specks:
+        sk = ver.specks[0]
+        warnings.append({"code": "specks", "message": f"{name}: {len(ver.specks)} speck(s) under two pixels across start "
+                         f"in mid-air, the first at layer {sk['layer']} near x {sk['xy_mm'][0]:.2f}, y {sk['xy_mm'][1]:.2f} "
+                         "mm: a fin or sliver thinner than the printer resolves; thicken or remove it"})
     if plan.landings:
         warnings.append({"code": "landings", "message": f"{name}: {plan.landings} post(s) stand on the part; "
                                                         "expect small marks there"})

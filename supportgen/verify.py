@@ -4,7 +4,11 @@ The check re-slices the final solid at the printer's pixel pitch and layer
 height, as the printer will cure it, and passes only when
 
 - it is one closed, oriented solid (trimesh: watertight and a volume),
-- no region starts in mid-air (zero islands: the plate anchors the first layer),
+- no region starts in mid-air (zero islands: the plate anchors the first layer;
+  a "speck", an island smaller than a disc two pixels across, is below the
+  smallest feature a printer cures reliably (2-3 pixels, common practice): no
+  tip can hold it, so it is reported as a warning about the model's geometry,
+  not counted as an island),
 - no newly cured pixel lies farther than ``supports.max_reach_mm`` from
   material cured in the layer below,
 - and, when the tips' loads and diameters are known, every tip holds its peak
@@ -24,7 +28,12 @@ import trimesh
 from .layers import LayerStack, analyse_layers
 from .settings import Settings
 
-__all__ = ["Verification", "verify"]
+__all__ = ["Verification", "verify", "speck_area_mm2"]
+
+
+def speck_area_mm2(pixel_mm: float) -> float:
+    """Area under which an island is a speck: a disc two pixels across."""
+    return float(np.pi * pixel_mm**2)
 
 
 @dataclass(frozen=True)
@@ -35,6 +44,7 @@ class Verification:
     watertight: bool
     islands: int
     first_islands: tuple[dict, ...]
+    specks: tuple[dict, ...]
     max_unsupported_reach_mm: float
     worst_reach_layer: int
     worst_reach_xy: tuple[float, float] | None
@@ -50,6 +60,8 @@ class Verification:
             "watertight": self.watertight,
             "islands": self.islands,
             "first_islands": list(self.first_islands),
+            "specks": len(self.specks),
+            "first_specks": list(self.specks[:10]),
             "max_unsupported_reach_mm": round(self.max_unsupported_reach_mm, 4),
             "worst_reach_layer": self.worst_reach_layer,
             "worst_reach_xy_mm": None if self.worst_reach_xy is None else [round(v, 3) for v in self.worst_reach_xy],
@@ -91,10 +103,15 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
     failures = []
     if not watertight:
         failures.append(f"{name}: the solid is not closed and oriented; it cannot be sliced reliably")
-    islands = stack.islands
-    first = tuple({"layer": int(i.layer), "z_mm": round(float(i.z_mm), 3),
-                   "xy_mm": [round(float(v), 3) for v in i.centroid_xy], "area_mm2": round(float(i.area_mm2), 4)}
-                  for i in islands[:10])
+    speck_mm2 = speck_area_mm2(pr.pixel_mm)
+    islands = [i for i in stack.islands if i.area_mm2 >= speck_mm2]
+    specks = [i for i in stack.islands if i.area_mm2 < speck_mm2]
+
+    def record(i):
+        return {"layer": int(i.layer), "z_mm": round(float(i.z_mm), 3),
+                "xy_mm": [round(float(v), 3) for v in i.centroid_xy], "area_mm2": round(float(i.area_mm2), 4)}
+
+    first = tuple(record(i) for i in islands[:10])
     if islands:
         i = islands[0]
         failures.append(f"{name}: {len(islands)} island(s) start in mid-air; the first at layer {i.layer} "
@@ -115,6 +132,7 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
             failures.append(f"{name}: {over} tip(s) would tear off at the set safety factor")
     return Verification(
         passed=not failures, watertight=watertight, islands=len(islands), first_islands=first,
+        specks=tuple(record(i) for i in specks),
         max_unsupported_reach_mm=reach, worst_reach_layer=int(stack.max_reach_layer), worst_reach_xy=worst_xy,
         reach_limit_mm=sp.max_reach_mm, tips_over_capacity=over, failures=tuple(failures), layers=stack,
     )
