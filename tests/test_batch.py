@@ -10,7 +10,6 @@ Parts are small solids from trimesh.creation on coarse settings, so the file sta
 
 from __future__ import annotations
 
-import argparse
 import csv
 import hashlib
 import json
@@ -260,15 +259,9 @@ def test_timeout_and_memory_refusal(tmp_path):
 
 
 def test_command_line(folder, runs, tmp_path, capsys):
-    from supportgen_cli.batch import add_parser
+    from supportgen_cli.main import build_parser
 
-    common = argparse.ArgumentParser(add_help=False)      # the options cli/main.py passes as parents
-    common.add_argument("--profile")
-    common.add_argument("--set", action="append")
-    common.add_argument("--quiet", action="store_true")
-    common.add_argument("--debug", action="store_true")
-    parser = argparse.ArgumentParser(prog="supportgen")
-    add_parser(parser.add_subparsers(dest="command"), [common])
+    parser = build_parser()                                # the installed command's own parser
     out = tmp_path / "out"
     shutil.copytree(folder.parent / "w2", out)
     sets = [a for kv in ("pixel_mm=0.2", "layer_mm=0.2", "tip_min_mm=0.4", "tip_max_mm=1.0") for a in ("--set", kv)]

@@ -10,7 +10,6 @@ matplotlib's PNG reader for the plots.
 
 from __future__ import annotations
 
-import argparse
 import csv
 import json
 import math
@@ -165,17 +164,10 @@ def test_unknown_strategy_and_baseline_are_refused(tmp_path):
 
 
 def _cli(argv):
-    """The bench sub-command under a parser with the common options of cli/main.py."""
-    from supportgen_cli.bench import add_parser
+    """The bench sub-command through the installed command's own parser."""
+    from supportgen_cli.main import build_parser
 
-    common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--profile")
-    common.add_argument("--set", action="append")
-    common.add_argument("--quiet", action="store_true")
-    common.add_argument("--debug", action="store_true")
-    parser = argparse.ArgumentParser(prog="supportgen")
-    add_parser(parser.add_subparsers(dest="command"), [common])
-    args = parser.parse_args(argv)
+    args = build_parser().parse_args(argv)
     return args.func(args)
 
 
