@@ -22,13 +22,11 @@ from __future__ import annotations
 
 import argparse
 import os
-import platform
 import tempfile
 import time
 from pathlib import Path
 
-import supportgen
-from supportgen.bench import run_bench
+from supportgen.bench import grid_settings, machine_line, run_bench
 from supportgen.demo import write_demo_inputs
 
 CORPUS = (Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus").resolve()
@@ -81,17 +79,9 @@ def main() -> None:
     ap.add_argument("--skip-demo", action="store_true")
     args = ap.parse_args()
 
-    overrides = {"seed": args.seed}
-    if args.pixel is not None:
-        overrides["pixel_mm"] = args.pixel
-        overrides["tip_min_mm"] = max(supportgen.Settings().supports.tip_min_mm, 2 * args.pixel)
-    if args.layer is not None:
-        overrides["layer_mm"] = args.layer
-    settings = supportgen.Settings().override(overrides)
+    settings = grid_settings(args.pixel, args.layer, args.seed)
     strategies = [s.strip() for s in args.strategies.split(",") if s.strip()]
-    print(f"machine: {platform.machine()} {platform.system()}, os.cpu_count()={os.cpu_count()}, "
-          f"load average {os.getloadavg()[0]:.2f} at start; python {platform.python_version()}, "
-          f"supportgen {supportgen.__version__}")
+    print(machine_line())
     print(f"settings: pixel {settings.printer.pixel_mm} mm, layer {settings.printer.layer_mm} mm, "
           f"seed {settings.supports.seed}, strategies {', '.join(strategies)}; output {args.output}")
 

@@ -33,7 +33,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import platform
 import tempfile
 import time
 from pathlib import Path
@@ -42,7 +41,7 @@ import numpy as np
 import trimesh
 
 import supportgen
-from supportgen.bench import measure_peak
+from supportgen.bench import grid_settings, machine_line, measure_peak
 from supportgen.placement import place
 
 CORPUS = (Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus").resolve()
@@ -168,17 +167,9 @@ def main() -> None:
     ap.add_argument("--png", type=Path, default=Path(tempfile.gettempdir()) / "supportgen-scaling.png")
     args = ap.parse_args()
 
-    overrides = {"seed": args.seed}
-    if args.pixel is not None:
-        overrides["pixel_mm"] = args.pixel
-        overrides["tip_min_mm"] = max(supportgen.Settings().supports.tip_min_mm, 2 * args.pixel)
-    if args.layer is not None:
-        overrides["layer_mm"] = args.layer
-    settings = supportgen.Settings().override(overrides)
+    settings = grid_settings(args.pixel, args.layer, args.seed)
     base, name = base_mesh()
-    print(f"machine: {platform.machine()} {platform.system()}, os.cpu_count()={os.cpu_count()}, "
-          f"load average {os.getloadavg()[0]:.2f} at start; python {platform.python_version()}, "
-          f"trimesh {trimesh.__version__}, supportgen {supportgen.__version__}")
+    print(machine_line())
     print(f"model: {name}, longest side {args.size:g} mm; pixel {settings.printer.pixel_mm} mm, layer "
           f"{settings.printer.layer_mm} mm, strategy {args.strategy}, seed {settings.supports.seed}, "
           f"best of {args.repeat} run(s) per point")

@@ -24,6 +24,7 @@ about twofold, so the stage times then overstate.
 
 from __future__ import annotations
 
+import os
 import csv
 import ctypes
 import dataclasses
@@ -46,7 +47,7 @@ from .settings import Settings
 from .strategies import get_strategy
 
 __all__ = ["BenchTable", "MEMORY_METHODS", "REPORT_COLUMNS", "STAGES", "find_models", "measure_peak",
-           "report_row", "baseline_ratios", "run_bench"]
+           "report_row", "baseline_ratios", "run_bench", "grid_settings", "machine_line"]
 
 MEMORY_METHODS = ("rss", "tracemalloc")
 #: Pipeline stages in the order they run; a stage a report adds later goes after them.
@@ -493,3 +494,31 @@ def run_bench(corpus_dir: str | Path, output_dir: str | Path, settings: Settings
     atomic_write_text(paths["csv"], table.to_csv())
     atomic_write_text(paths["markdown"], table.to_markdown())
     return dataclasses.replace(table, paths=paths)
+
+
+def grid_settings(pixel_mm: float | None = None, layer_mm: float | None = None, seed: int = 0) -> Settings:
+    """Default settings on another pixel/layer grid, for benchmark scripts.
+
+    A coarser pixel raises ``tip_min_mm`` to two pixels, the smallest feature
+    the settings accept.
+    """
+    overrides: dict = {"seed": seed}
+    if pixel_mm is not None:
+        overrides["pixel_mm"] = pixel_mm
+        overrides["tip_min_mm"] = max(Settings().supports.tip_min_mm, 2 * pixel_mm)
+    if layer_mm is not None:
+        overrides["layer_mm"] = layer_mm
+    return Settings().override(overrides)
+
+
+def machine_line() -> str:
+    """One line naming the machine, its cores and load, and the library versions, for benchmark output."""
+    import platform
+
+    import trimesh
+
+    from . import __version__
+
+    return (f"machine: {platform.machine()} {platform.system()}, os.cpu_count()={os.cpu_count()}, "
+            f"load average {os.getloadavg()[0]:.2f} at start; python {platform.python_version()}, "
+            f"trimesh {trimesh.__version__}, supportgen {__version__}")

@@ -23,7 +23,6 @@ from __future__ import annotations
 from pathlib import Path
 
 import manifold3d as m3d
-import numpy as np
 import trimesh
 
 __all__ = ["DEMO_PARTS", "demo_part", "write_demo_inputs"]
