@@ -52,30 +52,44 @@ def _summary_line(result, seconds: float) -> str:
             f"{verdict}, {seconds:.1f} s")
 
 
-def _run_generate(inputs, outdir: Path, args) -> int:
+def _each(inputs, work, args) -> int:
+    """Run ``work(path)`` for every input; it returns the failure lines of its
+    check.  An error or a failed check is reported on stderr and makes the
+    status 1; the other inputs still run."""
     import supportgen
 
-    settings = _settings(args)
     status = EXIT_OK
     for path in inputs:
-        t0 = time.perf_counter()
         try:
-            result = supportgen.generate(path, settings, strategy=args.strategy, centre=args.centre,
-                                         progress=not args.quiet)
-            result.save(outdir)
+            failures = work(path)
         except supportgen.SupportGenError as exc:
             if args.debug:
                 raise
             _err(f"error: {exc}")
             status = EXIT_FAILED
             continue
-        if not args.quiet:
-            print(_summary_line(result, time.perf_counter() - t0))
-        for failure in result.report["verification"]["failures"]:
+        for failure in failures:
             _err(f"check failed: {failure}")
-        if not result.report["verification"]["passed"]:
+        if failures:
             status = EXIT_FAILED
     return status
+
+
+def _run_generate(inputs, outdir: Path, args) -> int:
+    import supportgen
+
+    settings = _settings(args)
+
+    def work(path):
+        t0 = time.perf_counter()
+        result = supportgen.generate(path, settings, strategy=args.strategy, centre=args.centre,
+                                     progress=not args.quiet)
+        result.save(outdir)
+        if not args.quiet:
+            print(_summary_line(result, time.perf_counter() - t0))
+        return result.report["verification"]["failures"]
+
+    return _each(inputs, work, args)
 
 
 def cmd_generate(args) -> int:
@@ -99,26 +113,17 @@ def cmd_check(args) -> int:
     import supportgen
 
     settings = _settings(args)
-    status = EXIT_OK
-    for path in args.meshes:
-        try:
-            ver = supportgen.check(path, settings, progress=not args.quiet)
-        except supportgen.SupportGenError as exc:
-            if args.debug:
-                raise
-            _err(f"error: {exc}")
-            status = EXIT_FAILED
-            continue
+
+    def work(path):
+        ver = supportgen.check(path, settings, progress=not args.quiet)
         if args.json:
             print(json.dumps({"mesh": str(path), **ver.to_dict()}, sort_keys=True))
         elif ver.passed:
             print(f"{path}: passes: no islands, largest reach {ver.max_unsupported_reach_mm:.2f} mm "
                   f"(limit {ver.reach_limit_mm:g}), closed solid")
-        for failure in ver.failures:
-            _err(f"check failed: {failure}")
-        if not ver.passed:
-            status = EXIT_FAILED
-    return status
+        return list(ver.failures)
+
+    return _each(args.meshes, work, args)
 
 
 def cmd_profiles(args) -> int:
