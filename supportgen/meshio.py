@@ -377,11 +377,21 @@ def _merge(v, f, diag):
 
 
 def _drop_faces(v, f, diag, repairs):
-    """Drop faces with a repeated corner or zero area, then duplicates (any winding)."""
+    """Drop faces with a repeated corner or zero area, then duplicates (any winding).
+
+    A zero-area face with three distinct corners is kept when the surface is
+    closed with it: there it is a sliver of a sound solid (boolean unions make
+    them), and dropping it would open a hole.
+    """
     tri = v[f]
     area2 = np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
     s = np.sort(f, axis=1)
-    keep = (s[:, 0] != s[:, 1]) & (s[:, 1] != s[:, 2]) & (area2 > 2 * _TINY * diag**2)
+    distinct = (s[:, 0] != s[:, 1]) & (s[:, 1] != s[:, 2])
+    keep = distinct & (area2 > 2 * _TINY * diag**2)
+    if (distinct & ~keep).any():
+        closed = _edges(f[distinct], len(v))
+        if len(closed["boundary"]) == 0 and closed["nonmanifold"] == 0:
+            keep = distinct
     if (~keep).sum():
         n = int((~keep).sum())
         repairs.append(f"dropped {_count(n, 'degenerate face')}")

@@ -97,7 +97,7 @@ def test_same_input_gives_the_same_bytes(tmp_path):
 
 
 @pytest.mark.parametrize("name", ["fandisk.obj", "spot.obj", "stanford-bunny.obj"])
-def test_corpus_models_run_through_generate(name, corpus):
+def test_corpus_models_run_through_generate(name, corpus, tmp_path):
     # Open meshes from public research collections (../shared/corpus), scaled to 50 mm
     # on the longest side as the corpus README asks.  The bunny is an open scan: it
     # must be repaired into a closed solid or refused with a clear message.
@@ -113,6 +113,13 @@ def test_corpus_models_run_through_generate(name, corpus):
     assert r.combined.is_watertight
     assert r.report["verification"]["islands"] == 0, r.report["verification"]["failures"]
     assert r.report["verification"]["passed"], r.report["verification"]["failures"]
+    assert r.report["forces"]["tips_over_capacity"] == 0
+    # The file written checks out too: re-read (single precision, as any slicer reads
+    # it) it is still one closed solid without islands.
+    paths = r.save(tmp_path)
+    assert trimesh.load(paths["combined"]).is_watertight          # trimesh (reference library)
+    again = supportgen.check(paths["combined"], s)
+    assert again.passed and again.islands == 0, again.failures
 
 
 def test_every_tip_holds_at_the_set_safety_factor(demo_results):
