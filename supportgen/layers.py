@@ -470,7 +470,7 @@ def _new_pixels(m: np.ndarray, pw: np.ndarray, new: np.ndarray):
 
 def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reach_limit_mm: float, *,
                    grid: Grid | None = None, observers: Iterable[Callable] = (),
-                   progress: bool = False) -> LayerStack:
+                   progress: bool | str = False) -> LayerStack:
     """Area, perimeter, components, islands and unsupported reach of every layer, in one pass.
 
     Parameters
@@ -487,8 +487,8 @@ def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reac
     observers : iterable of callables
         Each called as ``observer(layer, labels, n_labels)`` for every layer, with the
         (ny, nx) int32 8-connected component labels (0 = empty).
-    progress : bool
-        Show a progress bar.
+    progress : bool or str
+        Show a progress bar (a string labels it); it is cleared when done.
 
     Returns
     -------
@@ -546,7 +546,8 @@ def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reac
     layers = iter_layers(mesh, grid, layer_mm)
     if progress:
         from tqdm import tqdm
-        layers = tqdm(layers, total=n_layers, desc="layers", unit="layer")
+        label = progress if isinstance(progress, str) else "layers"
+        layers = tqdm(layers, total=n_layers, desc=label, unit="layer", leave=False)
     for layer in layers:
         k, mask = layer.index, layer.mask
         inverted += layer.inverted

@@ -149,7 +149,7 @@ def _forces(part, grid: Grid, contacts: Contacts, settings: Settings, progress: 
     tracker = ForceTracker(grid, settings.printer.layer_mm, contacts.points, settings)
     pr = settings.printer
     analyse_layers(part, pr.pixel_mm, pr.layer_mm, settings.supports.max_reach_mm, grid=grid,
-                   observers=(tracker,), progress=progress)
+                   observers=(tracker,), progress=progress and "forces")
     return tracker.result()
 
 
@@ -204,7 +204,8 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         minima = contacts_at(part, oh.minima - [0, 0, 1e-3], "minimum", sp.tip_diameter_mm)
         contacts = merge_contacts(contacts, minima, sp.tip_diameter_mm)
     with timer("layers"):
-        stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, sp.max_reach_mm, progress=progress)
+        stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, sp.max_reach_mm,
+                               progress=progress and f"{name}: layers")
         # Island and reach points closer than the spacing to a contact are already held by it.
         contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), sp.contact_spacing_mm)
     warnings: list[dict] = []
@@ -232,7 +233,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
             solids: Solids = combine(part, sized.plan, settings)
         with timer("verify"):
             ver = verify(solids.combined, settings, tip_safety=sized.tip_safety_factor / sp.safety_factor,
-                         progress=progress, name=name)
+                         progress=progress and "check", name=name)
         if (ver.islands == 0 and ver.max_unsupported_reach_mm <= sp.max_reach_mm) or attempt == MAX_REPAIR_ROUNDS:
             break
         # Hold what the plan missed (islands left, layers reaching too far), then plan again.

@@ -72,7 +72,7 @@ class Verification:
 
 
 def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray | None = None,
-           progress: bool = False, name: str = "mesh") -> Verification:
+           progress: bool | str = False, name: str = "mesh") -> Verification:
     """Slice ``mesh`` as the printer will and check it prints.
 
     Parameters
@@ -83,8 +83,8 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
         Pixel pitch, layer height and ``supports.max_reach_mm``.
     tip_safety : (n,) float ndarray, optional
         Each tip's capacity over its factored load; a tip below 1 fails.
-    progress : bool
-        Show a progress bar over the layers.
+    progress : bool or str
+        Show a progress bar over the layers (a string labels it).
     name : str
         Name of the mesh for the failure lines.
 
