@@ -455,13 +455,13 @@ def pull_force(shape: LayerShape, settings) -> np.ndarray:
     return squeeze + p.force_area_n_mm2 * np.asarray(shape.area_mm2, float)
 
 
-def slide_force(shape: LayerShape, settings, shear_calibration: float = 1.0) -> np.ndarray:
+def slide_force(shape: LayerShape, settings, shear_calibration: float | None = None) -> np.ndarray:
     """Shear force per component when the film slides sideways: ``k mu A v / h`` (N).
 
     Notes
     -----
-    Couette flow in the gap at the lift speed.  ``k = shear_calibration`` is 1 by
-    default, not ``printer.force_calibration``: that factor stands for the film
+    Couette flow in the gap at the lift speed.  ``k = shear_calibration``, by
+    default ``printer.slide_calibration`` (1), not ``printer.force_calibration``: that factor stands for the film
     flexing away from the squeeze, and a film sliding in its own plane has no such
     relief (our assumption).  With equal factors slide/pull is ``A h^2 / (3 J)``,
     ``(2/3)(h/R)^2`` for a disc; with the defaults it is ``1/c`` times that, about a
@@ -472,14 +472,16 @@ def slide_force(shape: LayerShape, settings, shear_calibration: float = 1.0) -> 
     Couette flow: any fluid-mechanics text, e.g. Batchelor, An Introduction to Fluid
     Dynamics (1967), section 4.2.
     """
-    return shear_calibration * force_unit_n(settings) * shape.area_mm2 / settings.printer.film_gap_mm
+    k = settings.printer.slide_calibration if shear_calibration is None else shear_calibration
+    return k * force_unit_n(settings) * shape.area_mm2 / settings.printer.film_gap_mm
 
 
-def tilt_force(shape: LayerShape, settings, band_mm: float = 2.0) -> np.ndarray:
+def tilt_force(shape: LayerShape, settings, band_mm: float | None = None) -> np.ndarray:
     """Peel-line force per component when the vat tilts away (N), at the worst instant.
 
     Model (ours; assumptions): the film peels from the layer's low-x side, the peel
     front a straight line along y sweeping toward +x.  Only a band ``band_mm`` wide
+    (default ``printer.peel_band_mm``)
     behind the front is still wetted at the nominal gap and closing speed; resin
     enters it from both long sides (the front, and the already peeled side), so it
     is a thin strip: ``J = sum_rows w_row^3 / 3 * h_px`` with ``w_row`` the cured
@@ -497,6 +499,7 @@ def tilt_force(shape: LayerShape, settings, band_mm: float = 2.0) -> np.ndarray:
     out = np.zeros(n)
     if n == 0:
         return out
+    band_mm = settings.printer.peel_band_mm if band_mm is None else band_mm
     nb = max(1, int(round(band_mm / h)))
     cured = lab > 0
     cs = np.pad(np.cumsum(cured, axis=1), ((0, 0), (1, 0)))

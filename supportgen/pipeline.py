@@ -254,6 +254,10 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         warnings.append({"code": "tips-over-capacity",
                          "message": f"{name}: {sized.tips_over_capacity} tip(s) need more than {sp.tip_max_mm} mm "
                                     "even after adding contacts; add supports by hand or reorient the part"})
+    unserved = len(contacts) - len(np.unique(plan.tip_contact[plan.tip_contact >= 0]))
+    if unserved:
+        warnings.append({"code": "unserved", "message": f"{name}: {unserved} contact(s) have no clear way down "
+                         f"with the {strategy} strategy; try --strategy straight or reorient the part"})
     if ver.specks:
         sk = ver.specks[0]
         warnings.append({"code": "specks", "message": f"{name}: {len(ver.specks)} speck(s) under two pixels across start "

@@ -80,6 +80,12 @@ class Printer:
     force_calibration: float = _f(0.02, 1e-6, 10.0, "", "memory",
                                   "factor on the rigid-gap squeeze-film law: flexible films pull off far "
                                   "below it; fit it from measurements with `supportgen calibrate`")
+    slide_calibration: float = _f(1.0, 1e-6, 10.0, "", "practice",
+                                  "factor on the shear law when the film slides: a film sliding in its own "
+                                  "plane gets no relief from flexing (an assumption), so 1; sliding then "
+                                  "needs about a hundredth of the pull, as practice reports")
+    peel_band_mm: float = _f(2.0, 0.1, 50.0, "mm", "memory",
+                             "width of the still-wetted strip behind the peel front when the vat tilts")
     force_area_n_mm2: float = _f(0.0, 0.0, 10.0, "N/mm2", "practice",
                                  "force per mm2 of layer area added to the squeeze-film law (adhesion to "
                                  "the film); 0 unless `supportgen calibrate` finds the data call for it")
