@@ -155,3 +155,21 @@ def test_a_solid_brick_gets_more_tip_area_than_an_open_lattice():
     bottom = lambda m: float(m.area_faces[m.face_normals[:, 2] < -0.99].sum())
     assert rb.report["forces"]["peak_layer_force_n"] > 5 * rl.report["forces"]["peak_layer_force_n"]
     assert tip_area(rb) / bottom(brick) > tip_area(rl) / bottom(lattice)
+
+
+def test_contacts_are_added_where_a_tip_would_need_more_than_the_largest():
+    # Sizing (REFERENCE.md section 3): a tip holds sigma pi d^2 / 4.  A high force factor
+    # makes the heaviest tips need more than tip_max_mm; contacts are added nearby until
+    # every tip holds SF x its load at a diameter no larger than tip_max_mm.
+    s = supportgen.Settings().override(pixel_mm=0.1, layer_mm=0.1, tip_min_mm=0.2)
+    brick = trimesh.creation.box((24, 24, 4))
+    light = supportgen.generate(brick, s.override(force_calibration=0.05), strategy="straight", name="brick")
+    heavy = supportgen.generate(brick, s.override(force_calibration=0.3), strategy="straight", name="brick")
+    assert light.report["supports"]["contacts_added_by_densifying"] == 0
+    assert heavy.report["supports"]["contacts_added_by_densifying"] > 0
+    assert len(heavy.contacts) > len(light.contacts)
+    c = heavy.contacts
+    assert c.diameters.max() <= s.supports.tip_max_mm + 1e-12
+    capacity = s.resin.green_tensile_mpa * np.pi * c.diameters**2 / 4
+    assert np.all(capacity >= s.supports.safety_factor * c.loads * (1 - 1e-9))
+    assert heavy.report["verification"]["passed"]
