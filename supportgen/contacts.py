@@ -21,12 +21,15 @@ from __future__ import annotations
 
 import numpy as np
 import trimesh
+from scipy.spatial import cKDTree
 
+from .errors import SizingError
 from .overhangs import Overhangs
 from .plan import Contacts
+from .settings import Settings
 
 __all__ = ["RSA_DENSITY", "poisson_disk", "sample_overhangs", "contacts_at", "merge_contacts",
-           "expected_count"]
+           "expected_count", "densify_points"]
 
 #: Samples per r^2 of a jammed random sequential addition (Feder 1980: coverage 0.547).
 RSA_DENSITY = 0.547 / (np.pi / 4)
@@ -201,3 +204,65 @@ def merge_contacts(existing: Contacts, new: Contacts, min_distance: float) -> Co
     keep.sort()
     return Contacts(*(getattr(both, f)[keep] for f in ("points", "normals", "kinds", "diameters", "loads",
                                                         "peak_layers")))
+
+
+def densify_points(contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Settings,
+                   radius_mm: float | None = None, count: int = 6) -> Contacts:
+    """Add contacts in a ring around each over-capacity contact, on down-facing surface.
+
+    Parameters
+    ----------
+    contacts : Contacts
+    over : (n,) bool ndarray
+        Contacts whose tip cannot hold its load at ``tip_max_mm``
+        (:func:`supportgen.sizing.over_capacity` of ``contacts.loads``).
+    mesh : trimesh.Trimesh
+        The part in build coordinates.
+    settings : Settings
+    radius_mm : float, optional
+        Ring radius; default half of ``contact_spacing_mm``.
+    count : int
+        Points per ring.
+
+    Returns
+    -------
+    Contacts
+        The given contacts unchanged, then the new ones (kind ``"densify"``,
+        diameter ``tip_diameter_mm``, no load yet).  Candidates are projected onto
+        the surface (closest point), kept only on faces whose normal points down,
+        and dropped within half the ring radius of any contact; when nothing is
+        added the input comes back, which ends the caller's densify loop.
+
+    Notes
+    -----
+    O(k log F) for k = count * (contacts over capacity) candidates on F faces.
+    """
+    over = np.asarray(over, dtype=bool)
+    if over.shape != (len(contacts),):
+        raise SizingError(f"over has shape {over.shape}, expected ({len(contacts)},); pass one flag per contact")
+    idx = np.flatnonzero(over)
+    if idx.size == 0:
+        return contacts
+    r = 0.5 * settings.supports.contact_spacing_mm if radius_mm is None else float(radius_mm)
+    n = contacts.normals[idx]
+    helper = np.where(np.abs(n[:, :1]) < 0.9, [[1.0, 0.0, 0.0]], [[0.0, 1.0, 0.0]])
+    u = np.cross(n, helper)
+    u /= np.linalg.norm(u, axis=1, keepdims=True)
+    w = np.cross(n, u)
+    phase = 2.0 * np.pi * np.arange(count) / count
+    ring = contacts.points[idx, None, :] + r * (np.cos(phase)[None, :, None] * u[:, None, :]
+                                                + np.sin(phase)[None, :, None] * w[:, None, :])
+    closest, _, tri = trimesh.proximity.closest_point(mesh, ring.reshape(-1, 3))
+    normals = mesh.face_normals[tri]
+    keep = np.flatnonzero(normals[:, 2] < 0.0)
+    tree, taken = cKDTree(contacts.points), []
+    for i in keep:
+        p = closest[i]
+        if tree.query(p)[0] >= 0.5 * r and all(np.linalg.norm(p - closest[j]) >= 0.5 * r for j in taken):
+            taken.append(i)
+    if not taken:
+        return contacts
+    k = len(taken)
+    new = Contacts(closest[taken], normals[taken], np.full(k, "densify"),
+                   np.full(k, settings.supports.tip_diameter_mm))
+    return Contacts.concat([contacts, new])

@@ -13,6 +13,7 @@ __all__ = [
     "MeshError",
     "PlacementError",
     "GeometryError",
+    "SizingError",
 ]
 
 
@@ -34,3 +35,7 @@ class PlacementError(SupportGenError, ValueError):
 
 class GeometryError(SupportGenError, RuntimeError):
     """Building or joining the support solids failed."""
+
+
+class SizingError(SupportGenError, ValueError):
+    """Loads or a support plan cannot be sized (negative load, cycle, bad index)."""

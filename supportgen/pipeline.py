@@ -20,7 +20,7 @@ import numpy as np
 import trimesh
 
 from . import report as rpt
-from .contacts import contacts_at, merge_contacts, sample_overhangs
+from .contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
 from .forces import ForceProfile, ForceTracker
 from .geometry import Solids, combine
 from .layers import Grid, LayerStack, analyse_layers
@@ -29,7 +29,7 @@ from .overhangs import find_overhangs
 from .placement import place
 from .plan import Contacts, SupportPlan
 from .settings import Settings, load_settings
-from .sizing import SizedPlan, densify_points, over_capacity, size_plan, tip_diameter
+from .sizing import SizedPlan, over_capacity, size_plan, tip_diameter
 from .strategies import get_strategy
 from .verify import Verification, speck_area_mm2, verify
 
