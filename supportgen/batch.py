@@ -6,19 +6,15 @@ folder (case-insensitive, recursively, sorted), supports each one with
 folder under the output tree, then writes ``batch-summary.csv`` and
 ``batch-summary.json`` there.
 
-Engines
-    Local: ``workers`` long-lived processes (``forkserver``, which imports the
-    pipeline once; ``spawn`` where that is missing), one pipe each, one file
-    at a time per process.  A process past its file's deadline is killed (status
-    ``timeout``), one that dies is recorded (``crashed``), and a fresh process
-    takes its place.  (A ``ProcessPoolExecutor`` cannot kill one worker, and one
-    dead worker breaks the whole pool, so the pool here is a plain one.)
-    Dask: ``cluster="tcp://host:port"`` sends the same job function to a Dask
-    distributed scheduler (``pip install 'supportgen[cluster]'``); workers must
-    have supportgen installed and see the input and output folders at the same
-    paths (a shared file system).  Dask cannot stop a running function: a file
-    past its deadline is recorded as ``timeout`` and its task cancelled, and if
-    it ever finishes it writes nothing.
+Engines (:mod:`supportgen.workers`)
+    Local: ``workers`` long-lived processes, one file at a time each; a process
+    past its file's deadline is killed (status ``timeout``), one that dies is
+    recorded (``crashed``) and replaced.  Dask: ``cluster="tcp://host:port"``
+    sends the same job function to a Dask distributed scheduler (``pip install
+    'supportgen[cluster]'``); workers must have supportgen installed and see the
+    input and output folders at the same paths (a shared file system).  A Dask
+    task past its deadline is recorded as ``timeout`` and cancelled, and if it
+    ever finishes it writes nothing.
 Resume
     After a successful save, ``NAME.batch.json`` beside the outputs records the
     sha256 of the input bytes and of ``settings.to_toml()`` plus the strategy.
@@ -55,6 +51,7 @@ import numpy as np
 from .errors import SupportGenError
 from .pipeline import OUTPUTS
 from .settings import Settings
+from .workers import dask_client, run_dask, run_local
 
 __all__ = ["SUFFIXES", "STATUSES", "BAD_STATUSES", "SUMMARY_FIELDS", "OUTPUT_SUFFIXES", "MANIFEST_SUFFIX",
            "MEMORY_BASE_MB", "MEMORY_MASK_FACTOR", "MEMORY_FACE_BYTES", "FileResult", "BatchSummary", "Job",
@@ -351,6 +348,11 @@ def run_job(job: Job) -> FileResult:
     return FileResult(job.rel, "failed", reason, seconds=round(time.perf_counter() - t0, 3), peak_mb=_peak_mb())
 
 
+def _lost(job: Job, status: str, reason: str, seconds: float) -> FileResult:
+    """The row of a file whose worker never returned (``timeout`` or ``crashed``)."""
+    return FileResult(job.rel, status, reason, seconds=seconds)
+
+
 def _up_to_date(job: Job, settings_sha: str) -> FileResult | None:
     """The skipped row when the manifest matches the input and settings and every output exists."""
     paths = _outputs(job)
@@ -463,7 +465,7 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
                               "inputs next time: give another -o folder")
     inside = out.resolve().is_relative_to(root.resolve())
     rels = discover(root, pattern, exclude=out if inside else None)
-    client = _dask_client(cluster) if cluster is not None else None
+    client = dask_client(cluster) if cluster is not None else None
     out.mkdir(parents=True, exist_ok=True)
     jobs, results = _plan_jobs(root, out, rels, settings, strategy, memory_limit_mb)
     sha = settings_hash(settings, strategy)
@@ -484,9 +486,10 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
     interrupted, raised = False, None
     try:
         if client is not None:
-            _run_dask(todo, client, timeout_s, record)
+            run_dask(todo, client, timeout_s, record, run=run_job, discard=discard_outputs, lost=_lost)
         else:
-            _run_local(todo, workers or os.cpu_count() or 1, timeout_s, record)
+            run_local(todo, workers or os.cpu_count() or 1, timeout_s, record, run=run_job,
+                      discard=discard_outputs, lost=_lost)
     except KeyboardInterrupt:
         interrupted = True
     except Exception as exc:  # noqa: BLE001 - write the summary of what finished, then re-raise
@@ -504,199 +507,3 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
     if raised is not None:
         raise raised
     return summary
-
-
-# -- local engine: one process per slot, killed on timeout, replaced when it dies ------------------
-
-@dataclass
-class _Slot:
-    """A worker process, its pipe and the job it is running (bookkeeping of one _run_local call)."""
-
-    proc: object
-    conn: object
-    job: Job | None = None
-    started: float = 0.0
-    ready: bool = False
-    dead: bool = False
-
-
-def _worker_main(conn) -> None:
-    """Worker loop: warm the imports, say ready, then run jobs until told to stop."""
-    import signal
-
-    signal.signal(signal.SIGINT, signal.SIG_IGN)     # Ctrl-C is the parent's to handle
-    try:
-        from . import pipeline  # noqa: F401 - import once, before the first deadline starts
-    except Exception:  # noqa: BLE001 - run_job reports the same import error for each file
-        pass
-    conn.send(("ready", None))
-    while True:
-        try:
-            job = conn.recv()
-        except EOFError:
-            return
-        if job is None:
-            return
-        conn.send(("done", run_job(job)))
-
-
-def _died(code) -> str:
-    import signal
-
-    if code is not None and code < 0:
-        try:
-            what = f"signal {-code} ({signal.Signals(-code).name})"
-        except ValueError:
-            what = f"signal {-code}"
-    else:
-        what = f"exit code {code}"
-    return f"worker process died ({what}) while supporting it; try it alone with `supportgen generate --debug`"
-
-
-def _stop(slot: _Slot, kill: bool) -> None:
-    if not slot.dead:
-        try:
-            if kill:
-                slot.proc.kill()
-            else:
-                slot.conn.send(None)
-        except OSError:
-            pass
-        slot.proc.join(2)
-        if slot.proc.is_alive():
-            slot.proc.kill()
-            slot.proc.join()
-        slot.conn.close()
-    slot.dead = True
-
-
-def _run_local(jobs: list[Job], workers: int, timeout_s: float | None, record: Callable) -> None:
-    import multiprocessing
-    from collections import deque
-    from multiprocessing.connection import wait
-
-    if "forkserver" in multiprocessing.get_all_start_methods():
-        # Workers fork from one server that has imported the pipeline once (no per-worker import).
-        ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload(["supportgen.batch", "supportgen.pipeline"])
-    else:
-        ctx = multiprocessing.get_context("spawn")
-    pending, slots, start_failures = deque(jobs), [], 0
-
-    def start() -> _Slot:
-        parent, child = ctx.Pipe()
-        proc = ctx.Process(target=_worker_main, args=(child,), name="supportgen-batch-worker", daemon=True)
-        proc.start()
-        child.close()
-        return _Slot(proc, parent)
-
-    graceful = False
-    try:
-        while pending or any(s.job for s in slots):
-            slots = [s for s in slots if not s.dead]
-            for _ in range(min(workers, len(pending) + sum(s.job is not None for s in slots)) - len(slots)):
-                slots.append(start())
-            for s in slots:
-                if s.ready and s.job is None and pending:
-                    s.job, s.started = pending.popleft(), time.monotonic()
-                    s.conn.send(s.job)
-            ends = [s.started + timeout_s for s in slots if s.job is not None] if timeout_s else []
-            wait([s.conn for s in slots] + [s.proc.sentinel for s in slots],
-                 max(0.0, min(ends) - time.monotonic()) if ends else None)
-            for s in slots:
-                lost = None
-                try:
-                    while s.conn.poll():
-                        kind, payload = s.conn.recv()
-                        if kind == "ready":
-                            s.ready = True
-                        else:
-                            s.job = None
-                            record(payload)
-                except (EOFError, OSError):
-                    lost = "crashed"
-                if lost is None and not s.proc.is_alive():
-                    lost = "crashed"
-                if lost is None and s.job is not None and timeout_s and time.monotonic() > s.started + timeout_s:
-                    lost = "timeout"
-                if lost is None:
-                    continue
-                job, s.job, was_ready = s.job, None, s.ready
-                _stop(s, kill=True)
-                if job is not None:
-                    discard_outputs(job)
-                    reason = (f"took longer than {timeout_s:g} s; its worker was stopped (raise --timeout or use "
-                              "coarser settings)") if lost == "timeout" else _died(s.proc.exitcode)
-                    record(FileResult(job.rel, lost, reason, seconds=round(time.monotonic() - s.started, 3)))
-                elif not was_ready:
-                    start_failures += 1
-                    if start_failures >= 3:
-                        raise SupportGenError(f"batch: worker processes fail to start ({_died(s.proc.exitcode)}); "
-                                              "check that `python -c 'import supportgen.pipeline'` works")
-        graceful = True
-    finally:
-        for s in slots:
-            if s.job is not None:
-                discard_outputs(s.job)
-            _stop(s, kill=not graceful or s.job is not None)
-
-
-# -- Dask engine ----------------------------------------------------------------------------------------
-
-def _dask_client(cluster):
-    try:
-        from distributed import Client
-    except ImportError:
-        raise SupportGenError("batch: --cluster needs Dask distributed, which is not installed; install it with "
-                              "pip install 'supportgen[cluster]'") from None
-    address = getattr(cluster, "scheduler_address", cluster)
-    try:
-        return Client(address, timeout="10s", set_as_default=False)
-    except (OSError, TimeoutError) as exc:
-        raise SupportGenError(f"batch: cannot reach the Dask scheduler at {address} ({exc}); start one with "
-                              "`dask scheduler` or fix the address") from None
-
-
-def _run_dask(jobs: list[Job], client, timeout_s: float | None, record: Callable) -> None:
-    from collections import deque
-
-    from distributed import wait
-
-    width = max(1, sum(client.nthreads().values()))   # submit no more than can run: deadlines start at submit
-    pending, running = deque(jobs), {}
-    try:
-        while pending or running:
-            while pending and len(running) < width:
-                job = pending.popleft()
-                if timeout_s:
-                    job = dataclasses.replace(job, deadline=time.time() + timeout_s)
-                running[client.submit(run_job, job, pure=False)] = (job, time.monotonic())
-            ends = [t0 + timeout_s for _, t0 in running.values()] if timeout_s else []
-            try:
-                with client.as_current():
-                    wait(list(running), timeout=max(0.05, min(ends) - time.monotonic()) if ends else None,
-                         return_when="FIRST_COMPLETED")
-            except TimeoutError:
-                pass
-            for fut in list(running):
-                job, t0 = running[fut]
-                if fut.done():
-                    del running[fut]
-                    if fut.status == "finished":
-                        record(fut.result())
-                        continue
-                    discard_outputs(job)
-                    exc = fut.exception() if fut.status == "error" else fut.status
-                    record(FileResult(job.rel, "crashed", f"Dask task {fut.status}: {type(exc).__name__}: {exc}",
-                                      seconds=round(time.monotonic() - t0, 3)))
-                elif timeout_s and time.monotonic() > t0 + timeout_s:
-                    del running[fut]
-                    fut.cancel()
-                    discard_outputs(job)
-                    record(FileResult(job.rel, "timeout", f"took longer than {timeout_s:g} s; Dask task cancelled "
-                                      "(a running task cannot be stopped; it will save nothing)",
-                                      seconds=round(time.monotonic() - t0, 3)))
-    finally:
-        for fut, (job, _) in running.items():
-            fut.cancel()
-            discard_outputs(job)
