@@ -218,6 +218,10 @@ def main(argv=None) -> int:
         return EXIT_USAGE
     try:
         return args.func(args)
+    except BrokenPipeError:
+        # The reader went away (e.g. `supportgen profiles | head`): stop quietly.
+        sys.stderr.close()
+        return EXIT_OK
     except KeyboardInterrupt:
         _err("interrupted; finished files are complete, nothing half-written was left")
         return 130

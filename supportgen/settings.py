@@ -229,7 +229,7 @@ class Settings:
 PROFILES: dict[str, dict[str, Any]] = {
     "desk-50": {},
     "desk-35-fine": {"pixel_mm": 0.035, "layer_mm": 0.03, "build_x_mm": 120.0, "build_y_mm": 68.0,
-                     "tip_min_mm": 0.1, "contact_spacing_mm": 2.0},
+                     "tip_min_mm": 0.1, "contact_spacing_mm": 1.6},
     "wide-slide": {"pixel_mm": 0.075, "build_x_mm": 300.0, "build_y_mm": 170.0, "build_z_mm": 400.0,
                    "mechanism": "slide", "tip_min_mm": 0.2},
     "tilt-vat": {"mechanism": "tilt"},
