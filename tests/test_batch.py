@@ -184,7 +184,14 @@ if __name__ == "__main__":
 
 def test_ctrl_c_then_resume(tmp_path):
     names = ("a_first.stl", "sub/b_second.stl", "sub/c_third.stl")
-    _write_good(tmp_path / "in", names)
+    _write_good(tmp_path / "in", names[:1])
+    # The files after the first are large lifted spheres (several seconds each at these
+    # settings), so the interrupt always lands while the batch is still at work.
+    for name in names[1:]:
+        big = trimesh.creation.icosphere(subdivisions=5, radius=20.0)
+        big.apply_translation((0.0, 0.0, 25.0))
+        (tmp_path / "in" / name).parent.mkdir(parents=True, exist_ok=True)
+        big.export(tmp_path / "in" / name)
     out = tmp_path / "out"
     script = tmp_path / "child.py"
     script.write_text(CHILD)
