@@ -248,7 +248,10 @@ def test_crashed_worker_is_recorded(tmp_path):
 
 def test_timeout_and_memory_refusal(tmp_path):
     src = tmp_path / "in"
-    _write_good(src, ("slow_sphere.stl",))
+    src.mkdir()
+    slow = trimesh.creation.icosphere(subdivisions=5, radius=20.0)   # seconds of work, far over 0.2 s
+    slow.apply_translation((0.0, 0.0, 25.0))
+    slow.export(src / "slow_sphere.stl")
     plate = trimesh.creation.box((120.0, 70.0, 1.0))
     plate.apply_translation((0.0, 0.0, 5.0))
     plate.export(src / "wide_plate.stl")
