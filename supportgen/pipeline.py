@@ -75,7 +75,9 @@ class Result:
         outdir.mkdir(parents=True, exist_ok=True)
         n = self.name
         paths = {role: outdir / f"{n}{suffix}" for role, suffix in OUTPUTS.items()}
-        report = dict(self.report)
+        # The report records where it was saved, so ``result.report`` stays the
+        # same dict as the JSON file written.
+        report = self.report
         report["outputs"] = {k: str(p) for k, p in paths.items()}
         written: list[Path] = []
         try:
