@@ -284,6 +284,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
                      "contacts_added_after_check": repaired,
                      "tip_diameter_mm": sized_dict["tip_diameter_mm"],
                      "tip_safety_factors": sized_dict["tips"]["safety_factor"],
+                     "tips": sized_dict["tips"],
                      "post_diameter_mm": sized_dict["post_diameter_mm"],
                      "volume_mm3": solids.supports_volume_mm3, "base_volume_mm3": solids.base_volume_mm3,
                      "overhang_area_mm2": oh.area_mm2, "contact_area_mm2": float(np.sum(np.pi * contacts.diameters**2 / 4)),
