@@ -173,7 +173,11 @@ def test_dask_local_cluster_matches_local_pool(folder, runs):
 
 
 CHILD = """
+import signal
 import sys
+# A shell that starts jobs in the background hands them SIGINT ignored; a terminal
+# user's batch has Python's Ctrl-C handler, so put it back.
+signal.signal(signal.SIGINT, signal.default_int_handler)
 from supportgen import Settings
 from supportgen.batch import run_batch
 if __name__ == "__main__":
