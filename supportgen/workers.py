@@ -107,6 +107,10 @@ def _stop(slot: _Slot, kill: bool) -> None:
     slot.dead = True
 
 
+#: After Ctrl-C, how long a busy worker may take to hand over a result it is sending (s).
+_GRACE_S = 0.5
+
+
 def run_local(jobs: list, workers: int, timeout_s: float | None, record: Callable, *,
               run: Callable, discard: Callable, lost: Callable) -> None:
     """Run ``jobs`` in ``workers`` local processes, killing any past ``timeout_s``.
@@ -201,6 +205,17 @@ def run_local(jobs: list, workers: int, timeout_s: float | None, record: Callabl
         graceful = True
     finally:
         for s in slots:
+            if s.job is not None and not graceful:
+                # Keep a result already on its way (a worker finishing its save as Ctrl-C
+                # came): its outputs are complete, so it counts as done, not discarded.
+                try:
+                    if s.conn.poll(_GRACE_S):
+                        kind, payload = s.conn.recv()
+                        if kind != "ready":
+                            s.job = None
+                            record(payload)
+                except (EOFError, OSError):
+                    pass
             if s.job is not None:
                 discard(s.job)
             _stop(s, kill=not graceful or s.job is not None)
