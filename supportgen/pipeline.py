@@ -258,8 +258,8 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
                                     "even after adding contacts; add supports by hand or reorient the part"})
     unserved = len(contacts) - len(np.unique(plan.tip_contact[plan.tip_contact >= 0]))
     if unserved:
-        warnings.append({"code": "unserved", "message": f"{name}: {unserved} contact(s) have no clear way down "
-                         f"with the {strategy} strategy; try --strategy straight or reorient the part"})
+        warnings.append({"code": "unserved", "message": f"{name}: the {strategy} strategy gave {unserved} "
+                         "contact(s) no way down; reorient the part or try another strategy"})
     if ver.specks:
         sk = ver.specks[0]
         warnings.append({"code": "specks", "message": f"{name}: {len(ver.specks)} speck(s) under two pixels across start "

@@ -6,7 +6,8 @@
     stops above it and stands on it with a landing tip (model-to-model).
 ``tree``
     Contacts routed around the part and merged into trunks
-    (:func:`supportgen.routing.plan_tree`).
+    (:func:`supportgen.routing.plan_tree`); a contact with no way down that
+    keeps the clearance from the part gets a straight post instead.
 
 A strategy is a function ``(mesh, contacts, settings) -> SupportPlan``; add one
 by writing such a function and registering it in :data:`STRATEGIES`.
@@ -23,7 +24,7 @@ from .errors import SettingsError
 from .plan import Contacts, SupportPlan
 from .settings import Settings
 
-__all__ = ["STRATEGIES", "get_strategy", "plan_straight"]
+__all__ = ["STRATEGIES", "get_strategy", "plan_straight", "join_plans"]
 
 
 def _first_hits_below(mesh: trimesh.Trimesh, origins: np.ndarray) -> np.ndarray:
@@ -94,10 +95,35 @@ def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings)
     )
 
 
+def join_plans(strategy: str, first: SupportPlan, second: SupportPlan, second_contacts: np.ndarray) -> SupportPlan:
+    """One plan holding both: ``second``'s nodes renumbered after ``first``'s, and its
+    tips' contact indices mapped through ``second_contacts`` (landings stay -1)."""
+    off = len(first.nodes)
+    tip_contact = np.where(second.tip_contact >= 0, second_contacts[np.maximum(second.tip_contact, 0)], -1)
+    return SupportPlan(
+        strategy=strategy, nodes=np.vstack([first.nodes, second.nodes]),
+        edges=np.vstack([first.edges, second.edges + off]),
+        edge_radius=np.concatenate([first.edge_radius, second.edge_radius]),
+        tip_points=np.vstack([first.tip_points, second.tip_points]),
+        tip_nodes=np.concatenate([first.tip_nodes, second.tip_nodes + off]),
+        tip_diameters=np.concatenate([first.tip_diameters, second.tip_diameters]),
+        tip_contact=np.concatenate([first.tip_contact, tip_contact]),
+        feet=np.concatenate([first.feet, second.feet + off]),
+        braces=np.vstack([first.braces, second.braces + off]),
+    )
+
+
 def _plan_tree(mesh, contacts, settings):
+    """Tree routing; a contact with no clear way down for a branch gets a straight post."""
     from .routing import plan_tree  # imported on use: routing pulls in the free-space graph
 
-    return plan_tree(mesh, contacts, settings)
+    plan = plan_tree(mesh, contacts, settings)
+    left = np.setdiff1d(np.arange(len(contacts)), plan.tip_contact[plan.tip_contact >= 0])
+    if len(left) == 0:
+        return plan
+    sub = Contacts(*(getattr(contacts, f)[left] for f in ("points", "normals", "kinds", "diameters", "loads",
+                                                           "peak_layers")))
+    return join_plans("tree", plan, plan_straight(mesh, sub, settings), left)
 
 
 #: Strategy name -> function (mesh, contacts, settings) -> SupportPlan.

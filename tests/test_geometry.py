@@ -64,3 +64,28 @@ def test_landing_post_stands_on_the_part_below():
     land_pts = plan.tip_points[plan.tip_contact < 0]
     assert np.all(land_pts[:, 0] >= -1e-6) and np.allclose(land_pts[:, 2], 4.0)
     assert sol.combined.is_watertight
+
+
+def test_tree_gives_every_contact_a_way_down():
+    # Under the lid's inner thread ridge no branch keeps the clearance from the wall, so
+    # those contacts get straight posts landing on the lid's floor; every contact is held
+    # (followed through the plan graph with networkx, a reference library).
+    import networkx as nx
+
+    from supportgen.contacts import sample_overhangs as sample
+    from supportgen.demo import demo_part
+    from supportgen.strategies import get_strategy
+
+    s = Settings()
+    part = place(demo_part("jar_lid"), s).mesh
+    sp = s.supports
+    c = sample(part, find_overhangs(part, sp.overhang_angle_deg, floor_z=0.0), sp.contact_spacing_mm,
+               sp.overhang_angle_deg, sp.tip_diameter_mm)
+    plan = get_strategy("tree")(part, c, s)
+    assert set(plan.tip_contact[plan.tip_contact >= 0]) == set(range(len(c)))
+    assert plan.landings > 0
+    g = nx.DiGraph([tuple(e) for e in plan.edges])
+    g.add_nodes_from(range(len(plan.nodes)))
+    ends = set(plan.feet) | set(plan.tip_nodes[plan.tip_contact < 0])
+    for node in plan.tip_nodes[plan.tip_contact >= 0]:
+        assert ({node} | nx.descendants(g, node)) & ends
