@@ -2,8 +2,8 @@
 
 Registered from ``cli/main.py``::
 
-    from supportgen_cli.bench import add_parser as add_bench_parser
-    add_bench_parser(sub, [common])
+    from . import bench as bench_cmd
+    bench_cmd.add_parser(sub, [common])
 """
 
 from __future__ import annotations
@@ -11,6 +11,8 @@ from __future__ import annotations
 import argparse
 import sys
 from pathlib import Path
+
+from .options import positive, settings_from
 
 __all__ = ["add_parser", "cmd_bench", "parse_strategies"]
 
@@ -40,16 +42,6 @@ def parse_strategies(text: str) -> list[str]:
     return list(dict.fromkeys(names))
 
 
-def _positive(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = float("nan")
-    if not value > 0:
-        raise argparse.ArgumentTypeError(f"{text!r}: give the longest side in mm as a positive number, e.g. 50")
-    return value
-
-
 def add_parser(subparsers, parents) -> argparse.ArgumentParser:
     """Register ``bench`` on ``subparsers`` with the common options ``parents``; return its parser."""
     p = subparsers.add_parser(
@@ -62,7 +54,7 @@ def add_parser(subparsers, parents) -> argparse.ArgumentParser:
                    help="strategies to run, comma-separated (default: straight,tree)")
     p.add_argument("--baseline", metavar="NAME",
                    help="strategy the others are compared with (default: straight if run, else the first)")
-    p.add_argument("--scale", type=_positive, metavar="MM",
+    p.add_argument("--scale", type=positive(float, "the longest side in mm as a positive number, e.g. 50"), metavar="MM",
                    help="scale each model so its longest side is MM and centre it (for unitless meshes)")
     p.add_argument("--memory", choices=("rss", "tracemalloc"), default="rss",
                    help="peak memory by resident-set growth (default) or traced allocations (slows the run)")
@@ -74,11 +66,10 @@ def cmd_bench(args) -> int:
     """Run the bench; exit 0 when every run succeeded and passed verification, else 1."""
     from supportgen.bench import run_bench
 
-    from .main import _settings
 
     strategies = args.strategies
     baseline = args.baseline or ("straight" if "straight" in strategies else strategies[0])
-    table = run_bench(Path(args.corpus), Path(args.output), _settings(args), strategies, baseline=baseline,
+    table = run_bench(Path(args.corpus), Path(args.output), settings_from(args), strategies, baseline=baseline,
                       scale_mm=args.scale, memory=args.memory, progress=not args.quiet)
     status = EXIT_OK
     for r in table.rows:

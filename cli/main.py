@@ -13,34 +13,9 @@ import sys
 import time
 from pathlib import Path
 
+from .options import common_options, err, settings_from, strategy_option
+
 EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
-
-
-def _settings(args):
-    import supportgen
-
-    overrides = {}
-    for item in args.set or []:
-        if "=" not in item:
-            raise supportgen.SettingsError(f"--set {item!r}: write it as NAME=VALUE, e.g. --set contact_spacing_mm=1.8")
-        key, value = item.split("=", 1)
-        overrides[key.strip()] = _parse_value(value.strip())
-    if getattr(args, "lift", None) is not None:
-        overrides["lift_mm"] = args.lift
-    return supportgen.load_settings(args.profile, **overrides)
-
-
-def _parse_value(text: str):
-    for cast in (int, float):
-        try:
-            return cast(text)
-        except ValueError:
-            pass
-    return text
-
-
-def _err(msg: str) -> None:
-    print(f"supportgen: {msg}", file=sys.stderr)
 
 
 def _summary_line(result, seconds: float) -> str:
@@ -65,11 +40,11 @@ def _each(inputs, work, args) -> int:
         except supportgen.SupportGenError as exc:
             if args.debug:
                 raise
-            _err(f"error: {exc}")
+            err(f"error: {exc}")
             status = EXIT_FAILED
             continue
         for failure in failures:
-            _err(f"check failed: {failure}")
+            err(f"check failed: {failure}")
         if failures:
             status = EXIT_FAILED
     return status
@@ -78,7 +53,7 @@ def _each(inputs, work, args) -> int:
 def _run_generate(inputs, outdir: Path, args) -> int:
     import supportgen
 
-    settings = _settings(args)
+    settings = settings_from(args)
 
     def work(path):
         t0 = time.perf_counter()
@@ -112,7 +87,7 @@ def cmd_demo(args) -> int:
 def cmd_check(args) -> int:
     import supportgen
 
-    settings = _settings(args)
+    settings = settings_from(args)
 
     def work(path):
         ver = supportgen.check(path, settings, progress=not args.quiet)
@@ -148,7 +123,7 @@ def cmd_calibrate(args) -> int:
     from supportgen.calibration import calibrated_settings, fit_calibration, read_measurements
     from supportgen.meshio import atomic_write_text
 
-    settings = _settings(args)
+    settings = settings_from(args)
     fit = fit_calibration(read_measurements(args.measurements), settings)
     print(fit.to_text())
     atomic_write_text(Path(args.output), calibrated_settings(fit, settings).to_toml())
@@ -162,21 +137,10 @@ def build_parser() -> argparse.ArgumentParser:
         description="Support structures for bottom-up resin printing, sized from the separation force of every layer.")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
-    common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--profile", metavar="FILE", help="built-in profile name or TOML profile file")
-    common.add_argument("--set", action="append", metavar="NAME=VALUE",
-                        help="override one setting (repeatable), e.g. --set contact_spacing_mm=1.8")
-    common.add_argument("--quiet", action="store_true", help="no progress bars or summaries")
-    common.add_argument("--debug", action="store_true", help="show tracebacks")
-
-    gen_opts = argparse.ArgumentParser(add_help=False)
-    from supportgen.strategies import STRATEGIES
-
-    from supportgen.pipeline import DEFAULT_STRATEGY
-
-    gen_opts.add_argument("--strategy", default=DEFAULT_STRATEGY, choices=sorted(STRATEGIES),
-                          help=f"support strategy (default: {DEFAULT_STRATEGY})")
-    gen_opts.add_argument("--lift", type=float, metavar="MM", help="height of the part's lowest point above the plate")
+    common, strategy = common_options(), strategy_option()
+    gen_opts = argparse.ArgumentParser(add_help=False, parents=[strategy])
+    gen_opts.add_argument("--lift", type=float, metavar="MM",
+                          help="height of the part's lowest point above the plate")
     gen_opts.add_argument("--centre", action="store_true", help="centre each part on the plate")
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
@@ -205,7 +169,7 @@ def build_parser() -> argparse.ArgumentParser:
     from . import batch as batch_cmd
     from . import bench as bench_cmd
 
-    batch_cmd.add_parser(sub, [common])
+    batch_cmd.add_parser(sub, [common, strategy])
     bench_cmd.add_parser(sub, [common])
     return parser
 
@@ -223,7 +187,7 @@ def main(argv=None) -> int:
         sys.stderr.close()
         return EXIT_OK
     except KeyboardInterrupt:
-        _err("interrupted; finished files are complete, nothing half-written was left")
+        err("interrupted; finished files are complete, nothing half-written was left")
         return 130
     except Exception as exc:  # noqa: BLE001 - the one place that turns errors into a line
         import supportgen
@@ -231,12 +195,12 @@ def main(argv=None) -> int:
         if getattr(args, "debug", False):
             raise
         if isinstance(exc, supportgen.SettingsError):
-            _err(f"error: {exc}")
+            err(f"error: {exc}")
             return EXIT_USAGE
         if isinstance(exc, supportgen.SupportGenError):
-            _err(f"error: {exc}")
+            err(f"error: {exc}")
             return EXIT_FAILED
-        _err(f"internal error: {type(exc).__name__}: {exc} (run again with --debug and report it)")
+        err(f"internal error: {type(exc).__name__}: {exc} (run again with --debug and report it)")
         return EXIT_FAILED
 
 

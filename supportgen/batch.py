@@ -49,7 +49,7 @@ from typing import Callable
 import numpy as np
 
 from .errors import SupportGenError
-from .pipeline import OUTPUTS
+from .pipeline import DEFAULT_STRATEGY, OUTPUTS
 from .settings import Settings
 from .workers import dask_client, run_dask, run_local
 
@@ -401,7 +401,7 @@ def write_summary(summary: BatchSummary, meta: dict) -> None:
 
 
 def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings | None = None, *,
-              strategy: str = "straight", workers: int | None = None, cluster=None, resume: bool = False,
+              strategy: str = DEFAULT_STRATEGY, workers: int | None = None, cluster=None, resume: bool = False,
               pattern: str | None = None, timeout_s: float | None = None, memory_limit_mb: float | None = None,
               progress: bool = True, on_result: Callable[[FileResult], None] | None = None) -> BatchSummary:
     """Support every mesh under ``input_dir`` into a mirrored tree under ``output_dir``.
