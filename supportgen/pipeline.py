@@ -89,7 +89,7 @@ class Result:
                 report["settings"]["printer"]["rated_force_n"]))
             written.append(paths["layers_plot"])
             atomic_write(paths["tips_plot"], rpt.plot_tips(
-                np.asarray(report["supports"]["tip_safety_factors"], float), report["forces"]["target_safety_factor"],
+                np.asarray(report["supports"]["tips"]["safety_factor"], float), report["forces"]["target_safety_factor"],
                 f"{n}: tip safety factors"))
             written.append(paths["tips_plot"])
             atomic_write(paths["preview"], rpt.plot_preview(self.part, self.supports, f"{n}: part on its supports"))
@@ -153,6 +153,12 @@ def _forces(part, grid: Grid, contacts: Contacts, settings: Settings, progress: 
     analyse_layers(part, pr.pixel_mm, pr.layer_mm, settings.supports.max_reach_mm, grid=grid,
                    observers=(tracker,), progress=progress and "forces")
     return tracker.result()
+
+
+def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Settings) -> Contacts:
+    """Contacts with their peak loads and the tip diameters those loads need."""
+    return contacts.replace(diameters=tip_diameter(profile.contact_loads, settings),
+                            loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
 
 
 def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
@@ -224,8 +230,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
             break
         densified += len(more) - len(contacts)
         contacts = more
-    contacts = contacts.replace(diameters=tip_diameter(profile.contact_loads, settings),
-                                loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
+    contacts = _sized_contacts(contacts, profile, settings)
     for attempt in range(MAX_REPAIR_ROUNDS + 1):
         with timer("routing"):
             plan = plan_fn(part, contacts, settings)
@@ -240,16 +245,13 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
             break
         # Hold what the plan missed (islands left, layers reaching too far), then plan again.
         with timer("contacts"):
-            extra = _layer_contacts(part, ver.layers, settings)
-            extra = extra.replace(diameters=np.full(len(extra), sp.tip_diameter_mm))
-            more = merge_contacts(contacts, extra, sp.tip_diameter_mm)
+            more = merge_contacts(contacts, _layer_contacts(part, ver.layers, settings), sp.tip_diameter_mm)
         if len(more) == len(contacts):
             break
         repaired += len(more) - len(contacts)
         with timer("forces"):
             profile = _forces(part, stack.grid, more, settings, progress)
-        contacts = more.replace(diameters=tip_diameter(profile.contact_loads, settings),
-                                loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
+        contacts = _sized_contacts(more, profile, settings)
     warnings += [{"code": c, "message": m} for c, m in profile.warnings]
     warnings += [{"code": "repair", "message": f"{name}: {r}"} for r in loaded.repairs]
     if sized.tips_over_capacity:
@@ -283,7 +285,6 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
                      "contacts_added_by_densifying": densified,
                      "contacts_added_after_check": repaired,
                      "tip_diameter_mm": sized_dict["tip_diameter_mm"],
-                     "tip_safety_factors": sized_dict["tips"]["safety_factor"],
                      "tips": sized_dict["tips"],
                      "post_diameter_mm": sized_dict["post_diameter_mm"],
                      "volume_mm3": solids.supports_volume_mm3, "base_volume_mm3": solids.base_volume_mm3,

@@ -74,9 +74,14 @@ def _figure():
 
 
 def _png(fig) -> bytes:
+    """The figure laid out, as PNG bytes; the figure is closed."""
+    import matplotlib.pyplot as plt
+
+    fig.tight_layout()
     buf = io.BytesIO()
     # Fixed metadata so the same figures give the same bytes.
     fig.savefig(buf, format="png", dpi=110, metadata={"Software": None})
+    plt.close(fig)
     return buf.getvalue()
 
 
@@ -101,10 +106,7 @@ def plot_layers(z_mm: np.ndarray, area_mm2: np.ndarray, force_n: np.ndarray | No
                       f"separation force per layer (N; printer rated {rated_force_n:g} N)")
         ax.grid(alpha=0.3)
     fig.suptitle(title, fontsize=10)
-    fig.tight_layout()
-    data = _png(fig)
-    plt.close(fig)
-    return data
+    return _png(fig)
 
 
 def plot_tips(safety: np.ndarray, target: float, title: str) -> bytes:
@@ -120,10 +122,7 @@ def plot_tips(safety: np.ndarray, target: float, title: str) -> bytes:
     ax.set_ylabel("tips")
     ax.legend(fontsize=8)
     ax.set_title(title, fontsize=10)
-    fig.tight_layout()
-    data = _png(fig)
-    plt.close(fig)
-    return data
+    return _png(fig)
 
 
 def _fmt(v, digits=2):
@@ -219,7 +218,4 @@ def plot_preview(part, supports, title: str) -> bytes:
         ax.set_box_aspect((1, 1, 1), zoom=1.35)
         ax.set_axis_off()
     fig.suptitle(title, fontsize=10)
-    fig.tight_layout()
-    data = _png(fig)
-    plt.close(fig)
-    return data
+    return _png(fig)
