@@ -226,6 +226,8 @@ def _cones_plate():
 
 
 def test_plate_on_downward_cones_has_an_island_at_each_tip():
+    # Constructed geometry (manifold3d): each cone's apex is the lowest point of its own
+    # region, so each starts one island in the layer holding the apex.
     mesh, tips = _cones_plate()
     h, p = 0.25, 0.1
     stack = analyse_layers(mesh, p, h, 1.0)

@@ -124,6 +124,7 @@ def test_tip_diameter_clamps_and_flags():
 @FAST
 @given(st.lists(st.floats(0.0, 50.0), min_size=1, max_size=20), st.floats(1.0, 5.0))
 def test_more_load_never_thinner_tip(loads, scale):
+    # Monotone by the tension law d = sqrt(4 F SF / (pi sigma)) (REFERENCE.md section 3).
     loads = np.array(loads)
     assert np.all(tip_diameter(loads * scale, S) >= tip_diameter(loads, S))
 
@@ -131,6 +132,7 @@ def test_more_load_never_thinner_tip(loads, scale):
 @FAST
 @given(st.lists(st.floats(0.0, 50.0), min_size=1, max_size=20), st.floats(0.5, 100.0), st.floats(0.5, 100.0))
 def test_stronger_resin_never_thicker_tip(loads, a, b):
+    # Monotone by the same law: d falls as the green strength sigma rises (REFERENCE.md section 3).
     weak, strong = sorted((a, b))
     d_weak = tip_diameter(loads, S.override(green_tensile_mpa=weak))
     d_strong = tip_diameter(loads, S.override(green_tensile_mpa=strong))
