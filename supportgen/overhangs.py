@@ -124,14 +124,12 @@ def local_minima(mesh: trimesh.Trimesh, floor_z: float | None = None, tol: float
     if floor_z is not None:
         cand = cand[centroid[cand, 2] > floor_z + 1e-3]
     # Snap each plateau to its vertex nearest the centroid, so the point lies on the surface.
-    pts = []
-    for p in cand:
-        members = np.flatnonzero(plateau == p) if counts[p] > 1 else None
-        if members is None:
-            pts.append(v[np.flatnonzero(plateau == p)[0]])
-        else:
-            pts.append(v[members[np.argmin(np.linalg.norm(v[members] - centroid[p], axis=1))]])
-    return np.array(pts, float).reshape(-1, 3)
+    d = np.linalg.norm(v - centroid[plateau], axis=1)
+    order = np.lexsort((d, plateau))
+    first = order[np.r_[True, plateau[order][1:] != plateau[order][:-1]]]   # nearest vertex per plateau
+    nearest = np.full(len(lower), -1)
+    nearest[plateau[first]] = first
+    return v[nearest[cand]].reshape(-1, 3)
 
 
 def find_overhangs(mesh: trimesh.Trimesh, angle_deg: float, floor_z: float | None = None) -> Overhangs:
