@@ -183,8 +183,11 @@ def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
     for a, b in plan.braces:
         r = 0.5 * min(node_r[a], node_r[b])
         parts.append(frustum(plan.nodes[a], plan.nodes[b], r, r, phase=phase))
+    # A joint sphere, once, at every node where segments meet or a tip starts.
     degree = np.bincount(plan.edges.ravel(), minlength=len(plan.nodes)) if len(plan.edges) else np.zeros(len(plan.nodes), int)
-    for i in np.flatnonzero(degree >= 2):
+    joint = degree >= 2
+    joint[plan.tip_nodes] = True
+    for i in np.flatnonzero(joint):
         parts.append(_sphere(plan.nodes[i], node_r[i], phase))
     for p, node, d in zip(plan.tip_points, plan.tip_nodes, plan.tip_diameters):
         q = plan.nodes[node]
@@ -194,7 +197,6 @@ def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
             continue
         p_in = p + axis / length * sp.tip_depth_mm
         parts.append(frustum(q, p_in, node_r[node], d / 2, phase=phase))
-        parts.append(_sphere(q, node_r[node], phase))
     # Feet: posts sink half the base thickness into the base so the union is sound.
     base = _base(plan, settings, phase)
     for f in plan.feet:
