@@ -1,7 +1,7 @@
 """Benchmark: batch throughput with 1 and 2 workers, and the memory model's constants.
 
-Throughput (the default): the three demo parts (``supportgen.demo.write_demo_inputs``)
-at default settings through :func:`supportgen.batch.run_batch` with each worker
+Throughput (the default): the three demo parts (``supportgen.runs.demo.write_demo_inputs``)
+at default settings through :func:`supportgen.runs.batch.run_batch` with each worker
 count, wall time from the call to its return (worker start-up included), in
 parts per minute; peak resident memory of the largest worker (its own ``ru_maxrss``),
 and the load average, since other processes on the machine slow both runs.
@@ -34,8 +34,8 @@ import numpy as np
 import trimesh
 
 from supportgen import Settings
-from supportgen.batch import estimate_peak_mb, mesh_footprint, run_batch
-from supportgen.demo import write_demo_inputs
+from supportgen.runs.batch import estimate_peak_mb, mesh_footprint, run_batch
+from supportgen.runs.demo import write_demo_inputs
 
 
 def throughput(workers: list[int], repeat: int) -> None:

@@ -4,14 +4,14 @@ Model: a 50 mm hollow sphere (outer icosphere 82k faces, inner cavity 20k faces,
 a 6 mm bore through the top; the cavity is closed toward the plate, so from its
 floor up it counts as suction area), lifted 5 mm, about 100k faces; default
 settings (0.05 mm pixel and layer, a 1005 x 1005 grid), 40 seeded contacts on the
-lower half.  Layers come from ``supportgen.layers.iter_layers``; the time of
+lower half.  Layers come from ``supportgen.analysis.layers.iter_layers``; the time of
 rasterising and labelling is shown apart from the time spent in
-:class:`~supportgen.loadpath.ForceTracker` (the figure the 10 s target is about),
+:class:`~supportgen.physics.loadpath.ForceTracker` (the figure the 10 s target is about),
 as wall and as CPU time, with the load average (other work on the machine
 stretches the wall time).  Peak memory is the process's peak RSS.
 
 ``--profile`` adds a cProfile breakdown of the tracker (slower);
-``--convergence`` prints the coarse-grid error table quoted in supportgen.forces.
+``--convergence`` prints the coarse-grid error table quoted in supportgen.physics.forces.
 
 Run: ``python benchmarks/bench_forces.py [--profile | --convergence]``
 """
@@ -30,9 +30,9 @@ import numpy as np
 import trimesh
 from scipy import ndimage
 
-from supportgen import forces as fz
-from supportgen.layers import Grid, iter_layers
-from supportgen.loadpath import ForceTracker
+from supportgen.physics import forces as fz
+from supportgen.analysis.layers import Grid, iter_layers
+from supportgen.physics.loadpath import ForceTracker
 from supportgen.settings import Settings
 
 

@@ -33,7 +33,7 @@ from pathlib import Path
 import numpy as np
 import trimesh
 
-from supportgen.layers import analyse_layers
+from supportgen.analysis.layers import analyse_layers
 
 CORPUS = Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus"
 HEIGHT_MM = 50.0

@@ -1,16 +1,16 @@
 """Benchmark: compare support strategies on the shared corpus and on the demo parts.
 
-Two runs of :func:`supportgen.bench.run_bench`, one table each:
+Two runs of :func:`supportgen.runs.bench.run_bench`, one table each:
 
 * the shared corpus (``../shared/corpus`` beside the checkout: fandisk, spot and
   the Stanford bunny), each mesh scaled so its longest side is ``--size`` mm
   (default 50) and centred on the plate; the bunny is an open scan, so the
   mesh loader may refuse it: that is recorded as an ``error`` row, not hidden;
-* the demo parts (:func:`supportgen.demo.write_demo_inputs`), at their own size in mm.
+* the demo parts (:func:`supportgen.runs.demo.write_demo_inputs`), at their own size in mm.
 
 Every run is seeded (the settings' ``seed``); the machine's core count and load
 average are printed with the table, because the times depend on them. Peak
-memory is the growth of the resident set during each run (see supportgen.bench).
+memory is the growth of the resident set during each run (see supportgen.runs.bench).
 
 Usage::
 
@@ -26,8 +26,8 @@ import tempfile
 import time
 from pathlib import Path
 
-from supportgen.bench import grid_settings, machine_line, run_bench
-from supportgen.demo import write_demo_inputs
+from supportgen.runs.bench import grid_settings, machine_line, run_bench
+from supportgen.runs.demo import write_demo_inputs
 
 CORPUS = (Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus").resolve()
 SHOWN = (("model", "{}"), ("strategy", "{}"), ("contacts", "{}"), ("contact_area_mm2", "{:.2f}"),

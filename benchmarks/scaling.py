@@ -14,7 +14,7 @@ default ``straight``), timed side by side in the same process with the reference
   longest side, stretched along z only to ``--heights`` (default 12.5, 25, 50, 100
   mm), so the footprint and face count stay and the layer count grows with height.
 
-Peak memory: the growth of the resident set during the call (supportgen.bench.
+Peak memory: the growth of the resident set during the call (supportgen.runs.bench.
 measure_peak, method ``rss``: high-water mark reset through /proc/self/clear_refs).
 Times are the best of ``--repeat`` runs (default 3), the least disturbed by other
 processes; stage times in the table are those of the last run.
@@ -41,8 +41,8 @@ import numpy as np
 import trimesh
 
 import supportgen
-from supportgen.bench import grid_settings, machine_line, measure_peak
-from supportgen.placement import place
+from supportgen.runs.bench import grid_settings, machine_line, measure_peak
+from supportgen.analysis.placement import place
 
 CORPUS = (Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus").resolve()
 

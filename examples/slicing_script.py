@@ -13,7 +13,7 @@ import tempfile
 from pathlib import Path
 
 import supportgen
-from supportgen.demo import write_demo_inputs
+from supportgen.runs.demo import write_demo_inputs
 
 
 def support_folder(folder: Path, outdir: Path, **overrides) -> list[dict]:

@@ -14,9 +14,9 @@ The Python API::
 """
 
 from .errors import GeometryError, MeshError, PlacementError, SettingsError, SupportGenError
-from .plan import Contacts, SupportPlan
+from .supports.plan import Contacts, SupportPlan
 from .settings import PROFILES, Settings, load_settings
-from .strategies import STRATEGIES
+from .supports.strategies import STRATEGIES
 
 __version__ = "0.1.0"
 

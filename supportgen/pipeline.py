@@ -19,19 +19,19 @@ from pathlib import Path
 import numpy as np
 import trimesh
 
-from . import report as rpt
-from .contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
-from .forces import ForceProfile, ForceTracker
-from .geometry import Solids, combine
-from .layers import Grid, LayerStack, analyse_layers
-from .meshio import LoadedMesh, atomic_write, atomic_write_text, load_mesh, prepare_mesh, write_mesh
-from .overhangs import find_overhangs
-from .placement import place
-from .plan import Contacts, SupportPlan
+from .report import render as rpt
+from .supports.contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
+from .physics.forces import ForceProfile, ForceTracker
+from .supports.geometry import Solids, combine
+from .analysis.layers import Grid, LayerStack, analyse_layers
+from .io.meshio import LoadedMesh, atomic_write, atomic_write_text, load_mesh, prepare_mesh, write_mesh
+from .analysis.overhangs import find_overhangs
+from .analysis.placement import place
+from .supports.plan import Contacts, SupportPlan
 from .settings import Settings, load_settings
-from .sizing import SizedPlan, over_capacity, size_plan, tip_diameter
-from .strategies import get_strategy
-from .verify import Verification, speck_area_mm2, verify
+from .supports.sizing import SizedPlan, over_capacity, size_plan, tip_diameter
+from .supports.strategies import get_strategy
+from .analysis.verify import Verification, speck_area_mm2, verify
 
 __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
 
@@ -172,7 +172,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     settings : Settings, str or Path, optional
         Settings, a built-in profile name or a TOML profile path; defaults if None.
     strategy : str
-        A name from :data:`supportgen.strategies.STRATEGIES`.
+        A name from :data:`supportgen.supports.strategies.STRATEGIES`.
     name : str, optional
         Name used for output files (default: the file's stem, or "part").
     centre : bool

@@ -1,4 +1,4 @@
-"""Tests of supportgen.batch and ``supportgen batch``: folders in parallel, faults, resume, Dask.
+"""Tests of supportgen.runs.batch and ``supportgen batch``: folders in parallel, faults, resume, Dask.
 
 References used beside the checks:
 - the filesystem itself (which files exist, their bytes, their modification times);
@@ -26,7 +26,7 @@ import pytest
 import trimesh
 
 from supportgen import Settings
-from supportgen.batch import (
+from supportgen.runs.batch import (
     OUTPUT_SUFFIXES,
     discover,
     estimate_peak_mb,
@@ -179,7 +179,7 @@ import sys
 # user's batch has Python's Ctrl-C handler, so put it back.
 signal.signal(signal.SIGINT, signal.default_int_handler)
 from supportgen import Settings
-from supportgen.batch import run_batch
+from supportgen.runs.batch import run_batch
 if __name__ == "__main__":
     settings = Settings().override(pixel_mm=0.2, layer_mm=0.2, tip_min_mm=0.4, tip_max_mm=1.0)
     sys.exit(run_batch(sys.argv[1], sys.argv[2], settings, workers=1, progress=False).exit_code)
@@ -273,7 +273,7 @@ def test_timeout_and_memory_refusal(tmp_path):
 
 
 def test_command_line(folder, runs, tmp_path, capsys):
-    from supportgen_cli.main import build_parser
+    from supportgen.cli.main import build_parser
 
     parser = build_parser()                                # the installed command's own parser
     out = tmp_path / "out"

@@ -1,4 +1,4 @@
-"""Tests of ``supportgen bench`` (supportgen.bench and cli/bench.py).
+"""Tests of ``supportgen bench`` (supportgen.runs.bench and cli/bench.py).
 
 The table must equal the per-model reports: each figure is read back from
 ``OUT/<strategy>/<model>.report.json`` with the standard ``json`` and ``csv``
@@ -20,9 +20,9 @@ import pytest
 import trimesh
 
 import supportgen
-from supportgen.bench import measure_peak, run_bench
+from supportgen.runs.bench import measure_peak, run_bench
 from supportgen.errors import SettingsError
-from supportgen.meshio import write_mesh
+from supportgen.io.meshio import write_mesh
 
 # Coarse grid so that four end-to-end runs stay within a few seconds each.
 COARSE = dict(pixel_mm=0.2, layer_mm=0.2, tip_min_mm=0.4, tip_max_mm=1.0)
@@ -165,7 +165,7 @@ def test_unknown_strategy_and_baseline_are_refused(tmp_path):
 
 def _cli(argv):
     """The bench sub-command through the installed command's own parser."""
-    from supportgen_cli.main import build_parser
+    from supportgen.cli.main import build_parser
 
     args = build_parser().parse_args(argv)
     return args.func(args)

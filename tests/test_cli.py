@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 import trimesh
 
-from supportgen.forces import torsion_constant
-from supportgen_cli.main import main
+from supportgen.physics.forces import torsion_constant
+from supportgen.cli.main import main
 
 COARSE = ["--set", "pixel_mm=0.2", "--set", "layer_mm=0.2", "--set", "tip_min_mm=0.4", "--set", "tip_max_mm=1.0",
           "--quiet"]
@@ -112,7 +112,7 @@ def test_torsion_constant_used_by_calibration_is_the_disc_value():
 
 def test_installed_command_and_demo(tmp_path):
     exe = shutil.which("supportgen")
-    cmd = [exe] if exe else [sys.executable, "-m", "supportgen_cli"]
+    cmd = [exe] if exe else [sys.executable, "-m", "supportgen"]
     help_text = subprocess.run([*cmd, "--help"], capture_output=True, text=True, check=True).stdout
     assert "generate" in help_text and "demo" in help_text
     run = subprocess.run([*cmd, "demo", "-o", str(tmp_path / "demo"), *COARSE], capture_output=True, text=True)

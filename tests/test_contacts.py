@@ -5,9 +5,9 @@ import pytest
 import trimesh
 from scipy.spatial import cKDTree
 
-from supportgen.contacts import RSA_DENSITY, contacts_at, expected_count, merge_contacts, sample_overhangs
-from supportgen.overhangs import find_overhangs
-from supportgen.placement import place
+from supportgen.supports.contacts import RSA_DENSITY, contacts_at, expected_count, merge_contacts, sample_overhangs
+from supportgen.analysis.overhangs import find_overhangs
+from supportgen.analysis.placement import place
 from supportgen.settings import Settings
 
 

@@ -10,7 +10,7 @@ EXAMPLES = Path(__file__).resolve().parents[1] / "examples"
 
 def test_slicing_script_supports_a_folder(tmp_path):
     script = runpy.run_path(str(EXAMPLES / "slicing_script.py"))
-    from supportgen.demo import write_demo_inputs
+    from supportgen.runs.demo import write_demo_inputs
 
     write_demo_inputs(tmp_path / "in")
     rows = script["support_folder"](tmp_path / "in", tmp_path / "out", pixel_mm=0.2, layer_mm=0.2,

@@ -12,11 +12,11 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from supportgen import forces as fz
-from supportgen.calibration import calibrated_settings, fit_calibration, read_measurements
+from supportgen.physics import forces as fz
+from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
 from supportgen.errors import SettingsError
-from supportgen.layers import Grid, Layer
-from supportgen.loadpath import ForceTracker
+from supportgen.analysis.layers import Grid, Layer
+from supportgen.physics.loadpath import ForceTracker
 from supportgen.settings import Settings
 
 PX = 0.05

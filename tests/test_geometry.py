@@ -5,12 +5,12 @@ import numpy as np
 import pytest
 import trimesh
 
-from supportgen.contacts import sample_overhangs
-from supportgen.geometry import combine, frustum, to_manifold
-from supportgen.overhangs import find_overhangs
-from supportgen.placement import place
+from supportgen.supports.contacts import sample_overhangs
+from supportgen.supports.geometry import combine, frustum, to_manifold
+from supportgen.analysis.overhangs import find_overhangs
+from supportgen.analysis.placement import place
 from supportgen.settings import Settings
-from supportgen.strategies import plan_straight
+from supportgen.supports.strategies import plan_straight
 
 
 def _supported(part, s):
@@ -52,7 +52,7 @@ def test_landing_post_stands_on_the_part_below():
     # must land on it (model-to-model), the others reach the base.
     import manifold3d as m
 
-    from supportgen.geometry import to_trimesh
+    from supportgen.supports.geometry import to_trimesh
 
     shelf = m.Manifold.cube((20, 10, 2)).translate((-10, -5, 12))
     wall = m.Manifold.cube((2, 10, 14)).translate((-10, -5, 0))
@@ -72,9 +72,9 @@ def test_tree_gives_every_contact_a_way_down():
     # (followed through the plan graph with networkx, a reference library).
     import networkx as nx
 
-    from supportgen.contacts import sample_overhangs as sample
-    from supportgen.demo import demo_part
-    from supportgen.strategies import get_strategy
+    from supportgen.supports.contacts import sample_overhangs as sample
+    from supportgen.runs.demo import demo_part
+    from supportgen.supports.strategies import get_strategy
 
     s = Settings()
     part = place(demo_part("jar_lid"), s).mesh

@@ -1,4 +1,4 @@
-"""Tests of supportgen.layers against exact geometry, trimesh/shapely sections and scipy.
+"""Tests of supportgen.analysis.layers against exact geometry, trimesh/shapely sections and scipy.
 
 Pixel error bound used throughout (derived here): a pixel is cured when its centre
 is inside the section S, so the cured area differs from area(S) only on points x
@@ -24,7 +24,7 @@ from shapely.geometry import LineString, Polygon, box as sbox
 from shapely.ops import unary_union
 
 from supportgen.errors import MeshError, SettingsError
-from supportgen.layers import Grid, analyse_layers, component_stats, iter_layers
+from supportgen.analysis.layers import Grid, analyse_layers, component_stats, iter_layers
 
 m3 = pytest.importorskip("manifold3d")
 CORPUS = Path(__file__).parents[1] / ".." / "shared" / "corpus"
@@ -174,7 +174,7 @@ def _corpus(name):
         pytest.skip(f"shared corpus mesh {path} not found")
     # supportgen's own loader merges split vertices (spot's texture seams) and closes the
     # bunny's small scan holes; the check below is against trimesh sections of that mesh.
-    from supportgen.meshio import load_mesh
+    from supportgen.io.meshio import load_mesh
 
     mesh = load_mesh(path).mesh
     assert mesh.is_watertight

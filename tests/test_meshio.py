@@ -1,4 +1,4 @@
-"""Tests of supportgen.meshio: reading, validation, repair and atomic writing.
+"""Tests of supportgen.io.meshio: reading, validation, repair and atomic writing.
 
 References used beside the checks:
 - trimesh (general-purpose mesh library) as the second reader and for reference solids;
@@ -22,7 +22,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from supportgen.errors import MeshError
-from supportgen.meshio import (
+from supportgen.io.meshio import (
     LoadedMesh,
     atomic_write,
     atomic_write_text,

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 import trimesh
 
-from supportgen.overhangs import find_overhangs, local_minima
+from supportgen.analysis.overhangs import find_overhangs, local_minima
 
 
 @pytest.mark.parametrize("angle", [30.0, 45.0, 60.0])
@@ -45,7 +45,7 @@ def test_dimple_in_an_upper_face_is_not_a_minimum():
     # neighbours but faces up: material lies under it.  Only the block's underside
     # (one level plateau) is a minimum.  Built with manifold3d (reference library).
     import manifold3d as m3d
-    from supportgen.geometry import to_trimesh
+    from supportgen.supports.geometry import to_trimesh
 
     block = m3d.Manifold.cube((20, 20, 6)).translate((-10, -10, 10))
     dimple = m3d.Manifold.cylinder(3, 0.0, 4.0, 32).translate((0, 0, 13.5))

@@ -8,8 +8,8 @@ import shapely
 import trimesh
 
 import supportgen
-from supportgen.demo import DEMO_PARTS, demo_part
-from supportgen.report import REPORT_KEYS
+from supportgen.runs.demo import DEMO_PARTS, demo_part
+from supportgen.report.render import REPORT_KEYS
 
 
 def _islands_by_sections(mesh: trimesh.Trimesh, layer_mm: float) -> list[float]:
@@ -141,7 +141,7 @@ def test_a_solid_brick_gets_more_tip_area_than_an_open_lattice():
     # the brick's tips must carry more: thicker tips or more contacts per area.
     import manifold3d as m3d
 
-    from supportgen.geometry import to_trimesh
+    from supportgen.supports.geometry import to_trimesh
 
     s = supportgen.Settings().override(pixel_mm=0.1, layer_mm=0.1, tip_min_mm=0.2, force_calibration=0.2)
     brick = to_trimesh(m3d.Manifold.cube((24, 24, 4), center=True))

@@ -6,7 +6,7 @@ import trimesh
 from hypothesis import given, settings as hsettings, strategies as st
 
 from supportgen.errors import PlacementError
-from supportgen.placement import place
+from supportgen.analysis.placement import place
 from supportgen.settings import Settings
 
 

@@ -1,4 +1,4 @@
-"""Tests of the ``tree`` strategy (supportgen.routing.plan_tree).
+"""Tests of the ``tree`` strategy (supportgen.supports.routing.plan_tree).
 
 References outside the project: trimesh.proximity.closest_point for distances to the
 part, exact geometry of boxes, networkx for reachability and for the Steiner-tree
@@ -17,8 +17,8 @@ import trimesh
 from networkx.algorithms.approximation import steiner_tree
 
 from supportgen.errors import SettingsError
-from supportgen.plan import Contacts
-from supportgen.routing import clearance_field, free_space_graph, plan_tree
+from supportgen.supports.plan import Contacts
+from supportgen.supports.routing import clearance_field, free_space_graph, plan_tree
 from supportgen.settings import Settings
 
 CORPUS = Path(__file__).parents[1] / ".." / "shared" / "corpus"

@@ -1,4 +1,4 @@
-"""Tests of supportgen.sizing against published laws, exact geometry and invariants.
+"""Tests of supportgen.supports.sizing against published laws, exact geometry and invariants.
 
 Sources named beside each check:
 - Euler load and its worked values: Timoshenko & Gere, Theory of Elastic Stability (1961),
@@ -16,9 +16,9 @@ import pytest
 import trimesh
 from hypothesis import given, settings as hsettings, strategies as st
 
-from supportgen.plan import Contacts, SupportPlan
+from supportgen.supports.plan import Contacts, SupportPlan
 from supportgen.settings import Settings
-from supportgen.sizing import (
+from supportgen.supports.sizing import (
     EFFECTIVE_LENGTH, MAX_SLENDERNESS, SizingError, column_critical_load, densify_points, euler_critical_load,
     flow_loads, johnson_critical_load, over_capacity, required_post_diameter, required_tip_diameter, size_plan,
     tip_capacity, tip_diameter,

@@ -1,1 +1,0 @@
-"""Command-line layer of supportgen (installed as the ``supportgen`` command)."""

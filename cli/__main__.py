@@ -1,5 +1,0 @@
-import sys
-
-from .main import main
-
-sys.exit(main())

@@ -1,0 +1,533 @@
+"""Layers: the part as the printer sees it (pixel masks, islands, reach).
+
+:func:`iter_layers` streams the cured mask of every layer, rasterised by
+:mod:`supportgen.analysis.raster` (a pixel is cured where the winding number of the
+vertical ray through its centre, below the layer's sample height, is positive).
+
+:func:`analyse_layers` walks the stack once: area, perimeter and 8-connected
+components of every layer, islands (components with nothing cured beneath
+them) and the unsupported reach of newly cured pixels.
+
+Examples
+--------
+>>> import trimesh
+>>> box = trimesh.creation.box(extents=(2.0, 2.0, 1.0))
+>>> _ = box.apply_translation((0.0, 0.0, 0.5))
+>>> stack = analyse_layers(box, 0.125, 0.25, 1.5)
+>>> stack.area_mm2.tolist(), len(stack.islands), stack.max_reach_mm
+([4.0, 4.0, 4.0, 4.0], 0, 0.0)
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable, Iterable, Iterator
+
+import numpy as np
+import trimesh
+from scipy import ndimage
+
+from ..errors import MeshError, SettingsError
+from .raster import winding_masks
+
+__all__ = ["Grid", "Layer", "Island", "Overreach", "LayerStack", "iter_layers", "analyse_layers",
+           "component_stats"]
+
+_MARGIN = 5                          # empty border of a layer window; near reach searched within 4 pixels
+
+
+@dataclass(frozen=True)
+class Grid:
+    """The printer's pixel grid over a region of the plate.
+
+    Pixel ``(row, col)`` has its centre at
+    ``(x0 + col * pixel_mm, y0 + row * pixel_mm)``; masks are indexed ``[row, col]``
+    i.e. ``[y, x]`` with shape ``(ny, nx)``.
+    """
+
+    x0: float
+    y0: float
+    pixel_mm: float
+    ny: int
+    nx: int
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.ny, self.nx)
+
+    @classmethod
+    def covering(cls, bounds, pixel_mm: float, pad: int = 2) -> "Grid":
+        """A grid over the x/y extent of ``bounds`` ((2, 3) array), ``pad`` pixels wider each side."""
+        lo = np.floor(np.asarray(bounds)[0, :2] / pixel_mm) - pad
+        hi = np.ceil(np.asarray(bounds)[1, :2] / pixel_mm) + pad
+        n = (hi - lo + 1).astype(int)
+        return cls(float(lo[0] * pixel_mm), float(lo[1] * pixel_mm), float(pixel_mm), int(n[1]), int(n[0]))
+
+    def xy(self, rows, cols) -> np.ndarray:
+        """Pixel centres (k, 2) of the given row and column indices."""
+        return np.column_stack([self.x0 + np.asarray(cols) * self.pixel_mm,
+                                self.y0 + np.asarray(rows) * self.pixel_mm])
+
+    def index(self, xy) -> tuple[np.ndarray, np.ndarray]:
+        """Nearest (rows, cols) of points (k, 2); may fall outside the grid."""
+        xy = np.atleast_2d(np.asarray(xy, float))
+        cols = np.rint((xy[:, 0] - self.x0) / self.pixel_mm).astype(int)
+        rows = np.rint((xy[:, 1] - self.y0) / self.pixel_mm).astype(int)
+        return rows, cols
+
+
+@dataclass(frozen=True)
+class Layer:
+    """One printed layer: index ``k`` cured between ``k*h`` and ``(k+1)*h``,
+    sampled at its mid-height ``z_mm``; ``mask[row, col]`` is True where cured.
+    ``inverted`` counts pixels whose winding number is negative (inside-out shells)."""
+
+    index: int
+    z_mm: float
+    mask: np.ndarray
+    inverted: int = 0
+
+
+@dataclass(frozen=True, eq=False)
+class Island:
+    """A component that first appears with nothing cured beneath it.
+
+    ``mask`` holds its pixels in its first layer, cropped; pixel ``(i, j)`` of the
+    mask is grid pixel ``(row0 + i, col0 + j)``.
+    """
+
+    layer: int
+    z_mm: float
+    area_mm2: float
+    centroid_xy: tuple[float, float]
+    mask: np.ndarray
+    row0: int
+    col0: int
+    grid: Grid
+
+    def points(self, spacing_mm: float, seed: int = 0) -> np.ndarray:
+        """Points (n, 2) covering the island at about ``spacing_mm``, n >= 1.
+
+        The first is the island pixel nearest its centroid; the rest are added by
+        farthest-point sampling over the island's pixel centres until every pixel
+        lies within ``spacing_mm / sqrt(2)`` of a point, so neighbours sit about
+        ``spacing_mm`` apart.  ``seed`` sets the phase of the candidate sub-grid.
+
+        Notes
+        -----
+        Candidates are the island's pixels thinned to a sub-grid of about a quarter
+        of the spacing: cost O(m k) for m candidates and k points.
+        """
+        if not spacing_mm > 0:
+            raise SettingsError(f"island spacing_mm={spacing_mm!r} must be positive; pass a contact spacing in mm")
+        r, c = np.nonzero(self.mask)
+        xy = self.grid.xy(r + self.row0, c + self.col0)
+        first = xy[np.argmin(np.sum((xy - np.asarray(self.centroid_xy)) ** 2, axis=1))]
+        stride = max(1, int(spacing_mm / 4 / self.grid.pixel_mm))
+        if stride > 1:
+            phase = np.random.default_rng(seed).integers(0, stride, size=2)
+            keep = ((r - phase[0]) % stride == 0) & ((c - phase[1]) % stride == 0)
+            xy = xy[keep] if keep.any() else xy
+        pts = [first]
+        d = np.hypot(*(xy - first).T)
+        while d.size and d.max() > spacing_mm / np.sqrt(2):
+            pts.append(xy[np.argmax(d)])
+            d = np.minimum(d, np.hypot(*(xy - pts[-1]).T))
+        return np.array(pts)
+
+
+@dataclass(frozen=True)
+class Overreach:
+    """A connected region of new pixels reaching past the limit, at its worst pixel."""
+
+    layer: int
+    z_mm: float
+    xy: tuple[float, float]
+    reach_mm: float
+
+
+@dataclass(frozen=True, eq=False)
+class LayerStack:
+    """Per-layer figures of one pass over the layers (arrays have length L)."""
+
+    grid: Grid
+    layer_mm: float
+    z_mm: np.ndarray
+    area_mm2: np.ndarray
+    perimeter_mm: np.ndarray
+    n_components: np.ndarray
+    islands: tuple[Island, ...]
+    reach_mm: np.ndarray
+    reach_xy: np.ndarray
+    overreach: tuple[Overreach, ...]
+    max_reach_mm: float
+    max_reach_layer: int
+    inverted_pixels: int
+
+    def to_dict(self) -> dict:
+        """Summary for the JSON report: counts, worst reach and the per-layer areas."""
+        k = self.max_reach_layer
+        return {
+            "layers": int(len(self.z_mm)), "layer_mm": self.layer_mm, "pixel_mm": self.grid.pixel_mm,
+            "islands": len(self.islands),
+            "island_list": [{"layer": i.layer, "z_mm": round(i.z_mm, 4), "area_mm2": round(i.area_mm2, 4),
+                             "xy_mm": [round(v, 4) for v in i.centroid_xy]} for i in self.islands],
+            "max_reach_mm": round(float(self.max_reach_mm), 4), "max_reach_layer": int(k),
+            "max_reach_xy": ([round(float(v), 4) for v in self.reach_xy[k]]
+                             if k >= 0 and np.isfinite(self.reach_xy[k]).all() else None),
+            "overreach_regions": len(self.overreach),
+            "inverted_pixels": int(self.inverted_pixels),
+            "max_area_mm2": round(float(self.area_mm2.max(initial=0.0)), 4),
+            "area_mm2": [round(float(a), 4) for a in self.area_mm2],
+        }
+
+
+def _check(mesh, layer_mm: float) -> None:
+    if not isinstance(mesh, trimesh.Trimesh) or len(mesh.faces) == 0:
+        raise MeshError("layers: the mesh has no faces; load a closed triangle mesh first")
+    if not (np.isfinite(layer_mm) and layer_mm > 0):
+        raise SettingsError(f"layers: layer_mm={layer_mm!r} must be a positive number of mm")
+
+
+def iter_layers(mesh: trimesh.Trimesh, grid: Grid, layer_mm: float, first: int = 0,
+                last: int | None = None) -> Iterator[Layer]:
+    """The layers of a mesh, streamed in print order.
+
+    Parameters
+    ----------
+    mesh : trimesh.Trimesh
+        The part in build coordinates (plate at z = 0); should be closed.
+    grid : Grid
+        Pixel grid; material outside it is not seen.
+    layer_mm : float
+        Layer height; layer ``k`` is sampled at ``z = (k + 0.5) * layer_mm``.
+    first, last : int
+        First and last (inclusive) layer produced; ``last=None`` stops at the
+        last layer sampled below the mesh's top.
+
+    Yields
+    ------
+    Layer
+        With a fresh ``(ny, nx)`` bool mask, cured where the winding number of the
+        vertical ray below the sample height is positive.
+
+    Raises
+    ------
+    supportgen.errors.MeshError
+        Mesh without faces.
+    supportgen.errors.SettingsError
+        Non-positive layer height.
+
+    Notes
+    -----
+    Cost O(F + C) for F faces and C pixel/triangle candidates, then O(P) a layer
+    for P pixels; memory one layer plus the crossing list.  The rasteriser and its
+    references are in :mod:`supportgen.analysis.raster` (:func:`~supportgen.analysis.raster.winding_masks`).
+    """
+    _check(mesh, layer_mm)
+    for index, mask, inverted in winding_masks(mesh, grid, layer_mm, first, last):
+        yield Layer(index, (index + 0.5) * layer_mm, mask, inverted)
+
+
+def component_stats(labels: np.ndarray, n_labels: int, grid: Grid) -> tuple[np.ndarray, np.ndarray]:
+    """Area (n,) in mm^2 and centroid (n, 2) in build x/y of labels ``1..n``.
+
+    Notes
+    -----
+    O(P) for P pixels in ``labels``.
+
+    Examples
+    --------
+    >>> g = Grid(0.0, 0.0, 0.5, 3, 4)
+    >>> lab = np.array([[1, 1, 0, 0], [1, 1, 0, 2], [0, 0, 0, 2]])
+    >>> a, c = component_stats(lab, 2, g)
+    >>> a.tolist(), c.tolist()
+    ([1.0, 0.5], [[0.25, 0.25], [1.5, 0.75]])
+    """
+    flat = labels.ravel()
+    i = np.flatnonzero(flat)
+    lab = flat[i] - 1
+    r, c = np.divmod(i, labels.shape[1])
+    cnt = np.bincount(lab, minlength=n_labels).astype(float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rc = np.column_stack([np.bincount(lab, r, n_labels), np.bincount(lab, c, n_labels)]) / cnt[:, None]
+    return cnt * grid.pixel_mm ** 2, grid.xy(rc[:, 0], rc[:, 1])
+
+
+def _window(a: np.ndarray, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+    """``a[r0:r1, c0:c1]``, padded with False where the window leaves the array."""
+    if r0 >= 0 and c0 >= 0 and r1 <= a.shape[0] and c1 <= a.shape[1]:
+        return a[r0:r1, c0:c1]
+    out = np.zeros((r1 - r0, c1 - c0), a.dtype)
+    rs, cs = slice(max(r0, 0), min(r1, a.shape[0])), slice(max(c0, 0), min(c1, a.shape[1]))
+    out[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0] = a[rs, cs]
+    return out
+
+
+def _near_rings(radius: int) -> tuple[tuple[float, tuple[tuple[int, int], ...]], ...]:
+    """Pixel offsets within ``radius``, grouped by distance, nearest first."""
+    dr, dc = np.mgrid[-radius:radius + 1, -radius:radius + 1].reshape(2, -1)
+    d = np.hypot(dr, dc)
+    keep = (d > 0) & (d <= radius)
+    return tuple((float(v), tuple(zip(dr[keep & (d == v)].tolist(), dc[keep & (d == v)].tolist())))
+                 for v in np.unique(d[keep]))
+
+
+_RINGS = _near_rings(_MARGIN - 1)
+
+
+def _runs(m: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Runs of True along the rows of a mask with a False border: row, start, end (exclusive)."""
+    t = np.flatnonzero(m[:, 1:] != m[:, :-1])
+    q, rem = np.divmod(t, m.shape[1] - 1)
+    return q[0::2], rem[0::2] + 1, rem[1::2] + 1
+
+
+def _run_components(r, s, e, width, pixel_mm):
+    """8-connected components of row runs, with area and Crofton perimeter.
+
+    Returns the component (0-based) of every run, their number, the area (pixels)
+    and the perimeter (mm): Cauchy-Crofton over 4 directions, with the transitions
+    counted from run lengths and the overlaps of runs in adjacent rows.
+    """
+    n = r.size
+    sk, ek, nxt = r * width + s, r * width + e, (r + 1) * width
+    lo = np.searchsorted(ek, nxt + s, side="left")       # next-row runs ending at or after s - 1 ...
+    hi = np.searchsorted(sk, nxt + e, side="right")      # ... and starting at or before e
+    cnt = np.maximum(hi - lo, 0)
+    a = np.repeat(np.arange(n), cnt)
+    b = lo[a] + np.arange(a.size) - (np.cumsum(cnt) - cnt)[a]
+    area = int((e - s).sum())
+    ov = [int(np.maximum(np.minimum(e[a] + t, e[b]) - np.maximum(s[a] + t, s[b]), 0).sum()) for t in (0, 1, -1)]
+    transitions = 2 * n + 2 * (area - ov[0]) + (4 * area - 2 * ov[1] - 2 * ov[2]) / np.sqrt(2)
+    root = np.arange(n)
+    while True:                       # hook roots to the smaller root across every edge, then compress
+        ra, rb = root[a], root[b]
+        diff = ra != rb
+        if not diff.any():
+            break
+        np.minimum.at(root, np.maximum(ra[diff], rb[diff]), np.minimum(ra[diff], rb[diff]))
+        while True:
+            nxt_root = root[root]
+            if np.array_equal(nxt_root, root):
+                break
+            root = nxt_root
+    roots, comp = np.unique(root, return_inverse=True)
+    n_comp = roots.size
+    return comp, n_comp, area, float(np.pi / 8 * pixel_mm * transitions)
+
+
+def _far_distance(prev: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+    """Exact distance (pixels) from grid pixels (rows, cols) to the nearest True of ``prev``.
+
+    The transform runs in a box around the pixels, grown until every distance found
+    is no more than the box margin (then nothing outside the box can be nearer).
+    """
+    margin = 8
+    while True:
+        r0, r1 = max(rows.min() - margin, 0), min(rows.max() + margin + 1, prev.shape[0])
+        c0, c1 = max(cols.min() - margin, 0), min(cols.max() + margin + 1, prev.shape[1])
+        whole = r0 == 0 and c0 == 0 and r1 == prev.shape[0] and c1 == prev.shape[1]
+        sub = prev[r0:r1, c0:c1]
+        if not sub.any():
+            if whole:
+                return np.full(rows.shape, np.inf)
+            margin *= 4
+            continue
+        d = ndimage.distance_transform_edt(~sub)[rows - r0, cols - c0]
+        if whole or d.max() <= margin:
+            return d
+        margin = int(np.ceil(d.max())) + 1
+
+
+def _new_pixels(m: np.ndarray, pw: np.ndarray, new: np.ndarray):
+    """Anchoring and near reach of new pixels (flat indices of a window with a wide False border).
+
+    Returns, per new pixel, whether an 8-neighbour is cured in both layers (so its
+    component is anchored) and its distance (pixels) to the nearest cured pixel of
+    the layer below when that is within the border's width, else nan.
+    """
+    w = m.shape[1]
+    mf, pf = m.ravel(), pw.ravel()
+    anchor = np.zeros(new.size, bool)
+    for o in (1, -1, w, -w, w + 1, w - 1, -w + 1, -w - 1):
+        anchor |= mf[new + o] & pf[new + o]
+    d = np.full(new.size, np.nan)
+    todo = np.arange(new.size)
+    for dist, offsets in _RINGS:
+        hit = np.zeros(todo.size, bool)
+        for dr, dc in offsets:
+            hit |= pf[new[todo] + dr * w + dc]
+        d[todo[hit]] = dist
+        todo = todo[~hit]
+        if todo.size == 0:
+            break
+    return anchor, d
+
+
+def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reach_limit_mm: float, *,
+                   grid: Grid | None = None, observers: Iterable[Callable] = (),
+                   progress: bool | str = False) -> LayerStack:
+    """Area, perimeter, components, islands and unsupported reach of every layer, in one pass.
+
+    Parameters
+    ----------
+    mesh : trimesh.Trimesh
+        The part in build coordinates (plate at z = 0); should be closed.
+    pixel_mm, layer_mm : float
+        Pixel pitch and layer height (mm).
+    reach_limit_mm : float
+        Reach past which a region of new pixels is reported in ``overreach``.
+    grid : Grid, optional
+        Pixel grid (default: covering the mesh with a 2-pixel margin); its pitch must
+        equal ``pixel_mm``.
+    observers : iterable of callables
+        Each called as ``observer(layer, labels, n_labels)`` for every layer, with the
+        (ny, nx) int32 8-connected component labels (0 = empty).
+    progress : bool or str
+        Show a progress bar (a string labels it); it is cleared when done.
+
+    Returns
+    -------
+    LayerStack
+
+    Raises
+    ------
+    supportgen.errors.MeshError
+        Mesh without faces.
+    supportgen.errors.SettingsError
+        Non-positive pixel, layer or limit, or a grid of another pitch.
+
+    Notes
+    -----
+    Layer 0 is anchored by the plate.  A component of layer k > 0 with no cured
+    pixel beneath it in layer k - 1 is an island; it is recorded once, at its
+    first layer, and counts as anchored above it (it will carry contacts), so
+    every cured pixel of layer k - 1 anchors layer k.  The reach of a newly cured
+    pixel of an anchored component is its distance (pixel centre to pixel
+    centre) to the nearest cured pixel of layer k - 1: searched among the pixels
+    within 4 pixels, else an exact Euclidean distance transform [1]_ in a box
+    around the far pixels.  Components are found on the row runs of each layer
+    (8-connected: runs of adjacent rows that touch, merged by union-find), which
+    gives the same labels as ``scipy.ndimage.label`` with a 3 x 3 structure at a
+    fraction of the cost; perimeter by the Cauchy-Crofton formula over 4
+    directions [2]_ from the same runs.
+
+    Cost per layer: O(P / 8) to find the cured box B, O(B) to extract runs and
+    new pixels, O(R log R) for R runs and O(N) for N new pixels, plus a distance
+    transform of the box around pixels reaching farther than 4 pixels (rare).
+    Memory: the crossing list plus a few (ny, nx) layers.
+
+    References
+    ----------
+    .. [1] C. R. Maurer, R. Qi and V. Raghavan, "A linear time algorithm for computing
+       exact Euclidean distance transforms of binary images in arbitrary dimensions",
+       IEEE TPAMI 25(2), 2003 (scipy.ndimage.distance_transform_edt).
+    .. [2] G. Lehmann and D. Legland, "Efficient N-dimensional surface estimation using
+       Crofton formula and run-length encoding", The Insight Journal, 2012.
+    """
+    for name, val in (("pixel_mm", pixel_mm), ("layer_mm", layer_mm), ("reach_limit_mm", reach_limit_mm)):
+        if not (np.isfinite(val) and val > 0):
+            raise SettingsError(f"layers: {name}={val!r} must be a positive number of mm")
+    _check(mesh, layer_mm)
+    grid = Grid.covering(mesh.bounds, pixel_mm) if grid is None else grid
+    if not np.isclose(grid.pixel_mm, pixel_mm, rtol=1e-12, atol=0):
+        raise SettingsError(f"layers: grid pitch {grid.pixel_mm} mm differs from pixel_mm={pixel_mm}; "
+                            "pass a grid of the same pitch or none")
+    observers, p = tuple(observers), grid.pixel_mm
+    n_layers = max(0, int(np.ceil(mesh.bounds[1, 2] / layer_mm - 0.5)))
+    rows_out = np.zeros((n_layers, 4))              # area, perimeter, components, reach (pixels)
+    reach_xy = np.full((n_layers, 2), np.nan)
+    islands, over, inverted = [], [], 0
+    prev = np.zeros(grid.shape, bool)
+    layers = iter_layers(mesh, grid, layer_mm)
+    if progress:
+        from tqdm import tqdm
+        label = progress if isinstance(progress, str) else "layers"
+        layers = tqdm(layers, total=n_layers, desc=label, unit="layer", leave=False)
+    for layer in layers:
+        k, mask = layer.index, layer.mask
+        inverted += layer.inverted
+        rr = np.flatnonzero(mask.any(axis=1))
+        if rr.size == 0:
+            for ob in observers:
+                ob(layer, np.zeros(grid.shape, np.int32), 0)
+            prev = mask
+            continue
+        cc = np.flatnonzero(mask.any(axis=0))
+        r0, r1, c0, c1 = rr[0] - _MARGIN, rr[-1] + _MARGIN + 1, cc[0] - _MARGIN, cc[-1] + _MARGIN + 1
+        m, pw = _window(mask, r0, r1, c0, c1), _window(prev, r0, r1, c0, c1)
+        w = m.shape[1]
+        runs = _runs(m)
+        comp, n, area, perim = _run_components(*runs, w + 1, p)
+        rows_out[k, :3] = area * p * p, perim, n
+        new = np.flatnonzero(m & ~pw) if k > 0 else np.zeros(0, np.int64)
+        if new.size:
+            nr, nc = np.divmod(new, w)
+            ln = comp[np.searchsorted(runs[0] * (w + 1) + runs[1], nr * (w + 1) + nc, side="right") - 1]
+            anchor, d = _new_pixels(m, pw, new)
+            isl = ~np.isin(ln, ln[anchor])
+            if isl.any():
+                islands.extend(_islands(new[isl], ln[isl], k, layer.z_mm, grid, r0, c0, w))
+            if not isl.all():
+                nr, nc, d = nr[~isl], nc[~isl], d[~isl]
+                far = np.isnan(d)
+                if far.any():
+                    d[far] = _far_distance(prev, nr[far] + r0, nc[far] + c0)
+                j = int(np.argmax(d))
+                rows_out[k, 3] = d[j]
+                reach_xy[k] = grid.xy(nr[j] + r0, nc[j] + c0)[0]
+                if (d * p > reach_limit_mm).any():
+                    over.extend(_overreach(nr, nc, d, d * p > reach_limit_mm, k, layer.z_mm, grid, r0, c0))
+        if observers:
+            full = np.zeros(grid.shape, np.int32)
+            rs, cs = slice(max(r0, 0), min(r1, grid.ny)), slice(max(c0, 0), min(c1, grid.nx))
+            full[rs, cs] = _paint(runs, comp, m.shape)[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
+            for ob in observers:
+                ob(layer, full, n)
+        prev = mask
+    reach = rows_out[:, 3] * p
+    worst = int(np.argmax(reach)) if n_layers and reach.max() > 0 else -1
+    return LayerStack(grid, float(layer_mm), (np.arange(n_layers) + 0.5) * layer_mm, rows_out[:, 0],
+                      rows_out[:, 1], rows_out[:, 2].astype(int), tuple(islands), reach, reach_xy,
+                      tuple(over), float(reach.max(initial=0.0)), worst, int(inverted))
+
+
+def _paint(runs, comp, shape) -> np.ndarray:
+    """Label image (1-based) of a window from its runs and their components."""
+    r, s, e = runs
+    acc = np.zeros(shape[0] * shape[1] + 1, np.int32)
+    acc[r * shape[1] + s] = comp + 1
+    acc[r * shape[1] + e] = -(comp + 1)
+    return np.cumsum(acc[:-1], dtype=np.int32).reshape(shape)
+
+
+def _islands(pix, pl, k, z, grid, r0, c0, w):
+    """Island records from their pixels (flat window indices) and labels."""
+    order = np.argsort(pl, kind="stable")
+    pix, pl = pix[order], pl[order]
+    out = []
+    for group in np.split(pix, np.flatnonzero(np.diff(pl)) + 1):
+        r, c = np.divmod(group, w)
+        mask = np.zeros((r.max() - r.min() + 1, c.max() - c.min() + 1), bool)
+        mask[r - r.min(), c - c.min()] = True
+        xy = grid.xy(r.mean() + r0, c.mean() + c0)[0]
+        out.append(Island(k, float(z), float(group.size * grid.pixel_mm ** 2), (float(xy[0]), float(xy[1])),
+                          mask, int(r.min() + r0), int(c.min() + c0), grid))
+    return out
+
+
+def _overreach(nr, nc, d, over, k, z, grid, r0, c0):
+    """One record per 8-connected region of over-limit pixels, at its worst pixel."""
+    r, c, d = nr[over], nc[over], d[over]
+    box = np.zeros((r.max() - r.min() + 1, c.max() - c.min() + 1), bool)
+    box[r - r.min(), c - c.min()] = True
+    lab, _ = ndimage.label(box, ndimage.generate_binary_structure(2, 2))
+    reg = lab[r - r.min(), c - c.min()]
+    out = []
+    for g in np.unique(reg):
+        i = np.flatnonzero(reg == g)
+        j = i[np.argmax(d[i])]
+        xy = grid.xy(r[j] + r0, c[j] + c0)[0]
+        out.append(Overreach(k, float(z), (float(xy[0]), float(xy[1])), float(d[j] * grid.pixel_mm)))
+    return out

@@ -1,0 +1,89 @@
+"""``supportgen bench``: compare strategies over a folder of models (parsing and printing only).
+
+Registered from ``cli/main.py``::
+
+    from . import bench as bench_cmd
+    bench_cmd.add_parser(sub, [common])
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from .options import positive, settings_from
+
+__all__ = ["add_parser", "cmd_bench", "parse_strategies"]
+
+EXIT_OK, EXIT_FAILED = 0, 1
+
+
+def parse_strategies(text: str) -> list[str]:
+    """``"straight,tree"`` -> ``["straight", "tree"]``; an unknown name is an argparse error listing the valid ones.
+
+    Examples
+    --------
+    >>> parse_strategies("straight, tree")
+    ['straight', 'tree']
+    >>> parse_strategies("straight,pillars")
+    Traceback (most recent call last):
+    ...
+    argparse.ArgumentTypeError: unknown strategy 'pillars'; valid strategies: straight, tree
+    """
+    from supportgen.supports.strategies import STRATEGIES
+
+    names = [n.strip() for n in text.split(",") if n.strip()]
+    if not names:
+        raise argparse.ArgumentTypeError(f"no strategy named; valid strategies: {', '.join(STRATEGIES)}")
+    for n in names:
+        if n not in STRATEGIES:
+            raise argparse.ArgumentTypeError(f"unknown strategy '{n}'; valid strategies: {', '.join(STRATEGIES)}")
+    return list(dict.fromkeys(names))
+
+
+def add_parser(subparsers, parents) -> argparse.ArgumentParser:
+    """Register ``bench`` on ``subparsers`` with the common options ``parents``; return its parser."""
+    p = subparsers.add_parser(
+        "bench", parents=list(parents), help="compare support strategies over a folder of models",
+        description="Support every model in CORPUS_DIR with every strategy; write bench.csv, bench.md, "
+                    "summary.csv (ratios against the baseline), plots, and each run's files in OUT/<strategy>/.")
+    p.add_argument("corpus", metavar="CORPUS_DIR", help="folder of STL, OBJ, PLY or 3MF files")
+    p.add_argument("-o", "--output", required=True, metavar="OUT", help="output folder")
+    p.add_argument("--strategies", type=parse_strategies, default=["straight", "tree"], metavar="A,B,...",
+                   help="strategies to run, comma-separated (default: straight,tree)")
+    p.add_argument("--baseline", metavar="NAME",
+                   help="strategy the others are compared with (default: straight if run, else the first)")
+    p.add_argument("--scale", type=positive(float, "the longest side in mm as a positive number, e.g. 50"), metavar="MM",
+                   help="scale each model so its longest side is MM and centre it (for unitless meshes)")
+    p.add_argument("--memory", choices=("rss", "tracemalloc"), default="rss",
+                   help="peak memory by resident-set growth (default) or traced allocations (slows the run)")
+    p.set_defaults(func=cmd_bench)
+    return p
+
+
+def cmd_bench(args) -> int:
+    """Run the bench; exit 0 when every run succeeded and passed verification, else 1."""
+    from supportgen.runs.bench import run_bench
+
+
+    strategies = args.strategies
+    baseline = args.baseline or ("straight" if "straight" in strategies else strategies[0])
+    table = run_bench(Path(args.corpus), Path(args.output), settings_from(args), strategies, baseline=baseline,
+                      scale_mm=args.scale, memory=args.memory, progress=not args.quiet)
+    status = EXIT_OK
+    for r in table.rows:
+        if r["status"] != "ok":
+            print(f"supportgen: error: {r['model']} / {r['strategy']}: {r['error']}", file=sys.stderr)
+            status = EXIT_FAILED
+        elif not r["passed"]:
+            print(f"supportgen: check failed: {r['model']} / {r['strategy']}: "
+                  f"{r['islands']} island(s), largest reach {r['max_reach_mm']} mm", file=sys.stderr)
+            status = EXIT_FAILED
+    if not args.quiet:
+        for row in table.summary:
+            if row["model"].startswith("all"):
+                figs = ", ".join(f"{k[:-6]} x{v:.2f}" for k, v in row.items() if k.endswith("_ratio") and v is not None)
+                print(f"{row['strategy']} vs {baseline}, {row['model']}: {figs}")
+        print(f"table: {table.paths['csv']} and {table.paths['markdown']}; ratios: {table.paths['summary']}")
+    return status

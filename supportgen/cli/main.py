@@ -1,0 +1,208 @@
+"""The ``supportgen`` command: argument parsing and printing only.
+
+Exit status: 0 when every input succeeded, 1 when any input failed or did not
+pass the print check (each failure one line on stderr), 2 for usage errors.
+No traceback unless ``--debug``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from pathlib import Path
+
+from .options import common_options, err, settings_from, strategy_option
+
+EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
+
+
+def _summary_line(result, seconds: float) -> str:
+    r = result.report
+    s, v = r["supports"], r["verification"]
+    verdict = "passes" if v["passed"] else "FAILS check"
+    return (f"{result.name}: {s['contacts']} contacts, supports {s['volume_mm3']:.0f} mm3 "
+            f"(base {s['base_volume_mm3']:.0f}), peak force {r['forces']['peak_layer_force_n']:.2f} N, "
+            f"{verdict}, {seconds:.1f} s")
+
+
+def _each(inputs, work, args) -> int:
+    """Run ``work(path)`` for every input; it returns the failure lines of its
+    check.  An error or a failed check is reported on stderr and makes the
+    status 1; the other inputs still run."""
+    import supportgen
+
+    status = EXIT_OK
+    for path in inputs:
+        try:
+            failures = work(path)
+        except supportgen.SupportGenError as exc:
+            if args.debug:
+                raise
+            err(f"error: {exc}")
+            status = EXIT_FAILED
+            continue
+        for failure in failures:
+            err(f"check failed: {failure}")
+        if failures:
+            status = EXIT_FAILED
+    return status
+
+
+def _run_generate(inputs, outdir: Path, args) -> int:
+    import supportgen
+
+    settings = settings_from(args)
+
+    def work(path):
+        t0 = time.perf_counter()
+        result = supportgen.generate(path, settings, strategy=args.strategy, centre=args.centre,
+                                     progress=not args.quiet)
+        result.save(outdir)
+        if not args.quiet:
+            print(_summary_line(result, time.perf_counter() - t0))
+        return result.report["verification"]["failures"]
+
+    return _each(inputs, work, args)
+
+
+def cmd_generate(args) -> int:
+    return _run_generate([Path(p) for p in args.inputs], Path(args.output), args)
+
+
+def cmd_demo(args) -> int:
+    from supportgen.runs.demo import write_demo_inputs
+
+    outdir = Path(args.output)
+    inputs = write_demo_inputs(outdir / "inputs")
+    if not args.quiet:
+        print(f"demo: a kitchenware maker's sample batch, {len(inputs)} parts, written to {outdir}")
+    status = _run_generate(inputs, outdir, args)
+    if not args.quiet:
+        print(f"reports: {outdir}/*.report.md; supported solids: {outdir}/*.supported.stl")
+    return status
+
+
+def cmd_check(args) -> int:
+    import supportgen
+
+    settings = settings_from(args)
+
+    def work(path):
+        ver = supportgen.check(path, settings, progress=not args.quiet)
+        if args.json:
+            print(json.dumps({"mesh": str(path), **ver.to_dict()}, sort_keys=True))
+        elif ver.passed:
+            print(f"{path}: passes: no islands, largest reach {ver.max_unsupported_reach_mm:.2f} mm "
+                  f"(limit {ver.reach_limit_mm:g}), closed solid")
+        return list(ver.failures)
+
+    return _each(args.meshes, work, args)
+
+
+def cmd_profiles(args) -> int:
+    from supportgen.settings import PROFILES, describe
+
+    rows = describe()
+    if args.json:
+        print(json.dumps({"profiles": PROFILES, "settings": rows}, indent=2, default=str))
+        return EXIT_OK
+    print("built-in profiles (values that differ from the defaults):")
+    for name, values in PROFILES.items():
+        changes = ", ".join(f"{k}={v}" for k, v in values.items()) or "the defaults"
+        print(f"  {name:14s} {changes}")
+    print("\nsettings ([group] name = default unit, range, where the default comes from):")
+    for r in rows:
+        rng = "|".join(r["range"]) if isinstance(r["range"][0], str) else f"{r['range'][0]:g}..{r['range'][1]:g}"
+        print(f"  [{r['group']}] {r['name']} = {r['default']} {r['unit']}  ({rng}; {r['source']}) {r['doc']}")
+    return EXIT_OK
+
+
+def cmd_calibrate(args) -> int:
+    from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
+    from supportgen.io.meshio import atomic_write_text
+
+    settings = settings_from(args)
+    fit = fit_calibration(read_measurements(args.measurements), settings)
+    print(fit.to_text())
+    atomic_write_text(Path(args.output), calibrated_settings(fit, settings).to_toml())
+    print(f"profile written: {args.output}")
+    return EXIT_OK
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="supportgen",
+        description="Support structures for bottom-up resin printing, sized from the separation force of every layer.")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    common, strategy = common_options(), strategy_option()
+    gen_opts = argparse.ArgumentParser(add_help=False, parents=[strategy])
+    gen_opts.add_argument("--lift", type=float, metavar="MM",
+                          help="height of the part's lowest point above the plate")
+    gen_opts.add_argument("--centre", action="store_true", help="centre each part on the plate")
+
+    p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
+    p.add_argument("inputs", nargs="+", metavar="INPUT", help="STL, OBJ, PLY or 3MF files")
+    p.add_argument("-o", "--output", default=".", metavar="OUTDIR", help="output folder (default: here)")
+    p.set_defaults(func=cmd_generate)
+
+    p = sub.add_parser("demo", parents=[common, gen_opts], help="run the built-in example batch end to end")
+    p.add_argument("-o", "--output", default="supportgen-demo", metavar="OUTDIR")
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("check", parents=[common], help="verify already supported meshes")
+    p.add_argument("meshes", nargs="+", metavar="MESH")
+    p.add_argument("--json", action="store_true", help="one JSON line per mesh")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("profiles", help="list built-in profiles and every setting")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_profiles)
+
+    p = sub.add_parser("calibrate", parents=[common], help="fit the force calibration from measured peak forces")
+    p.add_argument("measurements", metavar="MEASUREMENTS.csv")
+    p.add_argument("-o", "--output", default="calibrated.toml", metavar="PROFILE.toml")
+    p.set_defaults(func=cmd_calibrate)
+
+    from . import batch as batch_cmd
+    from . import bench as bench_cmd
+
+    batch_cmd.add_parser(sub, [common, strategy])
+    bench_cmd.add_parser(sub, [common])
+    return parser
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help(sys.stderr)
+        return EXIT_USAGE
+    try:
+        return args.func(args)
+    except BrokenPipeError:
+        # The reader went away (e.g. `supportgen profiles | head`): stop quietly.
+        sys.stderr.close()
+        return EXIT_OK
+    except KeyboardInterrupt:
+        err("interrupted; finished files are complete, nothing half-written was left")
+        return 130
+    except Exception as exc:  # noqa: BLE001 - the one place that turns errors into a line
+        import supportgen
+
+        if getattr(args, "debug", False):
+            raise
+        if isinstance(exc, supportgen.SettingsError):
+            err(f"error: {exc}")
+            return EXIT_USAGE
+        if isinstance(exc, supportgen.SupportGenError):
+            err(f"error: {exc}")
+            return EXIT_FAILED
+        err(f"internal error: {type(exc).__name__}: {exc} (run again with --debug and report it)")
+        return EXIT_FAILED
+
+
+if __name__ == "__main__":
+    sys.exit(main())

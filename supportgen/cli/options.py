@@ -1,0 +1,85 @@
+"""What every sub-command shares: the common options, the strategy option,
+number checks, settings from the options, and the one-line error printer."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+__all__ = ["common_options", "strategy_option", "positive", "settings_from", "err"]
+
+
+def common_options() -> argparse.ArgumentParser:
+    """--profile, --set, --quiet and --debug, as a parent parser."""
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--profile", metavar="FILE", help="built-in profile name or TOML profile file")
+    common.add_argument("--set", action="append", metavar="NAME=VALUE",
+                        help="override one setting (repeatable), e.g. --set contact_spacing_mm=1.8")
+    common.add_argument("--quiet", action="store_true", help="no progress bars or summaries")
+    common.add_argument("--debug", action="store_true", help="show tracebacks")
+    return common
+
+
+def strategy_option() -> argparse.ArgumentParser:
+    """--strategy with the registered names and the pipeline's default, as a parent parser."""
+    from supportgen.pipeline import DEFAULT_STRATEGY
+    from supportgen.supports.strategies import STRATEGIES
+
+    parent = argparse.ArgumentParser(add_help=False)
+    parent.add_argument("--strategy", default=DEFAULT_STRATEGY, choices=sorted(STRATEGIES),
+                        help=f"support strategy (default: {DEFAULT_STRATEGY})")
+    return parent
+
+
+def positive(cast, what: str = "a positive number"):
+    """An argparse type: ``cast(text)`` that must be > 0, else a usage error saying ``what`` to give.
+
+    Examples
+    --------
+    >>> positive(float)("2.5")
+    2.5
+    >>> positive(int, "a worker count")("0")
+    Traceback (most recent call last):
+    ...
+    argparse.ArgumentTypeError: '0': give a worker count
+    """
+    def parse(text: str):
+        try:
+            value = cast(text)
+        except ValueError:
+            value = None
+        if value is None or not value > 0:
+            raise argparse.ArgumentTypeError(f"{text!r}: give {what}")
+        return value
+
+    parse.__name__ = f"positive {cast.__name__}"
+    return parse
+
+
+def _value(text: str):
+    for cast in (int, float):
+        try:
+            return cast(text)
+        except ValueError:
+            pass
+    return text
+
+
+def settings_from(args):
+    """Settings from ``--profile`` and every ``--set NAME=VALUE`` (and ``--lift`` where a command has it)."""
+    import supportgen
+
+    overrides = {}
+    for item in args.set or []:
+        if "=" not in item:
+            raise supportgen.SettingsError(f"--set {item!r}: write it as NAME=VALUE, e.g. --set contact_spacing_mm=1.8")
+        key, value = item.split("=", 1)
+        overrides[key.strip()] = _value(value.strip())
+    if getattr(args, "lift", None) is not None:
+        overrides["lift_mm"] = args.lift
+    return supportgen.load_settings(args.profile, **overrides)
+
+
+def err(msg: str) -> None:
+    """One line on stderr, prefixed with the command's name."""
+    print(f"supportgen: {msg}", file=sys.stderr)

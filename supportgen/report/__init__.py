@@ -1,0 +1,1 @@
+"""Stage 5, what a run tells people and scripts: JSON, Markdown, plots."""

@@ -1,0 +1,1 @@
+"""Stage 6, many parts: batches over folders, worker engines, strategy benchmarks, the demo scenario."""

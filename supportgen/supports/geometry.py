@@ -1,0 +1,262 @@
+"""Geometry: solids for tips, posts, joints and base, and one union with the part.
+
+Every primitive is a manifold3d solid; all are joined in one
+``Manifold.batch_boolean`` union, and ``status()`` is checked after it, so the
+output is one closed, oriented solid or an error.
+
+Tip: a cone frustum from the tip diameter at the contact (extended
+``tip_depth_mm`` into the part along its axis) to the post radius at its node.
+Post segment: a frustum between two nodes.  Joint: a sphere at every node
+where segments meet, of the largest radius there.  Base: a raft (slabs under
+groups of neighbouring feet, made of overlapping discs) or pads (one disc per
+foot), with a 45 degree chamfer on the bottom edge so a scraper gets under it.
+
+Files store single-precision positions, so the union must have no two
+vertices at one such position (a "pinch" a reader would merge into a
+non-manifold edge); :func:`combine` checks that and, where needed, turns every
+facet by a fraction of a segment and joins again.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import manifold3d as m3d
+import numpy as np
+import trimesh
+import shapely
+
+from ..errors import GeometryError
+from .plan import SupportPlan
+from ..settings import Settings
+
+__all__ = ["Solids", "PHASES", "to_manifold", "to_trimesh", "frustum", "build_supports", "pinch_points", "combine"]
+
+_SEGMENTS = 16
+
+
+def to_manifold(mesh: trimesh.Trimesh) -> m3d.Manifold:
+    """A manifold3d solid from a closed trimesh (raises GeometryError if it is not one)."""
+    solid = m3d.Manifold(m3d.Mesh(vert_properties=np.asarray(mesh.vertices, np.float32),
+                                  tri_verts=np.asarray(mesh.faces, np.uint32)))
+    if solid.status() != m3d.Error.NoError:
+        raise GeometryError(f"the part is not a closed manifold solid ({solid.status().name}); repair it first")
+    return solid
+
+
+def to_trimesh(solid: m3d.Manifold) -> trimesh.Trimesh:
+    """The triangle mesh of a manifold3d solid."""
+    out = solid.to_mesh()
+    return trimesh.Trimesh(np.asarray(out.vert_properties)[:, :3].astype(float),
+                           np.asarray(out.tri_verts, dtype=np.int64), process=False)
+
+
+def _rotation_to(direction: np.ndarray) -> np.ndarray:
+    """A 3x3 rotation taking +z to the unit vector ``direction``."""
+    z = np.array([0.0, 0.0, 1.0])
+    d = direction / np.linalg.norm(direction)
+    c = float(z @ d)
+    if c > 1 - 1e-12:
+        return np.eye(3)
+    if c < -1 + 1e-12:
+        return np.diag([1.0, -1.0, -1.0])
+    v = np.cross(z, d)
+    vx = np.array([[0, -v[2], v[1]], [v[2], 0, -v[0]], [-v[1], v[0], 0]])
+    return np.eye(3) + vx + vx @ vx * (1 / (1 + c))
+
+
+def frustum(p0, p1, r0: float, r1: float, segments: int = _SEGMENTS, phase: float = 0.0) -> m3d.Manifold:
+    """A cone frustum from ``p0`` (radius ``r0``) to ``p1`` (radius ``r1``), its
+    polygon turned by ``phase`` radians about its axis.
+
+    Examples
+    --------
+    >>> s = frustum([0, 0, 0], [0, 0, 2], 1.0, 1.0, segments=64)
+    >>> abs(s.volume() - 2 * np.pi) < 0.05 * 2 * np.pi
+    True
+    """
+    p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
+    axis = p1 - p0
+    length = float(np.linalg.norm(axis))
+    solid = m3d.Manifold.cylinder(length, float(r0), float(r1), segments)
+    if phase:
+        solid = solid.rotate((0.0, 0.0, float(np.degrees(phase))))
+    rot = _rotation_to(axis)
+    return solid.transform(np.column_stack([rot, p0]))
+
+
+def _ring(phase: float) -> np.ndarray:
+    a = np.linspace(0, 2 * np.pi, _SEGMENTS, endpoint=False) + phase
+    return np.column_stack([np.cos(a), np.sin(a)])
+
+
+def _chamfered_disc(xy, radius: float, thickness: float, chamfer: float, phase: float = 0.0) -> np.ndarray:
+    """Points whose hull is a disc with a 45 degree chamfer round its bottom edge."""
+    ring = _ring(phase)
+    rings = [(0.0, radius - chamfer), (chamfer, radius), (thickness, radius)]
+    return np.vstack([np.column_stack([xy + r * ring, np.full(len(ring), z)]) for z, r in rings])
+
+
+def _raft_centres(xy: np.ndarray, radius: float, close: float) -> np.ndarray:
+    """Disc centres that fill the raft between the feet.
+
+    The raft's outline is the union of the feet's discs closed by ``close``
+    (shapely buffers: feet nearer than ``2 (radius + close)`` share a slab);
+    it is filled with discs on a hexagonal grid of pitch ``radius`` fixed to
+    the plate's axes, so the same feet always give the same raft.
+    """
+    region = shapely.MultiPoint(xy).buffer(radius + close, quad_segs=8).buffer(-close, quad_segs=8)
+    inner = region.buffer(-0.5 * radius, quad_segs=8)
+    if inner.is_empty:
+        return xy
+    x0, y0, x1, y1 = inner.bounds
+    pitch = radius
+    rows = np.arange(np.floor(y0 / (pitch * 0.866)), np.ceil(y1 / (pitch * 0.866)) + 1)
+    cols = np.arange(np.floor(x0 / pitch) - 1, np.ceil(x1 / pitch) + 1)
+    gx = cols[None, :] * pitch + (rows[:, None] % 2) * pitch / 2
+    gy = np.broadcast_to(rows[:, None] * pitch * 0.866, gx.shape)
+    grid = np.column_stack([gx.ravel(), gy.ravel()])
+    fill = grid[shapely.contains_xy(inner, grid[:, 0], grid[:, 1])]
+    return np.vstack([xy, fill])
+
+
+def _base(plan: SupportPlan, settings: Settings, phase: float = 0.0) -> list[m3d.Manifold]:
+    """The base under the feet, as chamfered discs.
+
+    Pads: one chamfered disc of radius (foot radius + base margin) per foot,
+    merged where they overlap.  Raft: the same discs plus discs filling the
+    space between feet closer than twice (disc radius + contact spacing), so
+    neighbouring feet share one slab while distant groups get slabs of their
+    own.  Discs of one size in general position union cleanly; outlines made
+    by offsetting polygons can touch themselves at points files cannot keep.
+    """
+    sp = settings.supports
+    if len(plan.feet) == 0:
+        return []
+    t = sp.base_thickness_mm
+    xy = np.unique(np.round(plan.nodes[plan.feet, :2], 9), axis=0)
+    foot_r = float(plan.edge_radius.max()) if len(plan.edge_radius) else sp.post_diameter_mm / 2
+    radius = foot_r + sp.base_margin_mm
+    chamfer = min(0.5 * t, 0.5, 0.5 * sp.base_margin_mm)
+    if sp.base == "raft":
+        xy = _raft_centres(xy, radius, sp.contact_spacing_mm)
+    return [m3d.Manifold.hull_points(_chamfered_disc(p, radius, t, chamfer, phase)) for p in xy]
+
+
+@dataclass(frozen=True)
+class Solids:
+    """The supports alone and the part joined with them."""
+
+    supports: trimesh.Trimesh
+    combined: trimesh.Trimesh
+    supports_volume_mm3: float
+    base_volume_mm3: float
+
+
+def _sphere(centre, radius: float, phase: float) -> m3d.Manifold:
+    deg = float(np.degrees(phase))
+    solid = m3d.Manifold.sphere(float(radius), _SEGMENTS)
+    return (solid.rotate((deg, deg, deg)) if phase else solid).translate(tuple(centre))
+
+
+def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
+                   ) -> tuple[list[m3d.Manifold], list[m3d.Manifold]]:
+    """Primitive solids of a plan: (tips, posts and joints; base parts).
+
+    ``phase`` turns every polygonal section by that angle (radians), which moves
+    the solids' facets without changing their size.
+
+    Notes
+    -----
+    O(tips + edges + nodes) primitives of ``_SEGMENTS`` sides each.
+    """
+    sp = settings.supports
+    parts: list[m3d.Manifold] = []
+    node_r = np.zeros(len(plan.nodes))
+    if len(plan.edges):
+        np.maximum.at(node_r, plan.edges[:, 0], plan.edge_radius)
+        np.maximum.at(node_r, plan.edges[:, 1], plan.edge_radius)
+    no_edge = node_r == 0
+    node_r[no_edge] = sp.post_diameter_mm / 2
+    for (a, b), r in zip(plan.edges, plan.edge_radius):
+        parts.append(frustum(plan.nodes[a], plan.nodes[b], r, r, phase=phase))
+    for a, b in plan.braces:
+        r = 0.5 * min(node_r[a], node_r[b])
+        parts.append(frustum(plan.nodes[a], plan.nodes[b], r, r, phase=phase))
+    # A joint sphere, once, at every node where segments meet or a tip starts.
+    degree = np.bincount(plan.edges.ravel(), minlength=len(plan.nodes)) if len(plan.edges) else np.zeros(len(plan.nodes), int)
+    joint = degree >= 2
+    joint[plan.tip_nodes] = True
+    for i in np.flatnonzero(joint):
+        parts.append(_sphere(plan.nodes[i], node_r[i], phase))
+    for p, node, d in zip(plan.tip_points, plan.tip_nodes, plan.tip_diameters):
+        q = plan.nodes[node]
+        axis = p - q
+        length = np.linalg.norm(axis)
+        if length < 1e-9:
+            continue
+        p_in = p + axis / length * sp.tip_depth_mm
+        parts.append(frustum(q, p_in, node_r[node], d / 2, phase=phase))
+    # Feet: posts sink half the base thickness into the base so the union is sound.
+    base = _base(plan, settings, phase)
+    for f in plan.feet:
+        q = plan.nodes[f]
+        parts.append(frustum(q - [0, 0, sp.base_thickness_mm / 2], q, node_r[f], node_r[f], phase=phase))
+    return parts, base
+
+
+def _union(solids: list[m3d.Manifold], what: str) -> m3d.Manifold:
+    if not solids:
+        return m3d.Manifold()
+    out = m3d.Manifold.batch_boolean(solids, m3d.OpType.Add)
+    if out.status() != m3d.Error.NoError:
+        raise GeometryError(f"joining the {what} failed ({out.status().name})")
+    return out
+
+
+def pinch_points(mesh: trimesh.Trimesh) -> int:
+    """Vertices that a file would merge: distinct vertices at one single-precision position.
+
+    Where two sheets of a solid touch at a point or along an edge, manifold3d
+    keeps a vertex for each; STL and 3MF store single-precision positions, so a
+    reader merges them into a non-manifold vertex or edge.  Cost O(V log V).
+
+    Examples
+    --------
+    >>> pinch_points(trimesh.creation.box())
+    0
+    """
+    v32 = np.asarray(mesh.vertices, np.float32)
+    return int(len(v32) - len(np.unique(v32, axis=0)))
+
+
+#: Turns of every facet tried, in order, until the solids come out without pinch
+#: points (a pinch is a coincidence of facets; turning them by a fraction of a
+#: segment removes it).
+PHASES = (0.0, 0.37, 0.61, 0.83)
+
+
+def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Solids:
+    """The supports as one solid, and the part joined with them.
+
+    Both come out without pinch points (see :func:`pinch_points`): where a
+    union has one, the facets of every support solid are turned by a fraction
+    of a segment (:data:`PHASES`) and the union made again.
+
+    Raises
+    ------
+    GeometryError
+        A union failed (manifold3d ``status()`` not ``NoError``), or every turn
+        left a pinch point.
+    """
+    whole = to_manifold(part)
+    for k, phase in enumerate(PHASES):
+        parts, base = build_supports(plan, settings, phase * 2 * np.pi / _SEGMENTS)
+        supports = _union(parts + base, "supports")
+        combined = _union([whole, supports], "part and supports")
+        sup_mesh, comb_mesh = to_trimesh(supports), to_trimesh(combined)
+        if pinch_points(sup_mesh) == 0 and pinch_points(comb_mesh) == 0:
+            base_solid = _union(base, "base")
+            return Solids(sup_mesh, comb_mesh, float(supports.volume()), float(base_solid.volume()))
+    raise GeometryError(f"the supports touch themselves or the part at a point after {len(PHASES)} tries "
+                        "(pinch points a file cannot keep); change contact_spacing_mm slightly and run again")

@@ -1,0 +1,154 @@
+"""Strategies: how contacts become a support plan, chosen by name.
+
+``straight``
+    Every contact gets its own vertical post.  The tip leaves the part straight
+    down; the post drops to the base, or, where the way down meets the part,
+    stops above it and stands on it with a landing tip (model-to-model).
+``tree``
+    Contacts routed around the part and merged into trunks
+    (:func:`supportgen.supports.routing.plan_tree`); a contact with no way down that
+    keeps the clearance from the part gets a straight post instead.
+
+A strategy is a function ``(mesh, contacts, settings) -> SupportPlan``; add one
+by writing such a function and registering it in :data:`STRATEGIES`.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+import trimesh
+
+from ..errors import SettingsError
+from .plan import Contacts, SupportPlan
+from ..settings import Settings
+
+__all__ = ["STRATEGIES", "get_strategy", "plan_straight", "join_plans"]
+
+
+def _first_hits_below(mesh: trimesh.Trimesh, origins: np.ndarray) -> np.ndarray:
+    """Height of the first surface below each origin (-inf where none)."""
+    out = np.full(len(origins), -np.inf)
+    if len(origins) == 0:
+        return out
+    dirs = np.tile([0.0, 0.0, -1.0], (len(origins), 1))
+    locs, ray_idx, _ = mesh.ray.intersects_location(origins, dirs, multiple_hits=True)
+    if len(locs):
+        np.maximum.at(out, ray_idx, np.where(locs[:, 2] < origins[ray_idx, 2], locs[:, 2], -np.inf))
+    return out
+
+
+def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings) -> SupportPlan:
+    """One vertical post per contact.
+
+    Parameters
+    ----------
+    mesh : trimesh.Trimesh
+        The placed part.
+    contacts : Contacts
+    settings : Settings
+        Uses ``tip_length_mm``, ``post_diameter_mm`` and ``base_thickness_mm``.
+
+    Returns
+    -------
+    SupportPlan
+        Nodes: for contact ``i``, node ``2i`` under the tip and node ``2i+1`` at the
+        post's foot (on the base) or above its landing on the part.
+
+    Notes
+    -----
+    One downward ray per contact: O(n log faces).
+    """
+    sp = settings.supports
+    n = len(contacts)
+    r_post = sp.post_diameter_mm / 2
+    base_top = sp.base_thickness_mm
+    tip_len = sp.tip_length_mm
+    top = contacts.points.copy()
+    # Node under each tip; a contact too close to the base gets a shorter tip.
+    node_top = top - np.array([0.0, 0.0, tip_len])
+    node_top[:, 2] = np.maximum(node_top[:, 2], base_top + 1e-3)
+    # Start the downward ray a post radius below the node so it does not hit the tip's own face.
+    hit_z = _first_hits_below(mesh, node_top - np.array([0.0, 0.0, 1e-3]))
+    lands = hit_z > base_top
+    node_low = node_top.copy()
+    node_low[:, 2] = np.where(lands, hit_z + tip_len, base_top)
+    # A landing whose post would be shorter than nothing: hang the tip straight on the landing.
+    node_low[:, 2] = np.minimum(node_low[:, 2], node_top[:, 2])
+    nodes = np.empty((2 * n, 3))
+    nodes[0::2], nodes[1::2] = node_top, node_low
+    edges = np.column_stack([np.arange(0, 2 * n, 2), np.arange(1, 2 * n, 2)])
+    long_enough = np.linalg.norm(node_top - node_low, axis=1) > 1e-6
+    edges = edges[long_enough]
+    land_idx = np.flatnonzero(lands)
+    land_pts = node_low[land_idx].copy()
+    land_pts[:, 2] = hit_z[land_idx]
+    tip_points = np.vstack([top, land_pts])
+    tip_nodes = np.concatenate([np.arange(0, 2 * n, 2), 2 * land_idx + 1])
+    tip_diam = np.concatenate([contacts.diameters, contacts.diameters[land_idx]])
+    tip_contact = np.concatenate([np.arange(n), np.full(len(land_idx), -1)])
+    return SupportPlan(
+        strategy="straight", nodes=nodes, edges=edges, edge_radius=np.full(len(edges), r_post),
+        tip_points=tip_points, tip_nodes=tip_nodes, tip_diameters=tip_diam, tip_contact=tip_contact,
+        feet=2 * np.flatnonzero(~lands) + 1,
+    )
+
+
+def join_plans(strategy: str, first: SupportPlan, second: SupportPlan, second_contacts: np.ndarray) -> SupportPlan:
+    """One plan holding both: ``second``'s nodes renumbered after ``first``'s, and its
+    tips' contact indices mapped through ``second_contacts`` (landings stay -1)."""
+    off = len(first.nodes)
+    tip_contact = np.where(second.tip_contact >= 0, second_contacts[np.maximum(second.tip_contact, 0)], -1)
+    return SupportPlan(
+        strategy=strategy, nodes=np.vstack([first.nodes, second.nodes]),
+        edges=np.vstack([first.edges, second.edges + off]),
+        edge_radius=np.concatenate([first.edge_radius, second.edge_radius]),
+        tip_points=np.vstack([first.tip_points, second.tip_points]),
+        tip_nodes=np.concatenate([first.tip_nodes, second.tip_nodes + off]),
+        tip_diameters=np.concatenate([first.tip_diameters, second.tip_diameters]),
+        tip_contact=np.concatenate([first.tip_contact, tip_contact]),
+        feet=np.concatenate([first.feet, second.feet + off]),
+        braces=np.vstack([first.braces, second.braces + off]),
+    )
+
+
+def _plan_tree(mesh, contacts, settings):
+    """Tree routing; a contact with no clear way down for a branch gets a straight post."""
+    from .routing import plan_tree  # imported on use: routing pulls in the free-space graph
+
+    plan = plan_tree(mesh, contacts, settings)
+    left = np.setdiff1d(np.arange(len(contacts)), plan.tip_contact[plan.tip_contact >= 0])
+    if len(left) == 0:
+        return plan
+    sub = Contacts(*(getattr(contacts, f)[left] for f in ("points", "normals", "kinds", "diameters", "loads",
+                                                           "peak_layers")))
+    return join_plans("tree", plan, plan_straight(mesh, sub, settings), left)
+
+
+#: Strategy name -> function (mesh, contacts, settings) -> SupportPlan.
+STRATEGIES: dict[str, Callable[[trimesh.Trimesh, Contacts, Settings], SupportPlan]] = {
+    "straight": plan_straight,
+    "tree": _plan_tree,
+}
+
+
+def get_strategy(name: str):
+    """The strategy function registered under ``name``.
+
+    Raises
+    ------
+    SettingsError
+        ``name`` is not registered; the message lists the valid names.
+
+    Examples
+    --------
+    >>> get_strategy("pillars")
+    Traceback (most recent call last):
+    ...
+    supportgen.errors.SettingsError: unknown strategy 'pillars'; valid strategies: straight, tree
+    """
+    try:
+        return STRATEGIES[name]
+    except KeyError:
+        raise SettingsError(f"unknown strategy '{name}'; valid strategies: {', '.join(STRATEGIES)}") from None
