@@ -1,0 +1,397 @@
+"""Pressure field of a layer: the thin-film Poisson problem and its torsion constant.
+
+A cured layer pulled straight off the film draws resin into the widening gap.
+Thin-film (Reynolds) flow gives the pressure ``p = -(12 mu hdot / h^3) phi`` with
+``laplacian(phi) = -1`` on the layer and ``phi = 0`` on its open boundary: ``phi``
+is Prandtl's torsion function, ``J = 4 int(phi dA)`` the Saint-Venant torsion
+constant, and the force is ``F = 3 mu hdot J / h^3`` (Stefan's law for a disc).
+The laws that turn ``J`` into a force per mechanism are in
+:mod:`supportgen.physics.separation`; the per-layer walk that shares them among
+contacts is :mod:`supportgen.physics.loadpath`.
+
+Discretisation
+--------------
+Nodes are pixel (or coarse cell) centres.  A coarse cell of side ``H = s*h``
+carries the covered fraction ``f`` of its ``s x s`` pixels; cells with
+``f >= 1/2`` are unknowns.  Toward a cell outside, the boundary is placed at
+``d = (f_in + f_out - 1/2) H`` from the centre and ``phi = 0`` is imposed there by
+linear extrapolation to a ghost node, which only adds ``H/d`` to the diagonal:
+the matrix stays symmetric positive definite (Gibou, Fedkiw, Cheng & Kang 2002).
+At ``s = 1`` this puts the boundary on the pixel edges, so the region solved is
+exactly the union of cured pixels, with an ``O(h^2)`` error (convergence table
+in ``benchmarks/bench_forces.py``; a square 32 pixels wide is 0.4 % high).
+
+Coarse grid.  With ``w = 2A/P`` (area over half the pixel-edge perimeter; about
+``0.79 R`` for a pixelated disc, the width for a strip) the coarse factor is the
+largest ``s`` with ``w / (s h) >= 12``.  :func:`solve_components` places the blocks
+at multiples of ``s`` in the image, so a part meets them at any offset in
+``[0, s)``.  Measured against the pixel solve over a disc, a 5:1 rectangle, a
+ring, an L and a triangle at eight block offsets spread over ``[0, s)``, the
+coarse ``J`` is within 1.1 % at ``w/H >= 12`` (2.4 % at ``w/H`` = 9, 4 % at 3):
+the stated bound is 2 % (``python benchmarks/bench_forces.py --convergence``
+prints the table).  Kept solves (:mod:`supportgen.physics.loadpath`) return the fresh
+coarse answer to a 1e-10 residual, so they add nothing to the bound.
+
+Examples
+--------
+>>> import numpy as np
+>>> yy, xx = np.mgrid[-60:60, -60:60] + 0.5
+>>> disc = xx**2 + yy**2 < 50**2                      # R = 50 pixels of 0.1 mm
+>>> J = torsion_constant(disc, 0.1)
+>>> bool(abs(J / (np.pi * 5.0**4 / 2) - 1) < 0.01)
+True
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.sparse as sparse
+import scipy.sparse.linalg as spl
+from scipy import ndimage
+
+from ..analysis.runlength import mask_runs
+from ..errors import SettingsError
+
+__all__ = [
+    "pressure_shape",
+    "torsion_constant",
+    "coarse_factor",
+    "solve_runs",
+    "solve_components",
+    "sealed_cavities",
+    "CELLS_ACROSS",
+]
+
+#: Coarse cells across the half-width ``2A/P`` the coarse grid keeps (see Notes above).
+CELLS_ACROSS = 12
+_STEPS = ((-1, 0), (0, -1), (0, 1), (1, 0))          # up, left, right, down: index order
+
+
+def _system(frac: np.ndarray):
+    """Cells solved (``frac >= 1/2``) and the SPD matrix of the scheme (Notes above), scaled by H^2.
+
+    Built column by column in index order (up, left, self, right, down), so the CSC
+    arrays come out sorted without a sort; O(cells).
+    """
+    inside = frac >= 0.5
+    n = int(inside.sum())
+    pin, pfr = np.pad(inside, 1), np.pad(frac, 1)
+    index = np.full(pin.shape, -1, dtype=np.int64)
+    index[pin] = np.arange(n)
+    f = frac[inside]
+    diag = np.zeros(n)
+    cols, ok = np.zeros((n, 5), np.int64), np.zeros((n, 5), bool)
+    vals = np.full((n, 5), -1.0)
+    ny, nx = pin.shape
+    for slot, (dr, dc) in zip((0, 1, 3, 4), _STEPS):
+        sl = (slice(1 + dr, ny - 1 + dr), slice(1 + dc, nx - 1 + dc))
+        nb = pin[sl][inside]
+        d = np.clip(f + pfr[sl][inside] - 0.5, 0.02, 1.0)
+        diag += np.where(nb, 1.0, 1.0 / d)
+        cols[:, slot], ok[:, slot] = index[sl][inside], nb
+    cols[:, 2], vals[:, 2], ok[:, 2] = np.arange(n), diag, True
+    indptr = np.concatenate([[0], np.cumsum(ok.sum(axis=1))])
+    return inside, sparse.csc_matrix((vals[ok], cols[ok], indptr), shape=(n, n))
+
+
+def _solve_fraction(frac: np.ndarray, cell_mm: float) -> np.ndarray:
+    """phi on cells of side ``cell_mm`` covered by fraction ``frac`` (0 outside)."""
+    return _factor_solve(frac, cell_mm)[0]
+
+
+#: Conjugate-gradient steps with a kept factorisation as preconditioner before
+#: factorising afresh, and the residual (max norm, relative to the right-hand side)
+#: they must reach: the reused answer is the fresh one to this tolerance, so reuse
+#: adds nothing to the stated error bound.
+REFINE_STEPS, REFINE_TOL = 8, 1e-10
+
+
+def _pcg(a, b, lu):
+    """Preconditioned CG on ``a x = b`` from ``lu.solve(b)``; x, or None if not converged."""
+    x = lu.solve(b)
+    r = b - a @ x
+    z = lu.solve(r)
+    p, rz = z.copy(), r @ z
+    for _ in range(REFINE_STEPS):
+        if np.abs(r).max() <= REFINE_TOL * np.abs(b).max():
+            return x
+        q = a @ p
+        alpha = rz / (p @ q)
+        x, r = x + alpha * p, r - alpha * q
+        z = lu.solve(r)
+        rz, rz_old = r @ z, rz
+        p = z + (rz / rz_old) * p
+    return x if np.abs(r).max() <= REFINE_TOL * np.abs(b).max() else None
+
+
+def _factor_solve(frac: np.ndarray, cell_mm: float, kept=None):
+    """phi on cells, and the state ``(frac, inside, lu, phi)`` a later call can reuse.
+
+    ``kept`` (a state from an earlier call, or None): the same ``frac`` returns its
+    phi unchanged; the same solved cells (``frac >= 1/2``, the coarse mask) keep its
+    LU factors as the preconditioner of conjugate gradients (the matrices differ only
+    in boundary diagonal terms, so a few steps reach ``REFINE_TOL``); otherwise, or
+    if CG has not converged in ``REFINE_STEPS``, ``scipy.sparse.linalg.splu``
+    factorises afresh.
+    """
+    if kept is not None and kept[0].shape == frac.shape and np.array_equal(kept[0], frac):
+        return kept[3], kept
+    phi = np.zeros(frac.shape)
+    inside, a = _system(frac)
+    n = a.shape[0]
+    if n == 0:
+        return phi, (frac, inside, None, phi)
+    b = np.full(n, cell_mm * cell_mm)
+    if kept is not None and kept[2] is not None and np.array_equal(kept[1], inside):
+        x = _pcg(a, b, kept[2])
+        if x is not None:
+            phi[inside] = x
+            return phi, (frac, inside, kept[2], phi)
+    lu = spl.splu(a, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+    phi[inside] = lu.solve(b)
+    return phi, (frac, inside, lu, phi)
+
+
+def _run_fraction(rows, starts, ends, s: int):
+    """Covered fraction of the ``s x s`` blocks (aligned to multiples of ``s``) under runs.
+
+    Returns the (nI, nJ) fractions and the block index (I0, J0) of their corner.
+    Cost O(runs + nI nJ s).
+    """
+    i0, j0 = int(rows.min()) // s, int(starts.min()) // s
+    ni, nj = int(rows.max()) // s - i0 + 1, (int(ends.max()) - 1) // s - j0 + 1
+    width = nj * s + 1
+    bi = rows // s - i0
+    diff = np.bincount(bi * width + starts - j0 * s, minlength=ni * width).astype(np.int64)
+    diff -= np.bincount(bi * width + ends - j0 * s, minlength=ni * width)
+    cover = np.cumsum(diff.reshape(ni, width)[:, :-1], axis=1)
+    return cover.reshape(ni, nj, s).sum(axis=2) / float(s * s), (i0, j0)
+
+
+def solve_runs(rows, starts, ends, edges: int, pixel_mm: float, origin, kept=None, factor=None):
+    """J, area, pressure samples and ``((s, I0, J0), state)`` of one component given by its runs.
+
+    ``kept``: dict of earlier states by block key ``(s, I0, J0)``; the one with this
+    component's key, if any, is offered to :func:`_factor_solve`.
+    """
+    area = int((ends - starts).sum())
+    s = int(coarse_factor(area, edges)) if factor is None else max(1, int(factor))
+    frac, (i0, j0) = _run_fraction(rows, starts, ends, s)
+    cell = s * pixel_mm
+    phi, state = _factor_solve(frac, cell, None if kept is None else kept.get((s, i0, j0)))
+    w = phi * frac * cell * cell
+    r, c = np.nonzero(w > 0)
+    pts = np.column_stack([origin[0] + ((j0 + c) * s + (s - 1) / 2) * pixel_mm,
+                           origin[1] + ((i0 + r) * s + (s - 1) / 2) * pixel_mm])
+    return 4.0 * float(w.sum()), area * pixel_mm**2, pts, w[r, c], ((s, i0, j0), state)
+
+
+def _pads(mask: np.ndarray, s: int) -> tuple[int, int]:
+    """Pixels padded before row 0 and column 0 so the blocks sit centred on the mask."""
+    return ((-mask.shape[0]) % s) // 2, ((-mask.shape[1]) % s) // 2
+
+
+def _block_fraction(mask: np.ndarray, s: int) -> np.ndarray:
+    """Covered fraction of each ``s x s`` block (blocks centred, see :func:`_pads`)."""
+    if s == 1:
+        return mask.astype(float)
+    (ny, nx), (py, px) = mask.shape, _pads(mask, s)
+    m = np.pad(mask, ((py, (-ny) % s - py), (px, (-nx) % s - px)))
+    return m.reshape(m.shape[0] // s, s, m.shape[1] // s, s).mean(axis=(1, 3))
+
+
+def _check_mask(mask, pixel_mm) -> np.ndarray:
+    mask = np.asarray(mask)
+    if mask.ndim != 2 or mask.dtype != bool:
+        raise SettingsError(f"layer mask has shape {mask.shape} and dtype {mask.dtype}; pass a 2-D bool array")
+    if not (np.isfinite(pixel_mm) and pixel_mm > 0):
+        raise SettingsError(f"pixel_mm = {pixel_mm!r}; pass a positive pixel pitch in mm")
+    return mask
+
+
+def pressure_shape(mask: np.ndarray, pixel_mm: float, factor: int = 1) -> np.ndarray:
+    """Prandtl torsion function of a layer: ``laplacian(phi) = -1``, ``phi = 0`` outside.
+
+    Parameters
+    ----------
+    mask : (ny, nx) bool ndarray
+        Cured pixels.  The region solved is the union of the pixel squares.
+    pixel_mm : float
+        Pixel pitch (mm).
+    factor : int, optional
+        Solve on cells of ``factor x factor`` pixels and spread back (see the module
+        Notes for the error bound); 1 solves on the pixels.
+
+    Returns
+    -------
+    (ny, nx) float ndarray
+        phi (mm^2), zero outside the mask.  The squeeze-film pressure is
+        ``-(12 mu hdot / h^3) phi``.
+
+    Raises
+    ------
+    SettingsError
+        Mask not 2-D bool, or pixel pitch not positive.
+
+    Notes
+    -----
+    One sparse direct solve of ``n / factor^2`` unknowns (n cured pixels).
+
+    References
+    ----------
+    F. Gibou, R. Fedkiw, L.-T. Cheng, M. Kang, "A second-order-accurate symmetric
+    discretization of the Poisson equation on irregular domains", J. Comput. Phys.
+    176:205-227 (2002).  Hamrock, Schmid & Jacobson, Fundamentals of Fluid Film
+    Lubrication (2004), Reynolds equation.
+    """
+    mask = _check_mask(mask, pixel_mm)
+    s = max(1, int(factor))
+    phi = _solve_fraction(_block_fraction(mask, s), s * pixel_mm)
+    if s > 1:
+        py, px = _pads(mask, s)
+        phi = np.repeat(np.repeat(phi, s, 0), s, 1)[py: py + mask.shape[0], px: px + mask.shape[1]] * mask
+    return phi
+
+
+def torsion_constant(mask: np.ndarray, pixel_mm: float, factor: int = 1) -> float:
+    """Saint-Venant torsion constant ``J = 4 int(phi dA)`` of a layer mask (mm^4).
+
+    Parameters
+    ----------
+    mask : (ny, nx) bool ndarray
+        Cured pixels.
+    pixel_mm : float
+        Pixel pitch (mm).
+    factor : int, optional
+        Coarse factor, as in :func:`pressure_shape`.
+
+    Returns
+    -------
+    float
+        J in mm^4; a disc of radius R gives ``pi R^4 / 2``.
+
+    Notes
+    -----
+    Coarse cells are weighted by their covered fraction.  Cost as
+    :func:`pressure_shape`.
+
+    References
+    ----------
+    Timoshenko & Goodier, Theory of Elasticity, 3rd ed. (1970), torsion chapter.
+    """
+    mask = _check_mask(mask, pixel_mm)
+    s = max(1, int(factor))
+    frac = _block_fraction(mask, s)
+    phi = _solve_fraction(frac, s * pixel_mm)
+    return float(4.0 * (phi * frac).sum() * (s * pixel_mm) ** 2)
+
+
+def coarse_factor(area_px: np.ndarray, edges_px: np.ndarray) -> np.ndarray:
+    """Largest coarse factor keeping ``CELLS_ACROSS`` cells across ``w = 2A/P``.
+
+    ``area_px`` counts pixels, ``edges_px`` counts pixel edges between the region
+    and the outside; returns integers >= 1.
+    """
+    w = 2.0 * np.asarray(area_px, float) / np.maximum(np.asarray(edges_px, float), 1.0)
+    return np.maximum(1, np.floor(w / CELLS_ACROSS)).astype(int)
+
+
+def _edges(crop: np.ndarray) -> int:
+    p = np.pad(crop, 1)
+    return int((p[1:, :] != p[:-1, :]).sum() + (p[:, 1:] != p[:, :-1]).sum())
+
+
+def solve_components(labels: np.ndarray, ids, pixel_mm: float, origin=(0.0, 0.0), objects=None,
+                     factor: int | None = None):
+    """Torsion constant and pressure samples of chosen labelled components.
+
+    Parameters
+    ----------
+    labels : (ny, nx) int ndarray
+        Component labels (0 empty), e.g. from ``scipy.ndimage.label``.
+    ids : iterable of int
+        Labels to solve.
+    pixel_mm : float
+        Pixel pitch (mm).
+    origin : (x0, y0)
+        Centre of pixel ``[0, 0]`` (mm).
+    objects : list of slices, optional
+        ``scipy.ndimage.find_objects(labels)``, if already known.
+    factor : int, optional
+        Coarse factor for every component; default :func:`coarse_factor` of each.
+
+    Returns
+    -------
+    dict
+        label -> ``(J_mm4, area_mm2, points (k, 2), weights (k,))``: the weights are
+        ``phi dA`` at the sample points (pixel or coarse cell centres) and sum to J/4.
+
+    Notes
+    -----
+    Each component gets its own coarse factor (:func:`coarse_factor`); its blocks sit
+    at multiples of ``s`` in ``labels`` (not centred on the component), so a
+    component's coarse mask does not move with its bounding box and a solve can be
+    kept from layer to layer (:mod:`supportgen.physics.loadpath`).  Cost: O(pixels of each
+    component's box) to find its runs, then one sparse LU of about ``A_i / s_i^2``
+    unknowns, i.e. roughly ``144 A / w^2`` for ``w = 2A/P``.
+    """
+    objects = ndimage.find_objects(labels) if objects is None else objects
+    out = {}
+    for i in ids:
+        sl = objects[i - 1]
+        crop = labels[sl] == i
+        rows, starts, ends = mask_runs(crop, sl[0].start, sl[1].start)
+        out[i] = solve_runs(rows, starts, ends, _edges(crop), pixel_mm, origin, factor=factor)[:4]
+    return out
+
+
+def sealed_cavities(mask: np.ndarray, below_mask: np.ndarray | None = None,
+                    below_sealed: np.ndarray | None = None) -> np.ndarray:
+    """Holes of a layer that no resin can reach: they pull like cured area.
+
+    Parameters
+    ----------
+    mask : (ny, nx) bool ndarray
+        This layer.
+    below_mask, below_sealed : (ny, nx) bool ndarray or None
+        The layer printed before, and its sealed pixels (this function's result for
+        it).  ``None``: nothing below, every hole is vented.
+
+    Returns
+    -------
+    (ny, nx) bool ndarray
+        Empty pixels of holes that neither touch the grid border nor overlap an
+        empty, vented pixel of the layer below.
+
+    Notes
+    -----
+    Empty space is labelled with 4-connectivity (the dual of the 8-connected parts)
+    inside the layer's bounding box; cost O(pixels of the box).
+
+    Examples
+    --------
+    >>> cup = np.pad(np.ones((5, 5), bool), 1)
+    >>> ring = cup.copy(); ring[3, 3] = False
+    >>> int(sealed_cavities(ring, cup, np.zeros_like(cup)).sum())
+    1
+    >>> int(sealed_cavities(ring, ring, np.zeros_like(cup)).sum())
+    0
+    """
+    sealed = np.zeros(mask.shape, bool)
+    if below_mask is None or not mask.any():
+        return sealed
+    rows, cols = np.nonzero(mask.any(axis=1))[0], np.nonzero(mask.any(axis=0))[0]
+    sl = (slice(max(rows[0] - 1, 0), rows[-1] + 2), slice(max(cols[0] - 1, 0), cols[-1] + 2))
+    lab, n = ndimage.label(~mask[sl])
+    open_ = np.zeros(n + 1, bool)
+    open_[0] = True
+    for edge in (lab[0], lab[-1], lab[:, 0], lab[:, -1]):
+        open_[edge] = True
+    if open_.all():
+        return sealed
+    vented_below = ~below_mask[sl]
+    if below_sealed is not None:
+        vented_below &= ~below_sealed[sl]
+    open_[lab[vented_below]] = True
+    sealed[sl] = ~open_[lab]
+    return sealed
