@@ -171,7 +171,7 @@ def main() -> None:
     base, name = base_mesh()
     print(machine_line())
     print(f"model: {name}, longest side {args.size:g} mm; pixel {settings.printer.pixel_mm} mm, layer "
-          f"{settings.printer.layer_mm} mm, strategy {args.strategy}, seed {settings.supports.seed}, "
+          f"{settings.printer.layer_mm} mm, strategy {args.strategy}, seed {settings.rules.seed}, "
           f"best of {args.repeat} run(s) per point")
 
     # Warm-up (untimed): first calls load modules and fill caches.

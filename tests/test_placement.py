@@ -15,7 +15,7 @@ from supportgen.settings import Settings
 def test_lowest_point_sits_at_the_lift_and_xy_is_kept(x, y, z, lift):
     box = trimesh.creation.box((10, 8, 6))
     box.apply_translation((x, y, z))
-    p = place(box, Settings().override(lift_mm=lift))
+    p = place(box, Settings().override(elevation_mm=lift))
     assert p.mesh.bounds[0, 2] == pytest.approx(lift)
     assert np.allclose(p.mesh.bounds[:, :2], box.bounds[:, :2])
     assert box.bounds[0, 2] == pytest.approx(z - 3)  # the input is not modified

@@ -51,6 +51,7 @@ import trimesh
 from scipy.sparse import coo_matrix, csr_matrix
 from scipy.sparse.csgraph import breadth_first_order, connected_components
 
+from ..constants import EPS_FLOOR, MERGE_FRACTION
 from ..errors import MeshError
 
 __all__ = ["HOLE_FRACTION", "repair_arrays"]
@@ -174,7 +175,7 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
 def _merge(v, f, diag):
     """Merge vertices equal to 1e-9 of the diagonal (below float32 STL resolution)."""
     used = np.unique(f)
-    key = np.round((v[used] - v[used].min(axis=0)) / (1e-9 * diag)).astype(np.int64)
+    key = np.round((v[used] - v[used].min(axis=0)) / (MERGE_FRACTION * diag)).astype(np.int64)
     _, first, inverse = np.unique(key, axis=0, return_index=True, return_inverse=True)
     remap = np.full(len(v), -1, dtype=np.int64)
     remap[used] = inverse.ravel()
@@ -285,7 +286,7 @@ def _fill_holes(v, f, edges, label, hole_fraction, repairs):
     np.maximum.at(limit, loop, hole_fraction * shell_area)
     ok = ~pinched & (fan <= limit)
     if not ok.all():
-        worst = float((fan[~ok] / np.maximum(limit[~ok] / hole_fraction, 1e-300)).max())
+        worst = float((fan[~ok] / np.maximum(limit[~ok] / hole_fraction, EPS_FLOOR)).max())
         why = (" whose edges touch" if pinched[~ok].any() else
                f", the largest would cover {100 * worst:.0f}% of its shell's surface "
                f"(limit {100 * hole_fraction:.0f}%)")
