@@ -30,9 +30,8 @@ import numpy as np
 import trimesh
 from scipy import ndimage
 
-from supportgen.physics import pressure as pz
-from supportgen.physics import separation as laws
 from supportgen.analysis.layers import Grid, iter_layers
+from supportgen.physics import pressure as pz
 from supportgen.physics.loadpath import ForceTracker
 from supportgen.settings import Settings
 

@@ -25,9 +25,9 @@ from pathlib import Path
 import numpy as np
 import trimesh
 
+from supportgen.settings import Settings
 from supportgen.supports.plan import Contacts
 from supportgen.supports.routing import plan_tree
-from supportgen.settings import Settings
 
 CORPUS = Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus"
 

@@ -41,8 +41,8 @@ import numpy as np
 import trimesh
 
 import supportgen
-from supportgen.runs.bench import grid_settings, machine_line, measure_peak
 from supportgen.analysis.placement import place
+from supportgen.runs.bench import grid_settings, machine_line, measure_peak
 
 CORPUS = (Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus").resolve()
 

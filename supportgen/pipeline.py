@@ -19,22 +19,22 @@ from pathlib import Path
 import numpy as np
 import trimesh
 
+from .analysis.layers import Grid, LayerStack, analyse_layers
+from .analysis.overhangs import find_overhangs
+from .analysis.placement import place
+from .analysis.verify import Verification, speck_area_mm2, verify
 from .constants import OFFSET_MM
+from .io.meshio import LoadedMesh, atomic_write, atomic_write_text, load_mesh, part_name, prepare_mesh, write_mesh
+from .physics.loadpath import ForceProfile, ForceTracker
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
-from .supports.contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
-from .physics.loadpath import ForceProfile, ForceTracker
-from .supports.geometry import Solids, combine
-from .analysis.layers import Grid, LayerStack, analyse_layers
-from .io.meshio import LoadedMesh, atomic_write, atomic_write_text, load_mesh, part_name, prepare_mesh, write_mesh
-from .analysis.overhangs import find_overhangs
-from .analysis.placement import place
-from .supports.plan import Contacts, SupportPlan
 from .settings import Settings, load_settings
+from .supports.contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
+from .supports.geometry import Solids, combine
+from .supports.plan import Contacts, SupportPlan
 from .supports.sizing import SizedPlan, over_capacity, size_plan, tip_diameter
 from .supports.strategies import get_strategy
-from .analysis.verify import Verification, speck_area_mm2, verify
 
 __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
 

@@ -33,10 +33,11 @@ import difflib
 import math
 import tomllib
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
 from types import MappingProxyType
-from typing import Any, Mapping
+from typing import Any
 
 from .errors import SettingsError
 
@@ -216,7 +217,7 @@ class Settings:
                 f"setting 'tip_min_mm' ({s.tip_min_mm} mm) is under 2 pixels of {self.printer.pixel_mm} mm; "
                 "raise it or use a finer printer")
 
-    def override(self, values: Mapping[str, Any] | None = None, /, **kwargs) -> "Settings":
+    def override(self, values: Mapping[str, Any] | None = None, /, **kwargs) -> Settings:
         """Return a copy with the given values replaced.
 
         Keys are field names (``contact_spacing_mm``) or ``group.name``

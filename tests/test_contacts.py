@@ -5,10 +5,10 @@ import pytest
 import trimesh
 from scipy.spatial import cKDTree
 
-from supportgen.supports.contacts import RSA_DENSITY, contacts_at, expected_count, merge_contacts, sample_overhangs
 from supportgen.analysis.overhangs import find_overhangs
 from supportgen.analysis.placement import place
 from supportgen.settings import Settings
+from supportgen.supports.contacts import RSA_DENSITY, contacts_at, expected_count, merge_contacts, sample_overhangs
 
 
 def _contacts(mesh, settings):

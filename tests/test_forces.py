@@ -12,11 +12,11 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
+from supportgen.analysis.layers import Grid, Layer
+from supportgen.errors import SettingsError
 from supportgen.physics import pressure as pz
 from supportgen.physics import separation as laws
 from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
-from supportgen.errors import SettingsError
-from supportgen.analysis.layers import Grid, Layer
 from supportgen.physics.loadpath import ForceTracker
 from supportgen.settings import Settings
 

@@ -5,11 +5,11 @@ import numpy as np
 import pytest
 import trimesh
 
-from supportgen.supports.contacts import sample_overhangs
-from supportgen.supports.geometry import combine, frustum, to_manifold
 from supportgen.analysis.overhangs import find_overhangs
 from supportgen.analysis.placement import place
 from supportgen.settings import Settings
+from supportgen.supports.contacts import sample_overhangs
+from supportgen.supports.geometry import combine, frustum, to_manifold
 from supportgen.supports.strategies import plan_straight
 
 
@@ -72,8 +72,8 @@ def test_tree_gives_every_contact_a_way_down():
     # (followed through the plan graph with networkx, a reference library).
     import networkx as nx
 
-    from supportgen.supports.contacts import sample_overhangs as sample
     from supportgen.runs.demo import demo_part
+    from supportgen.supports.contacts import sample_overhangs as sample
     from supportgen.supports.strategies import get_strategy
 
     s = Settings()

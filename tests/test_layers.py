@@ -12,19 +12,22 @@ which for a convex polygon boundary of perimeter P is at most 2*P*delta + pi*del
 from __future__ import annotations
 
 import json
-from functools import lru_cache
+from functools import cache
 from pathlib import Path
 
 import numpy as np
 import pytest
 import trimesh
-from hypothesis import given, settings as hsettings, strategies as st
+from hypothesis import given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 from scipy import ndimage
-from shapely.geometry import LineString, Polygon, box as sbox
+from shapely.geometry import LineString, Polygon
+from shapely.geometry import box as sbox
 from shapely.ops import unary_union
 
-from supportgen.errors import MeshError, SettingsError
 from supportgen.analysis.layers import Grid, analyse_layers, component_stats, iter_layers
+from supportgen.errors import MeshError, SettingsError
 
 m3 = pytest.importorskip("manifold3d")
 CORPUS = Path(__file__).parents[1] / ".." / "shared" / "corpus"
@@ -215,7 +218,7 @@ def test_lifted_ball_is_one_island_at_its_lowest_layer():
     assert isl.area_mm2 == pytest.approx(isl.mask.sum() * p * p)
 
 
-@lru_cache(maxsize=None)
+@cache
 def _cones_plate():
     """A plate (8-10 mm up) held by four downward cones whose tips are at different heights."""
     tips = ((2.37, 3.11, 2.0), (12.62, 2.93, 2.6), (3.08, 12.71, 3.3), (13.18, 13.39, 4.1))

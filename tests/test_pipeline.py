@@ -8,8 +8,8 @@ import shapely
 import trimesh
 
 import supportgen
-from supportgen.runs.demo import DEMO_PARTS, demo_part
 from supportgen.report.document import REPORT_KEYS
+from supportgen.runs.demo import DEMO_PARTS, demo_part
 
 
 def _islands_by_sections(mesh: trimesh.Trimesh, layer_mm: float) -> list[float]:

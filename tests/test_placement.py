@@ -3,10 +3,12 @@
 import numpy as np
 import pytest
 import trimesh
-from hypothesis import given, settings as hsettings, strategies as st
+from hypothesis import given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 
-from supportgen.errors import PlacementError
 from supportgen.analysis.placement import place
+from supportgen.errors import PlacementError
 from supportgen.settings import Settings
 
 

@@ -17,9 +17,9 @@ import trimesh
 from networkx.algorithms.approximation import steiner_tree
 
 from supportgen.errors import SettingsError
+from supportgen.settings import Settings
 from supportgen.supports.plan import Contacts
 from supportgen.supports.routing import clearance_field, free_space_graph, plan_tree
-from supportgen.settings import Settings
 
 CORPUS = Path(__file__).parents[1] / ".." / "shared" / "corpus"
 

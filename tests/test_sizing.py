@@ -14,14 +14,27 @@ import math
 import numpy as np
 import pytest
 import trimesh
-from hypothesis import given, settings as hsettings, strategies as st
+from hypothesis import given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 
-from supportgen.supports.plan import Contacts, SupportPlan
 from supportgen.settings import Settings
+from supportgen.supports.plan import Contacts, SupportPlan
 from supportgen.supports.sizing import (
-    EFFECTIVE_LENGTH, MAX_SLENDERNESS, SizingError, column_critical_load, densify_points, euler_critical_load,
-    flow_loads, johnson_critical_load, over_capacity, required_post_diameter, required_tip_diameter, size_plan,
-    tip_capacity, tip_diameter,
+    EFFECTIVE_LENGTH,
+    MAX_SLENDERNESS,
+    SizingError,
+    column_critical_load,
+    densify_points,
+    euler_critical_load,
+    flow_loads,
+    johnson_critical_load,
+    over_capacity,
+    required_post_diameter,
+    required_tip_diameter,
+    size_plan,
+    tip_capacity,
+    tip_diameter,
 )
 
 S = Settings()

@@ -20,8 +20,8 @@ Examples
 
 from __future__ import annotations
 
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
-from typing import Callable, Iterable, Iterator
 
 import numpy as np
 import trimesh
@@ -58,7 +58,7 @@ class Grid:
         return (self.ny, self.nx)
 
     @classmethod
-    def covering(cls, bounds, pixel_mm: float, pad: int = 2) -> "Grid":
+    def covering(cls, bounds, pixel_mm: float, pad: int = 2) -> Grid:
         """A grid over the x/y extent of ``bounds`` ((2, 3) array), ``pad`` pixels wider each side."""
         lo = np.floor(np.asarray(bounds)[0, :2] / pixel_mm) - pad
         hi = np.ceil(np.asarray(bounds)[1, :2] / pixel_mm) + pad

@@ -26,7 +26,7 @@ References
 
 from __future__ import annotations
 
-from typing import Iterator
+from collections.abc import Iterator
 
 import numpy as np
 import trimesh

@@ -26,8 +26,8 @@ import numpy as np
 import trimesh
 
 from ..constants import EPS_REL
-from .layers import LayerStack, analyse_layers
 from ..settings import Settings
+from .layers import LayerStack, analyse_layers
 
 __all__ = ["Verification", "verify", "speck_area_mm2"]
 

@@ -120,8 +120,8 @@ def cmd_profiles(args) -> int:
 
 
 def cmd_calibrate(args) -> int:
-    from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
     from supportgen.io.meshio import atomic_write_text
+    from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
 
     settings = settings_from(args)
     fit = fit_calibration(read_measurements(args.measurements), settings)

@@ -37,8 +37,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..constants import EPS_FLOOR, EPS_REL, EPS_ZERO
 from ..analysis.runlength import box_runs, edge_components, paint_runs, run_overlaps
+from ..constants import EPS_FLOOR, EPS_REL, EPS_ZERO
 from .pressure import solve_runs
 from .separation import READS_LABELS, LayerShape, separation
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 import numpy as np
 import trimesh
@@ -89,7 +89,7 @@ def provenance(settings: Settings, source_path: str | None) -> dict:
                 h.update(block)
         digest = h.hexdigest()
     return {"tool_version": __version__,
-            "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            "created": datetime.now(UTC).isoformat(timespec="seconds"),
             "settings_digest": hashlib.sha256(to_json(settings.to_dict()).encode()).hexdigest(),
             "input_sha256": digest}
 

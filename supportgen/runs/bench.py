@@ -24,13 +24,13 @@ about twofold, so the stage times then overstate.
 
 from __future__ import annotations
 
-import os
 import csv
 import ctypes
 import dataclasses
 import io
 import json
 import math
+import os
 import resource
 import sys
 import time

@@ -50,8 +50,8 @@ from typing import NamedTuple
 import numpy as np
 
 from ..constants import EPS_REL, EPS_ZERO
-from .plan import SupportPlan
 from ..settings import Settings
+from .plan import SupportPlan
 
 __all__ = ["EFFECTIVE_LENGTH", "EffectiveLength", "MAX_SLENDERNESS", "BRACE_MIN_ANGLE_DEG", "PostRuns", "sway_held",
            "post_runs", "add_braces"]

@@ -23,11 +23,11 @@ import numpy as np
 import trimesh
 from scipy.spatial import cKDTree
 
+from ..analysis.overhangs import Overhangs
 from ..constants import EPS_REL
 from ..errors import SizingError
-from ..analysis.overhangs import Overhangs
-from .plan import Contacts
 from ..settings import Settings
+from .plan import Contacts
 
 __all__ = ["RSA_DENSITY", "poisson_disk", "sample_overhangs", "contacts_at", "merge_contacts",
            "expected_count", "densify_points"]

@@ -25,8 +25,8 @@ drop to the base is blocked.  This module provides both.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 import networkx as nx
 import numpy as np
@@ -285,7 +285,7 @@ def free_space_graph(mesh: trimesh.Trimesh, settings, field: Clearance, bounds: 
         w = edge_cost(pos[src], pos[dst], area, cost)
         g.add_weighted_edges_from(zip(src.tolist(), dst.tolist(), w.tolist()))
     bottom = nodes[ijk[nodes, 2] == 0]
-    g.add_edges_from(((int(n), "base", {"weight": 0.0}) for n in bottom))
+    g.add_edges_from((int(n), "base", {"weight": 0.0}) for n in bottom)
     if len(nodes):
         cols = ijk[nodes, 0] * shape[1] + ijk[nodes, 1]
         xy = origin[:2] + np.indices(shape[:2]).reshape(2, -1).T * pitch

@@ -23,13 +23,13 @@ from dataclasses import dataclass
 
 import manifold3d as m3d
 import numpy as np
-import trimesh
 import shapely
+import trimesh
 
 from ..constants import EPS_REL, EPS_ZERO
 from ..errors import GeometryError
-from .plan import SupportPlan
 from ..settings import Settings
+from .plan import SupportPlan
 
 __all__ = ["Solids", "PHASES", "to_manifold", "to_trimesh", "frustum", "build_supports", "pinch_points", "combine"]
 

@@ -32,7 +32,7 @@ import numpy as np
 import trimesh
 
 from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO
-from .freespace import Clearance, Penalty, edge_cost, clearance_field, free_space_graph
+from .freespace import Clearance, Penalty, clearance_field, edge_cost, free_space_graph
 from .plan import Contacts, SupportPlan
 
 __all__ = ["Clearance", "clearance_field", "free_space_graph", "plan_tree"]

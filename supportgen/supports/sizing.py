@@ -40,14 +40,20 @@ import numpy as np
 import scipy.sparse as sparse
 import scipy.sparse.linalg as spla
 
+from ..errors import SizingError
+from ..settings import Settings
 from .bracing import (
-    BRACE_MIN_ANGLE_DEG, EFFECTIVE_LENGTH, MAX_SLENDERNESS, EffectiveLength, add_braces, post_runs, PostRuns,
+    BRACE_MIN_ANGLE_DEG,
+    EFFECTIVE_LENGTH,
+    MAX_SLENDERNESS,
+    EffectiveLength,
+    PostRuns,
+    add_braces,
+    post_runs,
     sway_held,
 )
 from .contacts import densify_points
-from ..errors import SizingError
 from .plan import SupportPlan
-from ..settings import Settings
 
 __all__ = [
     "EFFECTIVE_LENGTH", "EffectiveLength", "MAX_SLENDERNESS", "BRACE_MIN_ANGLE_DEG", "SizingError",

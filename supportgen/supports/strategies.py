@@ -15,16 +15,16 @@ by writing such a function and registering it in :data:`STRATEGIES`.
 
 from __future__ import annotations
 
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 import trimesh
 
 from ..constants import EPS_SMALL, OFFSET_MM
 from ..errors import SettingsError
+from ..settings import Settings
 from .freespace import surface_below
 from .plan import Contacts, SupportPlan
-from ..settings import Settings
 
 __all__ = ["STRATEGIES", "get_strategy", "plan_straight", "join_plans"]
 
