@@ -21,10 +21,19 @@ import trimesh
 
 from .analysis.layers import Grid, LayerStack, analyse_layers
 from .analysis.overhangs import find_overhangs
-from .analysis.placement import place
+from .analysis.placement import check_cures, place
 from .analysis.verify import Verification, speck_area_mm2, verify
 from .constants import OFFSET_MM
-from .io.meshio import LoadedMesh, atomic_write, atomic_write_text, load_mesh, part_name, prepare_mesh, write_mesh
+from .io.meshio import (
+    LoadedMesh,
+    atomic_write,
+    atomic_write_text,
+    load_mesh,
+    part_name,
+    prepare_mesh,
+    write_mesh,
+)
+from .io.units import scale_loaded, unit_factor
 from .physics.loadpath import ForceProfile, ForceTracker
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
@@ -164,7 +173,8 @@ def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Setting
 
 
 def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
-             name: str | None = None, centre: bool = False, progress: bool = False, **overrides) -> Result:
+             name: str | None = None, position: str = "auto", centre: bool = False, units: str = "mm",
+             scale: float = 1.0, group_bounds=None, progress: bool = False, **overrides) -> Result:
     """Support one part end to end.
 
     Parameters
@@ -177,8 +187,16 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         A name from :data:`supportgen.supports.strategies.STRATEGIES`.
     name : str, optional
         Name used for output files (default: the file's stem, or "part").
+    position : {"auto", "keep", "centre"}
+        x/y placement (:mod:`supportgen.analysis.placement`): keep the part where
+        it lies on the plate, else centre it (auto); keep strictly; or centre.
     centre : bool
-        Centre the part on the plate.
+        Same as ``position="centre"``.
+    units, scale : str, float
+        The file's length unit (``mm``, ``cm``, ``m``, ``in``) and a further factor;
+        the part is scaled to millimetres by their product before anything else.
+    group_bounds : (2, 3) array, optional
+        Bounds (mm, after scaling) of all parts placed together, so they move as one.
     progress : bool
         Progress bars over the layer passes.
     **overrides
@@ -206,7 +224,10 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
             name = name or part_name(source)
             loaded = load_mesh(source)
     with timer("placement"):
-        part = place(loaded.mesh, settings, centre=centre, name=name).mesh
+        loaded = scale_loaded(loaded, unit_factor(units, scale))
+        placed = place(loaded.mesh, settings, position="centre" if centre else position, name=name,
+                       group_bounds=group_bounds)
+        part = placed.mesh
     with timer("overhangs"):
         oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
     with timer("contacts"):
@@ -216,6 +237,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     with timer("layers"):
         stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm,
                                progress=progress and f"{name}: layers")
+        check_cures(stack.area_mm2, settings, name)
         # Island and reach points closer than the spacing to a contact are already held by it.
         contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), rules.contact_spacing_mm)
     densified = repaired = 0
@@ -256,7 +278,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     timer.seconds["total"] = time.perf_counter() - t_total
     records = RunRecords(name, None if isinstance(source, trimesh.Trimesh) else str(source), loaded, part, settings,
                          strategy, oh.area_mm2, contacts, plan, sized, solids, profile, stack, ver, densified,
-                         repaired, timer.seconds)
+                         repaired, timer.seconds, placed.warnings)
     return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, build_report(records), stack, profile, ver)
 
 

@@ -105,6 +105,8 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
     failures = []
     if not watertight:
         failures.append(f"{name}: the solid is not closed and oriented; it cannot be sliced reliably")
+    if float(stack.area_mm2.max(initial=0.0)) < speck_area_mm2(pr.pixel_mm):
+        failures.append(f"{name}: no layer cures more than a speck; the solid prints nothing (check its units)")
     speck_mm2 = speck_area_mm2(pr.pixel_mm)
     islands = [i for i in stack.islands if i.area_mm2 >= speck_mm2]
     specks = [i for i in stack.islands if i.area_mm2 < speck_mm2]

@@ -50,6 +50,7 @@ class RunRecords:
     contacts_added_by_densifying: int
     contacts_added_after_check: int
     timing_s: dict
+    placement_warnings: tuple[str, ...] = ()
 
 
 def collect_warnings(r: RunRecords) -> list[dict]:
@@ -57,6 +58,7 @@ def collect_warnings(r: RunRecords) -> list[dict]:
     name, rules, ver, plan = r.name, r.settings.rules, r.verification, r.plan
     warnings = [{"code": c, "message": m} for c, m in r.forces.warnings]
     warnings += [{"code": "repair", "message": f"{name}: {rep}"} for rep in r.loaded.repairs]
+    warnings += [{"code": "moved", "message": m} for m in r.placement_warnings]
     if r.sized.tips_over_capacity:
         warnings.append({"code": "tips-over-capacity",
                          "message": f"{name}: {r.sized.tips_over_capacity} tip(s) need more than {rules.tip_max_mm} mm "
