@@ -24,6 +24,7 @@ from .analysis.overhangs import find_overhangs
 from .analysis.placement import check_cures, place
 from .analysis.verify import Verification, speck_area_mm2, verify
 from .constants import OFFSET_MM
+from .errors import SupportGenError
 from .io.meshio import (
     LoadedMesh,
     atomic_write,
@@ -39,7 +40,7 @@ from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
 from .settings import Settings, load_settings
-from .supports.contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
+from .supports.contacts import add_unheld, contacts_at, densify_points, merge_contacts, sample_overhangs
 from .supports.geometry import Solids, combine
 from .supports.plan import Contacts, SupportPlan
 from .supports.sizing import SizedPlan, over_capacity, size_plan, tip_diameter
@@ -56,7 +57,7 @@ OUTPUTS = {"combined": ".supported.stl", "supports": ".supports.stl", "report": 
 #: than ``straight`` (benchmarks/compare_strategies.py).
 DEFAULT_STRATEGY = "tree"
 MAX_DENSIFY_ROUNDS = 4
-MAX_REPAIR_ROUNDS = 2
+MAX_REPAIR_ROUNDS = 4
 
 
 @dataclass(frozen=True)
@@ -138,24 +139,28 @@ def _resolve_settings(settings, overrides) -> Settings:
     return settings.override(overrides) if overrides else settings
 
 
-def _layer_contacts(part, stack: LayerStack, settings: Settings) -> Contacts:
-    """Contacts under every island and wherever a layer reaches too far.
+def _layer_contacts(part, stack: LayerStack, settings: Settings, contacts: Contacts, spacing_mm: float) -> Contacts:
+    """``contacts`` plus contacts under every island and wherever a layer reaches too far.
 
-    A point whose upward ray misses the part (a feature a pixel or two wide)
-    takes the nearest surface point within two layers and a pixel.
+    An island point is added unless a contact already holds it (a tip over it, not
+    above it: :func:`~supportgen.supports.contacts.add_unheld`); a reach point unless
+    a contact lies within ``spacing_mm``.  A point whose upward ray misses the part (a
+    feature a pixel or two wide) takes the nearest surface point within two layers
+    and a pixel.
     """
-    rules, lh = settings.rules, settings.printer.layer_mm
-    near = 2 * lh + settings.printer.pixel_mm
+    rules, pr = settings.rules, settings.printer
+    near = 2 * pr.layer_mm + pr.pixel_mm
     xyz = []
     for isl in stack.islands:
-        if isl.area_mm2 < speck_area_mm2(settings.printer.pixel_mm):
+        if isl.area_mm2 < speck_area_mm2(pr.pixel_mm):
             continue   # no tip can hold a speck; verify reports it
         xy = isl.points(rules.contact_spacing_mm, rules.seed)
-        xyz.append(np.column_stack([xy, np.full(len(xy), isl.z_mm - lh)]))
+        xyz.append(np.column_stack([xy, np.full(len(xy), isl.z_mm - pr.layer_mm)]))
     island = contacts_at(part, np.vstack(xyz) if xyz else np.zeros((0, 3)), "island", rules.tip_diameter_mm, near)
-    reach_xyz = [[*o.xy, o.z_mm - lh] for o in stack.overreach]
+    reach_xyz = [[*o.xy, o.z_mm - pr.layer_mm] for o in stack.overreach]
     reach = contacts_at(part, np.array(reach_xyz).reshape(-1, 3), "reach", rules.tip_diameter_mm, near)
-    return merge_contacts(island, reach, rules.contact_spacing_mm / 2)
+    held = add_unheld(contacts, island, rules.tip_min_mm / 2 + pr.pixel_mm, pr.layer_mm)
+    return merge_contacts(held, reach, spacing_mm)
 
 
 def _forces(part, grid: Grid, contacts: Contacts, settings: Settings, progress: bool) -> ForceProfile:
@@ -172,9 +177,8 @@ def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Setting
                             loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
 
 
-def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
-             name: str | None = None, position: str = "auto", centre: bool = False, units: str = "mm",
-             scale: float = 1.0, group_bounds=None, progress: bool = False, **overrides) -> Result:
+def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY,
+             **options) -> Result:
     """Support one part end to end.
 
     Parameters
@@ -211,6 +215,19 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     supportgen.errors.SupportGenError
         Bad input, settings or geometry; the message names the input.
     """
+    try:
+        return _generate(source, settings, strategy, **options)
+    except SupportGenError as exc:
+        name = options.get("name") or ("part" if isinstance(source, trimesh.Trimesh) else part_name(source))
+        if str(exc).startswith(f"{name}:") or str(exc).startswith(f"{source}:"):
+            raise
+        raise type(exc)(f"{name}: {exc}") from exc
+
+
+def _generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
+             name: str | None = None, position: str = "auto", centre: bool = False, units: str = "mm",
+             scale: float = 1.0, group_bounds=None, progress: bool = False, **overrides) -> Result:
+    """:func:`generate` without the naming of errors."""
     t_total = time.perf_counter()
     settings = _resolve_settings(settings, overrides)
     plan_fn = get_strategy(strategy)
@@ -238,8 +255,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm,
                                progress=progress and f"{name}: layers")
         check_cures(stack.area_mm2, settings, name)
-        # Island and reach points closer than the spacing to a contact are already held by it.
-        contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), rules.contact_spacing_mm)
+        contacts = _layer_contacts(part, stack, settings, contacts, rules.contact_spacing_mm)
     densified = repaired = 0
     for _ in range(MAX_DENSIFY_ROUNDS):
         with timer("forces"):
@@ -268,7 +284,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
             break
         # Hold what the plan missed (islands left, layers reaching too far), then plan again.
         with timer("contacts"):
-            more = merge_contacts(contacts, _layer_contacts(part, ver.layers, settings), rules.tip_diameter_mm)
+            more = _layer_contacts(part, ver.layers, settings, contacts, rules.tip_diameter_mm)
         if len(more) == len(contacts):
             break
         repaired += len(more) - len(contacts)

@@ -30,7 +30,7 @@ from ..settings import Settings
 from .plan import Contacts
 
 __all__ = ["RSA_DENSITY", "poisson_disk", "sample_overhangs", "contacts_at", "merge_contacts",
-           "expected_count", "densify_points"]
+           "add_unheld", "expected_count", "densify_points"]
 
 #: Samples per r^2 of a jammed random sequential addition (Feder 1980: coverage 0.547).
 RSA_DENSITY = 0.547 / (np.pi / 4)
@@ -203,8 +203,41 @@ def merge_contacts(existing: Contacts, new: Contacts, min_distance: float) -> Co
     keep = poisson_disk(both.points, np.full(len(both), min_distance))
     keep = np.union1d(keep, np.arange(len(existing)))  # never drop an existing contact
     keep.sort()
-    return Contacts(*(getattr(both, f)[keep] for f in ("points", "normals", "kinds", "diameters", "loads",
-                                                        "peak_layers")))
+    return both.take(keep)
+
+
+def add_unheld(existing: Contacts, new: Contacts, radius_mm: float, rise_mm: float) -> Contacts:
+    """``existing`` plus each contact of ``new`` that no contact kept so far already holds.
+
+    A contact at ``q`` holds a point ``p`` that must be held (an island's first
+    layer, a local minimum) when its tip covers it: ``q`` lies within
+    ``radius_mm`` of ``p`` across, and no more than ``rise_mm`` above it (a tip
+    higher up touches the part only after ``p``'s layer has cured in mid-air).
+    Unlike :func:`merge_contacts`, a contact nearby but higher or off to the side
+    does not count.
+
+    Parameters
+    ----------
+    existing, new : Contacts
+    radius_mm : float
+        Reach of a tip across (half the smallest tip diameter plus a pixel is safe).
+    rise_mm : float
+        How far above ``p`` a holding tip may touch (a layer height).
+
+    Examples
+    --------
+    >>> a = Contacts([[0, 0, 1.0]], [[0, 0, -1]], ["overhang"], [0.4])
+    >>> b = Contacts([[0.1, 0, 0.5], [0.05, 0, 1.0]], [[0, 0, -1]] * 2, ["island"] * 2, [0.4] * 2)
+    >>> add_unheld(a, b, 0.2, 0.05).points.tolist()      # the lower point is not held by the tip above it
+    [[0.0, 0.0, 1.0], [0.1, 0.0, 0.5]]
+    """
+    kept = existing
+    for i in range(len(new)):
+        p = new.points[i]
+        across = np.hypot(*(kept.points[:, :2] - p[:2]).T) if len(kept) else np.zeros(0)
+        if not np.any((across <= radius_mm) & (kept.points[:, 2] <= p[2] + rise_mm)):
+            kept = Contacts.concat([kept, new.take([i])])
+    return kept
 
 
 def densify_points(contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Settings,

@@ -141,7 +141,8 @@ def _base(plan: SupportPlan, settings: Settings, phase: float = 0.0) -> list[m3d
     chamfer = min(0.5 * t, 0.5, 0.5 * rules.base_margin_mm)
     if rules.base == "raft":
         xy = _raft_centres(xy, radius, rules.contact_spacing_mm)
-    return [m3d.Manifold.hull_points(_chamfered_disc(p, radius, t, chamfer, phase)) for p in xy]
+    return [m3d.Manifold.hull_points(_chamfered_disc(p, radius, t, chamfer, ph))
+            for p, ph in zip(xy, _phases(phase, len(xy)))]
 
 
 @dataclass(frozen=True)
@@ -155,9 +156,60 @@ class Solids:
 
 
 def _sphere(centre, radius: float, phase: float) -> m3d.Manifold:
-    deg = float(np.degrees(phase))
+    """A joint sphere turned about a generic axis, so none of its vertex rings lies on a
+    post's end ring (a sphere of the post's radius, unturned, shares the ring exactly)."""
+    deg = float(np.degrees(phase)) + _SPHERE_TURN_DEG
     solid = m3d.Manifold.sphere(float(radius), _SEGMENTS)
-    return (solid.rotate((deg, deg, deg)) if phase else solid).translate(tuple(centre))
+    return solid.rotate((deg, 0.7 * deg, 1.3 * deg)).translate(tuple(centre))
+
+
+#: A fixed turn of every joint sphere (degrees, about a skew axis): no symmetry of ours.
+_SPHERE_TURN_DEG = 7.3
+#: Golden-ratio step of the per-primitive phases (fractions of a segment): the
+#: sequence never repeats, so two primitives never get one phase.
+_GOLDEN = 0.6180339887498949
+
+
+def _phases(start: float, n: int) -> np.ndarray:
+    """``n`` distinct phases (radians) after ``start``: one per primitive.
+
+    Primitives built on one axis or at one node (stacked post segments, a post
+    and the foot that sinks it into the base, a joint sphere and the rings
+    meeting at it) would otherwise share vertices exactly; a union then keeps
+    both copies (a pinch a file merges into a non-manifold edge).  Turning each
+    by its own fraction of a segment puts them in general position.
+    """
+    return start + (np.arange(1, n + 1) * _GOLDEN % 1.0) * 2 * np.pi / _SEGMENTS
+
+
+#: Segments reach this fraction of their radius past each node, into the joint there.
+#: Two segments that only abut (a straight run split at a node) have coplanar end caps;
+#: a union keeps touching faces apart with coincident vertices, which a file merges
+#: into a non-manifold edge.  Overlapping them removes the contact; a quarter radius
+#: stays within the joint sphere's polygon to 3 % of the radius.
+_OVERLAP = 0.25
+
+
+def _overlapping(p0, p1, r: float):
+    """The ends of a segment from ``p0`` to ``p1`` of radius ``r``, each moved :data:`_OVERLAP` r outward."""
+    p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
+    d = p1 - p0
+    length = float(np.linalg.norm(d))
+    if length < EPS_REL:
+        return p0, p1
+    u = d / length * _OVERLAP * r
+    return p0 - u, p1 + u
+
+
+#: Radius of a tip cone where it leaves its node, over the joint's: a cone of the joint's
+#: full radius meets the joint sphere tangentially along its equator, and a union of
+#: near-tangent facets keeps coincident vertices; a slightly narrower cone starts inside
+#: the sphere and leaves it at a clear angle.
+_TIP_BASE_FRACTION = 0.9
+
+#: Radius of a foot (the stub sinking a post into the base) over its post's: inside the
+#: post's polygon (whose sides are cos(pi/16) = 0.98 of its radius from the axis).
+_FOOT_FRACTION = 0.95
 
 
 def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
@@ -179,30 +231,36 @@ def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
         np.maximum.at(node_r, plan.edges[:, 1], plan.edge_radius)
     no_edge = node_r == 0
     node_r[no_edge] = rules.post_diameter_mm / 2
-    for (a, b), r in zip(plan.edges, plan.edge_radius):
-        parts.append(frustum(plan.nodes[a], plan.nodes[b], r, r, phase=phase))
-    for a, b in plan.braces:
-        r = 0.5 * min(node_r[a], node_r[b])
-        parts.append(frustum(plan.nodes[a], plan.nodes[b], r, r, phase=phase))
-    # A joint sphere, once, at every node where segments meet or a tip starts.
     degree = np.bincount(plan.edges.ravel(), minlength=len(plan.nodes)) if len(plan.edges) else np.zeros(len(plan.nodes), int)
     joint = degree >= 2
     joint[plan.tip_nodes] = True
+    n_prim = len(plan.edges) + len(plan.braces) + int(joint.sum()) + len(plan.tip_points) + len(plan.feet)
+    turn = iter(_phases(phase, n_prim))
+    for (a, b), r in zip(plan.edges, plan.edge_radius):
+        parts.append(frustum(*_overlapping(plan.nodes[a], plan.nodes[b], r), r, r, phase=next(turn)))
+    for a, b in plan.braces:
+        r = 0.5 * min(node_r[a], node_r[b])
+        parts.append(frustum(*_overlapping(plan.nodes[a], plan.nodes[b], r), r, r, phase=next(turn)))
+    # A joint sphere, once, at every node where segments meet or a tip starts.
     for i in np.flatnonzero(joint):
-        parts.append(_sphere(plan.nodes[i], node_r[i], phase))
+        parts.append(_sphere(plan.nodes[i], node_r[i], next(turn)))
     for p, node, d in zip(plan.tip_points, plan.tip_nodes, plan.tip_diameters):
         q = plan.nodes[node]
         axis = p - q
         length = np.linalg.norm(axis)
+        ph = next(turn)
         if length < EPS_REL:
             continue
         p_in = p + axis / length * rules.tip_depth_mm
-        parts.append(frustum(q, p_in, node_r[node], d / 2, phase=phase))
-    # Feet: posts sink half the base thickness into the base so the union is sound.
+        parts.append(frustum(q, p_in, _TIP_BASE_FRACTION * node_r[node], d / 2, phase=ph))
+    # Feet: posts sink half the base thickness into the base so the union is sound.  The
+    # foot is a little narrower than its post and reaches into it, so their side faces and
+    # end rings never coincide.
     base = _base(plan, settings, phase)
     for f in plan.feet:
-        q = plan.nodes[f]
-        parts.append(frustum(q - [0, 0, rules.base_thickness_mm / 2], q, node_r[f], node_r[f], phase=phase))
+        q, r = plan.nodes[f], node_r[f]
+        parts.append(frustum(q - [0, 0, rules.base_thickness_mm / 2], q + [0, 0, 0.5 * r], _FOOT_FRACTION * r,
+                             _FOOT_FRACTION * r, phase=next(turn)))
     return parts, base
 
 

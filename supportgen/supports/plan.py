@@ -76,6 +76,10 @@ class Contacts:
     def replace(self, **changes) -> Contacts:
         return dataclasses.replace(self, **changes)
 
+    def take(self, index) -> Contacts:
+        """The contacts at ``index`` (an index array or bool mask), every field alike."""
+        return Contacts(*(getattr(self, f.name)[index] for f in dataclasses.fields(self)))
+
     @classmethod
     def empty(cls) -> Contacts:
         return cls(np.zeros((0, 3)), np.zeros((0, 3)), np.zeros(0, "<U8"), np.zeros(0))

@@ -112,9 +112,7 @@ def _plan_tree(mesh, contacts, settings):
     left = np.setdiff1d(np.arange(len(contacts)), plan.tip_contact[plan.tip_contact >= 0])
     if len(left) == 0:
         return plan
-    sub = Contacts(*(getattr(contacts, f)[left] for f in ("points", "normals", "kinds", "diameters", "loads",
-                                                           "peak_layers")))
-    return join_plans("tree", plan, plan_straight(mesh, sub, settings), left)
+    return join_plans("tree", plan, plan_straight(mesh, contacts.take(left), settings), left)
 
 
 #: Strategy name -> function (mesh, contacts, settings) -> SupportPlan.
