@@ -264,7 +264,18 @@ def test_part_page_loads_draws_and_has_every_element(hook, tmp_path):
     # The model fills a fair share of the view: pixels away from the clear colour (#f4f6f8) and the grid.
     off = np.abs(pixels.astype(int) - [244, 246, 248]).max(axis=1) > 40
     assert off.mean() > 0.03, f"only {off.mean():.1%} of the view differs from the background"
-    check_page(page, tmp_path, PART_IDS, out / "hook.report.below.png", fragment="#below", min_colours=200)
+    # The view from below (same canvas, contacts seen through the supports): drawn, and still no console message.
+    below = out / "hook.report.below.png"
+    assert not screenshot(page, below, tmp_path, "#below")
+    assert canvas_colours(below, dom.body["data-canvas-rect"])[0] >= 200
+    # The plot's hover read-out, driven once by the page itself (#probe) at the plot's middle: it names a
+    # layer and the force the report records for that layer.
+    run = _chromium(page.resolve().as_uri() + "#probe", tmp_path, "--dump-dom")
+    m = re.search(r'id="readout"[^>]*>layer (\d+) at [^:]*: cured area [^,]*, separation force ([\d.]+) N', run.stdout)
+    assert m, "the plot read-out did not respond"
+    k, shown = int(m.group(1)), float(m.group(2))
+    assert 0 < k < len(hook.report["forces"]["layer_force_n"])
+    assert shown == pytest.approx(hook.report["forces"]["layer_force_n"][k], abs=5e-4)
 
 
 @needs_chromium
@@ -321,7 +332,7 @@ def test_harness_catches_a_broken_page(hook, tmp_path):
 
 @needs_chromium
 @pytest.mark.skipif(not os.environ.get("SUPPORTGEN_SCREENSHOTS"), reason="set SUPPORTGEN_SCREENSHOTS=DIR to "
-                    "render every demo part's page and the demo index (about a minute)")
+                    "render every demo part's page and the demo index (a few minutes)")
 def test_demo_pages_for_the_closing_note(tmp_path):
     out = _out_dir(tmp_path)
     rows = []

@@ -499,7 +499,7 @@ def _verdict(report: dict) -> tuple[str, str]:
         return "passes the print check", "pass"
     if passed is False:
         return "does not pass the print check", "fail"
-    return "print check: n/a", "na"
+    return "print check: n/a", "unknown"
 
 
 def _page(title: str, body: str, script: str, head_extra: str = "") -> str:
@@ -739,7 +739,7 @@ def batch_index(rows: list[dict], title: str = "Batch") -> str:
     summary = ", ".join(f"{n} {_e(s)}" for s, n in sorted(counts.items())) or "no parts"
     body = f"""
 <header class="top"><div><div class="kicker">supportgen batch</div><h1 id="title">{_e(title)}</h1></div>
-<div id="batch-summary" class="verdict na">{len(rows or [])} part(s): {summary}</div></header>
+<div id="batch-summary" class="verdict unknown">{len(rows or [])} part(s): {summary}</div></header>
 <main><section class="card"><table id="batch-table" class="grid-table"><thead><tr>{head}</tr></thead>
 <tbody>{"".join(body_rows) or '<tr><td colspan="6" class="na">No parts in this batch.</td></tr>'}</tbody></table>
 <p class="hint">Click a column heading to sort; click again to reverse. "n/a" sorts last.</p></section>
