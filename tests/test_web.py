@@ -279,7 +279,7 @@ def test_part_page_loads_draws_and_has_every_element(hook, tmp_path):
 
 
 @needs_chromium
-def test_failed_check_is_marked_in_the_view(hook, tmp_path):
+def test_failed_check_is_marked_in_the_view(hook, tmp_path, monkeypatch):
     """A real failing check: the hook's bare part, lifted off the plate without supports, verified by
     supportgen.check: it starts in mid-air, and the page draws the red failure ring there."""
     ver = supportgen.check(hook.part, _settings())
@@ -287,7 +287,10 @@ def test_failed_check_is_marked_in_the_view(hook, tmp_path):
     report = {**hook.report, "verification": ver.to_dict()}
     out = _out_dir(tmp_path)
     page = out / "hook_unsupported.report.html"
+    # This page also takes the uint16 path for its mesh (as a part over 2 MB of buffers would).
+    monkeypatch.setattr(web, "QUANTISE_ABOVE_BYTES", 0)
     page.write_text(part_page(report, hook.part, trimesh.Trimesh(), hook.part, []), encoding="utf-8")
+    assert '"positions_type":"uint16"' in page.read_text()
     html = page.read_text()
     assert "does not pass the print check" in html and "starting in mid-air" in html
     _, pixels = check_page(page, tmp_path, PART_IDS, out / "hook_unsupported.report.png", min_colours=50)
@@ -309,6 +312,14 @@ def test_batch_index_loads_with_two_rows_and_links(hook, tmp_path):
     dom, _ = check_page(page, tmp_path, INDEX_IDS, out / "index.png")
     assert dom.rows == 2 and dom.body.get("data-rows") == "2"
     assert dom.links == ["hook.report.html", "hook_unsupported.report.html"]
+    # Sorted by peak force (column 2), the part with no figure ("n/a") goes last both ways; the page sorts
+    # itself when opened with #sort=K (the same code a click on a heading runs).
+    for fragment in ("#sort=2", "#sort=-2"):
+        dom, console = dom_of(page, tmp_path, fragment)
+        assert not console and dom.links == ["hook.report.html", "hook_unsupported.report.html"], fragment
+    # By name, descending: hook_unsupported before hook (string order, Python's agrees).
+    dom, _ = dom_of(page, tmp_path, "#sort=-0")
+    assert dom.links == sorted(dom.links, reverse=True) == ["hook_unsupported.report.html", "hook.report.html"]
 
 
 @needs_chromium

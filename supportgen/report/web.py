@@ -205,11 +205,12 @@ def _b64(a: np.ndarray) -> str:
     return base64.b64encode(np.ascontiguousarray(a).tobytes()).decode("ascii")
 
 
-def encode_mesh(vertices, faces, *, quantise_above: int = QUANTISE_ABOVE_BYTES) -> dict:
+def encode_mesh(vertices, faces, *, quantise_above: int | None = None) -> dict:
     """A mesh as base64 little-endian buffers for the page: every vertex and face kept.
 
     Positions are float32, or uint16 steps within the bounding box (``lo + q * step``)
-    when the buffers would exceed ``quantise_above`` bytes; indices are uint16 when
+    when the buffers would exceed ``quantise_above`` bytes (default
+    :data:`QUANTISE_ABOVE_BYTES`, read at call time); indices are uint16 when
     the vertex count allows, else uint32.
 
     Examples
@@ -224,6 +225,8 @@ def encode_mesh(vertices, faces, *, quantise_above: int = QUANTISE_ABOVE_BYTES) 
     out = {"vertices": int(len(v)), "faces": int(len(f)), "index_type": np.dtype(itype).name,
            "index": _b64(f.astype(itype).astype(np.dtype(itype).newbyteorder("<")))}
     raw = v.size * 4 + f.size * np.dtype(itype).itemsize
+    if quantise_above is None:
+        quantise_above = QUANTISE_ABOVE_BYTES
     if raw > quantise_above and len(v):
         lo, hi = v.min(axis=0), v.max(axis=0)
         step = np.where(hi > lo, (hi - lo) / 65535.0, 1.0)

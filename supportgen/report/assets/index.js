@@ -23,6 +23,12 @@
     th.addEventListener('click', go);
     th.addEventListener('keydown', e => { if (e.key === 'Enter' || e.key === ' ') { e.preventDefault(); go(); } });
   }
+  // index.html#sort=K (or #sort=-K for descending): open sorted by column K.
+  const m = /^#sort=(-?)(\d+)$/.exec(location.hash);
+  if (m) {
+    const th = table.tHead.rows[0].cells[Number(m[2])];
+    if (th) { sortBy(Number(th.dataset.col), th.dataset.type); if (m[1]) sortBy(Number(th.dataset.col), th.dataset.type); }
+  }
   document.body.dataset.rows = String(tbody.rows.length);
   document.body.dataset.status = (document.body.dataset.status || '').startsWith('error') ? document.body.dataset.status : 'ready';
 })();
