@@ -11,7 +11,7 @@ as wall and as CPU time, with the load average (other work on the machine
 stretches the wall time).  Peak memory is the process's peak RSS.
 
 ``--profile`` adds a cProfile breakdown of the tracker (slower);
-``--convergence`` prints the coarse-grid error table quoted in supportgen.physics.forces.
+``--convergence`` prints the coarse-grid error table quoted in supportgen.physics.pressure.
 
 Run: ``python benchmarks/bench_forces.py [--profile | --convergence]``
 """
@@ -30,8 +30,8 @@ import numpy as np
 import trimesh
 from scipy import ndimage
 
-from supportgen.physics import forces as fz
 from supportgen.analysis.layers import Grid, iter_layers
+from supportgen.physics import pressure as pz
 from supportgen.physics.loadpath import ForceTracker
 from supportgen.settings import Settings
 
@@ -116,24 +116,24 @@ def convergence() -> None:
     worst_ok = 0.0
     for name, fn in shapes.items():
         m = fn(xx, yy)
-        w = 2 * m.sum() / fz._edges(m)
-        ref = fz.torsion_constant(m, 1.0)
+        w = 2 * m.sum() / pz._edges(m)
+        ref = pz.torsion_constant(m, 1.0)
         cells = []
         for s in factors:
             errs = []
             for j in range(8):
                 o = j * s // 8
                 lab = np.pad(m, ((o, 0), ((3 * o) % s, 0))).astype(np.int32)
-                errs.append(fz.solve_components(lab, [1], 1.0, factor=s)[1][0] / ref - 1)
+                errs.append(pz.solve_components(lab, [1], 1.0, factor=s)[1][0] / ref - 1)
             errs = 100 * np.array(errs)
             worst = float(errs[np.argmax(np.abs(errs))])
-            if w / s >= fz.CELLS_ACROSS:
+            if w / s >= pz.CELLS_ACROSS:
                 worst_ok = max(worst_ok, abs(worst))
             cells.append(f"{w / s:10.1f} {worst:+7.2f} {errs.mean():+6.2f}")
         print(f"{name:14s} {w:7.1f}  " + "  ".join(cells))
-    print(f"worst error where w/H >= {fz.CELLS_ACROSS}: {worst_ok:.2f} % (stated bound 2 %)")
+    print(f"worst error where w/H >= {pz.CELLS_ACROSS}: {worst_ok:.2f} % (stated bound 2 %)")
     print("pixel solve against exact square (Roark 0.140577): " + ", ".join(
-        f"{n}px {100 * (fz.torsion_constant(np.ones((n, n), bool), 1 / n) / 0.1405770 - 1):+.3f}%"
+        f"{n}px {100 * (pz.torsion_constant(np.ones((n, n), bool), 1 / n) / 0.1405770 - 1):+.3f}%"
         for n in (8, 16, 32, 64, 128)))
 
 

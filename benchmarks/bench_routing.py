@@ -5,7 +5,7 @@ Run from the repository root::
     python benchmarks/bench_routing.py [--sizes 200 1000] [--seed 0] [--mesh PATH]
 
 The part is the Stanford bunny from the shared corpus (../shared/corpus), scaled to
-60 mm on its longest side and lifted ``lift_mm``; without the corpus a synthetic part
+60 mm on its longest side and lifted ``elevation_mm``; without the corpus a synthetic part
 (a plate over a sphere) is used.  Contacts are sampled, area-weighted, on faces that
 face down more than 55 degrees from vertical.  Prints, per size: wall time, peak
 traced memory (second, traced run), process peak RSS, core count, contacts served, feet, landings and the
@@ -25,9 +25,9 @@ from pathlib import Path
 import numpy as np
 import trimesh
 
+from supportgen.settings import Settings
 from supportgen.supports.plan import Contacts
 from supportgen.supports.routing import plan_tree
-from supportgen.settings import Settings
 
 CORPUS = Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus"
 
@@ -62,8 +62,8 @@ def main(argv=None) -> None:
     ap.add_argument("--mesh", type=Path, default=None)
     args = ap.parse_args(argv)
     settings = Settings()
-    s = settings.supports
-    part, name = load_part(args.mesh, s.lift_mm)
+    s = settings.rules
+    part, name = load_part(args.mesh, s.elevation_mm)
     print(f"part {name}: {len(part.faces)} faces, extents {np.round(part.extents, 1).tolist()} mm; "
           f"cores {os.cpu_count()}; seed {args.seed}")
     for n in args.sizes:

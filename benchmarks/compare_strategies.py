@@ -83,7 +83,7 @@ def main() -> None:
     strategies = [s.strip() for s in args.strategies.split(",") if s.strip()]
     print(machine_line())
     print(f"settings: pixel {settings.printer.pixel_mm} mm, layer {settings.printer.layer_mm} mm, "
-          f"seed {settings.supports.seed}, strategies {', '.join(strategies)}; output {args.output}")
+          f"seed {settings.rules.seed}, strategies {', '.join(strategies)}; output {args.output}")
 
     if not args.skip_corpus:
         if CORPUS.is_dir():

@@ -41,8 +41,8 @@ import numpy as np
 import trimesh
 
 import supportgen
-from supportgen.runs.bench import grid_settings, machine_line, measure_peak
 from supportgen.analysis.placement import place
+from supportgen.runs.bench import grid_settings, machine_line, measure_peak
 
 CORPUS = (Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus").resolve()
 
@@ -171,7 +171,7 @@ def main() -> None:
     base, name = base_mesh()
     print(machine_line())
     print(f"model: {name}, longest side {args.size:g} mm; pixel {settings.printer.pixel_mm} mm, layer "
-          f"{settings.printer.layer_mm} mm, strategy {args.strategy}, seed {settings.supports.seed}, "
+          f"{settings.printer.layer_mm} mm, strategy {args.strategy}, seed {settings.rules.seed}, "
           f"best of {args.repeat} run(s) per point")
 
     # Warm-up (untimed): first calls load modules and fill caches.

@@ -14,8 +14,8 @@ The Python API::
 """
 
 from .errors import GeometryError, MeshError, PlacementError, SettingsError, SupportGenError
-from .supports.plan import Contacts, SupportPlan
 from .settings import PROFILES, Settings, load_settings
+from .supports.plan import Contacts, SupportPlan
 from .supports.strategies import STRATEGIES
 
 __version__ = "0.1.0"

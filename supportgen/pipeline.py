@@ -19,19 +19,31 @@ from pathlib import Path
 import numpy as np
 import trimesh
 
-from .report import render as rpt
-from .supports.contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
-from .physics.forces import ForceProfile, ForceTracker
-from .supports.geometry import Solids, combine
 from .analysis.layers import Grid, LayerStack, analyse_layers
-from .io.meshio import LoadedMesh, atomic_write, atomic_write_text, load_mesh, prepare_mesh, write_mesh
 from .analysis.overhangs import find_overhangs
-from .analysis.placement import place
-from .supports.plan import Contacts, SupportPlan
+from .analysis.placement import check_cures, place
+from .analysis.verify import Verification, speck_area_mm2, verify
+from .constants import OFFSET_MM
+from .io.meshio import (
+    LoadedMesh,
+    atomic_write,
+    atomic_write_text,
+    load_mesh,
+    part_name,
+    prepare_mesh,
+    write_mesh,
+)
+from .io.units import scale_loaded, unit_factor
+from .physics.loadpath import ForceProfile, ForceTracker
+from .report.assemble import RunRecords, build_report
+from .report.document import markdown, to_json
+from .report.plots import plot_layers, plot_preview, plot_tips
 from .settings import Settings, load_settings
+from .supports.contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
+from .supports.geometry import Solids, combine
+from .supports.plan import Contacts, SupportPlan
 from .supports.sizing import SizedPlan, over_capacity, size_plan, tip_diameter
 from .supports.strategies import get_strategy
-from .analysis.verify import Verification, speck_area_mm2, verify
 
 __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
 
@@ -69,36 +81,35 @@ class Result:
         return the paths by role.
 
         Each file is written atomically; if any write fails, the files of this
-        part already written are removed, so no partial set is left.
+        part already written are removed, so no partial set is left.  The
+        result itself is not changed: the saved JSON is ``result.report`` with
+        ``outputs`` filled in.
         """
         outdir = Path(outdir)
         outdir.mkdir(parents=True, exist_ok=True)
         n = self.name
         paths = {role: outdir / f"{n}{suffix}" for role, suffix in OUTPUTS.items()}
-        # The report records where it was saved, so ``result.report`` stays the
-        # same dict as the JSON file written.
-        report = self.report
-        report["outputs"] = {k: str(p) for k, p in paths.items()}
+        report = {**self.report, "outputs": {k: str(p) for k, p in paths.items()}}
         written: list[Path] = []
         try:
             write_mesh(self.combined, paths["combined"]); written.append(paths["combined"])
             write_mesh(self.supports, paths["supports"]); written.append(paths["supports"])
             f = self.forces
-            atomic_write(paths["layers_plot"], rpt.plot_layers(
+            atomic_write(paths["layers_plot"], plot_layers(
                 self.layers.z_mm, self.layers.area_mm2, f.force_n, f"{n}: area and separation force per layer",
                 report["settings"]["printer"]["rated_force_n"]))
             written.append(paths["layers_plot"])
-            atomic_write(paths["tips_plot"], rpt.plot_tips(
+            atomic_write(paths["tips_plot"], plot_tips(
                 np.asarray(report["supports"]["tips"]["safety_factor"], float), report["forces"]["target_safety_factor"],
                 f"{n}: tip safety factors"))
             written.append(paths["tips_plot"])
-            atomic_write(paths["preview"], rpt.plot_preview(self.part, self.supports, f"{n}: part on its supports"))
+            atomic_write(paths["preview"], plot_preview(self.part, self.supports, f"{n}: part on its supports"))
             written.append(paths["preview"])
             images = {"part on its supports": paths["preview"].name,
                       "area and force per layer": paths["layers_plot"].name,
                       "tip safety factors": paths["tips_plot"].name}
-            atomic_write_text(paths["summary"], rpt.markdown(report, n, images)); written.append(paths["summary"])
-            atomic_write_text(paths["report"], rpt.to_json(report)); written.append(paths["report"])
+            atomic_write_text(paths["summary"], markdown(report, n, images)); written.append(paths["summary"])
+            atomic_write_text(paths["report"], to_json(report)); written.append(paths["report"])
         except BaseException:
             for p in written:
                 p.unlink(missing_ok=True)
@@ -133,24 +144,24 @@ def _layer_contacts(part, stack: LayerStack, settings: Settings) -> Contacts:
     A point whose upward ray misses the part (a feature a pixel or two wide)
     takes the nearest surface point within two layers and a pixel.
     """
-    sp, lh = settings.supports, settings.printer.layer_mm
+    rules, lh = settings.rules, settings.printer.layer_mm
     near = 2 * lh + settings.printer.pixel_mm
     xyz = []
     for isl in stack.islands:
         if isl.area_mm2 < speck_area_mm2(settings.printer.pixel_mm):
             continue   # no tip can hold a speck; verify reports it
-        xy = isl.points(sp.contact_spacing_mm, sp.seed)
+        xy = isl.points(rules.contact_spacing_mm, rules.seed)
         xyz.append(np.column_stack([xy, np.full(len(xy), isl.z_mm - lh)]))
-    island = contacts_at(part, np.vstack(xyz) if xyz else np.zeros((0, 3)), "island", sp.tip_diameter_mm, near)
+    island = contacts_at(part, np.vstack(xyz) if xyz else np.zeros((0, 3)), "island", rules.tip_diameter_mm, near)
     reach_xyz = [[*o.xy, o.z_mm - lh] for o in stack.overreach]
-    reach = contacts_at(part, np.array(reach_xyz).reshape(-1, 3), "reach", sp.tip_diameter_mm, near)
-    return merge_contacts(island, reach, sp.contact_spacing_mm / 2)
+    reach = contacts_at(part, np.array(reach_xyz).reshape(-1, 3), "reach", rules.tip_diameter_mm, near)
+    return merge_contacts(island, reach, rules.contact_spacing_mm / 2)
 
 
 def _forces(part, grid: Grid, contacts: Contacts, settings: Settings, progress: bool) -> ForceProfile:
     tracker = ForceTracker(grid, settings.printer.layer_mm, contacts.points, settings)
     pr = settings.printer
-    analyse_layers(part, pr.pixel_mm, pr.layer_mm, settings.supports.max_reach_mm, grid=grid,
+    analyse_layers(part, pr.pixel_mm, pr.layer_mm, settings.rules.reach_limit_mm, grid=grid,
                    observers=(tracker,), progress=progress and "forces")
     return tracker.result()
 
@@ -162,7 +173,8 @@ def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Setting
 
 
 def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
-             name: str | None = None, centre: bool = False, progress: bool = False, **overrides) -> Result:
+             name: str | None = None, position: str = "auto", centre: bool = False, units: str = "mm",
+             scale: float = 1.0, group_bounds=None, progress: bool = False, **overrides) -> Result:
     """Support one part end to end.
 
     Parameters
@@ -175,8 +187,16 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         A name from :data:`supportgen.supports.strategies.STRATEGIES`.
     name : str, optional
         Name used for output files (default: the file's stem, or "part").
+    position : {"auto", "keep", "centre"}
+        x/y placement (:mod:`supportgen.analysis.placement`): keep the part where
+        it lies on the plate, else centre it (auto); keep strictly; or centre.
     centre : bool
-        Centre the part on the plate.
+        Same as ``position="centre"``.
+    units, scale : str, float
+        The file's length unit (``mm``, ``cm``, ``m``, ``in``) and a further factor;
+        the part is scaled to millimetres by their product before anything else.
+    group_bounds : (2, 3) array, optional
+        Bounds (mm, after scaling) of all parts placed together, so they move as one.
     progress : bool
         Progress bars over the layer passes.
     **overrides
@@ -195,28 +215,31 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     settings = _resolve_settings(settings, overrides)
     plan_fn = get_strategy(strategy)
     timer = _Timer()
-    sp, pr = settings.supports, settings.printer
+    rules, pr = settings.rules, settings.printer
     with timer("load"):
         if isinstance(source, trimesh.Trimesh):
             name = name or "part"
             loaded: LoadedMesh = prepare_mesh(source, name)
         else:
-            name = name or Path(source).name.split(".")[0]
+            name = name or part_name(source)
             loaded = load_mesh(source)
     with timer("placement"):
-        part = place(loaded.mesh, settings, centre=centre, name=name).mesh
+        loaded = scale_loaded(loaded, unit_factor(units, scale))
+        placed = place(loaded.mesh, settings, position="centre" if centre else position, name=name,
+                       group_bounds=group_bounds)
+        part = placed.mesh
     with timer("overhangs"):
-        oh = find_overhangs(part, sp.overhang_angle_deg, floor_z=0.0)
+        oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
     with timer("contacts"):
-        contacts = sample_overhangs(part, oh, sp.contact_spacing_mm, sp.overhang_angle_deg, sp.tip_diameter_mm, sp.seed)
-        minima = contacts_at(part, oh.minima - [0, 0, 1e-3], "minimum", sp.tip_diameter_mm)
-        contacts = merge_contacts(contacts, minima, sp.tip_diameter_mm)
+        contacts = sample_overhangs(part, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed)
+        minima = contacts_at(part, oh.minima - [0, 0, OFFSET_MM], "minimum", rules.tip_diameter_mm)
+        contacts = merge_contacts(contacts, minima, rules.tip_diameter_mm)
     with timer("layers"):
-        stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, sp.max_reach_mm,
+        stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm,
                                progress=progress and f"{name}: layers")
+        check_cures(stack.area_mm2, settings, name)
         # Island and reach points closer than the spacing to a contact are already held by it.
-        contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), sp.contact_spacing_mm)
-    warnings: list[dict] = []
+        contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), rules.contact_spacing_mm)
     densified = repaired = 0
     for _ in range(MAX_DENSIFY_ROUNDS):
         with timer("forces"):
@@ -239,71 +262,24 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         with timer("geometry"):
             solids: Solids = combine(part, sized.plan, settings)
         with timer("verify"):
-            ver = verify(solids.combined, settings, tip_safety=sized.tip_safety_factor / sp.safety_factor,
+            ver = verify(solids.combined, settings, tip_safety=sized.tip_safety_factor / rules.safety_factor,
                          progress=progress and "check", name=name)
-        if (ver.islands == 0 and ver.max_unsupported_reach_mm <= sp.max_reach_mm) or attempt == MAX_REPAIR_ROUNDS:
+        if (ver.n_islands == 0 and ver.max_unsupported_reach_mm <= rules.reach_limit_mm) or attempt == MAX_REPAIR_ROUNDS:
             break
         # Hold what the plan missed (islands left, layers reaching too far), then plan again.
         with timer("contacts"):
-            more = merge_contacts(contacts, _layer_contacts(part, ver.layers, settings), sp.tip_diameter_mm)
+            more = merge_contacts(contacts, _layer_contacts(part, ver.layers, settings), rules.tip_diameter_mm)
         if len(more) == len(contacts):
             break
         repaired += len(more) - len(contacts)
         with timer("forces"):
             profile = _forces(part, stack.grid, more, settings, progress)
         contacts = _sized_contacts(more, profile, settings)
-    warnings += [{"code": c, "message": m} for c, m in profile.warnings]
-    warnings += [{"code": "repair", "message": f"{name}: {r}"} for r in loaded.repairs]
-    if sized.tips_over_capacity:
-        warnings.append({"code": "tips-over-capacity",
-                         "message": f"{name}: {sized.tips_over_capacity} tip(s) need more than {sp.tip_max_mm} mm "
-                                    "even after adding contacts; add supports by hand or reorient the part"})
-    unserved = len(contacts) - len(np.unique(plan.tip_contact[plan.tip_contact >= 0]))
-    if unserved:
-        warnings.append({"code": "unserved", "message": f"{name}: the {strategy} strategy gave {unserved} "
-                         "contact(s) no way down; reorient the part or try another strategy"})
-    if ver.specks:
-        sk = ver.specks[0]
-        warnings.append({"code": "specks", "message": f"{name}: {len(ver.specks)} speck(s) under two pixels across start "
-                         f"in mid-air, the first at layer {sk['layer']} near x {sk['xy_mm'][0]:.2f}, y {sk['xy_mm'][1]:.2f} "
-                         "mm: a fin or sliver thinner than the printer resolves; thicken or remove it"})
-    if plan.landings:
-        warnings.append({"code": "landings", "message": f"{name}: {plan.landings} post(s) stand on the part; "
-                                                        "expect small marks there"})
     timer.seconds["total"] = time.perf_counter() - t_total
-    layers = int(np.ceil(solids.combined.bounds[1, 2] / pr.layer_mm))
-    volume_ml = (part.volume + solids.supports_volume_mm3) / 1000.0
-    sized_dict = sized.to_dict()
-    report = {
-        "input": {"path": None if isinstance(source, trimesh.Trimesh) else str(source), "name": name,
-                  "faces": int(len(loaded.mesh.faces)), "volume_mm3": float(loaded.mesh.volume),
-                  "repairs": list(loaded.repairs)},
-        "settings": settings.to_dict(),
-        "outputs": None,
-        "supports": {"strategy": strategy, "contacts": len(contacts), "landings": plan.landings,
-                     "contacts_by_kind": {k: int(np.count_nonzero(contacts.kinds == k)) for k in np.unique(contacts.kinds)},
-                     "contacts_added_by_densifying": densified,
-                     "contacts_added_after_check": repaired,
-                     "tip_diameter_mm": sized_dict["tip_diameter_mm"],
-                     "tips": sized_dict["tips"],
-                     "post_diameter_mm": sized_dict["post_diameter_mm"],
-                     "volume_mm3": solids.supports_volume_mm3, "base_volume_mm3": solids.base_volume_mm3,
-                     "overhang_area_mm2": oh.area_mm2, "contact_area_mm2": float(np.sum(np.pi * contacts.diameters**2 / 4)),
-                     "braces": sized_dict["braces"],
-                     "contact_points": contacts.to_records()},
-        "forces": {**profile.to_dict(), "min_safety_factor": sized.min_safety_factor,
-                   "tips_over_capacity": sized.tips_over_capacity,
-                   "min_tip_safety_factor": sized_dict["min_tip_safety_factor"],
-                   "min_post_safety_factor": sized_dict["min_post_safety_factor"],
-                   "target_safety_factor": sp.safety_factor},
-        "verification": ver.to_dict(),
-        "layers": stack.to_dict(),
-        "estimates": {"layers": layers, "print_time_s": layers * pr.layer_cycle_s, "resin_ml": volume_ml,
-                      "resin_cost": volume_ml / 1000.0 * settings.resin.price_per_l},
-        "timing_s": timer.seconds,
-        "warnings": warnings,
-    }
-    return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver)
+    records = RunRecords(name, None if isinstance(source, trimesh.Trimesh) else str(source), loaded, part, settings,
+                         strategy, oh.area_mm2, contacts, plan, sized, solids, profile, stack, ver, densified,
+                         repaired, timer.seconds, placed.warnings)
+    return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, build_report(records), stack, profile, ver)
 
 
 def check(mesh, settings: Settings | str | Path | None = None, *, progress: bool = False, **overrides) -> Verification:

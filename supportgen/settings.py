@@ -11,14 +11,14 @@ unit, its valid range and where its default comes from:
     recalled, not checked against a source: treat as a starting point.
 
 No default is a measurement of ours.  Settings are read from TOML files with
-three tables, ``[printer]``, ``[resin]`` and ``[supports]``; every key is also
+three tables, ``[printer]``, ``[resin]`` and ``[rules]``; every key is also
 accepted on its own (field names are unique across the three tables), which is
 how keyword overrides work in :func:`supportgen.generate`.
 
 Examples
 --------
 >>> s = Settings().override(contact_spacing_mm=2.0)
->>> s.supports.contact_spacing_mm
+>>> s.rules.contact_spacing_mm
 2.0
 >>> Settings().override(spacing=2.0)
 Traceback (most recent call last):
@@ -29,11 +29,15 @@ supportgen.errors.SettingsError: unknown setting 'spacing'; valid names: ...
 from __future__ import annotations
 
 import dataclasses
+import difflib
 import math
 import tomllib
+import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
-from typing import Any, Mapping
+from types import MappingProxyType
+from typing import Any
 
 from .errors import SettingsError
 
@@ -118,7 +122,7 @@ class SupportRules:
     contact_spacing_mm: float = _f(2.0, 0.3, 20.0, "mm", "practice",
                                    "least distance between contacts on a horizontal overhang (1.5-5 mm); "
                                    "1.5x this at the critical angle")
-    max_reach_mm: float = _f(2.0, 0.05, 3.0, "mm", "practice",
+    reach_limit_mm: float = _f(2.0, 0.05, 3.0, "mm", "practice",
                              "largest distance a newly cured pixel may lie from material in the layer "
                              "below (flat overhangs deform beyond spans of about 1.5-3 mm)")
     tip_diameter_mm: float = _f(0.4, 0.05, 3.0, "mm", "practice", "contact diameter before sizing (0.2-0.6 mm)")
@@ -127,7 +131,9 @@ class SupportRules:
     tip_depth_mm: float = _f(0.2, 0.0, 2.0, "mm", "practice", "how far a tip sinks into the part (0.1-0.3 mm)")
     tip_length_mm: float = _f(1.5, 0.2, 10.0, "mm", "practice", "length of the cone from tip to post")
     post_diameter_mm: float = _f(1.0, 0.2, 10.0, "mm", "practice", "post diameter before sizing")
-    lift_mm: float = _f(5.0, 0.0, 50.0, "mm", "practice", "height of the part's lowest point above the plate (3-10 mm)")
+    elevation_mm: float = _f(5.0, 0.0, 50.0, "mm", "practice",
+                             "height of the part's lowest point above the plate (3-10 mm); not the plate's "
+                             "motion between layers (formerly 'lift_mm')")
     base: str = _f("raft", None, None, "", "practice", "raft (one slab) or pads (one per post)", choices=BASE_KINDS)
     base_thickness_mm: float = _f(1.0, 0.2, 5.0, "mm", "practice", "raft or pad thickness (0.5-1.5 mm)")
     base_margin_mm: float = _f(1.5, 0.0, 20.0, "mm", "practice", "how far the base reaches past the outer posts")
@@ -139,7 +145,22 @@ class SupportRules:
     seed: int = _f(0, 0, 2**31 - 1, "", "practice", "seed of every random choice, for repeatable output")
 
 
-_GROUPS = {"printer": Printer, "resin": Resin, "supports": SupportRules}
+_GROUPS = {"printer": Printer, "resin": Resin, "rules": SupportRules}
+
+#: Older names still read for one release, with a FutureWarning: old -> new.
+#: ``lift_mm`` read like the plate's motion between layers; ``max_reach_mm`` like
+#: a measured reach rather than a limit; ``[supports]`` was
+#: also the name of the solid and of a report section.
+RENAMED = MappingProxyType({"lift_mm": "elevation_mm", "supports": "rules", "max_reach_mm": "reach_limit_mm"})
+
+
+def _renamed(key: str) -> str:
+    new = RENAMED.get(key)
+    if new is None:
+        return key
+    warnings.warn(f"setting name '{key}' is now '{new}'; the old name will stop working in the next release",
+                  FutureWarning, stacklevel=4)
+    return new
 
 
 def _field_index() -> dict[str, tuple[str, dataclasses.Field]]:
@@ -148,6 +169,11 @@ def _field_index() -> dict[str, tuple[str, dataclasses.Field]]:
         for f in fields(cls):
             index[f.name] = (group, f)
     return index
+
+
+def _did_you_mean(name: str, names) -> str:
+    close = difflib.get_close_matches(name, list(names), n=1)
+    return f" (did you mean '{close[0]}'?)" if close else ""
 
 
 def _check_value(name: str, f: dataclasses.Field, value: Any) -> Any:
@@ -172,18 +198,18 @@ def _check_value(name: str, f: dataclasses.Field, value: Any) -> Any:
 
 @dataclass(frozen=True)
 class Settings:
-    """All settings of one run: ``printer``, ``resin`` and ``supports``."""
+    """All settings of one run: ``printer``, ``resin`` and the support ``rules``."""
 
     printer: Printer = field(default_factory=Printer)
     resin: Resin = field(default_factory=Resin)
-    supports: SupportRules = field(default_factory=SupportRules)
+    rules: SupportRules = field(default_factory=SupportRules)
 
     def __post_init__(self):
         for group in _GROUPS:
             obj = getattr(self, group)
             for f in fields(obj):
                 _check_value(f.name, f, getattr(obj, f.name))
-        s = self.supports
+        s = self.rules
         if s.tip_min_mm > s.tip_max_mm:
             raise SettingsError(f"setting 'tip_min_mm' ({s.tip_min_mm}) exceeds 'tip_max_mm' ({s.tip_max_mm}); make the smallest tip no larger than the largest")
         if s.tip_min_mm < 2 * self.printer.pixel_mm:
@@ -191,21 +217,22 @@ class Settings:
                 f"setting 'tip_min_mm' ({s.tip_min_mm} mm) is under 2 pixels of {self.printer.pixel_mm} mm; "
                 "raise it or use a finer printer")
 
-    def override(self, values: Mapping[str, Any] | None = None, /, **kwargs) -> "Settings":
+    def override(self, values: Mapping[str, Any] | None = None, /, **kwargs) -> Settings:
         """Return a copy with the given values replaced.
 
         Keys are field names (``contact_spacing_mm``) or ``group.name``
-        (``supports.contact_spacing_mm``); an unknown key raises
+        (``rules.contact_spacing_mm``); an unknown key raises
         :class:`~supportgen.errors.SettingsError` listing the valid names.
         """
         merged = {**(values or {}), **kwargs}
         index = _field_index()
         changes: dict[str, dict[str, Any]] = {g: {} for g in _GROUPS}
         for key, value in merged.items():
-            name = key.split(".", 1)[1] if "." in key else key
-            group = key.split(".", 1)[0] if "." in key else None
+            name = _renamed(key.split(".", 1)[1] if "." in key else key)
+            group = _renamed(key.split(".", 1)[0]) if "." in key else None
             if name not in index or (group is not None and index[name][0] != group):
-                raise SettingsError(f"unknown setting '{key}'; valid names: {', '.join(sorted(index))}")
+                raise SettingsError(f"unknown setting '{key}'{_did_you_mean(name, index)}; "
+                                    f"valid names: {', '.join(sorted(index))}")
             g, f = index[name]
             changes[g][name] = _check_value(name, f, value)
         return Settings(**{g: dataclasses.replace(getattr(self, g), **changes[g]) for g in _GROUPS})
@@ -243,7 +270,7 @@ def load_settings(source: str | Path | Mapping[str, Any] | None = None, **overri
     ----------
     source : str, Path, mapping or None
         ``None`` for the defaults; a name from :data:`PROFILES`; a path to a TOML
-        file with ``[printer]``, ``[resin]`` and ``[supports]`` tables (flat keys
+        file with ``[printer]``, ``[resin]`` and ``[rules]`` tables (flat keys
         are accepted too); or a mapping of the same shape.
     **overrides
         Single values by field name, applied last.
@@ -282,6 +309,7 @@ def load_settings(source: str | Path | Mapping[str, Any] | None = None, **overri
     flat: dict[str, Any] = {}
     for key, value in data.items():
         if isinstance(value, Mapping):
+            key = _renamed(key)
             if key not in _GROUPS:
                 raise SettingsError(f"unknown settings table [{key}]; valid tables: {', '.join(_GROUPS)}")
             flat.update({f"{key}.{k}": v for k, v in value.items()})

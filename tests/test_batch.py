@@ -89,7 +89,8 @@ def _files(root: Path) -> dict[str, bytes]:
 
 
 def _same_outputs(a: Path, b: Path) -> None:
-    """Byte-identical part outputs; report.json identical once its stage timings are removed."""
+    """Byte-identical part outputs; report.json identical once its stage timings and creation time are
+    removed (the design notes' determinism rule: reports differ only in those)."""
     fa = {k: v for k, v in _files(a).items() if not k.startswith("batch-summary")}
     fb = {k: v for k, v in _files(b).items() if not k.startswith("batch-summary")}
     assert sorted(fa) == sorted(fb)
@@ -97,6 +98,7 @@ def _same_outputs(a: Path, b: Path) -> None:
         if name.endswith(".report.json"):
             ja, jb = json.loads(fa[name]), json.loads(fb[name])
             ja.pop("timing_s"), jb.pop("timing_s")
+            ja["provenance"].pop("created"), jb["provenance"].pop("created")
             assert ja == jb, name
         elif name.endswith(".batch.json"):
             ja, jb = json.loads(fa[name]), json.loads(fb[name])

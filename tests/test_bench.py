@@ -20,9 +20,9 @@ import pytest
 import trimesh
 
 import supportgen
-from supportgen.runs.bench import measure_peak, run_bench
 from supportgen.errors import SettingsError
 from supportgen.io.meshio import write_mesh
+from supportgen.runs.bench import measure_peak, run_bench
 
 # Coarse grid so that four end-to-end runs stay within a few seconds each.
 COARSE = dict(pixel_mm=0.2, layer_mm=0.2, tip_min_mm=0.4, tip_max_mm=1.0)

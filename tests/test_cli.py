@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 import trimesh
 
-from supportgen.physics.forces import torsion_constant
 from supportgen.cli.main import main
+from supportgen.physics.pressure import torsion_constant
 
 COARSE = ["--set", "pixel_mm=0.2", "--set", "layer_mm=0.2", "--set", "tip_min_mm=0.4", "--set", "tip_max_mm=1.0",
           "--quiet"]

@@ -5,16 +5,16 @@ import pytest
 import trimesh
 from scipy.spatial import cKDTree
 
-from supportgen.supports.contacts import RSA_DENSITY, contacts_at, expected_count, merge_contacts, sample_overhangs
 from supportgen.analysis.overhangs import find_overhangs
 from supportgen.analysis.placement import place
 from supportgen.settings import Settings
+from supportgen.supports.contacts import RSA_DENSITY, contacts_at, expected_count, merge_contacts, sample_overhangs
 
 
 def _contacts(mesh, settings):
-    sp = settings.supports
-    oh = find_overhangs(mesh, sp.overhang_angle_deg, floor_z=0.0)
-    return sample_overhangs(mesh, oh, sp.contact_spacing_mm, sp.overhang_angle_deg, sp.tip_diameter_mm, sp.seed)
+    rules = settings.rules
+    oh = find_overhangs(mesh, rules.overhang_angle_deg, floor_z=0.0)
+    return sample_overhangs(mesh, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed)
 
 
 def test_jamming_density_constant():
@@ -24,7 +24,7 @@ def test_jamming_density_constant():
 
 
 def test_box_on_plate_needs_no_contact():
-    s = Settings().override(lift_mm=0.0)
+    s = Settings().override(elevation_mm=0.0)
     part = place(trimesh.creation.box((20, 20, 10)), s).mesh
     assert len(_contacts(part, s)) == 0
 

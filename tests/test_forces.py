@@ -12,10 +12,11 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from supportgen.physics import forces as fz
-from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
-from supportgen.errors import SettingsError
 from supportgen.analysis.layers import Grid, Layer
+from supportgen.errors import SettingsError
+from supportgen.physics import pressure as pz
+from supportgen.physics import separation as laws
+from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
 from supportgen.physics.loadpath import ForceTracker
 from supportgen.settings import Settings
 
@@ -35,8 +36,8 @@ def disc(r_px: float, half: int):
 
 def shape_of(mask, settings=None):
     lab, n = ndimage.label(mask, EIGHT)
-    sol = fz.solve_components(lab, range(1, n + 1), PX)
-    return fz.LayerShape(lab, PX, np.array([sol[i][1] for i in range(1, n + 1)]),
+    sol = pz.solve_components(lab, range(1, n + 1), PX)
+    return laws.LayerShape(lab, PX, np.array([sol[i][1] for i in range(1, n + 1)]),
                          np.array([sol[i][0] for i in range(1, n + 1)]))
 
 
@@ -53,24 +54,24 @@ def test_disc_torsion_and_stefan_law():
     # Grid: R = 80 pixels (4 mm at 0.05 mm), solved on the pixels.
     mask = disc(80, 84)
     R = 80 * PX
-    assert fz.torsion_constant(mask, PX) == pytest.approx(math.pi * R**4 / 2, rel=0.01)
+    assert pz.torsion_constant(mask, PX) == pytest.approx(math.pi * R**4 / 2, rel=0.01)
     s = Settings().override(force_calibration=1.0)
     mu, v, h = s.resin.viscosity_pa_s * 1e-6, s.printer.lift_speed_mm_s, s.printer.film_gap_mm
     stefan = 3 * math.pi * mu * R**4 * v / (2 * h**3)
-    assert fz.pull_force(shape_of(mask), s).sum() == pytest.approx(stefan, rel=0.01)
+    assert laws.pull_force(shape_of(mask), s).sum() == pytest.approx(stefan, rel=0.01)
 
 
 def test_reference_sheet_value_380_newtons():
     # REFERENCE.md section 1: R = 10 mm, 1 mm/s, 1 Pa s, h = 50 um gives about 380 N (Stefan's law).
     s = Settings().override(force_calibration=1.0, viscosity_pa_s=1.0)
-    shape = fz.LayerShape(np.ones((1, 1), int), PX, np.array([math.pi * 100]), np.array([math.pi * 1e4 / 2]))
-    assert fz.pull_force(shape, s)[0] == pytest.approx(377, rel=0.01)
+    shape = laws.LayerShape(np.ones((1, 1), int), PX, np.array([math.pi * 100]), np.array([math.pi * 1e4 / 2]))
+    assert laws.pull_force(shape, s)[0] == pytest.approx(377, rel=0.01)
 
 
 def test_square_torsion_roark():
     # Square side a: J = 0.1406 a^4 (Roark, torsion table). Grid: 40 x 40 pixels.
     a = 40 * PX
-    assert fz.torsion_constant(np.ones((40, 40), bool), PX) == pytest.approx(0.1406 * a**4, rel=0.01)
+    assert pz.torsion_constant(np.ones((40, 40), bool), PX) == pytest.approx(0.1406 * a**4, rel=0.01)
 
 
 @pytest.mark.parametrize("ratio,beta", [(1.5, 0.196), (2, 0.229), (3, 0.263), (5, 0.291), (10, 0.312)])
@@ -78,7 +79,7 @@ def test_rectangle_beta_table(ratio, beta):
     # J = beta a b^3 (Roark, torsion table; Timoshenko & Goodier). Grid: b = 40 pixels.
     b_px = 40
     a_px = int(ratio * b_px)
-    J = fz.torsion_constant(np.ones((b_px, a_px), bool), PX)
+    J = pz.torsion_constant(np.ones((b_px, a_px), bool), PX)
     assert J == pytest.approx(beta * a_px * PX * (b_px * PX) ** 3, rel=0.01)
     # and the exact series quoted beside the table, closer
     assert J == pytest.approx(beta_series(ratio) * a_px * PX * (b_px * PX) ** 3, rel=0.005)
@@ -89,7 +90,7 @@ def test_ellipse_torsion():
     yy, xx = centred(104)
     mask = (xx / 100) ** 2 + (yy / 50) ** 2 < 1
     a, b = 100 * PX, 50 * PX
-    assert fz.torsion_constant(mask, PX) == pytest.approx(math.pi * a**3 * b**3 / (a**2 + b**2), rel=0.01)
+    assert pz.torsion_constant(mask, PX) == pytest.approx(math.pi * a**3 * b**3 / (a**2 + b**2), rel=0.01)
 
 
 def test_equilateral_triangle_torsion():
@@ -97,14 +98,14 @@ def test_equilateral_triangle_torsion():
     yy, xx = centred(110)
     a = 200.0
     mask = (yy > -a * math.sqrt(3) / 6) & (yy < a * math.sqrt(3) / 3 - math.sqrt(3) * np.abs(xx))
-    assert fz.torsion_constant(mask, PX) == pytest.approx(math.sqrt(3) * (a * PX) ** 4 / 80, rel=0.01)
+    assert pz.torsion_constant(mask, PX) == pytest.approx(math.sqrt(3) * (a * PX) ** 4 / 80, rel=0.01)
 
 
 def test_convergence_rate_second_order():
     # The pixel-edge scheme is second order where the boundary lies on pixel edges
     # (Gibou et al. 2002): error against the exact square value falls 4x per halving.
     exact = beta_series(1.0)
-    errs = [abs(fz.torsion_constant(np.ones((n, n), bool), 1.0 / n) / exact - 1) for n in (8, 16, 32, 64)]
+    errs = [abs(pz.torsion_constant(np.ones((n, n), bool), 1.0 / n) / exact - 1) for n in (8, 16, 32, 64)]
     rates = np.log2(np.array(errs[:-1]) / np.array(errs[1:]))
     assert np.all((rates > 1.8) & (rates < 2.2)), rates
 
@@ -117,9 +118,9 @@ def test_coarse_grid_within_stated_bound():
     ell = (np.abs(xx) < 120) & (np.abs(yy) < 120) & ~((xx > 0) & (yy > 0))
     for mask in (ring, ell):
         lab, _ = ndimage.label(mask, EIGHT)
-        coarse = fz.solve_components(lab, [1], PX)[1][0]
-        assert fz.coarse_factor(mask.sum(), fz._edges(mask)) > 1
-        assert coarse == pytest.approx(fz.torsion_constant(mask, PX), rel=0.02)
+        coarse = pz.solve_components(lab, [1], PX)[1][0]
+        assert pz.coarse_factor(mask.sum(), pz._edges(mask)) > 1
+        assert coarse == pytest.approx(pz.torsion_constant(mask, PX), rel=0.02)
 
 
 # --- shape effects -------------------------------------------------------------------
@@ -136,7 +137,7 @@ def test_disc_has_largest_torsion_for_equal_area():
         "ellipse": (xx / (r * 1.6)) ** 2 + (yy / (r / 1.6)) ** 2 < 1,
         "strip": (np.abs(xx) < side) & (np.abs(yy) < side / 4),
     }
-    J = {k: fz.torsion_constant(m, 1.0) / m.sum() ** 2 for k, m in shapes.items()}  # J/A^2, area-free
+    J = {k: pz.torsion_constant(m, 1.0) / m.sum() ** 2 for k, m in shapes.items()}  # J/A^2, area-free
     assert max(J, key=J.get) == "disc"
 
 
@@ -146,7 +147,7 @@ def test_strip_against_disc_follows_beta_table():
     strip = np.ones((b, 10 * b), bool)
     r = math.sqrt(10 * b * b / math.pi)
     dmask = disc(r, int(r) + 3)
-    ratio = fz.pull_force(shape_of(strip), Settings()).sum() / fz.pull_force(shape_of(dmask), Settings()).sum()
+    ratio = laws.pull_force(shape_of(strip), Settings()).sum() / laws.pull_force(shape_of(dmask), Settings()).sum()
     expect = 0.312 * 10 * b * b**3 / (math.pi * r**4 / 2)
     assert ratio == pytest.approx(expect, rel=0.02)
     assert ratio < 0.3   # a long thin layer lets go far more easily
@@ -158,7 +159,7 @@ def test_slide_against_pull_for_disc():
     s = Settings().override(force_calibration=1.0)
     shape = shape_of(disc(80, 84))
     R, h = 80 * PX, s.printer.film_gap_mm
-    ratio = fz.pull_force(shape, s).sum() / fz.slide_force(shape, s).sum()
+    ratio = laws.pull_force(shape, s).sum() / laws.slide_force(shape, s).sum()
     assert ratio == pytest.approx(1.5 * (R / h) ** 2, rel=0.01)
 
 
@@ -166,7 +167,7 @@ def test_slide_about_a_hundredth_of_pull_with_defaults():
     # Common practice: sliding needs about a hundredth of the pulling force.
     # Typical small part: a 4 mm radius disc layer, default profile.
     shape = shape_of(disc(80, 84))
-    ratio = fz.slide_force(shape, Settings()).sum() / fz.pull_force(shape, Settings()).sum()
+    ratio = laws.slide_force(shape, Settings()).sum() / laws.pull_force(shape, Settings()).sum()
     assert 0.003 < ratio < 0.03
 
 
@@ -178,13 +179,13 @@ def test_tilt_band_of_a_long_bar():
     L, w = 400 * PX, 2.0
     expect = 1e-6 * s.resin.viscosity_pa_s * s.printer.lift_speed_mm_s * 3 * (L * w**3 / 3) / s.printer.film_gap_mm**3
     shape = shape_of(bar)
-    assert fz.tilt_force(shape, s).sum() == pytest.approx(expect, rel=0.01)
-    assert fz.tilt_force(shape, s).sum() < fz.pull_force(shape, s).sum()
+    assert laws.tilt_force(shape, s).sum() == pytest.approx(expect, rel=0.01)
+    assert laws.tilt_force(shape, s).sum() < laws.pull_force(shape, s).sum()
 
 
 def test_unknown_mechanism_lists_valid_names():
     with pytest.raises(SettingsError, match="valid names: pull, slide, tilt"):
-        fz.separation("twist")
+        laws.separation("twist")
 
 
 # --- sealed cavities and the load path ------------------------------------------
@@ -211,7 +212,7 @@ def test_sealed_ring_pulls_like_disc_vented_ring_does_not():
     vent = disc(8, 84)
     cup = run([full, ring, ring, ring])
     tube = run([full & ~vent, ring, ring, ring])
-    disc_force = fz.pull_force(shape_of(full), Settings()).sum()
+    disc_force = laws.pull_force(shape_of(full), Settings()).sum()
     assert cup.force_n[3] == pytest.approx(disc_force, rel=1e-6)
     Ro, Ri = ro * PX, ri * PX
     J = math.pi / 2 * (Ro**4 - Ri**4 - (Ro**2 - Ri**2) ** 2 / math.log(Ro / Ri))
@@ -287,9 +288,9 @@ def test_calibration_round_trip_with_area_term(tmp_path):
     # squeeze-film force (the model the fit assumed).
     s = calibrated_settings(fit, Settings())
     assert s.printer.force_area_n_mm2 == pytest.approx(fit.area_n_mm2)
-    shape = fz.LayerShape(np.zeros((0, 0), int), PX, np.array([100.0]), np.array([1000.0]))
+    shape = laws.LayerShape(np.zeros((0, 0), int), PX, np.array([100.0]), np.array([1000.0]))
     no_area = s.override(force_area_n_mm2=0.0)
-    extra = fz.pull_force(shape, s) - fz.pull_force(shape, no_area)
+    extra = laws.pull_force(shape, s) - laws.pull_force(shape, no_area)
     assert extra[0] == pytest.approx(100.0 * fit.area_n_mm2)
 
 
@@ -306,9 +307,9 @@ def reference_layers(masks):
     """Second method: per-layer J from full-image labelling (scipy.ndimage) and fresh solves."""
     out, below, below_sealed = [], None, None
     for m in masks:
-        sealed = fz.sealed_cavities(m, below, below_sealed)
+        sealed = pz.sealed_cavities(m, below, below_sealed)
         flab, n = ndimage.label(m | sealed, EIGHT)
-        sol = fz.solve_components(flab, range(1, n + 1), PX)
+        sol = pz.solve_components(flab, range(1, n + 1), PX)
         out.append((flab, np.array([sol[i][0] for i in range(1, n + 1)]),
                     np.array([sol[i][1] for i in range(1, n + 1)])))
         below, below_sealed = m, sealed
@@ -349,14 +350,14 @@ def test_tracker_matches_uncached_full_image_solve(mechanism):
     def check(tr, k):
         flab, J, A = ref[k]
         assert np.sort(tr.last_torsion_mm4) == pytest.approx(np.sort(J), rel=1e-8, abs=0)
-        shape = fz.LayerShape(flab, PX, A, J)
-        assert tr._force[k] == pytest.approx(fz.separation(mechanism)(shape, s).sum(), rel=1e-8)
+        shape = laws.LayerShape(flab, PX, A, J)
+        assert tr._force[k] == pytest.approx(laws.separation(mechanism)(shape, s).sum(), rel=1e-8)
         seen.append(k)
 
     run(masks, settings=s, check=check)
     assert seen == list(range(len(masks)))
     # the sequence exercises sealing, venting and several suction components
-    assert any(r[1].size > 1 for r in ref) and any(fz.sealed_cavities(m, b, None).any()
+    assert any(r[1].size > 1 for r in ref) and any(pz.sealed_cavities(m, b, None).any()
                                                   for m, b in zip(masks[1:], masks[:-1]))
 
 
@@ -386,14 +387,14 @@ def test_tracker_kept_factorisations_match_fresh_solves(monkeypatch):
     # A square widening by one pixel column per layer (s = 8): its coarse mask stays the
     # same for several layers, so the tracker solves by CG preconditioned with a kept LU.
     # Those answers must be the fresh solves' (reference as above) to round-off.
-    used, pcg = [], fz._pcg
+    used, pcg = [], pz._pcg
 
     def counted(*args):
         x = pcg(*args)
         used.append(x is not None)
         return x
 
-    monkeypatch.setattr(fz, "_pcg", counted)
+    monkeypatch.setattr(pz, "_pcg", counted)
     masks = []
     for k in range(10):
         m = np.zeros((260, 260), bool)
@@ -417,16 +418,16 @@ def test_kept_factorisation_gives_the_fresh_solve():
     part = (frac1 > 0) & (frac1 < 1)                              # move the boundary, keep the coarse mask
     frac2 = np.where(part & (frac1 < 0.5), 0.9 * frac1, np.where(part, 0.5 + 0.9 * (frac1 - 0.5), frac1))
     assert np.array_equal(frac1 >= 0.5, frac2 >= 0.5) and not np.array_equal(frac1, frac2)
-    _, kept = fz._factor_solve(frac1, 0.4)
-    phi, state = fz._factor_solve(frac2, 0.4, kept)
+    _, kept = pz._factor_solve(frac1, 0.4)
+    phi, state = pz._factor_solve(frac2, 0.4, kept)
     assert state[2] is kept[2]                                   # LU kept
-    assert phi == pytest.approx(fz._factor_solve(frac2, 0.4)[0], rel=1e-9, abs=1e-15)
-    again, same = fz._factor_solve(frac2, 0.4, state)
+    assert phi == pytest.approx(pz._factor_solve(frac2, 0.4)[0], rel=1e-9, abs=1e-15)
+    again, same = pz._factor_solve(frac2, 0.4, state)
     assert again is phi and same is state
     frac3 = np.clip(14.6 - np.hypot(xx, yy), 0, 1)               # coarse mask grew: factorised afresh
-    phi3, state3 = fz._factor_solve(frac3, 0.4, state)
+    phi3, state3 = pz._factor_solve(frac3, 0.4, state)
     assert state3[2] is not state[2]
-    assert phi3 == pytest.approx(fz._factor_solve(frac3, 0.4)[0], rel=1e-12, abs=1e-15)
+    assert phi3 == pytest.approx(pz._factor_solve(frac3, 0.4)[0], rel=1e-12, abs=1e-15)
 
 
 @pytest.mark.parametrize("offset", [0, 3, 7, 11, 17, 23])
@@ -440,5 +441,5 @@ def test_coarse_bound_holds_for_any_block_alignment(offset):
     for mask in (disc_, ring):
         shifted = np.pad(mask, ((offset, 0), (2 * offset % 29, 0)))
         lab, _ = ndimage.label(shifted, EIGHT)
-        assert fz.coarse_factor(mask.sum(), fz._edges(mask)) >= 3
-        assert fz.solve_components(lab, [1], PX)[1][0] == pytest.approx(fz.torsion_constant(mask, PX), rel=0.02)
+        assert pz.coarse_factor(mask.sum(), pz._edges(mask)) >= 3
+        assert pz.solve_components(lab, [1], PX)[1][0] == pytest.approx(pz.torsion_constant(mask, PX), rel=0.02)

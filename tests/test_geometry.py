@@ -5,19 +5,19 @@ import numpy as np
 import pytest
 import trimesh
 
-from supportgen.supports.contacts import sample_overhangs
-from supportgen.supports.geometry import combine, frustum, to_manifold
 from supportgen.analysis.overhangs import find_overhangs
 from supportgen.analysis.placement import place
 from supportgen.settings import Settings
+from supportgen.supports.contacts import sample_overhangs
+from supportgen.supports.geometry import combine, frustum, to_manifold
 from supportgen.supports.strategies import plan_straight
 
 
 def _supported(part, s):
     part = place(part, s).mesh
-    sp = s.supports
-    oh = find_overhangs(part, sp.overhang_angle_deg, floor_z=0.0)
-    c = sample_overhangs(part, oh, sp.contact_spacing_mm, sp.overhang_angle_deg, sp.tip_diameter_mm)
+    rules = s.rules
+    oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
+    c = sample_overhangs(part, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm)
     plan = plan_straight(part, c, s)
     return part, plan, combine(part, plan, s)
 
@@ -58,7 +58,7 @@ def test_landing_post_stands_on_the_part_below():
     wall = m.Manifold.cube((2, 10, 14)).translate((-10, -5, 0))
     block = m.Manifold.cube((8, 10, 4)).translate((0, -5, 0))
     part = to_trimesh(shelf + wall + block)
-    s = Settings().override(lift_mm=0.0)
+    s = Settings().override(elevation_mm=0.0)
     placed, plan, sol = _supported(part, s)
     assert plan.landings > 0
     land_pts = plan.tip_points[plan.tip_contact < 0]
@@ -72,15 +72,15 @@ def test_tree_gives_every_contact_a_way_down():
     # (followed through the plan graph with networkx, a reference library).
     import networkx as nx
 
-    from supportgen.supports.contacts import sample_overhangs as sample
     from supportgen.runs.demo import demo_part
+    from supportgen.supports.contacts import sample_overhangs as sample
     from supportgen.supports.strategies import get_strategy
 
     s = Settings()
     part = place(demo_part("jar_lid"), s).mesh
-    sp = s.supports
-    c = sample(part, find_overhangs(part, sp.overhang_angle_deg, floor_z=0.0), sp.contact_spacing_mm,
-               sp.overhang_angle_deg, sp.tip_diameter_mm)
+    rules = s.rules
+    c = sample(part, find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0), rules.contact_spacing_mm,
+               rules.overhang_angle_deg, rules.tip_diameter_mm)
     plan = get_strategy("tree")(part, c, s)
     assert set(plan.tip_contact[plan.tip_contact >= 0]) == set(range(len(c)))
     assert plan.landings > 0

@@ -12,19 +12,22 @@ which for a convex polygon boundary of perimeter P is at most 2*P*delta + pi*del
 from __future__ import annotations
 
 import json
-from functools import lru_cache
+from functools import cache
 from pathlib import Path
 
 import numpy as np
 import pytest
 import trimesh
-from hypothesis import given, settings as hsettings, strategies as st
+from hypothesis import given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 from scipy import ndimage
-from shapely.geometry import LineString, Polygon, box as sbox
+from shapely.geometry import LineString, Polygon
+from shapely.geometry import box as sbox
 from shapely.ops import unary_union
 
-from supportgen.errors import MeshError, SettingsError
 from supportgen.analysis.layers import Grid, analyse_layers, component_stats, iter_layers
+from supportgen.errors import MeshError, SettingsError
 
 m3 = pytest.importorskip("manifold3d")
 CORPUS = Path(__file__).parents[1] / ".." / "shared" / "corpus"
@@ -84,7 +87,7 @@ def test_cone_areas_are_those_of_its_polygons():
     bound = _steiner(2 * n * r * np.sin(np.pi / n), pixel)
     assert np.all(np.abs(stack.area_mm2 - exact) <= bound)
     assert stack.islands == ()                       # stands on the plate, narrows upwards
-    assert stack.max_reach_mm == 0.0
+    assert stack.max_unsupported_reach_mm == 0.0
 
 
 def test_torus_areas_are_those_of_its_annuli():
@@ -215,7 +218,7 @@ def test_lifted_ball_is_one_island_at_its_lowest_layer():
     assert isl.area_mm2 == pytest.approx(isl.mask.sum() * p * p)
 
 
-@lru_cache(maxsize=None)
+@cache
 def _cones_plate():
     """A plate (8-10 mm up) held by four downward cones whose tips are at different heights."""
     tips = ((2.37, 3.11, 2.0), (12.62, 2.93, 2.6), (3.08, 12.71, 3.3), (13.18, 13.39, 4.1))
@@ -240,7 +243,7 @@ def test_plate_on_downward_cones_has_an_island_at_each_tip():
         r, c = stack.grid.index(pts)
         assert isl.mask[r - isl.row0, c - isl.col0].all()
     # The plate's underside reaches out from the cones: over the limit, and reported.
-    assert stack.max_reach_mm > 1.0 and len(stack.overreach) >= 1
+    assert stack.max_unsupported_reach_mm > 1.0 and len(stack.overreach) >= 1
     assert all(o.reach_mm > 1.0 for o in stack.overreach)
 
 
@@ -253,10 +256,10 @@ def test_mushroom_on_the_plate_reaches_by_its_overhang():
     mesh = _mesh((stem + cap).translate((0.31, 0.17, 0.0)))
     stack = analyse_layers(mesh, p, h, 1.5)
     assert stack.islands == ()
-    assert abs(stack.max_reach_mm - 4.0) <= 2 * p
-    assert stack.max_reach_layer == int(np.floor(5.0 / h - 0.5)) + 1   # first layer sampled in the cap
-    assert len(stack.overreach) == 1 and stack.overreach[0].layer == stack.max_reach_layer
-    xy = np.array(stack.reach_xy[stack.max_reach_layer])
+    assert abs(stack.max_unsupported_reach_mm - 4.0) <= 2 * p
+    assert stack.max_unsupported_reach_layer == int(np.floor(5.0 / h - 0.5)) + 1   # first layer sampled in the cap
+    assert len(stack.overreach) == 1 and stack.overreach[0].layer == stack.max_unsupported_reach_layer
+    xy = np.array(stack.reach_xy[stack.max_unsupported_reach_layer])
     assert abs(np.hypot(*(xy - (0.31, 0.17))) - 6.0) <= 2 * p
     assert np.isnan(stack.reach_xy[0]).all() and stack.reach_mm[0] == 0
 
@@ -315,7 +318,7 @@ def test_to_dict_is_json():
     stack = analyse_layers(_cones_plate()[0], 0.25, 0.5, 1.0)
     d = json.loads(json.dumps(stack.to_dict()))
     assert d["islands"] == 4 and len(d["area_mm2"]) == len(stack.z_mm)
-    assert d["max_reach_mm"] == pytest.approx(stack.max_reach_mm, abs=1e-4)
+    assert d["max_unsupported_reach_mm"] == pytest.approx(stack.max_unsupported_reach_mm, abs=1e-4)
 
 
 def test_bad_inputs_raise_clear_errors():

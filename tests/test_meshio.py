@@ -145,6 +145,17 @@ def _edge_touching_boxes_stl(path):
     path.write_bytes(trimesh.exchange.stl.export_stl(trimesh.util.concatenate([a, b])))
 
 
+def _saddle_obj(path):
+    # z = x y over a 10 mm square: an open sheet, curved (not flat), that encloses nothing.
+    g = np.linspace(-5, 5, 11)
+    x, y = np.meshgrid(g, g)
+    v = np.column_stack([x.ravel(), y.ravel(), (x * y).ravel() / 5])
+    i = np.arange(10)[:, None] * 11 + np.arange(10)[None, :]
+    quads = np.stack([i, i + 1, i + 12, i + 11], -1).reshape(-1, 4)
+    f = np.vstack([quads[:, [0, 1, 2]], quads[:, [0, 2, 3]]])
+    path.write_bytes(trimesh.Trimesh(v, f, process=False).export(file_type="obj").encode())
+
+
 BAD_INPUTS = {
     "missing.stl": (None, "file not found"),
     "empty.stl": (lambda p: p.write_bytes(b""), "empty"),
@@ -159,8 +170,7 @@ BAD_INPUTS = {
     "nan.obj": (_nan_obj, "NaN or infinite"),
     "inf.stl": (_inf_stl, "NaN or infinite"),
     "flat.obj": (_flat_obj, "flat part"),
-    "bowl.ply": (_bowl_ply, "open surface"),
-    "touching.stl": (_edge_touching_boxes_stl, "non-manifold"),
+    "saddle.obj": (lambda p: _saddle_obj(p), "encloses nothing"),
 }
 
 
@@ -355,3 +365,59 @@ def test_rigid_transform_keeps_volume(q, shift):
     # Exact geometry: 6000 mm^3; STL stores float32, ~1e-7 relative per coordinate.
     assert part.mesh.volume == pytest.approx(box.volume, rel=1e-4)
     assert part.repairs == ()
+
+
+# ----------------------------------------------------------------------------- messy input a printer still prints
+
+
+def test_winding_number_of_a_closed_mesh_is_the_inside_test():
+    # Jacobson, Kavan & Sorkine-Hornung (ACM TOG 2013): on a closed, consistently oriented
+    # mesh the generalised winding number is 1 inside and 0 outside; trimesh's exact
+    # ray-parity `contains` is the reference.
+    from supportgen.io.winding import winding_number
+
+    mesh = trimesh.creation.annulus(r_min=3, r_max=8, height=6)
+    pts = np.random.default_rng(7).uniform(-9, 9, (2000, 3))
+    w = winding_number(mesh.vertices, mesh.faces, pts)
+    inside = mesh.contains(pts)
+    far = np.abs(trimesh.proximity.signed_distance(mesh, pts)) > 0.05   # not on the surface itself
+    assert np.all((w[far] > 0.5) == inside[far])
+    assert np.allclose(w[far], inside[far].astype(float), atol=0.01)
+
+
+def test_open_hemisphere_gives_one_half_on_its_rim_plane():
+    # Jacobson et al. 2013: an open hemisphere subtends half the sphere's solid angle at
+    # any point of the disc its rim bounds, so w = 1/2 there (REFERENCE.md section 8).
+    from supportgen.io.winding import winding_number
+
+    s = _sphere(radius=20, subdivisions=5)
+    cap = trimesh.Trimesh(s.vertices, s.faces[s.triangles_center[:, 2] > 0])
+    r = np.linspace(0, 0.7, 8)
+    pts = np.column_stack([r * 20, np.zeros_like(r), np.zeros_like(r)])   # _sphere has radius 20 mm
+    assert np.allclose(winding_number(cap.vertices, cap.faces, pts), 0.5, atol=0.01)
+
+
+def test_a_hole_too_large_to_fill_still_gives_the_solid(tmp_path):
+    # A 40 mm sphere with a 10 mm wide cap missing (4 % of its area, over the fill limit's
+    # reach once the loop is pinched) is rebuilt; its volume is within 2 % of the closed
+    # sphere's (exact volume 4/3 pi r^3 of the icosphere, from trimesh).
+    s = _sphere(radius=20, subdivisions=5)
+    hole = s.triangles_center[:, 2] > 0.985 * 20
+    path = tmp_path / "holed.ply"
+    path.write_bytes(trimesh.Trimesh(s.vertices, s.faces[~hole]).export(file_type="ply"))
+    part = load_mesh(path, hole_fraction=0.0)     # no fan filling: the winding route alone
+    assert part.mesh.is_watertight and part.mesh.is_winding_consistent
+    assert part.mesh.volume == pytest.approx(s.volume, rel=0.02)
+    assert any("generalised winding number" in r and "before" in r for r in part.repairs)
+
+
+@pytest.mark.parametrize("make", [_bowl_ply, _edge_touching_boxes_stl], ids=["bowl", "touching"])
+def test_open_and_non_manifold_parts_are_rebuilt_not_refused(tmp_path, make):
+    path = tmp_path / ("x.ply" if make is _bowl_ply else "x.stl")
+    make(path)
+    part = load_mesh(path)
+    assert part.mesh.is_watertight and part.mesh.volume > 0
+    assert any("generalised winding number" in r for r in part.repairs)
+    if make is _edge_touching_boxes_stl:
+        # Two unit boxes meeting along an edge: their union's volume is exactly 2 mm3.
+        assert part.mesh.volume == pytest.approx(2.0, rel=0.02)

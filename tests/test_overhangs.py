@@ -45,6 +45,7 @@ def test_dimple_in_an_upper_face_is_not_a_minimum():
     # neighbours but faces up: material lies under it.  Only the block's underside
     # (one level plateau) is a minimum.  Built with manifold3d (reference library).
     import manifold3d as m3d
+
     from supportgen.supports.geometry import to_trimesh
 
     block = m3d.Manifold.cube((20, 20, 6)).translate((-10, -10, 10))

@@ -8,8 +8,8 @@ import shapely
 import trimesh
 
 import supportgen
+from supportgen.report.document import REPORT_KEYS
 from supportgen.runs.demo import DEMO_PARTS, demo_part
-from supportgen.report.render import REPORT_KEYS
 
 
 def _islands_by_sections(mesh: trimesh.Trimesh, layer_mm: float) -> list[float]:
@@ -47,7 +47,7 @@ def test_demo_parts_are_closed_solids_that_pass_the_check(demo_results):
         assert len(r.combined.split(only_watertight=False)) == 1, name          # one body
         assert r.report["verification"]["passed"], (name, r.report["verification"]["failures"])
         assert r.report["verification"]["islands"] == 0
-        assert r.report["verification"]["max_unsupported_reach_mm"] <= s.supports.max_reach_mm
+        assert r.report["verification"]["max_unsupported_reach_mm"] <= s.rules.reach_limit_mm
 
 
 def test_demo_outputs_have_no_region_starting_in_mid_air(demo_results):
@@ -119,7 +119,7 @@ def test_corpus_models_run_through_generate(name, corpus, tmp_path):
     paths = r.save(tmp_path)
     assert trimesh.load(paths["combined"]).is_watertight          # trimesh (reference library)
     again = supportgen.check(paths["combined"], s)
-    assert again.passed and again.islands == 0, again.failures
+    assert again.passed and again.n_islands == 0, again.failures
 
 
 def test_every_tip_holds_at_the_set_safety_factor(demo_results):
@@ -129,10 +129,10 @@ def test_every_tip_holds_at_the_set_safety_factor(demo_results):
     for name, r in results.items():
         f = r.report["forces"]
         assert f["tips_over_capacity"] == 0, name
-        assert f["min_safety_factor"] is None or f["min_safety_factor"] >= s.supports.safety_factor - 1e-9
+        assert f["min_safety_factor"] is None or f["min_safety_factor"] >= s.rules.safety_factor - 1e-9
         c = r.contacts
         capacity = s.resin.green_tensile_mpa * np.pi * c.diameters**2 / 4
-        assert np.all(capacity >= s.supports.safety_factor * c.loads * (1 - 1e-9)), name
+        assert np.all(capacity >= s.rules.safety_factor * c.loads * (1 - 1e-9)), name
 
 
 def test_a_solid_brick_gets_more_tip_area_than_an_open_lattice():
@@ -169,7 +169,7 @@ def test_contacts_are_added_where_a_tip_would_need_more_than_the_largest():
     assert heavy.report["supports"]["contacts_added_by_densifying"] > 0
     assert len(heavy.contacts) > len(light.contacts)
     c = heavy.contacts
-    assert c.diameters.max() <= s.supports.tip_max_mm + 1e-12
+    assert c.diameters.max() <= s.rules.tip_max_mm + 1e-12
     capacity = s.resin.green_tensile_mpa * np.pi * c.diameters**2 / 4
-    assert np.all(capacity >= s.supports.safety_factor * c.loads * (1 - 1e-9))
+    assert np.all(capacity >= s.rules.safety_factor * c.loads * (1 - 1e-9))
     assert heavy.report["verification"]["passed"]

@@ -17,9 +17,9 @@ import trimesh
 from networkx.algorithms.approximation import steiner_tree
 
 from supportgen.errors import SettingsError
+from supportgen.settings import Settings
 from supportgen.supports.plan import Contacts
 from supportgen.supports.routing import clearance_field, free_space_graph, plan_tree
-from supportgen.settings import Settings
 
 CORPUS = Path(__file__).parents[1] / ".." / "shared" / "corpus"
 
@@ -74,7 +74,7 @@ def assert_reaches(plan, n_contacts, base_top):
 
 def open_plate(n_side=6):
     """A 40 mm plate lifted 20 mm with an n x n grid of contacts on its bottom face."""
-    settings = Settings().override(lift_mm=20.0)
+    settings = Settings().override(elevation_mm=20.0)
     plate = box((40, 40, 2), (0, 0, 21))
     g = np.linspace(-16, 16, n_side)
     xy = np.stack(np.meshgrid(g, g), -1).reshape(-1, 2)
@@ -83,7 +83,7 @@ def open_plate(n_side=6):
 
 def test_open_ground_between_steiner_bound_and_straight_posts():
     plate, contacts, settings = open_plate()
-    s = settings.supports
+    s = settings.rules
     plan = plan_tree(plate, contacts, settings)
     assert_clear(plate, plan, s.clearance_mm)
     assert_printable(plan, s.branch_angle_deg)
@@ -137,7 +137,7 @@ def test_clearance_certificate_agrees_with_trimesh():
 def test_free_space_graph_nodes_and_edges_keep_the_rules():
     part = box((10, 10, 4), (0, 0, 12))
     settings = Settings()
-    s = settings.supports
+    s = settings.rules
     field = clearance_field(part, s.clearance_mm)
     g = free_space_graph(part, settings, field, np.array([[-10, -10, 0], [10, 10, 20]]), step_mm=2.0)
     ids = [n for n in g if isinstance(n, int)]
@@ -158,7 +158,7 @@ def test_free_space_graph_nodes_and_edges_keep_the_rules():
 
 def test_cost_function_is_swappable():
     plate, contacts, settings = open_plate(n_side=4)
-    s = settings.supports
+    s = settings.rules
 
     def no_leaning(upper, lower):
         lean = np.linalg.norm(upper[:, :2] - lower[:, :2], axis=1)
@@ -173,8 +173,8 @@ def test_cost_function_is_swappable():
 
 
 def test_blocked_contact_goes_around_a_narrow_obstacle():
-    settings = Settings().override(lift_mm=8.0)
-    s = settings.supports
+    settings = Settings().override(elevation_mm=8.0)
+    s = settings.rules
     top = box((40, 40, 2), (0, 0, 31))
     bar = box((2, 40, 2), (0, 0, 9))                 # a rod straight under the contacts
     part = trimesh.util.concatenate([bar, top])
@@ -189,8 +189,8 @@ def test_blocked_contact_goes_around_a_narrow_obstacle():
 
 
 def test_walled_in_contact_lands_on_the_part_below():
-    settings = Settings().override(lift_mm=8.0)
-    s = settings.supports
+    settings = Settings().override(elevation_mm=8.0)
+    s = settings.rules
     top = box((30, 30, 2), (0, 0, 21))
     shelf = box((80, 80, 2), (0, 0, 9))              # too wide to go around at 40 degrees
     part = trimesh.util.concatenate([shelf, top])
@@ -219,10 +219,10 @@ def test_corpus_part_is_routed_within_the_rules():
     if not path.exists():
         pytest.skip(f"shared corpus not found at {path}")
     settings = Settings()
-    s = settings.supports
+    s = settings.rules
     part = trimesh.load(path, force="mesh")
     part.apply_scale(50.0 / part.extents.max())       # scaled to 50 mm on its longest side
-    part.apply_translation(-part.bounds[0] + [0, 0, s.lift_mm])
+    part.apply_translation(-part.bounds[0] + [0, 0, s.elevation_mm])
     rng = np.random.default_rng(1)
     down = np.flatnonzero(part.face_normals[:, 2] < -math.cos(math.radians(55)))
     faces = rng.choice(down, 40, p=part.area_faces[down] / part.area_faces[down].sum())

@@ -13,9 +13,9 @@ def test_defaults_follow_common_practice():
     # tips 0.2-0.6 mm, reach limit at most 3 mm.
     s = Settings()
     assert s.printer.pixel_mm == 0.05 and s.printer.layer_mm == 0.05
-    assert s.supports.lift_mm == 5.0
-    assert 0.2 <= s.supports.tip_diameter_mm <= 0.6
-    assert s.supports.max_reach_mm <= 3.0
+    assert s.rules.elevation_mm == 5.0
+    assert 0.2 <= s.rules.tip_diameter_mm <= 0.6
+    assert s.rules.reach_limit_mm <= 3.0
 
 
 def test_every_default_says_where_it_comes_from():
@@ -30,8 +30,8 @@ def test_unknown_key_names_it_and_lists_valid_names():
 
 
 def test_out_of_range_names_key_and_range():
-    with pytest.raises(SettingsError, match=r"'max_reach_mm' = 5.0 is out of range; valid range: 0.05 to 3.0 mm"):
-        Settings().override(max_reach_mm=5.0)
+    with pytest.raises(SettingsError, match=r"'reach_limit_mm' = 5.0 is out of range; valid range: 0.05 to 3.0 mm"):
+        Settings().override(reach_limit_mm=5.0)
     with pytest.raises(SettingsError, match=r"'mechanism' is 'yank'; valid choices: pull, slide, tilt"):
         Settings().override(mechanism="yank")
 
@@ -73,3 +73,19 @@ def test_tip_limits_are_consistent():
     # Smallest reliable feature is 2-3 pixels (common practice).
     with pytest.raises(SettingsError, match="under 2 pixels"):
         Settings().override(pixel_mm=0.1, tip_min_mm=0.15)
+
+
+def test_old_names_still_read_with_a_warning(tmp_path):
+    """``lift_mm`` and the ``[supports]`` table were renamed; both are read for one release, with a warning."""
+    prof = tmp_path / "old.toml"
+    prof.write_text("[supports]\nlift_mm = 7.5\ncontact_spacing_mm = 2.5\n")
+    with pytest.warns(FutureWarning) as seen:
+        s = load_settings(prof)
+    said = " ".join(str(w.message) for w in seen)
+    assert "'lift_mm' is now 'elevation_mm'" in said and "'supports' is now 'rules'" in said
+    assert s.rules.elevation_mm == 7.5 and s.rules.contact_spacing_mm == 2.5
+
+
+def test_mistyped_setting_suggests_the_name():
+    with pytest.raises(SettingsError, match=r"did you mean 'contact_spacing_mm'"):
+        Settings().override(contact_spacing=2.0)

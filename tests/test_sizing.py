@@ -14,14 +14,27 @@ import math
 import numpy as np
 import pytest
 import trimesh
-from hypothesis import given, settings as hsettings, strategies as st
+from hypothesis import given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 
-from supportgen.supports.plan import Contacts, SupportPlan
 from supportgen.settings import Settings
+from supportgen.supports.plan import Contacts, SupportPlan
 from supportgen.supports.sizing import (
-    EFFECTIVE_LENGTH, MAX_SLENDERNESS, SizingError, column_critical_load, densify_points, euler_critical_load,
-    flow_loads, johnson_critical_load, over_capacity, required_post_diameter, required_tip_diameter, size_plan,
-    tip_capacity, tip_diameter,
+    EFFECTIVE_LENGTH,
+    MAX_SLENDERNESS,
+    SizingError,
+    column_critical_load,
+    densify_points,
+    euler_critical_load,
+    flow_loads,
+    johnson_critical_load,
+    over_capacity,
+    required_post_diameter,
+    required_tip_diameter,
+    size_plan,
+    tip_capacity,
+    tip_diameter,
 )
 
 S = Settings()
@@ -110,7 +123,7 @@ def test_tip_sizing_round_trip(d, sigma, sf):
 
 
 def test_tip_diameter_clamps_and_flags():
-    s = S.supports
+    s = S.rules
     f_max = float(tip_capacity(s.tip_max_mm, S.resin.green_tensile_mpa)) / s.safety_factor
     loads = np.array([0.0, 0.5 * f_max, 0.999 * f_max, 1.001 * f_max, 10 * f_max])
     d = tip_diameter(loads, S)
@@ -152,7 +165,7 @@ def test_merge_trunk_carries_sum():
     assert sized.plan.tip_diameters == pytest.approx(tip_diameter(loads, S))
     # tension margin: sigma * pi * d^2 / 4 over the load, at least the safety factor
     cap = S.resin.green_tensile_mpa * math.pi * (2 * r) ** 2 / 4
-    assert np.all(cap / sized.edge_tension_n >= S.supports.safety_factor * (1 - 1e-9))
+    assert np.all(cap / sized.edge_tension_n >= S.rules.safety_factor * (1 - 1e-9))
 
 
 def test_split_equally_and_landing_tip():
@@ -171,7 +184,7 @@ def test_compression_loads_used_for_buckling():
     squeezed = size_plan(plan, [0.4, 0.9], S, compression_loads=[4.0, 9.0])
     assert squeezed.edge_compression_n == pytest.approx([4.0, 9.0, 13.0])
     assert np.all(squeezed.plan.edge_radius >= light.plan.edge_radius)
-    assert np.all(squeezed.edge_buckling_load_n >= S.supports.safety_factor * squeezed.edge_compression_n * (1 - 1e-9))
+    assert np.all(squeezed.edge_buckling_load_n >= S.rules.safety_factor * squeezed.edge_compression_n * (1 - 1e-9))
 
 
 def test_tension_governs_without_squeeze():
@@ -179,18 +192,18 @@ def test_tension_governs_without_squeeze():
     loads = np.array([2.0, 3.0])
     sized = size_plan(merge_plan(), loads, S, compression_loads=[0.0, 0.0])
     tension = np.array([2.0, 3.0, 5.0])
-    d = np.sqrt(4 * S.supports.safety_factor * tension / (math.pi * S.resin.green_tensile_mpa))
-    assert np.all(d > 0.5 * S.supports.post_diameter_mm)          # above the floor, so the formula governs
+    d = np.sqrt(4 * S.rules.safety_factor * tension / (math.pi * S.resin.green_tensile_mpa))
+    assert np.all(d > 0.5 * S.rules.post_diameter_mm)          # above the floor, so the formula governs
     assert 2 * sized.plan.edge_radius == pytest.approx(d, rel=1e-12)
-    assert sized.edge_safety_factor == pytest.approx(np.full(3, S.supports.safety_factor))  # exactly SF
+    assert sized.edge_safety_factor == pytest.approx(np.full(3, S.rules.safety_factor))  # exactly SF
 
 
 def test_posts_never_thinner_than_their_tips():
     # tiny loads: tips clamp up to tip_min_mm, which is above the need and the post floor (0.5 * 0.2 mm)
     s = S.override(post_diameter_mm=0.2)
     sized = size_plan(merge_plan(), [1e-4, 1e-4], s, compression_loads=[0.0, 0.0])
-    assert sized.plan.tip_diameters == pytest.approx([s.supports.tip_min_mm] * 2)
-    assert 2 * sized.plan.edge_radius == pytest.approx([s.supports.tip_min_mm] * 3)
+    assert sized.plan.tip_diameters == pytest.approx([s.rules.tip_min_mm] * 2)
+    assert 2 * sized.plan.edge_radius == pytest.approx([s.rules.tip_min_mm] * 3)
 
 
 def split_plan():
@@ -209,7 +222,7 @@ def test_diameters_monotone_down_the_flow():
             above = np.flatnonzero(p.edges[:, 1] == u)
             assert np.all(d[e] >= d[above] - 1e-12)
             assert np.all(d[e] >= p.tip_diameters[p.tip_nodes == u] - 1e-12)
-        assert np.all(d >= 0.5 * S.supports.post_diameter_mm - 1e-12)
+        assert np.all(d >= 0.5 * S.rules.post_diameter_mm - 1e-12)
 
 
 def test_end_conditions_follow_sway_restraint():
@@ -230,7 +243,7 @@ def test_slender_post_gets_braced():
     lo, hi = p.nodes[p.braces[:, 0]], p.nodes[p.braces[:, 1]]
     rise = np.degrees(np.arctan2(hi[:, 2] - lo[:, 2], np.linalg.norm(hi[:, :2] - lo[:, :2], axis=1)))
     assert np.all(rise >= 45.0)                                  # printable brace (common practice)
-    E, sigma, sf = s.resin.green_modulus_mpa, s.resin.green_tensile_mpa, s.supports.safety_factor
+    E, sigma, sf = s.resin.green_modulus_mpa, s.resin.green_tensile_mpa, s.rules.safety_factor
     feet_edges = np.flatnonzero(np.isin(p.edges[:, 1], p.feet))
     for e in feet_edges:
         L = float(np.linalg.norm(p.nodes[p.edges[e, 0]] - p.nodes[p.edges[e, 1]]))
@@ -258,17 +271,17 @@ def test_heavier_plan_never_thinner(loads, scale):
 
 
 def test_over_capacity_reported():
-    f_max = float(tip_capacity(S.supports.tip_max_mm, S.resin.green_tensile_mpa)) / S.supports.safety_factor
+    f_max = float(tip_capacity(S.rules.tip_max_mm, S.resin.green_tensile_mpa)) / S.rules.safety_factor
     sized = size_plan(merge_plan(), [2 * f_max, 0.1], S)
     assert sized.tips_over_capacity == 1 and sized.tip_over.tolist() == [True, False]
     # the over tip holds only (f_max * SF) / (2 f_max) = SF / 2 times its load
-    assert sized.tip_safety_factor[0] == pytest.approx(S.supports.safety_factor / 2)
-    assert sized.min_safety_factor == pytest.approx(S.supports.safety_factor / 2)
+    assert sized.tip_safety_factor[0] == pytest.approx(S.rules.safety_factor / 2)
+    assert sized.min_safety_factor == pytest.approx(S.rules.safety_factor / 2)
     assert sized.contacts_over_capacity(3).tolist() == [True, False, False]
     report = sized.to_dict()
     json.dumps(report, allow_nan=False)
     assert report["tips_over_capacity"] == 1
-    assert report["tip_diameter_mm"]["max"] == pytest.approx(S.supports.tip_max_mm)
+    assert report["tip_diameter_mm"]["max"] == pytest.approx(S.rules.tip_max_mm)
 
 
 def test_bad_plans_rejected():
@@ -291,7 +304,7 @@ def test_densify_ring_on_flat_underside():
     box.apply_translation((0, 0, 7))                      # underside at z = 5
     out = densify_points(_one((0, 0, 5), (0, 0, -1)), [True], box, S)
     new = out.points[1:]
-    r = 0.5 * S.supports.contact_spacing_mm
+    r = 0.5 * S.rules.contact_spacing_mm
     assert len(out) == 7 and set(out.kinds[1:]) == {"densify"}
     # exact geometry: a ring of radius r in the plane of the face stays on it
     assert np.linalg.norm(new[:, :2], axis=1) == pytest.approx(np.full(6, r))

@@ -14,21 +14,23 @@ Examples
 >>> box = trimesh.creation.box(extents=(2.0, 2.0, 1.0))
 >>> _ = box.apply_translation((0.0, 0.0, 0.5))
 >>> stack = analyse_layers(box, 0.125, 0.25, 1.5)
->>> stack.area_mm2.tolist(), len(stack.islands), stack.max_reach_mm
+>>> stack.area_mm2.tolist(), len(stack.islands), stack.max_unsupported_reach_mm
 ([4.0, 4.0, 4.0, 4.0], 0, 0.0)
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
-from typing import Callable, Iterable, Iterator
 
 import numpy as np
 import trimesh
 from scipy import ndimage
 
+from ..constants import EPS_ZERO
 from ..errors import MeshError, SettingsError
-from .raster import winding_masks
+from .raster import layer_count, winding_masks
+from .runlength import edge_components, mask_runs, paint_runs, run_overlaps
 
 __all__ = ["Grid", "Layer", "Island", "Overreach", "LayerStack", "iter_layers", "analyse_layers",
            "component_stats"]
@@ -56,7 +58,7 @@ class Grid:
         return (self.ny, self.nx)
 
     @classmethod
-    def covering(cls, bounds, pixel_mm: float, pad: int = 2) -> "Grid":
+    def covering(cls, bounds, pixel_mm: float, pad: int = 2) -> Grid:
         """A grid over the x/y extent of ``bounds`` ((2, 3) array), ``pad`` pixels wider each side."""
         lo = np.floor(np.asarray(bounds)[0, :2] / pixel_mm) - pad
         hi = np.ceil(np.asarray(bounds)[1, :2] / pixel_mm) + pad
@@ -160,19 +162,19 @@ class LayerStack:
     reach_mm: np.ndarray
     reach_xy: np.ndarray
     overreach: tuple[Overreach, ...]
-    max_reach_mm: float
-    max_reach_layer: int
+    max_unsupported_reach_mm: float
+    max_unsupported_reach_layer: int
     inverted_pixels: int
 
     def to_dict(self) -> dict:
         """Summary for the JSON report: counts, worst reach and the per-layer areas."""
-        k = self.max_reach_layer
+        k = self.max_unsupported_reach_layer
         return {
             "layers": int(len(self.z_mm)), "layer_mm": self.layer_mm, "pixel_mm": self.grid.pixel_mm,
             "islands": len(self.islands),
             "island_list": [{"layer": i.layer, "z_mm": round(i.z_mm, 4), "area_mm2": round(i.area_mm2, 4),
                              "xy_mm": [round(v, 4) for v in i.centroid_xy]} for i in self.islands],
-            "max_reach_mm": round(float(self.max_reach_mm), 4), "max_reach_layer": int(k),
+            "max_unsupported_reach_mm": round(float(self.max_unsupported_reach_mm), 4), "max_unsupported_reach_layer": int(k),
             "max_reach_xy": ([round(float(v), 4) for v in self.reach_xy[k]]
                              if k >= 0 and np.isfinite(self.reach_xy[k]).all() else None),
             "overreach_regions": len(self.overreach),
@@ -276,14 +278,7 @@ def _near_rings(radius: int) -> tuple[tuple[float, tuple[tuple[int, int], ...]],
 _RINGS = _near_rings(_MARGIN - 1)
 
 
-def _runs(m: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Runs of True along the rows of a mask with a False border: row, start, end (exclusive)."""
-    t = np.flatnonzero(m[:, 1:] != m[:, :-1])
-    q, rem = np.divmod(t, m.shape[1] - 1)
-    return q[0::2], rem[0::2] + 1, rem[1::2] + 1
-
-
-def _run_components(r, s, e, width, pixel_mm):
+def _run_components(r, s, e, pixel_mm):
     """8-connected components of row runs, with area and Crofton perimeter.
 
     Returns the component (0-based) of every run, their number, the area (pixels)
@@ -291,29 +286,11 @@ def _run_components(r, s, e, width, pixel_mm):
     counted from run lengths and the overlaps of runs in adjacent rows.
     """
     n = r.size
-    sk, ek, nxt = r * width + s, r * width + e, (r + 1) * width
-    lo = np.searchsorted(ek, nxt + s, side="left")       # next-row runs ending at or after s - 1 ...
-    hi = np.searchsorted(sk, nxt + e, side="right")      # ... and starting at or before e
-    cnt = np.maximum(hi - lo, 0)
-    a = np.repeat(np.arange(n), cnt)
-    b = lo[a] + np.arange(a.size) - (np.cumsum(cnt) - cnt)[a]
+    a, b, _ = run_overlaps((r + 1, s, e), (r, s, e), shift=1)   # run a touches run b of the next row
     area = int((e - s).sum())
     ov = [int(np.maximum(np.minimum(e[a] + t, e[b]) - np.maximum(s[a] + t, s[b]), 0).sum()) for t in (0, 1, -1)]
     transitions = 2 * n + 2 * (area - ov[0]) + (4 * area - 2 * ov[1] - 2 * ov[2]) / np.sqrt(2)
-    root = np.arange(n)
-    while True:                       # hook roots to the smaller root across every edge, then compress
-        ra, rb = root[a], root[b]
-        diff = ra != rb
-        if not diff.any():
-            break
-        np.minimum.at(root, np.maximum(ra[diff], rb[diff]), np.minimum(ra[diff], rb[diff]))
-        while True:
-            nxt_root = root[root]
-            if np.array_equal(nxt_root, root):
-                break
-            root = nxt_root
-    roots, comp = np.unique(root, return_inverse=True)
-    n_comp = roots.size
+    n_comp, comp = edge_components(n, a, b)
     return comp, n_comp, area, float(np.pi / 8 * pixel_mm * transitions)
 
 
@@ -431,11 +408,11 @@ def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reac
             raise SettingsError(f"layers: {name}={val!r} must be a positive number of mm")
     _check(mesh, layer_mm)
     grid = Grid.covering(mesh.bounds, pixel_mm) if grid is None else grid
-    if not np.isclose(grid.pixel_mm, pixel_mm, rtol=1e-12, atol=0):
+    if not np.isclose(grid.pixel_mm, pixel_mm, rtol=EPS_ZERO, atol=0):
         raise SettingsError(f"layers: grid pitch {grid.pixel_mm} mm differs from pixel_mm={pixel_mm}; "
                             "pass a grid of the same pitch or none")
     observers, p = tuple(observers), grid.pixel_mm
-    n_layers = max(0, int(np.ceil(mesh.bounds[1, 2] / layer_mm - 0.5)))
+    n_layers = layer_count(float(mesh.bounds[1, 2]), layer_mm)
     rows_out = np.zeros((n_layers, 4))              # area, perimeter, components, reach (pixels)
     reach_xy = np.full((n_layers, 2), np.nan)
     islands, over, inverted = [], [], 0
@@ -458,8 +435,8 @@ def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reac
         r0, r1, c0, c1 = rr[0] - _MARGIN, rr[-1] + _MARGIN + 1, cc[0] - _MARGIN, cc[-1] + _MARGIN + 1
         m, pw = _window(mask, r0, r1, c0, c1), _window(prev, r0, r1, c0, c1)
         w = m.shape[1]
-        runs = _runs(m)
-        comp, n, area, perim = _run_components(*runs, w + 1, p)
+        runs = mask_runs(m)
+        comp, n, area, perim = _run_components(*runs, p)
         rows_out[k, :3] = area * p * p, perim, n
         new = np.flatnonzero(m & ~pw) if k > 0 else np.zeros(0, np.int64)
         if new.size:
@@ -482,7 +459,7 @@ def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reac
         if observers:
             full = np.zeros(grid.shape, np.int32)
             rs, cs = slice(max(r0, 0), min(r1, grid.ny)), slice(max(c0, 0), min(c1, grid.nx))
-            full[rs, cs] = _paint(runs, comp, m.shape)[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
+            full[rs, cs] = paint_runs(*runs, comp + 1, m.shape)[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
             for ob in observers:
                 ob(layer, full, n)
         prev = mask
@@ -491,15 +468,6 @@ def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reac
     return LayerStack(grid, float(layer_mm), (np.arange(n_layers) + 0.5) * layer_mm, rows_out[:, 0],
                       rows_out[:, 1], rows_out[:, 2].astype(int), tuple(islands), reach, reach_xy,
                       tuple(over), float(reach.max(initial=0.0)), worst, int(inverted))
-
-
-def _paint(runs, comp, shape) -> np.ndarray:
-    """Label image (1-based) of a window from its runs and their components."""
-    r, s, e = runs
-    acc = np.zeros(shape[0] * shape[1] + 1, np.int32)
-    acc[r * shape[1] + s] = comp + 1
-    acc[r * shape[1] + e] = -(comp + 1)
-    return np.cumsum(acc[:-1], dtype=np.int32).reshape(shape)
 
 
 def _islands(pix, pl, k, z, grid, r0, c0, w):

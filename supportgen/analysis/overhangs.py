@@ -13,9 +13,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse as sp
+import scipy.sparse as sparse
 import trimesh
 from scipy.sparse.csgraph import connected_components
+
+from ..constants import EPS_SMALL, OFFSET_MM
 
 __all__ = ["Overhangs", "find_overhangs", "overhang_faces", "local_minima"]
 
@@ -58,7 +60,7 @@ def overhang_faces(mesh: trimesh.Trimesh, angle_deg: float, floor_z: float | Non
     mask = -nz > np.cos(np.radians(angle_deg))
     if floor_z is not None:
         fz = mesh.vertices[mesh.faces][:, :, 2].max(axis=1)
-        mask &= fz > floor_z + 1e-3
+        mask &= fz > floor_z + OFFSET_MM
     return np.flatnonzero(mask)
 
 
@@ -72,12 +74,12 @@ def _region_labels(mesh: trimesh.Trimesh, faces: np.ndarray) -> tuple[np.ndarray
     local = np.full(len(mesh.faces), -1)
     local[faces] = np.arange(len(faces))
     a, b = local[adj[keep, 0]], local[adj[keep, 1]]
-    graph = sp.coo_matrix((np.ones(len(a)), (a, b)), shape=(len(faces), len(faces)))
+    graph = sparse.coo_matrix((np.ones(len(a)), (a, b)), shape=(len(faces), len(faces)))
     n, labels = connected_components(graph, directed=False)
     return labels, int(n)
 
 
-def local_minima(mesh: trimesh.Trimesh, floor_z: float | None = None, tol: float = 1e-6) -> np.ndarray:
+def local_minima(mesh: trimesh.Trimesh, floor_z: float | None = None, tol: float = EPS_SMALL) -> np.ndarray:
     """Positions of local minima of the surface's height, one per plateau.
 
     A plateau is a set of vertices joined by level edges (height difference
@@ -103,7 +105,7 @@ def local_minima(mesh: trimesh.Trimesh, floor_z: float | None = None, tol: float
     dz = z[e[:, 1]] - z[e[:, 0]]
     level = np.abs(dz) <= tol
     n = len(v)
-    graph = sp.coo_matrix((np.ones(level.sum()), (e[level, 0], e[level, 1])), shape=(n, n))
+    graph = sparse.coo_matrix((np.ones(level.sum()), (e[level, 0], e[level, 1])), shape=(n, n))
     _, plateau = connected_components(graph, directed=False)
     # A plateau fails if any non-level edge leaving it goes down.
     lower = np.zeros(plateau.max() + 1 if n else 0, bool)
@@ -122,7 +124,7 @@ def local_minima(mesh: trimesh.Trimesh, floor_z: float | None = None, tol: float
     normal_z = np.bincount(plateau, weights=mesh.vertex_normals[:, 2], minlength=len(lower))
     cand = cand[normal_z[cand] < 0]
     if floor_z is not None:
-        cand = cand[centroid[cand, 2] > floor_z + 1e-3]
+        cand = cand[centroid[cand, 2] > floor_z + OFFSET_MM]
     # Snap each plateau to its vertex nearest the centroid, so the point lies on the surface.
     d = np.linalg.norm(v - centroid[plateau], axis=1)
     order = np.lexsort((d, plateau))

@@ -26,14 +26,26 @@ References
 
 from __future__ import annotations
 
-from typing import Iterator
+from collections.abc import Iterator
 
 import numpy as np
 import trimesh
 
-__all__ = ["ray_crossings", "winding_masks"]
+__all__ = ["layer_count", "ray_crossings", "winding_masks"]
 
 _CHUNK = 1 << 20                     # candidate pixel-triangle pairs per rasteriser chunk
+
+
+def layer_count(top_mm: float, layer_mm: float) -> int:
+    """Layers printed under a top at ``top_mm``: each layer is sampled at its mid-height.
+
+    Layer ``k`` spans ``[k h, (k + 1) h]`` and is cured where its mid-plane
+    ``(k + 1/2) h`` lies inside the part, so the count is ``ceil(top / h - 1/2)``.
+
+    >>> layer_count(1.0, 0.05), layer_count(1.02, 0.05), layer_count(0.0, 0.05)
+    (20, 20, 0)
+    """
+    return max(0, int(np.ceil(top_mm / layer_mm - 0.5)))
 
 
 def ray_crossings(mesh: trimesh.Trimesh, grid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -178,7 +190,7 @@ def winding_masks(mesh: trimesh.Trimesh, grid, layer_mm: float, first: int = 0,
     >>> [(k, int(m.sum()), n) for k, m, n in winding_masks(box, Grid(0.125, 0.125, 0.25, 4, 4), 0.5)]
     [(0, 16, 0), (1, 16, 0)]
     """
-    top = max(0, int(np.ceil(mesh.bounds[1, 2] / layer_mm - 0.5)))
+    top = layer_count(float(mesh.bounds[1, 2]), layer_mm)
     last = top - 1 if last is None else int(last)
     idx, zc, sg = ray_crossings(mesh, grid)
     k = np.floor(zc / layer_mm - 0.5).astype(np.int64) + 1   # first layer sampled above the crossing

@@ -9,7 +9,7 @@ height, as the printer will cure it, and passes only when
   smallest feature a printer cures reliably (2-3 pixels, common practice): no
   tip can hold it, so it is reported as a warning about the model's geometry,
   not counted as an island),
-- no newly cured pixel lies farther than ``supports.max_reach_mm`` from
+- no newly cured pixel lies farther than ``rules.reach_limit_mm`` from
   material cured in the layer below,
 - and, when the tips' loads and diameters are known, every tip holds its peak
   load at the set safety factor.
@@ -25,8 +25,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import trimesh
 
-from .layers import LayerStack, analyse_layers
+from ..constants import EPS_REL
 from ..settings import Settings
+from .layers import LayerStack, analyse_layers
 
 __all__ = ["Verification", "verify", "speck_area_mm2"]
 
@@ -42,12 +43,12 @@ class Verification:
 
     passed: bool
     watertight: bool
-    islands: int
+    n_islands: int
     first_islands: tuple[dict, ...]
     specks: tuple[dict, ...]
     max_unsupported_reach_mm: float
-    worst_reach_layer: int
-    worst_reach_xy: tuple[float, float] | None
+    max_unsupported_reach_layer: int
+    max_unsupported_reach_xy: tuple[float, float] | None
     reach_limit_mm: float
     tips_over_capacity: int | None
     failures: tuple[str, ...] = field(default=())
@@ -58,13 +59,14 @@ class Verification:
         return {
             "passed": self.passed,
             "watertight": self.watertight,
-            "islands": self.islands,
+            "islands": self.n_islands,
             "first_islands": list(self.first_islands),
             "specks": len(self.specks),
             "first_specks": list(self.specks[:10]),
             "max_unsupported_reach_mm": round(self.max_unsupported_reach_mm, 4),
-            "worst_reach_layer": self.worst_reach_layer,
-            "worst_reach_xy_mm": None if self.worst_reach_xy is None else [round(v, 3) for v in self.worst_reach_xy],
+            "max_unsupported_reach_layer": self.max_unsupported_reach_layer,
+            "max_unsupported_reach_xy_mm": (None if self.max_unsupported_reach_xy is None
+                                            else [round(v, 3) for v in self.max_unsupported_reach_xy]),
             "reach_limit_mm": self.reach_limit_mm,
             "tips_over_capacity": self.tips_over_capacity,
             "failures": list(self.failures),
@@ -80,7 +82,7 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
     mesh : trimesh.Trimesh
         The supported part, standing on the plate (z = 0) in build coordinates.
     settings : Settings
-        Pixel pitch, layer height and ``supports.max_reach_mm``.
+        Pixel pitch, layer height and ``rules.reach_limit_mm``.
     tip_safety : (n,) float ndarray, optional
         Each tip's capacity over its factored load; a tip below 1 fails.
     progress : bool or str
@@ -97,12 +99,14 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
     One streamed pass over the layers: O(layers x pixels) time, memory of about
     one layer plus the crossing list (:func:`supportgen.analysis.layers.analyse_layers`).
     """
-    pr, sp = settings.printer, settings.supports
+    pr, rules = settings.printer, settings.rules
     watertight = bool(mesh.is_watertight and mesh.is_volume)
-    stack = analyse_layers(mesh, pr.pixel_mm, pr.layer_mm, sp.max_reach_mm, progress=progress)
+    stack = analyse_layers(mesh, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm, progress=progress)
     failures = []
     if not watertight:
         failures.append(f"{name}: the solid is not closed and oriented; it cannot be sliced reliably")
+    if float(stack.area_mm2.max(initial=0.0)) < speck_area_mm2(pr.pixel_mm):
+        failures.append(f"{name}: no layer cures more than a speck; the solid prints nothing (check its units)")
     speck_mm2 = speck_area_mm2(pr.pixel_mm)
     islands = [i for i in stack.islands if i.area_mm2 >= speck_mm2]
     specks = [i for i in stack.islands if i.area_mm2 < speck_mm2]
@@ -116,23 +120,24 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
         i = islands[0]
         failures.append(f"{name}: {len(islands)} island(s) start in mid-air; the first at layer {i.layer} "
                         f"(z {i.z_mm:.2f} mm) near x {i.centroid_xy[0]:.2f}, y {i.centroid_xy[1]:.2f} mm")
-    reach = float(stack.max_reach_mm)
+    reach = float(stack.max_unsupported_reach_mm)
     worst_xy = None
-    if stack.max_reach_layer >= 0 and np.all(np.isfinite(stack.reach_xy[stack.max_reach_layer])):
-        worst_xy = tuple(float(v) for v in stack.reach_xy[stack.max_reach_layer])
-    if reach > sp.max_reach_mm:
+    if stack.max_unsupported_reach_layer >= 0 and np.all(np.isfinite(stack.reach_xy[stack.max_unsupported_reach_layer])):
+        worst_xy = tuple(float(v) for v in stack.reach_xy[stack.max_unsupported_reach_layer])
+    if reach > rules.reach_limit_mm:
         where = "" if worst_xy is None else f" near x {worst_xy[0]:.2f}, y {worst_xy[1]:.2f} mm"
-        failures.append(f"{name}: layer {stack.max_reach_layer} reaches {reach:.2f} mm past the layer below"
-                        f"{where} (limit {sp.max_reach_mm:g} mm)")
+        failures.append(f"{name}: layer {stack.max_unsupported_reach_layer} reaches {reach:.2f} mm past the layer below"
+                        f"{where} (limit {rules.reach_limit_mm:g} mm)")
     over = None
     if tip_safety is not None:
         # Sizing makes capacity exactly SF x load; allow for rounding in that product.
-        over = int(np.count_nonzero(np.asarray(tip_safety) < 1.0 - 1e-9))
+        over = int(np.count_nonzero(np.asarray(tip_safety) < 1.0 - EPS_REL))
         if over:
             failures.append(f"{name}: {over} tip(s) would tear off at the set safety factor")
     return Verification(
-        passed=not failures, watertight=watertight, islands=len(islands), first_islands=first,
+        passed=not failures, watertight=watertight, n_islands=len(islands), first_islands=first,
         specks=tuple(record(i) for i in specks),
-        max_unsupported_reach_mm=reach, worst_reach_layer=int(stack.max_reach_layer), worst_reach_xy=worst_xy,
-        reach_limit_mm=sp.max_reach_mm, tips_over_capacity=over, failures=tuple(failures), layers=stack,
+        max_unsupported_reach_mm=reach, max_unsupported_reach_layer=int(stack.max_unsupported_reach_layer),
+        max_unsupported_reach_xy=worst_xy,
+        reach_limit_mm=rules.reach_limit_mm, tips_over_capacity=over, failures=tuple(failures), layers=stack,
     )

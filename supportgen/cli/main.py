@@ -120,8 +120,8 @@ def cmd_profiles(args) -> int:
 
 
 def cmd_calibrate(args) -> int:
-    from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
     from supportgen.io.meshio import atomic_write_text
+    from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
 
     settings = settings_from(args)
     fit = fit_calibration(read_measurements(args.measurements), settings)
@@ -139,8 +139,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     common, strategy = common_options(), strategy_option()
     gen_opts = argparse.ArgumentParser(add_help=False, parents=[strategy])
-    gen_opts.add_argument("--lift", type=float, metavar="MM",
-                          help="height of the part's lowest point above the plate")
+    gen_opts.add_argument("--elevation", type=float, metavar="MM",
+                          help="height of the part's lowest point above the plate (setting elevation_mm)")
     gen_opts.add_argument("--centre", action="store_true", help="centre each part on the plate")
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")

@@ -66,7 +66,7 @@ def _value(text: str):
 
 
 def settings_from(args):
-    """Settings from ``--profile`` and every ``--set NAME=VALUE`` (and ``--lift`` where a command has it)."""
+    """Settings from ``--profile`` and every ``--set NAME=VALUE`` (and ``--elevation`` where a command has it)."""
     import supportgen
 
     overrides = {}
@@ -75,8 +75,8 @@ def settings_from(args):
             raise supportgen.SettingsError(f"--set {item!r}: write it as NAME=VALUE, e.g. --set contact_spacing_mm=1.8")
         key, value = item.split("=", 1)
         overrides[key.strip()] = _value(value.strip())
-    if getattr(args, "lift", None) is not None:
-        overrides["lift_mm"] = args.lift
+    if getattr(args, "elevation", None) is not None:
+        overrides["elevation_mm"] = args.elevation
     return supportgen.load_settings(args.profile, **overrides)
 
 

@@ -32,6 +32,7 @@ from supportgen.io.repair import HOLE_FRACTION, repair_arrays
 
 __all__ = [
     "READ_FORMATS",
+    "part_name",
     "WRITE_FORMATS",
     "HOLE_FRACTION",
     "LoadedMesh",
@@ -43,6 +44,19 @@ __all__ = [
 ]
 
 READ_FORMATS = (".stl", ".obj", ".ply", ".3mf")
+
+
+def part_name(path) -> str:
+    """The name a part's outputs take: its file name without the format's extension.
+
+    The one rule for output names (``generate``, ``batch`` and ``bench`` all use
+    it): only the extension goes, so ``part.v1.stl`` and ``part.v2.stl`` stay apart.
+
+    >>> part_name("jobs/part.v2.STL"), part_name("lid.3mf"), part_name("notes")
+    ('part.v2', 'lid', 'notes')
+    """
+    p = Path(path)
+    return p.name[: -len(p.suffix)] if p.suffix.lower() in READ_FORMATS else p.name
 WRITE_FORMATS = (".stl", ".3mf", ".ply")
 # HOLE_FRACTION (what "small hole" means) is defined in supportgen.io.repair and re-exported here.
 

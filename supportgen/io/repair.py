@@ -30,8 +30,14 @@ them.  :func:`repair_arrays` runs the steps in this order:
    interior would get winding -1 is flipped together with the shells nested in
    it, so a cavity (a nested shell of opposite orientation) is kept.
 6. What remains must enclose positive volume and be closed and consistently
-   wound, or :class:`~supportgen.errors.MeshError` is raised with one line
-   naming the input, what is wrong and what to do.
+   wound.
+7. Where steps 3-6 cannot make a clean solid (holes too large or pinched,
+   edges shared by more than two faces, a non-orientable surface), the solid
+   the printer would cure is rebuilt from the generalised winding number
+   (:func:`supportgen.io.winding.solid_from_winding`) and recorded with the
+   volume before and after; only a surface with no inside at all raises
+   :class:`~supportgen.errors.MeshError`, with one line naming the input, what is
+   wrong and what to do.
 
 References
 ----------
@@ -51,7 +57,9 @@ import trimesh
 from scipy.sparse import coo_matrix, csr_matrix
 from scipy.sparse.csgraph import breadth_first_order, connected_components
 
+from ..constants import EPS_FLOOR, MERGE_FRACTION
 from ..errors import MeshError
+from .winding import solid_from_winding
 
 __all__ = ["HOLE_FRACTION", "repair_arrays"]
 
@@ -150,6 +158,23 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
     f = _drop_faces(v, f, diag, repairs)
     if len(f) == 0:
         raise MeshError(f"{label}: every face is degenerate; export the model again")
+    done = len(repairs)
+    try:
+        return _clean_surface(v, f, label, repairs, hole_fraction, diag)
+    except MeshError as exc:
+        del repairs[done:]      # the surface route's partial repairs are not what was done
+        # Open, non-manifold or non-orientable: the printer still cures whatever the
+        # surface encloses, so build that solid (or say why there is none).
+        try:
+            mesh, line = solid_from_winding(v, f, label)
+        except MeshError as none:
+            raise MeshError(f"{none}; the surface also failed repair: {str(exc).removeprefix(label + ': ')}") from exc
+        repairs.append(line)
+        return mesh
+
+
+def _clean_surface(v, f, label, repairs, hole_fraction, diag):
+    """Steps 3-6 of the module notes on a merged, degenerate-free soup; MeshError where they cannot finish."""
     edges = _edges(f, len(v))
     if edges["nonmanifold"]:
         raise MeshError(f"{label}: {_count(edges['nonmanifold'], 'edge')} shared by more than two "
@@ -174,7 +199,7 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
 def _merge(v, f, diag):
     """Merge vertices equal to 1e-9 of the diagonal (below float32 STL resolution)."""
     used = np.unique(f)
-    key = np.round((v[used] - v[used].min(axis=0)) / (1e-9 * diag)).astype(np.int64)
+    key = np.round((v[used] - v[used].min(axis=0)) / (MERGE_FRACTION * diag)).astype(np.int64)
     _, first, inverse = np.unique(key, axis=0, return_index=True, return_inverse=True)
     remap = np.full(len(v), -1, dtype=np.int64)
     remap[used] = inverse.ravel()
@@ -281,11 +306,11 @@ def _fill_holes(v, f, edges, label, hole_fraction, repairs):
     tri = v[f]
     area = 0.5 * np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
     shell_area = np.bincount(edges["shell"], area)[edges["shell"][bface]]
-    limit = np.zeros(n_loops)
-    np.maximum.at(limit, loop, hole_fraction * shell_area)
-    ok = ~pinched & (fan <= limit)
+    loop_shell_area = np.zeros(n_loops)
+    np.maximum.at(loop_shell_area, loop, shell_area)
+    ok = ~pinched & (fan <= hole_fraction * loop_shell_area)
     if not ok.all():
-        worst = float((fan[~ok] / np.maximum(limit[~ok] / hole_fraction, 1e-300)).max())
+        worst = float((fan[~ok] / np.maximum(loop_shell_area[~ok], EPS_FLOOR)).max())
         why = (" whose edges touch" if pinched[~ok].any() else
                f", the largest would cover {100 * worst:.0f}% of its shell's surface "
                f"(limit {100 * hole_fraction:.0f}%)")

@@ -5,7 +5,7 @@ Measurements file (CSV, one printed test layer a row, header required)::
     area_mm2,torsion_mm4,peak_force_n[,lift_speed_mm_s,film_gap_mm,viscosity_pa_s]
 
 ``area_mm2`` and ``torsion_mm4`` describe the test layer's shape
-(:func:`supportgen.physics.forces.torsion_constant` gives J of any mask; a disc of radius R
+(:func:`supportgen.physics.pressure.torsion_constant` gives J of any mask; a disc of radius R
 has ``pi R^2`` and ``pi R^4 / 2``); the optional columns override the settings for
 that row.  Model: ``F = c * 3 mu v J / h^3 + b * A`` with 1 Pa = 1e-6 N/mm^2,
 fitted on relative residuals.  The
@@ -22,7 +22,9 @@ from pathlib import Path
 
 import numpy as np
 
+from ..constants import EPS_FLOOR
 from ..errors import SettingsError
+from .separation import squeeze_force_n
 
 __all__ = ["COLUMNS", "read_measurements", "CalibrationFit", "fit_calibration", "calibrated_settings"]
 
@@ -82,11 +84,11 @@ def _predictors(meas: np.ndarray, settings) -> tuple[np.ndarray, np.ndarray]:
     v = np.where(np.isnan(meas[:, 3]), p.lift_speed_mm_s, meas[:, 3])
     h = np.where(np.isnan(meas[:, 4]), p.film_gap_mm, meas[:, 4])
     mu = np.where(np.isnan(meas[:, 5]), r.viscosity_pa_s, meas[:, 5])
-    return 1e-6 * mu * v * 3.0 * meas[:, 1] / h**3, meas[:, 0]
+    return squeeze_force_n(meas[:, 1], mu, v, h), meas[:, 0]
 
 
 def _aicc(rss: float, n: int, k: int) -> float:
-    rss = max(rss, 1e-300)
+    rss = max(rss, EPS_FLOOR)
     return n * math.log(rss / n) + 2 * k + (2 * k * (k + 1) / (n - k - 1) if n - k - 1 > 0 else math.inf)
 
 

@@ -2,7 +2,7 @@
 
 :class:`ForceTracker` watches the layers stream past in print order.  For each
 layer it fills sealed cavities (the cavities of
-:func:`~supportgen.physics.forces.sealed_cavities`), solves the pressure field of each
+:func:`~supportgen.physics.pressure.sealed_cavities`), solves the pressure field of each
 component, applies the printer's separation law, and shares each component's force
 among the contacts that hold it.
 
@@ -14,9 +14,9 @@ supplied labels are only looked up at run starts, never relabelled.  A
 component's coarse solve is kept by its block position ``(s, I0, J0)``: identical
 cell fractions reuse phi as is; the same coarse mask reuses the LU factors as the
 preconditioner of conjugate gradients to a 1e-10 residual
-(:data:`supportgen.physics.forces.REFINE_TOL`).  Either way the answer is the fresh coarse
+(:data:`supportgen.physics.pressure.REFINE_TOL`).  Either way the answer is the fresh coarse
 solve to round-off, so the error stays the coarse-grid bound of
-:mod:`supportgen.physics.forces` (2 % against the pixel solve);
+:mod:`supportgen.physics.pressure` (2 % against the pixel solve);
 ``tests/test_forces.py`` checks the tracker layer by layer against full-image
 labelling and fresh solves.  About 4 ms per 1000 x 1000 layer on one core
 (``benchmarks/bench_forces.py``).
@@ -35,11 +35,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse as sp
-from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from . import forces as fz
+from ..analysis.runlength import box_runs, edge_components, paint_runs, run_overlaps
+from ..constants import EPS_FLOOR, EPS_REL, EPS_ZERO
+from .pressure import solve_runs
+from .separation import READS_LABELS, LayerShape, separation
 
 __all__ = ["ForceTracker", "ForceProfile"]
 
@@ -103,7 +104,7 @@ class ForceTracker:
         Tip positions on the part (build coordinates, mm).
     settings : supportgen.settings.Settings
         Uses ``printer.mechanism`` and the separation parameters, ``rated_force_n``
-        and ``supports.tip_diameter_mm`` (the attach radius is half of it, at least
+        and ``rules.tip_diameter_mm`` (the attach radius is half of it, at least
         half a pixel).
 
     Notes
@@ -120,14 +121,14 @@ class ForceTracker:
 
     def __init__(self, grid, layer_mm: float, contact_points, settings):
         self.grid, self.layer_mm, self.settings = grid, float(layer_mm), settings
-        self.law = fz.separation(settings.printer.mechanism)
-        self._paints = settings.printer.mechanism in fz.READS_LABELS
+        self.law = separation(settings.printer.mechanism)
+        self._paints = settings.printer.mechanism in READS_LABELS
         pts = np.asarray(contact_points, float).reshape(-1, 3)
         self.points = pts
-        r = max(settings.supports.tip_diameter_mm / 2.0, grid.pixel_mm / 2.0)
+        r = max(settings.rules.tip_diameter_mm / 2.0, grid.pixel_mm / 2.0)
         k = int(np.ceil(r / grid.pixel_mm))
         dr, dc = np.mgrid[-k: k + 1, -k: k + 1]
-        keep = (dr**2 + dc**2) * grid.pixel_mm**2 <= r * r + 1e-12
+        keep = (dr**2 + dc**2) * grid.pixel_mm**2 <= r * r + EPS_ZERO
         order = np.argsort((dr**2 + dc**2)[keep], kind="stable")  # nearest first
         self._off = (dr[keep][order], dc[keep][order])
         self._rc = np.column_stack(grid.index(pts[:, :2])) if len(pts) else np.zeros((0, 2), int)
@@ -159,12 +160,12 @@ class ForceTracker:
     def __call__(self, layer, labels: np.ndarray, n_labels: int) -> None:
         mask, k, h = layer.mask, int(layer.index), self.grid.pixel_mm
         prev = self._prev
-        runs = _layer_runs(mask)
+        runs = box_runs(mask)
         lab = labels[runs[0], runs[1]].astype(np.int64)
         node0 = len(self._parent)
         self._parent.extend(range(node0, node0 + n_labels))
         if prev is not None and runs[0].size and prev["runs"][0].size:   # 3-D connectivity with the layer below
-            ia, ib, _ = _overlaps(runs, prev["runs"])
+            ia, ib, _ = run_overlaps(runs, prev["runs"])
             base = int(prev["lab"].max()) + 1
             for code in np.unique(lab[ia] * base + prev["lab"][ib]).tolist():
                 self._union(node0 + code // base - 1, prev["node0"] + code % base - 1)
@@ -173,7 +174,7 @@ class ForceTracker:
         geo, cache = self._geometry(suction, nf, edges, {} if prev is None else prev["cache"])
         area = np.array([geo[i][1] for i in range(1, nf + 1)])
         jt = np.array([geo[i][0] for i in range(1, nf + 1)])
-        shape = fz.LayerShape(_paint(suction, labels.shape) if self._paints else np.zeros((0, 0), np.int32),
+        shape = LayerShape(paint_runs(*suction, labels.shape) if self._paints else np.zeros((0, 0), np.int32),
                               h, area, jt)
         comp_force = np.asarray(self.law(shape, self.settings), float)
         holders: list[set] = [set() for _ in range(nf + 1)]
@@ -190,7 +191,7 @@ class ForceTracker:
             else:
                 pts, w = geo[i][2], geo[i][3]
                 share = _tributary(self.points[hold, :2], pts, w)
-                load[hold] += comp_force[i - 1] * share / max(share.sum(), 1e-300)
+                load[hold] += comp_force[i - 1] * share / max(share.sum(), EPS_FLOOR)
         self.last_loads, self.last_unheld_n = load, float(unheld)   # this layer, for checks
         self.last_torsion_mm4 = jt
         up = load > self._peak
@@ -203,7 +204,7 @@ class ForceTracker:
     def _attach(self, layer, labels, node0) -> None:
         """Attach pending contacts whose tip disc touches this layer's cured pixels."""
         top = layer.z_mm + self.layer_mm / 2.0
-        pend = np.nonzero((self._node < 0) & (self.points[:, 2] <= top + 1e-9))[0]
+        pend = np.nonzero((self._node < 0) & (self.points[:, 2] <= top + EPS_REL))[0]
         if pend.size == 0:
             return
         ny, nx = labels.shape
@@ -226,7 +227,7 @@ class ForceTracker:
         geo, cache = {}, {}
         for i in range(1, nf + 1):
             o = order[cut[i - 1]: cut[i]]
-            *out, (key, state) = fz._component(rows[o], starts[o], ends[o], int(edges[i - 1]), g.pixel_mm,
+            *out, (key, state) = solve_runs(rows[o], starts[o], ends[o], int(edges[i - 1]), g.pixel_mm,
                                                (g.x0, g.y0), kept)
             geo[i] = tuple(out)
             cache[key] = state
@@ -264,42 +265,6 @@ class ForceTracker:
                             np.where(self._peak > 0, self._peak_layer, -1), tuple(warns))
 
 
-def _layer_runs(mask: np.ndarray):
-    """Row runs (rows, starts, ends) of a layer's cured pixels, found inside its bounding box."""
-    rr = np.flatnonzero(mask.any(axis=1))
-    if rr.size == 0:
-        return (np.zeros(0, np.int64),) * 3
-    r0, r1 = int(rr[0]), int(rr[-1]) + 1
-    cc = np.flatnonzero(mask[r0:r1].any(axis=0))
-    return fz._mask_runs(mask[r0:r1, int(cc[0]): int(cc[-1]) + 1], r0, int(cc[0]))
-
-
-def _overlaps(a, b):
-    """Runs of ``a`` and ``b`` (each (rows, starts, ends), sorted) sharing a row and columns.
-
-    Returns index arrays ``ia, ib`` and the overlap lengths (all > 0).  Cost
-    O((|a| + |b|) log |b| + pairs).
-    """
-    ra, sa, ea = a[:3]
-    rb, sb, eb = b[:3]
-    width = int(max(ea.max(initial=0), eb.max(initial=0))) + 1
-    lo = np.searchsorted(rb * width + eb, ra * width + sa, "right")    # first b ending after a starts
-    hi = np.searchsorted(rb * width + sb, ra * width + ea, "left")     # b starting before a ends
-    cnt = np.maximum(hi - lo, 0)
-    ia = np.repeat(np.arange(ra.size), cnt)
-    ib = np.arange(int(cnt.sum())) - np.repeat(np.cumsum(cnt) - cnt - lo, cnt)
-    return ia, ib, np.minimum(ea[ia], eb[ib]) - np.maximum(sa[ia], sb[ib])
-
-
-def _components(n: int, ia, ib):
-    """Connected components of ``n`` nodes joined by edges ``(ia, ib)``: (count, label per node)."""
-    ia, ib = np.asarray(ia, np.int32), np.asarray(ib, np.int32)
-    order = np.argsort(ia, kind="stable")
-    indptr = np.r_[0, np.cumsum(np.bincount(ia, minlength=n))].astype(np.int32)
-    graph = sp.csr_matrix((np.ones(ia.size), ib[order], indptr), shape=(n, n))
-    return connected_components(graph, directed=False)
-
-
 def _suction(runs, lab, n_labels: int, below):
     """Suction region of a layer (cured runs plus sealed cavities) from its runs.
 
@@ -309,7 +274,7 @@ def _suction(runs, lab, n_labels: int, below):
     start, the map label -> component (components of ``mask | sealed``, 8-connected),
     the component count and each component's pixel-edge perimeter.
 
-    The same cavities as :func:`supportgen.physics.forces.sealed_cavities` (4-connected empty
+    The same cavities as :func:`supportgen.physics.pressure.sealed_cavities` (4-connected empty
     space): an empty gap between two runs of a row is open when the row above or below
     is empty there (outside its first and last run), joins the gaps it shares columns
     with in the rows above and below, and is vented when the layer below's suction
@@ -330,39 +295,31 @@ def _suction(runs, lab, n_labels: int, below):
         for d in (-1, 1):
             j = gaps[0] - r[0] + 1 + d
             vent |= (gaps[1] < span_s[j]) | (gaps[2] > span_e[j])
-        ja, jb, ln = _overlaps(gaps, below)
+        ja, jb, ln = run_overlaps(gaps, below)
         vent |= np.bincount(ja, ln, gi.size) < gaps[2] - gaps[1]
         if not vent.any():                                 # every gap sealed: no need to join them
             sealed = gi
         elif not vent.all():
-            nc, cl = _components(gi.size, *_overlaps(gaps, (gaps[0] - 1, gaps[1], gaps[2]))[:2])
+            nc, cl = edge_components(gi.size, *run_overlaps(gaps, (gaps[0] - 1, gaps[1], gaps[2]))[:2])
             sealed = gi[~(np.bincount(cl, vent, nc) > 0)[cl]]
     if sealed.size:
-        nf, cl = _components(n_labels, lab[sealed] - 1, lab[sealed + 1] - 1) if n_labels > 1 else (1, np.zeros(1, int))
+        nf, cl = edge_components(n_labels, lab[sealed] - 1, lab[sealed + 1] - 1) if n_labels > 1 else (1, np.zeros(1, int))
         fmap = np.r_[0, cl + 1]
     comp = fmap[lab]
     suc = [np.r_[r, r[sealed]], np.r_[s, e[sealed]], np.r_[e, s[sealed + 1]], np.r_[comp, comp[sealed]]]
     order = np.lexsort((suc[1], suc[0]))
     suc = tuple(x[order] for x in suc)
-    ia, _, ln = _overlaps(suc, (suc[0] - 1, suc[1], suc[2]))  # cured length shared with the next row
+    ia, _, ln = run_overlaps(suc, (suc[0] - 1, suc[1], suc[2]))  # cured length shared with the next row
     area = np.bincount(suc[3] - 1, suc[2] - suc[1], nf)
     merged = np.bincount(comp - 1, minlength=nf) - np.bincount(comp[sealed] - 1, minlength=nf)
     edges = 2 * merged + 2 * area - 2 * np.bincount(suc[3][ia] - 1, ln, nf)
     return suc, fmap, nf, np.rint(edges).astype(np.int64)
 
 
-def _paint(suction, shape) -> np.ndarray:
-    """(ny, nx) int32 image of the suction components from their runs; O(pixels)."""
-    rows, starts, ends, comp = suction
-    base, n = rows * shape[1], shape[0] * shape[1]
-    d = np.bincount(base + starts, comp, n + 1) - np.bincount(base + ends, comp, n + 1)
-    return np.rint(np.cumsum(d[:-1])).astype(np.int32).reshape(shape)
-
-
 def _tributary(contacts_xy, pts, w):
     """Sum of weights ``w`` at ``pts`` nearest each contact; exact ties split evenly."""
     dist, near = cKDTree(contacts_xy).query(pts, k=2)
-    tie = np.abs(dist[:, 1] - dist[:, 0]) <= 1e-9 * np.maximum(dist[:, 0], 1e-12)
+    tie = np.abs(dist[:, 1] - dist[:, 0]) <= EPS_REL * np.maximum(dist[:, 0], EPS_ZERO)
     half = np.where(tie, 0.5, 1.0) * w
     m = len(contacts_xy)
     return np.bincount(near[:, 0], half, m) + np.bincount(near[tie, 1], half[tie], m)

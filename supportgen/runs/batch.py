@@ -42,13 +42,14 @@ import json
 import os
 import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
 from ..errors import SupportGenError
+from ..io.meshio import READ_FORMATS, part_name
 from ..pipeline import DEFAULT_STRATEGY, OUTPUTS
 from ..settings import Settings
 from .workers import dask_client, run_dask, run_local
@@ -58,7 +59,7 @@ __all__ = ["SUFFIXES", "STATUSES", "BAD_STATUSES", "SUMMARY_FIELDS", "OUTPUT_SUF
            "discover", "settings_hash", "file_hash", "mesh_footprint", "estimate_peak_mb", "discard_outputs",
            "run_job", "write_summary", "run_batch"]
 
-SUFFIXES = (".stl", ".obj", ".ply", ".3mf")
+SUFFIXES = READ_FORMATS
 STATUSES = ("ok", "failed", "timeout", "crashed", "skipped", "refused")
 BAD_STATUSES = frozenset({"failed", "timeout", "crashed", "refused"})
 SUMMARY_FIELDS = ("file", "status", "reason", "contacts", "support_volume_mm3", "passed", "seconds", "peak_mb")
@@ -373,7 +374,7 @@ def _plan_jobs(root: Path, out: Path, rels: list[Path], settings, strategy, memo
     """Jobs in path order, plus rows for files whose output name clashes with an earlier one."""
     jobs, clashes, seen = [], [], {}
     for rel in rels:
-        name = rel.name.split(".")[0]
+        name = part_name(rel)
         key = (rel.parent.as_posix(), name)
         if key in seen:
             clashes.append(FileResult(rel.as_posix(), "failed", f"{rel.as_posix()}: its outputs ({name}.*) would "

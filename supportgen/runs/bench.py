@@ -24,13 +24,13 @@ about twofold, so the stage times then overstate.
 
 from __future__ import annotations
 
-import os
 import csv
 import ctypes
 import dataclasses
 import io
 import json
 import math
+import os
 import resource
 import sys
 import time
@@ -42,7 +42,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import SettingsError, SupportGenError
-from ..io.meshio import READ_FORMATS, atomic_write, atomic_write_text, load_mesh
+from ..io.meshio import READ_FORMATS, atomic_write, atomic_write_text, load_mesh, part_name
 from ..settings import Settings
 from ..supports.strategies import get_strategy
 
@@ -140,7 +140,7 @@ def find_models(folder: str | Path) -> list[tuple[str, Path]]:
     files = sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in READ_FORMATS)
     if not files:
         raise SupportGenError(f"{folder}: no model files; put {', '.join(READ_FORMATS)} files in it")
-    stems = [p.stem for p in files]
+    stems = [part_name(p) for p in files]
     return [(s if stems.count(s) == 1 else f"{s}_{p.suffix[1:].lower()}", p) for s, p in zip(stems, files)]
 
 
@@ -505,7 +505,7 @@ def grid_settings(pixel_mm: float | None = None, layer_mm: float | None = None, 
     overrides: dict = {"seed": seed}
     if pixel_mm is not None:
         overrides["pixel_mm"] = pixel_mm
-        overrides["tip_min_mm"] = max(Settings().supports.tip_min_mm, 2 * pixel_mm)
+        overrides["tip_min_mm"] = max(Settings().rules.tip_min_mm, 2 * pixel_mm)
     if layer_mm is not None:
         overrides["layer_mm"] = layer_mm
     return Settings().override(overrides)

@@ -34,8 +34,8 @@ from __future__ import annotations
 
 import dataclasses
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 from ..errors import SupportGenError
 

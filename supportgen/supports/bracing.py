@@ -49,10 +49,12 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .plan import SupportPlan
+from ..constants import EPS_REL, EPS_ZERO
 from ..settings import Settings
+from .plan import SupportPlan
 
-__all__ = ["EFFECTIVE_LENGTH", "EffectiveLength", "MAX_SLENDERNESS", "BRACE_MIN_ANGLE_DEG"]
+__all__ = ["EFFECTIVE_LENGTH", "EffectiveLength", "MAX_SLENDERNESS", "BRACE_MIN_ANGLE_DEG", "PostRuns", "sway_held",
+           "post_runs", "add_braces"]
 
 
 class EffectiveLength(NamedTuple):
@@ -82,7 +84,7 @@ MAX_SLENDERNESS = 200.0
 BRACE_MIN_ANGLE_DEG = 45.0
 
 
-class _Runs(NamedTuple):
+class PostRuns(NamedTuple):
     edge_run: np.ndarray      # (E,) run of each edge
     chains: list              # per run: edge indices from top to bottom
     length: np.ndarray        # (R,) unbraced length (mm, along the edges)
@@ -96,24 +98,24 @@ def _restrained(nodes: np.ndarray, braces: np.ndarray) -> np.ndarray:
         return held
     ends = np.concatenate([braces, braces[:, ::-1]])
     dxy = nodes[ends[:, 1], :2] - nodes[ends[:, 0], :2]
-    dxy /= np.maximum(np.linalg.norm(dxy, axis=1, keepdims=True), 1e-12)
+    dxy /= np.maximum(np.linalg.norm(dxy, axis=1, keepdims=True), EPS_ZERO)
     for node in np.unique(ends[:, 0]):
         d = dxy[ends[:, 0] == node]
         cross = np.abs(d[:, None, 0] * d[None, :, 1] - d[:, None, 1] * d[None, :, 0])
-        held[node] = bool(np.any(cross >= math.sin(math.radians(45.0)) - 1e-9))
+        held[node] = bool(np.any(cross >= math.sin(math.radians(45.0)) - EPS_REL))
     return held
 
 
-def _sway_held(plan: SupportPlan, settings: Settings) -> bool:
+def sway_held(plan: SupportPlan, settings: Settings) -> bool:
     """True when at least three feet span an area (RMS spread >= one post diameter both ways)."""
     if len(plan.feet) < 3:
         return False
     xy = plan.nodes[plan.feet, :2]
     spread = np.linalg.svd(xy - xy.mean(axis=0), compute_uv=False) / math.sqrt(len(xy))
-    return bool(spread[-1] >= settings.supports.post_diameter_mm)
+    return bool(spread[-1] >= settings.rules.post_diameter_mm)
 
 
-def _runs(plan: SupportPlan, sway_held: bool) -> _Runs:
+def post_runs(plan: SupportPlan, restrained: bool) -> PostRuns:
     """Split the edges into straight runs between stations. Cost O(N + E)."""
     nodes, edges = plan.nodes, plan.edges
     n = len(nodes)
@@ -141,8 +143,8 @@ def _runs(plan: SupportPlan, sway_held: bool) -> _Runs:
         chains.append(np.array(chain))
         lengths.append(seg[chain].sum())
         end = "fixed-pinned" if is_foot[v] else "pinned-pinned"
-        k.append(EFFECTIVE_LENGTH[end if sway_held else "fixed-free"].design)
-    return _Runs(edge_run, chains, np.array(lengths), np.array(k))
+        k.append(EFFECTIVE_LENGTH[end if restrained else "fixed-free"].design)
+    return PostRuns(edge_run, chains, np.array(lengths), np.array(k))
 
 
 def _brace_targets(m, nodes, edges, cand, reach, gap, margin):
@@ -162,7 +164,7 @@ def _brace_targets(m, nodes, edges, cand, reach, gap, margin):
     cost = np.where(ok, np.sqrt(h**2 + rel[..., 2] ** 2), np.inf)
     i, j = np.unravel_index(np.argmin(cost), cost.shape)
     first = rel[i, j, :2] / h[i, j]
-    cross = np.abs(rel[..., 0] * first[1] - rel[..., 1] * first[0]) / np.maximum(h, 1e-12)
+    cross = np.abs(rel[..., 0] * first[1] - rel[..., 1] * first[0]) / np.maximum(h, EPS_ZERO)
     cost[cross < math.sin(math.radians(45.0))] = np.inf
     i2, j2 = np.unravel_index(np.argmin(cost), cost.shape)
     if not np.isfinite(cost[i2, j2]):
@@ -195,15 +197,15 @@ def _split_edges(plan: SupportPlan, requests, tol: float):
     return np.array(nodes), np.array(new_edges, int).reshape(-1, 2), np.array(new_radius), req_node
 
 
-def _add_braces(plan: SupportPlan, chains: list, run_need: np.ndarray, run_slender: np.ndarray,
+def add_braces(plan: SupportPlan, chains: list, run_need: np.ndarray, run_slender: np.ndarray,
                 settings: Settings) -> tuple[SupportPlan, int]:
     """Brace every run that is too slender, at mid-length, in two directions. Cost O(R * E).
 
-    ``chains``, ``run_need`` and ``run_slender`` are per run (see :class:`_Runs`): its edges from top
+    ``chains``, ``run_need`` and ``run_slender`` are per run (see :class:`PostRuns`): its edges from top
     to bottom, its buckling need before floors (mm) and ``K L / r`` at the chosen diameter.
     Returns the new plan and the number of braces added.
     """
-    s = settings.supports
+    s = settings.rules
     flagged = np.flatnonzero((run_need > 2.0 * s.post_diameter_mm) | (run_slender > MAX_SLENDERNESS))
     tol = settings.printer.pixel_mm
     seg = np.linalg.norm(plan.nodes[plan.edges[:, 0]] - plan.nodes[plan.edges[:, 1]], axis=1)

@@ -23,10 +23,11 @@ import numpy as np
 import trimesh
 from scipy.spatial import cKDTree
 
-from ..errors import SizingError
 from ..analysis.overhangs import Overhangs
-from .plan import Contacts
+from ..constants import EPS_REL
+from ..errors import SizingError
 from ..settings import Settings
+from .plan import Contacts
 
 __all__ = ["RSA_DENSITY", "poisson_disk", "sample_overhangs", "contacts_at", "merge_contacts",
            "expected_count", "densify_points"]
@@ -140,7 +141,7 @@ def sample_overhangs(mesh: trimesh.Trimesh, overhangs: Overhangs, spacing: float
     pts = tri[:, 0] + u[:, None] * (tri[:, 1] - tri[:, 0]) + v[:, None] * (tri[:, 2] - tri[:, 0])
     normals = mesh.face_normals[faces[pick]]
     tilt = np.degrees(np.arccos(np.clip(-normals[:, 2], -1, 1)))
-    radius = spacing * (1 + 0.5 * np.clip(tilt / max(angle_deg, 1e-9), 0, 1))
+    radius = spacing * (1 + 0.5 * np.clip(tilt / max(angle_deg, EPS_REL), 0, 1))
     order = rng.permutation(len(pts))
     keep = order[poisson_disk(pts[order], radius[order])]
     keep.sort()
@@ -243,7 +244,7 @@ def densify_points(contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Se
     idx = np.flatnonzero(over)
     if idx.size == 0:
         return contacts
-    r = 0.5 * settings.supports.contact_spacing_mm if radius_mm is None else float(radius_mm)
+    r = 0.5 * settings.rules.contact_spacing_mm if radius_mm is None else float(radius_mm)
     n = contacts.normals[idx]
     helper = np.where(np.abs(n[:, :1]) < 0.9, [[1.0, 0.0, 0.0]], [[0.0, 1.0, 0.0]])
     u = np.cross(n, helper)
@@ -264,5 +265,5 @@ def densify_points(contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Se
         return contacts
     k = len(taken)
     new = Contacts(closest[taken], normals[taken], np.full(k, "densify"),
-                   np.full(k, settings.supports.tip_diameter_mm))
+                   np.full(k, settings.rules.tip_diameter_mm))
     return Contacts.concat([contacts, new])

@@ -25,17 +25,18 @@ drop to the base is blocked.  This module provides both.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 import networkx as nx
 import numpy as np
 import trimesh
 from scipy.spatial import cKDTree
 
+from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO
 from ..errors import SettingsError
 
-__all__ = ["Penalty", "Clearance", "clearance_field", "free_space_graph"]
+__all__ = ["Penalty", "Clearance", "clearance_field", "free_space_graph", "edge_cost", "surface_below"]
 
 #: ``cost(upper, lower) -> penalty``: (k, 3) upper and lower segment ends to (k,) extra cost (mm^3).
 Penalty = Callable[[np.ndarray, np.ndarray], np.ndarray]
@@ -142,16 +143,38 @@ def clearance_field(mesh: trimesh.Trimesh, clearance: float, spacing: float | No
     return Clearance(cKDTree(np.concatenate(chunks)), slack, clearance / 4, float(clearance))
 
 
-def _hits_below(mesh: trimesh.Trimesh, xy: np.ndarray, col: np.ndarray, z: np.ndarray):
+def surface_below(mesh: trimesh.Trimesh, xy: np.ndarray, col: np.ndarray, z: np.ndarray):
     """First surface crossing straight below each query (column ``col`` of ``xy``, height ``z``).
 
-    Returns the crossing heights (nan where none) and whether the face there looks up.
+    The one downward-ray query of the project: exact point-in-triangle tests in
+    x/y over the faces near each column, so many queries down one column cost one
+    column's worth of faces.
+
+    Parameters
+    ----------
+    mesh : trimesh.Trimesh
+    xy : (C, 2) float ndarray
+        The distinct columns.
+    col, z : (Q,) int and float ndarrays
+        Each query's column and the height it looks down from.
+
+    Returns
+    -------
+    hit : (Q,) float ndarray
+        Height of the first crossing strictly below ``z`` (nan where none).
+    up : (Q,) bool ndarray
+        Whether the face crossed there looks up.
+
+    Notes
+    -----
     Cost: O(F + hits) with a k-d tree over the columns.
     """
+    if len(z) == 0:
+        return np.zeros(0), np.zeros(0, bool)
     tri = np.asarray(mesh.triangles, float)
     up = np.asarray(mesh.face_normals)[:, 2]
     centre = tri[:, :, :2].mean(axis=1)
-    radius = np.linalg.norm(tri[:, :, :2] - centre[:, None], axis=2).max(axis=1) + 1e-9
+    radius = np.linalg.norm(tri[:, :, :2] - centre[:, None], axis=2).max(axis=1) + EPS_REL
     near = cKDTree(xy).query_ball_point(centre, radius, return_sorted=False)
     counts = np.fromiter((len(n) for n in near), int, len(near))
     f = np.repeat(np.arange(len(tri)), counts)
@@ -160,11 +183,11 @@ def _hits_below(mesh: trimesh.Trimesh, xy: np.ndarray, col: np.ndarray, z: np.nd
     p = xy[c]
     e1, e2, q = (b - a)[:, :2], (d - a)[:, :2], p - a[:, :2]
     det = e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0]
-    ok = np.abs(det) > 1e-12
+    ok = np.abs(det) > EPS_ZERO
     det = np.where(ok, det, 1.0)
     u = (q[:, 0] * e2[:, 1] - q[:, 1] * e2[:, 0]) / det
     v = (e1[:, 0] * q[:, 1] - e1[:, 1] * q[:, 0]) / det
-    ok &= (u >= -1e-9) & (v >= -1e-9) & (u + v <= 1 + 1e-9)
+    ok &= (u >= -EPS_REL) & (v >= -EPS_REL) & (u + v <= 1 + EPS_REL)
     zc = a[:, 2] + u * (b - a)[:, 2] + v * (d - a)[:, 2]
     c, zc, fu = c[ok], zc[ok], up[f[ok]] > 0
     span = float(np.ptp(np.concatenate([zc, z])) + 1.0) if len(zc) else 1.0
@@ -172,14 +195,14 @@ def _hits_below(mesh: trimesh.Trimesh, xy: np.ndarray, col: np.ndarray, z: np.nd
     key = c * span + (zc - base)
     order = np.argsort(key)
     key, zc, fu, c = key[order], zc[order], fu[order], c[order]
-    idx = np.searchsorted(key, col * span + (z - base) - 1e-9) - 1
+    idx = np.searchsorted(key, col * span + (z - base) - EPS_REL) - 1
     found = (idx >= 0) & (c[np.maximum(idx, 0)] == col) if len(c) else np.zeros(len(z), bool)
     idx = np.maximum(idx, 0)
     hit = np.where(found, zc[idx] if len(zc) else np.nan, np.nan)
     return hit, found & (fu[idx] if len(fu) else False)
 
 
-def _edge_cost(upper, lower, area, cost):
+def edge_cost(upper, lower, area, cost):
     material = area * np.linalg.norm(np.asarray(lower) - np.asarray(upper), axis=-1)
     return material if cost is None else material + np.asarray(cost(upper, lower), float)
 
@@ -223,13 +246,13 @@ def free_space_graph(mesh: trimesh.Trimesh, settings, field: Clearance, bounds: 
     ``clearance + length / 2`` are clear by the distance being 1-Lipschitz; the rest are checked
     by sampling.  Cost: O(V) nodes, O(9 V) edges, each edge O(length / step) queries of O(log m).
     """
-    s = settings.supports
+    s = settings.rules
     t = math.tan(math.radians(s.branch_angle_deg))
     z0 = s.base_thickness_mm
     lo, hi = np.asarray(bounds, float)
     hz = step_mm or max(2 * s.clearance_mm, s.tip_length_mm)
     while True:
-        pitch = hz * t / math.sqrt(2) * (1 - 1e-9) if t > 1e-6 else hz
+        pitch = hz * t / math.sqrt(2) * (1 - EPS_REL) if t > EPS_SMALL else hz
         shape = (np.maximum(np.ceil((hi[:2] - lo[:2]) / pitch), 0).astype(int) + 1).tolist() + \
             [int(max(math.floor((hi[2] - z0) / hz), 0)) + 1]
         if math.prod(shape) <= max_nodes:
@@ -247,7 +270,7 @@ def free_space_graph(mesh: trimesh.Trimesh, settings, field: Clearance, bounds: 
     g.add_nodes_from((int(n), {"pos": pos[n]}) for n in nodes)
     grid = lid.reshape(shape) >= 0
     area = math.pi * (s.post_diameter_mm / 2) ** 2
-    offsets = [(di, dj) for di in (-1, 0, 1) for dj in (-1, 0, 1) if t > 1e-6 or di == dj == 0]
+    offsets = [(di, dj) for di in (-1, 0, 1) for dj in (-1, 0, 1) if t > EPS_SMALL or di == dj == 0]
     flat = np.arange(len(pos)).reshape(shape)
     for di, dj in offsets:
         src = flat[max(0, -di):shape[0] - max(0, di), max(0, -dj):shape[1] - max(0, dj), 1:]
@@ -259,14 +282,14 @@ def free_space_graph(mesh: trimesh.Trimesh, settings, field: Clearance, bounds: 
         sure = np.minimum(dist[src], dist[dst]) >= s.clearance_mm + length / 2
         sure[~sure] = field.clear(pos[src[~sure]], pos[dst[~sure]])
         src, dst = src[sure], dst[sure]
-        w = _edge_cost(pos[src], pos[dst], area, cost)
+        w = edge_cost(pos[src], pos[dst], area, cost)
         g.add_weighted_edges_from(zip(src.tolist(), dst.tolist(), w.tolist()))
     bottom = nodes[ijk[nodes, 2] == 0]
-    g.add_edges_from(((int(n), "base", {"weight": 0.0}) for n in bottom))
+    g.add_edges_from((int(n), "base", {"weight": 0.0}) for n in bottom)
     if len(nodes):
         cols = ijk[nodes, 0] * shape[1] + ijk[nodes, 1]
         xy = origin[:2] + np.indices(shape[:2]).reshape(2, -1).T * pitch
-        hit, up = _hits_below(mesh, xy, cols, pos[nodes, 2])
+        hit, up = surface_below(mesh, xy, cols, pos[nodes, 2])
         drop = pos[nodes, 2] - hit
         land = up & (drop <= s.tip_length_mm + hz) & (hit > z0)
         tip_area = math.pi * (s.tip_diameter_mm / 2) ** 2

@@ -23,12 +23,13 @@ from dataclasses import dataclass
 
 import manifold3d as m3d
 import numpy as np
-import trimesh
 import shapely
+import trimesh
 
+from ..constants import EPS_REL, EPS_ZERO
 from ..errors import GeometryError
-from .plan import SupportPlan
 from ..settings import Settings
+from .plan import SupportPlan
 
 __all__ = ["Solids", "PHASES", "to_manifold", "to_trimesh", "frustum", "build_supports", "pinch_points", "combine"]
 
@@ -56,9 +57,9 @@ def _rotation_to(direction: np.ndarray) -> np.ndarray:
     z = np.array([0.0, 0.0, 1.0])
     d = direction / np.linalg.norm(direction)
     c = float(z @ d)
-    if c > 1 - 1e-12:
+    if c > 1 - EPS_ZERO:
         return np.eye(3)
-    if c < -1 + 1e-12:
+    if c < -1 + EPS_ZERO:
         return np.diag([1.0, -1.0, -1.0])
     v = np.cross(z, d)
     vx = np.array([[0, -v[2], v[1]], [v[2], 0, -v[0]], [-v[1], v[0], 0]])
@@ -130,16 +131,16 @@ def _base(plan: SupportPlan, settings: Settings, phase: float = 0.0) -> list[m3d
     own.  Discs of one size in general position union cleanly; outlines made
     by offsetting polygons can touch themselves at points files cannot keep.
     """
-    sp = settings.supports
+    rules = settings.rules
     if len(plan.feet) == 0:
         return []
-    t = sp.base_thickness_mm
+    t = rules.base_thickness_mm
     xy = np.unique(np.round(plan.nodes[plan.feet, :2], 9), axis=0)
-    foot_r = float(plan.edge_radius.max()) if len(plan.edge_radius) else sp.post_diameter_mm / 2
-    radius = foot_r + sp.base_margin_mm
-    chamfer = min(0.5 * t, 0.5, 0.5 * sp.base_margin_mm)
-    if sp.base == "raft":
-        xy = _raft_centres(xy, radius, sp.contact_spacing_mm)
+    foot_r = float(plan.edge_radius.max()) if len(plan.edge_radius) else rules.post_diameter_mm / 2
+    radius = foot_r + rules.base_margin_mm
+    chamfer = min(0.5 * t, 0.5, 0.5 * rules.base_margin_mm)
+    if rules.base == "raft":
+        xy = _raft_centres(xy, radius, rules.contact_spacing_mm)
     return [m3d.Manifold.hull_points(_chamfered_disc(p, radius, t, chamfer, phase)) for p in xy]
 
 
@@ -170,14 +171,14 @@ def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
     -----
     O(tips + edges + nodes) primitives of ``_SEGMENTS`` sides each.
     """
-    sp = settings.supports
+    rules = settings.rules
     parts: list[m3d.Manifold] = []
     node_r = np.zeros(len(plan.nodes))
     if len(plan.edges):
         np.maximum.at(node_r, plan.edges[:, 0], plan.edge_radius)
         np.maximum.at(node_r, plan.edges[:, 1], plan.edge_radius)
     no_edge = node_r == 0
-    node_r[no_edge] = sp.post_diameter_mm / 2
+    node_r[no_edge] = rules.post_diameter_mm / 2
     for (a, b), r in zip(plan.edges, plan.edge_radius):
         parts.append(frustum(plan.nodes[a], plan.nodes[b], r, r, phase=phase))
     for a, b in plan.braces:
@@ -193,15 +194,15 @@ def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
         q = plan.nodes[node]
         axis = p - q
         length = np.linalg.norm(axis)
-        if length < 1e-9:
+        if length < EPS_REL:
             continue
-        p_in = p + axis / length * sp.tip_depth_mm
+        p_in = p + axis / length * rules.tip_depth_mm
         parts.append(frustum(q, p_in, node_r[node], d / 2, phase=phase))
     # Feet: posts sink half the base thickness into the base so the union is sound.
     base = _base(plan, settings, phase)
     for f in plan.feet:
         q = plan.nodes[f]
-        parts.append(frustum(q - [0, 0, sp.base_thickness_mm / 2], q, node_r[f], node_r[f], phase=phase))
+        parts.append(frustum(q - [0, 0, rules.base_thickness_mm / 2], q, node_r[f], node_r[f], phase=phase))
     return parts, base
 
 

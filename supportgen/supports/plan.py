@@ -73,15 +73,15 @@ class Contacts:
     def __len__(self) -> int:
         return len(self.points)
 
-    def replace(self, **changes) -> "Contacts":
+    def replace(self, **changes) -> Contacts:
         return dataclasses.replace(self, **changes)
 
     @classmethod
-    def empty(cls) -> "Contacts":
+    def empty(cls) -> Contacts:
         return cls(np.zeros((0, 3)), np.zeros((0, 3)), np.zeros(0, "<U8"), np.zeros(0))
 
     @classmethod
-    def concat(cls, parts: "list[Contacts]") -> "Contacts":
+    def concat(cls, parts: list[Contacts]) -> Contacts:
         parts = [p for p in parts if len(p)]
         if not parts:
             return cls.empty()
@@ -155,7 +155,7 @@ class SupportPlan:
         if not (len(self.tip_nodes) == len(self.tip_diameters) == len(self.tip_contact) == t):
             raise ValueError("SupportPlan tip arrays must have one row per tip")
 
-    def replace(self, **changes) -> "SupportPlan":
+    def replace(self, **changes) -> SupportPlan:
         return dataclasses.replace(self, **changes)
 
     @property

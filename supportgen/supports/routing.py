@@ -31,7 +31,8 @@ import networkx as nx
 import numpy as np
 import trimesh
 
-from .freespace import Clearance, Penalty, _edge_cost, clearance_field, free_space_graph
+from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO
+from .freespace import Clearance, Penalty, clearance_field, edge_cost, free_space_graph
 from .plan import Contacts, SupportPlan
 
 __all__ = ["Clearance", "clearance_field", "free_space_graph", "plan_tree"]
@@ -48,13 +49,13 @@ def _tip_ends(contacts: Contacts, s, field: Clearance) -> tuple[np.ndarray, np.n
     n = len(contacts)
     p, nrm = contacts.points, contacts.normals
     down = np.array([0.0, 0.0, -1.0])
-    d = nrm / np.maximum(np.linalg.norm(nrm, axis=1, keepdims=True), 1e-12) + down
-    d[np.linalg.norm(d, axis=1) < 1e-6] = down
+    d = nrm / np.maximum(np.linalg.norm(nrm, axis=1, keepdims=True), EPS_ZERO) + down
+    d[np.linalg.norm(d, axis=1) < EPS_SMALL] = down
     d /= np.linalg.norm(d, axis=1, keepdims=True)
     cap = math.tan(math.radians(s.branch_angle_deg))
     horiz = np.linalg.norm(d[:, :2], axis=1)
     fall = np.maximum(-d[:, 2], 0.0)
-    scale = np.where(horiz > cap * fall, cap * np.maximum(fall, 1e-12) / np.maximum(horiz, 1e-12), 1.0)
+    scale = np.where(horiz > cap * fall, cap * np.maximum(fall, EPS_ZERO) / np.maximum(horiz, EPS_ZERO), 1.0)
     d[:, :2] *= scale[:, None]
     d[fall == 0] = down
     d /= np.linalg.norm(d, axis=1, keepdims=True)
@@ -94,7 +95,7 @@ def _merge(tips: np.ndarray, s, field: Clearance, cost, b: _Builder):
     Returns the node ids that could not drop to the base and need the free-space graph.
     Cost: O(n^2) vector work and O(n) segment checks for n tips.
     """
-    t = math.tan(math.radians(s.branch_angle_deg)) * (1 - 1e-9)
+    t = math.tan(math.radians(s.branch_angle_deg)) * (1 - EPS_REL)
     z0 = s.base_thickness_mm
     area = math.pi * (s.post_diameter_mm / 2) ** 2
     pos = tips.copy()
@@ -108,7 +109,7 @@ def _merge(tips: np.ndarray, s, field: Clearance, cost, b: _Builder):
         return np.column_stack([q[:, 0], q[:, 1], np.full(len(q), z0)])
 
     def down(q):
-        return _edge_cost(q, ground(q), area, cost)
+        return edge_cost(q, ground(q), area, cost)
 
     while alive.any():
         i = int(np.flatnonzero(alive)[np.argmax(pos[alive, 2])])
@@ -119,21 +120,21 @@ def _merge(tips: np.ndarray, s, field: Clearance, cost, b: _Builder):
         dz = p[2] - q[:, 2]
         dxy = np.linalg.norm(q[:, :2] - p[:2], axis=1)
         inside = dxy <= dz * t
-        zm = np.where(inside, q[:, 2], (p[2] + q[:, 2] - dxy / max(t, 1e-12)) / 2)
+        zm = np.where(inside, q[:, 2], (p[2] + q[:, 2] - dxy / max(t, EPS_ZERO)) / 2)
         zm = np.where(inside, zm, np.minimum(zm, q[:, 2] - _MIN_DROP))
         inside &= dz >= _MIN_DROP
-        frac = np.where(dxy > 1e-12, np.minimum((p[2] - zm) * t / np.maximum(dxy, 1e-12), 1.0), 0.0)
+        frac = np.where(dxy > EPS_ZERO, np.minimum((p[2] - zm) * t / np.maximum(dxy, EPS_ZERO), 1.0), 0.0)
         m = np.column_stack([p[:2] + (q[:, :2] - p[:2]) * frac[:, None], zm])
         m[inside] = q[inside]
         pp = np.broadcast_to(p, m.shape)
-        gain = down(p[None])[0] + down(q) - _edge_cost(pp, m, area, cost) - np.where(
-            inside, down(q), _edge_cost(q, m, area, cost) + down(m))
+        gain = down(p[None])[0] + down(q) - edge_cost(pp, m, area, cost) - np.where(
+            inside, down(q), edge_cost(q, m, area, cost) + down(m))
         gain[(zm <= z0 + _MIN_DROP) | (p[2] - zm < _MIN_DROP)] = -np.inf
         # joining an upright trunk already standing on the base
         tdxy = np.linalg.norm(trunk_xyz[:, :2] - p[:2], axis=1)
-        tz = np.minimum(p[2] - tdxy / max(t, 1e-12), trunk_xyz[:, 2])
+        tz = np.minimum(p[2] - tdxy / max(t, EPS_ZERO), trunk_xyz[:, 2])
         tm = np.column_stack([trunk_xyz[:, :2], tz])
-        tgain = down(p[None])[0] - _edge_cost(np.broadcast_to(p, tm.shape), tm, area, cost)
+        tgain = down(p[None])[0] - edge_cost(np.broadcast_to(p, tm.shape), tm, area, cost)
         tgain[(tz <= z0 + _MIN_DROP) | (p[2] - tz < _MIN_DROP)] = -np.inf
         allg = np.concatenate([gain, tgain])
         order = np.argsort(-allg, kind="stable")[:8]
@@ -188,7 +189,7 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
     that meet share their way from there.  Returns the nodes left unrouted.
     Cost: O(E + V log V) for the two searches on a lattice of V nodes and E edges.
     """
-    s = settings.supports
+    s = settings.rules
     start = np.array([b.nodes[i] for i in blocked])
     lo = np.minimum(mesh.bounds[0], start.min(axis=0)) - 2 * s.clearance_mm - s.tip_length_mm
     hi = np.maximum(mesh.bounds[1], start.max(axis=0)) + 2 * s.clearance_mm + s.tip_length_mm
@@ -215,13 +216,13 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
             for i in range(max(i0, 0), min(i1, shape[0] - 1) + 1):
                 for j in range(max(j0, 0), min(j1, shape[1] - 1) + 1):
                     n = (i * shape[1] + j) * shape[2] + k
-                    if n in g and np.linalg.norm(g.nodes[n]["pos"][:2] - p[:2]) <= reach * (1 - 1e-9):
+                    if n in g and np.linalg.norm(g.nodes[n]["pos"][:2] - p[:2]) <= reach * (1 - EPS_REL):
                         cands.append(n)
         chosen = None
         if cands:
             cpos = np.array([g.nodes[n]["pos"] for n in cands])
             ok = field.clear(np.broadcast_to(p, cpos.shape), cpos)
-            first = _edge_cost(np.broadcast_to(p, cpos.shape), cpos, area, cost)
+            first = edge_cost(np.broadcast_to(p, cpos.shape), cpos, area, cost)
             for sink in ("base", "land"):
                 if sink not in search:
                     continue
@@ -258,7 +259,7 @@ def plan_tree(mesh: trimesh.Trimesh, contacts: Contacts, settings, *, cost: Pena
     Parameters
     ----------
     mesh : trimesh.Trimesh
-        The part, already lifted: its lowest point ``lift_mm`` above the plate.
+        The part, already lifted: its lowest point ``elevation_mm`` above the plate.
     contacts : Contacts
         Where tips touch the part, with outward normals and tip diameters.
     settings : Settings
@@ -316,7 +317,7 @@ def plan_tree(mesh: trimesh.Trimesh, contacts: Contacts, settings, *, cost: Pena
     >>> bool(plan.segment_length() < 4 * (15.0 - 1.5 - 1.0))
     True
     """
-    s = settings.supports
+    s = settings.rules
     field = clearance_field(mesh, s.clearance_mm)
     b = _Builder()
     tips, found = _tip_ends(contacts, s, field)

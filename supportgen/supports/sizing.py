@@ -37,17 +37,23 @@ from typing import NamedTuple
 
 import networkx as nx
 import numpy as np
-import scipy.sparse as sp
+import scipy.sparse as sparse
 import scipy.sparse.linalg as spla
 
+from ..errors import SizingError
+from ..settings import Settings
 from .bracing import (
-    BRACE_MIN_ANGLE_DEG, EFFECTIVE_LENGTH, MAX_SLENDERNESS, EffectiveLength, _add_braces, _runs, _Runs,
-    _sway_held,
+    BRACE_MIN_ANGLE_DEG,
+    EFFECTIVE_LENGTH,
+    MAX_SLENDERNESS,
+    EffectiveLength,
+    PostRuns,
+    add_braces,
+    post_runs,
+    sway_held,
 )
 from .contacts import densify_points
-from ..errors import SizingError
 from .plan import SupportPlan
-from ..settings import Settings
 
 __all__ = [
     "EFFECTIVE_LENGTH", "EffectiveLength", "MAX_SLENDERNESS", "BRACE_MIN_ANGLE_DEG", "SizingError",
@@ -131,15 +137,15 @@ def tip_diameter(load_n, settings: Settings):
     >>> tip_diameter([0.0, 1.0, 100.0], s).round(4).tolist()
     [0.15, 0.3568, 0.7]
     """
-    s = settings.supports
+    s = settings.rules
     need = required_tip_diameter(load_n, settings.resin.green_tensile_mpa, s.safety_factor)
     return np.clip(need, s.tip_min_mm, s.tip_max_mm)
 
 
 def over_capacity(load_n, settings: Settings):
     """True where a tip at ``tip_max_mm`` cannot hold ``safety_factor`` times its load. Cost O(n)."""
-    need = required_tip_diameter(load_n, settings.resin.green_tensile_mpa, settings.supports.safety_factor)
-    return need > settings.supports.tip_max_mm
+    need = required_tip_diameter(load_n, settings.resin.green_tensile_mpa, settings.rules.safety_factor)
+    return need > settings.rules.tip_max_mm
 
 
 def euler_critical_load(E_mpa, d_mm, L_mm, K):
@@ -269,8 +275,8 @@ def flow_loads(plan: SupportPlan, contact_loads):
         return np.zeros(0), np.zeros(0), tip_n
     b = np.bincount(plan.tip_nodes[~landing], weights=tip_n[~landing], minlength=n_nodes)
     u, v = plan.edges[:, 0], plan.edges[:, 1]
-    w = sp.csc_matrix((1.0 / ways[u], (v, u)), shape=(n_nodes, n_nodes))
-    node_n = np.atleast_1d(spla.spsolve((sp.identity(n_nodes, format="csc") - w).tocsc(), b))
+    w = sparse.csc_matrix((1.0 / ways[u], (v, u)), shape=(n_nodes, n_nodes))
+    node_n = np.atleast_1d(spla.spsolve((sparse.identity(n_nodes, format="csc") - w).tocsc(), b))
     share = np.divide(node_n, ways, out=np.zeros(n_nodes), where=ways > 0)
     tip_n[landing] = share[plan.tip_nodes[landing]]
     return node_n, share[u], tip_n
@@ -299,17 +305,17 @@ class _Sizing(NamedTuple):
     buckling: np.ndarray
     length: np.ndarray
     k: np.ndarray
-    runs: _Runs
+    runs: PostRuns
     run_need: np.ndarray      # (R,) buckling need before floors (mm)
     run_slender: np.ndarray   # (R,) K L / r at the chosen diameter
 
 
 def _size(plan: SupportPlan, tension_c, compression_c, settings: Settings) -> _Sizing:
-    s, e_mod, sigma = settings.supports, settings.resin.green_modulus_mpa, settings.resin.green_tensile_mpa
+    s, e_mod, sigma = settings.rules, settings.resin.green_modulus_mpa, settings.resin.green_tensile_mpa
     _, tension, tip_load = flow_loads(plan, tension_c)
     _, compression, _ = flow_loads(plan, compression_c)
     tip_d = tip_diameter(tip_load, settings)
-    runs = _runs(plan, _sway_held(plan, settings))
+    runs = post_runs(plan, sway_held(plan, settings))
     length, k = runs.length[runs.edge_run], runs.k[runs.edge_run]
     need_b = required_post_diameter(compression, e_mod, sigma, length, k, s.safety_factor)
     need_t = required_tip_diameter(np.maximum(tension, compression), sigma, s.safety_factor)
@@ -464,12 +470,12 @@ def size_plan(plan: SupportPlan, contact_loads, settings: Settings, compression_
     added = 0
     sz = _size(plan, tension_c, compression_c, settings)
     for _ in range(max_brace_rounds):
-        plan, n = _add_braces(plan, sz.runs.chains, sz.run_need, sz.run_slender, settings)
+        plan, n = add_braces(plan, sz.runs.chains, sz.run_need, sz.run_slender, settings)
         if n == 0:
             break
         added += n
         sz = _size(plan, tension_c, compression_c, settings)
-    s, sigma = settings.supports, settings.resin.green_tensile_mpa
+    s, sigma = settings.rules, settings.resin.green_tensile_mpa
     sized = plan.replace(tip_diameters=sz.tip_d, edge_radius=sz.diameter / 2.0)
     tip_cap = tip_capacity(sz.tip_d, sigma)
     tip_sf = _ratio(tip_cap, sz.tip_load)

@@ -15,28 +15,18 @@ by writing such a function and registering it in :data:`STRATEGIES`.
 
 from __future__ import annotations
 
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 import trimesh
 
+from ..constants import EPS_SMALL, OFFSET_MM
 from ..errors import SettingsError
-from .plan import Contacts, SupportPlan
 from ..settings import Settings
+from .freespace import surface_below
+from .plan import Contacts, SupportPlan
 
 __all__ = ["STRATEGIES", "get_strategy", "plan_straight", "join_plans"]
-
-
-def _first_hits_below(mesh: trimesh.Trimesh, origins: np.ndarray) -> np.ndarray:
-    """Height of the first surface below each origin (-inf where none)."""
-    out = np.full(len(origins), -np.inf)
-    if len(origins) == 0:
-        return out
-    dirs = np.tile([0.0, 0.0, -1.0], (len(origins), 1))
-    locs, ray_idx, _ = mesh.ray.intersects_location(origins, dirs, multiple_hits=True)
-    if len(locs):
-        np.maximum.at(out, ray_idx, np.where(locs[:, 2] < origins[ray_idx, 2], locs[:, 2], -np.inf))
-    return out
 
 
 def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings) -> SupportPlan:
@@ -60,17 +50,18 @@ def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings)
     -----
     One downward ray per contact: O(n log faces).
     """
-    sp = settings.supports
+    rules = settings.rules
     n = len(contacts)
-    r_post = sp.post_diameter_mm / 2
-    base_top = sp.base_thickness_mm
-    tip_len = sp.tip_length_mm
+    r_post = rules.post_diameter_mm / 2
+    base_top = rules.base_thickness_mm
+    tip_len = rules.tip_length_mm
     top = contacts.points.copy()
     # Node under each tip; a contact too close to the base gets a shorter tip.
     node_top = top - np.array([0.0, 0.0, tip_len])
-    node_top[:, 2] = np.maximum(node_top[:, 2], base_top + 1e-3)
+    node_top[:, 2] = np.maximum(node_top[:, 2], base_top + OFFSET_MM)
     # Start the downward ray a post radius below the node so it does not hit the tip's own face.
-    hit_z = _first_hits_below(mesh, node_top - np.array([0.0, 0.0, 1e-3]))
+    below = node_top - np.array([0.0, 0.0, OFFSET_MM])
+    hit_z = np.nan_to_num(surface_below(mesh, below[:, :2], np.arange(len(below)), below[:, 2])[0], nan=-np.inf)
     lands = hit_z > base_top
     node_low = node_top.copy()
     node_low[:, 2] = np.where(lands, hit_z + tip_len, base_top)
@@ -79,7 +70,7 @@ def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings)
     nodes = np.empty((2 * n, 3))
     nodes[0::2], nodes[1::2] = node_top, node_low
     edges = np.column_stack([np.arange(0, 2 * n, 2), np.arange(1, 2 * n, 2)])
-    long_enough = np.linalg.norm(node_top - node_low, axis=1) > 1e-6
+    long_enough = np.linalg.norm(node_top - node_low, axis=1) > EPS_SMALL
     edges = edges[long_enough]
     land_idx = np.flatnonzero(lands)
     land_pts = node_low[land_idx].copy()

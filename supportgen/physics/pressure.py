@@ -1,12 +1,13 @@
-"""Forces: the separation force of every layer, and the pressure field behind it.
+"""Pressure field of a layer: the thin-film Poisson problem and its torsion constant.
 
 A cured layer pulled straight off the film draws resin into the widening gap.
 Thin-film (Reynolds) flow gives the pressure ``p = -(12 mu hdot / h^3) phi`` with
 ``laplacian(phi) = -1`` on the layer and ``phi = 0`` on its open boundary: ``phi``
 is Prandtl's torsion function, ``J = 4 int(phi dA)`` the Saint-Venant torsion
 constant, and the force is ``F = 3 mu hdot J / h^3`` (Stefan's law for a disc).
-The per-layer walk that shares these forces among contacts lives in
-:mod:`supportgen.physics.loadpath` (``ForceTracker``, ``ForceProfile``, also reachable here).
+The laws that turn ``J`` into a force per mechanism are in
+:mod:`supportgen.physics.separation`; the per-layer walk that shares them among
+contacts is :mod:`supportgen.physics.loadpath`.
 
 Discretisation
 --------------
@@ -43,29 +44,22 @@ True
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
-import scipy.sparse as sp
+import scipy.sparse as sparse
 import scipy.sparse.linalg as spl
 from scipy import ndimage
 
+from ..analysis.runlength import mask_runs
 from ..errors import SettingsError
 
 __all__ = [
     "pressure_shape",
     "torsion_constant",
     "coarse_factor",
+    "solve_runs",
     "solve_components",
     "sealed_cavities",
-    "LayerShape",
-    "pull_force",
-    "slide_force",
-    "tilt_force",
-    "SEPARATION",
-    "READS_LABELS",
-    "separation",
-    "force_unit_n",
+    "CELLS_ACROSS",
 ]
 
 #: Coarse cells across the half-width ``2A/P`` the coarse grid keeps (see Notes above).
@@ -97,7 +91,7 @@ def _system(frac: np.ndarray):
         cols[:, slot], ok[:, slot] = index[sl][inside], nb
     cols[:, 2], vals[:, 2], ok[:, 2] = np.arange(n), diag, True
     indptr = np.concatenate([[0], np.cumsum(ok.sum(axis=1))])
-    return inside, sp.csc_matrix((vals[ok], cols[ok], indptr), shape=(n, n))
+    return inside, sparse.csc_matrix((vals[ok], cols[ok], indptr), shape=(n, n))
 
 
 def _solve_fraction(frac: np.ndarray, cell_mm: float) -> np.ndarray:
@@ -158,16 +152,6 @@ def _factor_solve(frac: np.ndarray, cell_mm: float, kept=None):
     return phi, (frac, inside, lu, phi)
 
 
-def _mask_runs(mask: np.ndarray, r0: int = 0, c0: int = 0):
-    """Row runs of a bool image: (rows, starts, ends) int64, sorted, end exclusive, offset by (r0, c0)."""
-    ny, nx = mask.shape
-    p = np.zeros((ny, nx + 2), bool)
-    p[:, 1:-1] = mask
-    t = np.flatnonzero(p.ravel()[1:] != p.ravel()[:-1]) + 1
-    st, en = t[0::2], t[1::2]
-    return st // (nx + 2) + r0, st % (nx + 2) - 1 + c0, en % (nx + 2) - 1 + c0
-
-
 def _run_fraction(rows, starts, ends, s: int):
     """Covered fraction of the ``s x s`` blocks (aligned to multiples of ``s``) under runs.
 
@@ -184,7 +168,7 @@ def _run_fraction(rows, starts, ends, s: int):
     return cover.reshape(ni, nj, s).sum(axis=2) / float(s * s), (i0, j0)
 
 
-def _component(rows, starts, ends, edges: int, pixel_mm: float, origin, kept=None, factor=None):
+def solve_runs(rows, starts, ends, edges: int, pixel_mm: float, origin, kept=None, factor=None):
     """J, area, pressure samples and ``((s, I0, J0), state)`` of one component given by its runs.
 
     ``kept``: dict of earlier states by block key ``(s, I0, J0)``; the one with this
@@ -356,8 +340,8 @@ def solve_components(labels: np.ndarray, ids, pixel_mm: float, origin=(0.0, 0.0)
     for i in ids:
         sl = objects[i - 1]
         crop = labels[sl] == i
-        rows, starts, ends = _mask_runs(crop, sl[0].start, sl[1].start)
-        out[i] = _component(rows, starts, ends, _edges(crop), pixel_mm, origin, factor=factor)[:4]
+        rows, starts, ends = mask_runs(crop, sl[0].start, sl[1].start)
+        out[i] = solve_runs(rows, starts, ends, _edges(crop), pixel_mm, origin, factor=factor)[:4]
     return out
 
 
@@ -411,131 +395,3 @@ def sealed_cavities(mask: np.ndarray, below_mask: np.ndarray | None = None,
     open_[lab[vented_below]] = True
     sealed[sl] = ~open_[lab]
     return sealed
-
-
-@dataclass(frozen=True)
-class LayerShape:
-    """One layer's components as the separation laws see them.
-
-    ``labels`` (ny, nx) int labels of the suction region (cured pixels plus sealed
-    cavities), ``area_mm2`` and ``torsion_mm4`` per label 1..n (index 0 = label 1).
-    Laws not named in ``READS_LABELS`` use only the per-label arrays and may be given
-    an empty (0, 0) ``labels``.
-    """
-
-    labels: np.ndarray
-    pixel_mm: float
-    area_mm2: np.ndarray
-    torsion_mm4: np.ndarray
-
-
-def force_unit_n(settings) -> float:
-    """Newtons per (Pa s)(mm/s)(mm) of the laws below: 1 Pa = 1e-6 N/mm^2."""
-    return 1e-6 * settings.resin.viscosity_pa_s * settings.printer.lift_speed_mm_s
-
-
-def pull_force(shape: LayerShape, settings) -> np.ndarray:
-    """Squeeze-film force per component, pulling straight off: ``c 3 mu v J / h^3 + b A`` (N).
-
-    Notes
-    -----
-    Reynolds' thin-film equation on a rigid flat gap; ``c`` is
-    ``printer.force_calibration`` (a flexible film pulls off far below the rigid law)
-    and ``b`` is ``printer.force_area_n_mm2``, an adhesion term per unit area that
-    is zero unless a calibration found the measurements call for it.
-    Cost O(components).
-
-    References
-    ----------
-    J. Stefan, Sitzungsber. Akad. Wiss. Wien 69 (1874); Hamrock, Schmid & Jacobson,
-    Fundamentals of Fluid Film Lubrication (2004).
-    """
-    p = settings.printer
-    squeeze = p.force_calibration * force_unit_n(settings) * 3.0 * shape.torsion_mm4 / p.film_gap_mm**3
-    return squeeze + p.force_area_n_mm2 * np.asarray(shape.area_mm2, float)
-
-
-def slide_force(shape: LayerShape, settings, shear_calibration: float | None = None) -> np.ndarray:
-    """Shear force per component when the film slides sideways: ``k mu A v / h`` (N).
-
-    Notes
-    -----
-    Couette flow in the gap at the lift speed.  ``k = shear_calibration``, by
-    default ``printer.slide_calibration`` (1), not ``printer.force_calibration``: that factor stands for the film
-    flexing away from the squeeze, and a film sliding in its own plane has no such
-    relief (our assumption).  With equal factors slide/pull is ``A h^2 / (3 J)``,
-    ``(2/3)(h/R)^2`` for a disc; with the defaults it is ``1/c`` times that, about a
-    hundredth for a disc of 3-5 mm radius.  Cost O(components).
-
-    References
-    ----------
-    Couette flow: any fluid-mechanics text, e.g. Batchelor, An Introduction to Fluid
-    Dynamics (1967), section 4.2.
-    """
-    k = settings.printer.slide_calibration if shear_calibration is None else shear_calibration
-    return k * force_unit_n(settings) * shape.area_mm2 / settings.printer.film_gap_mm
-
-
-def tilt_force(shape: LayerShape, settings, band_mm: float | None = None) -> np.ndarray:
-    """Peel-line force per component when the vat tilts away (N), at the worst instant.
-
-    Model (ours; assumptions): the film peels from the layer's low-x side, the peel
-    front a straight line along y sweeping toward +x.  Only a band ``band_mm`` wide
-    (default ``printer.peel_band_mm``)
-    behind the front is still wetted at the nominal gap and closing speed; resin
-    enters it from both long sides (the front, and the already peeled side), so it
-    is a thin strip: ``J = sum_rows w_row^3 / 3 * h_px`` with ``w_row`` the cured
-    width of each pixel row inside the band (end effects along y neglected, which
-    errs high).  The force at each front position is the pull law on that band
-    times ``c``; the layer's value is its maximum over the sweep, and each
-    component gets its share at that instant.
-
-    Notes
-    -----
-    O(pixels of the layer's bounding box): one cumulative sum along x.
-    """
-    lab, h = shape.labels, shape.pixel_mm
-    n = shape.area_mm2.size
-    out = np.zeros(n)
-    if n == 0:
-        return out
-    band_mm = settings.printer.peel_band_mm if band_mm is None else band_mm
-    nb = max(1, int(round(band_mm / h)))
-    cured = lab > 0
-    cs = np.pad(np.cumsum(cured, axis=1), ((0, 0), (1, 0)))
-    nx = lab.shape[1]
-    start = np.arange(nx)
-    width = cs[:, np.minimum(start + nb, nx)] - cs[:, start]
-    j = int(np.argmax((width.astype(float) ** 3).sum(axis=0)))
-    band = lab[:, j: j + nb]
-    rr = np.broadcast_to(np.arange(lab.shape[0])[:, None], band.shape)
-    counts = np.bincount((rr * (n + 1) + band)[band > 0], minlength=lab.shape[0] * (n + 1))
-    per = (counts.reshape(-1, n + 1).astype(float) * h) ** 3 / 3.0 * h
-    jband = per.sum(axis=0)[1:]
-    p = settings.printer
-    return p.force_calibration * force_unit_n(settings) * 3.0 * jband / p.film_gap_mm**3
-
-
-#: Separation mechanisms by name: ``f(shape: LayerShape, settings) -> (n,) N``.
-SEPARATION = {"pull": pull_force, "slide": slide_force, "tilt": tilt_force}
-#: The mechanisms whose law reads ``LayerShape.labels``; the others are given an
-#: empty (0, 0) label image by :class:`supportgen.physics.loadpath.ForceTracker`.
-READS_LABELS = frozenset({"tilt"})
-
-
-def separation(name: str):
-    """The separation law called ``name``; SettingsError lists the valid names."""
-    try:
-        return SEPARATION[name]
-    except KeyError:
-        raise SettingsError(
-            f"unknown separation mechanism {name!r}; valid names: {', '.join(SEPARATION)}") from None
-
-
-def __getattr__(name):
-    """``ForceTracker`` and ``ForceProfile`` live in :mod:`supportgen.physics.loadpath`."""
-    if name in ("ForceTracker", "ForceProfile"):
-        from . import loadpath
-
-        return getattr(loadpath, name)
-    raise AttributeError(f"module 'supportgen.physics.forces' has no attribute {name!r}")

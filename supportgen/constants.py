@@ -1,0 +1,38 @@
+"""Numeric tolerances, each in one place with its reason.
+
+Lengths are in millimetres.  Parts are 1-300 mm and files keep single-precision
+positions (float32: about 1e-5 mm at 100 mm), pixels and layers are 5-500 um.
+
+Examples
+--------
+>>> 1e-5 < OFFSET_MM < 0.005    # above float32 resolution at 100 mm, below the finest pixel
+True
+"""
+
+from __future__ import annotations
+
+__all__ = ["OFFSET_MM", "EPS_REL", "EPS_ZERO", "EPS_SMALL", "EPS_FLOOR", "MERGE_FRACTION"]
+
+#: Step taken off a surface so that a query starts clearly on one side of it
+#: (a ray below a contact, a node above the base): one micron, far below the
+#: finest pixel (5 um) and far above float32 resolution of stored positions.
+OFFSET_MM = 1e-3
+
+#: Relative slack for comparing a computed quantity with a limit it was sized
+#: to meet exactly (a few ulps of round-off in a product or a square root).
+EPS_REL = 1e-9
+
+#: An absolute length (mm), determinant or cosine this close to zero is zero:
+#: guards divisions by a norm and decides degenerate directions.
+EPS_ZERO = 1e-12
+
+#: A segment or tangent shorter than this (mm, or unitless for tangents) is
+#: treated as absent: far below any printable feature.
+EPS_SMALL = 1e-6
+
+#: Positive floor for dividing non-negative sums that may be exactly zero.
+EPS_FLOOR = 1e-300
+
+#: Vertices closer than this fraction of the bounding-box diagonal are one
+#: vertex: below float32 resolution, so merging never joins distinct points.
+MERGE_FRACTION = 1e-9

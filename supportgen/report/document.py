@@ -1,0 +1,102 @@
+"""The documents of a run: the JSON record scripts rely on, and the Markdown summary.
+
+The JSON keys listed in the project's README (input, settings, outputs,
+supports, forces, verification, estimates, timing_s, warnings, provenance) are a
+contract; more may be added, none removed or renamed without notice.  The
+Markdown summary links the plots of :mod:`supportgen.report.plots`.
+"""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+import numpy as np
+
+__all__ = ["CAUTIONS", "REPORT_KEYS", "to_json", "markdown"]
+
+REPORT_KEYS = ("input", "settings", "outputs", "supports", "forces", "verification", "estimates",
+               "timing_s", "warnings")
+
+CAUTIONS = """\
+Handle resin and prints with care:
+
+- Liquid and uncured resin is a skin sensitiser: wear nitrile gloves and eye
+  protection, and never touch it bare-handed; wash any splash off with soap and water.
+- Work with ventilation; do not breathe the vapour or the sanding dust of printed parts.
+- Keep resin away from sunlight and UV lamps until you mean to cure it; do not look into the UV source.
+- Cleaning solvents such as isopropyl alcohol are flammable: no open flames, store them closed.
+- Cut supports off with the part held away from you and wear eye protection: stubs and
+  snapped posts are sharp and can fly.
+- The resin's safety data sheet and your local rules on handling and disposal come first;
+  this report does not replace them.
+"""
+
+
+def _clean(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _clean(obj.tolist())
+    if isinstance(obj, (np.floating, float)):
+        v = float(obj)
+        return v if np.isfinite(v) else None
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    return obj
+
+
+def to_json(report: dict) -> str:
+    """The report as deterministic JSON text (sorted keys, NaN and inf as null).
+
+    Examples
+    --------
+    >>> to_json({"b": np.float64(1.5), "a": [np.int64(2), float("nan")]})
+    '{\\n  "a": [\\n    2,\\n    null\\n  ],\\n  "b": 1.5\\n}\\n'
+    """
+    return json.dumps(_clean(report), indent=2, sort_keys=True) + "\n"
+
+
+def _fmt(v, digits=2):
+    if v is None:
+        return "n/a"
+    if isinstance(v, float):
+        return f"{v:.{digits}f}"
+    return str(v)
+
+
+def markdown(report: dict, name: str, images: dict[str, str]) -> str:
+    """A human summary of one report, with the cautions and links to its plots."""
+    sup, frc, ver, est = (report.get(k) or {} for k in ("supports", "forces", "verification", "estimates"))
+    tip = sup.get("tip_diameter_mm") or {}
+    verdict = "PASSES" if ver.get("passed") else "DOES NOT PASS"
+    lines = [
+        f"# Support report: {name}",
+        "",
+        f"The supported part **{verdict}** the print check.",
+        "",
+        "| what | value |",
+        "|---|---|",
+        f"| strategy | {sup.get('strategy')} |",
+        f"| contacts | {sup.get('contacts')} (landings on the part: {sup.get('landings', 0)}) |",
+        f"| tip diameter, min / median / max (mm) | {_fmt(tip.get('min'))} / {_fmt(tip.get('median'))} / {_fmt(tip.get('max'))} |",
+        f"| support volume (mm³), of which base | {_fmt(sup.get('volume_mm3'), 1)}, {_fmt(sup.get('base_volume_mm3'), 1)} |",
+        f"| peak separation force (N), at layer | {_fmt(frc.get('peak_layer_force_n'))}, {frc.get('peak_layer_index')} |",
+        f"| lowest tip safety factor, tips over capacity | {_fmt(frc.get('min_safety_factor'))}, {frc.get('tips_over_capacity')} |",
+        f"| islands left, largest reach (mm) | {ver.get('islands')}, {_fmt(ver.get('max_unsupported_reach_mm'))} (limit {_fmt(ver.get('reach_limit_mm'))}) |",
+        f"| layers, print time (h), resin (ml) | {est.get('layers')}, {_fmt((est.get('print_time_s') or 0) / 3600)}, {_fmt(est.get('resin_ml'), 1)} |",
+        "",
+    ]
+    for failure in ver.get("failures") or []:
+        lines.append(f"- check failed: {failure}")
+    for w in report.get("warnings") or []:
+        lines.append(f"- warning ({w['code']}): {w['message']}")
+    if images:
+        lines += ["", "## Plots", ""]
+        lines += [f"![{label}]({file})" for label, file in images.items()]
+    lines += ["", "## Cautions", "", CAUTIONS]
+    return "\n".join(lines)
