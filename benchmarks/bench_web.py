@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import re
 import shutil
 import subprocess
 import tempfile
@@ -34,8 +35,6 @@ def main() -> None:
     ap.add_argument("--browser", action="store_true", help="also time a headless Chromium load of each page")
     args = ap.parse_args()
     print(f"cores {os.cpu_count()}, load average {os.getloadavg()[0]:.2f}, three.js {web.vendor_version()}")
-    vendor = len(web._importmap())
-    print(f"vendored library inlined: {vendor / 1e6:.2f} MB")
     chromium = shutil.which("chromium")
     with tempfile.TemporaryDirectory() as tmp:
         for name in args.parts:
@@ -48,8 +47,10 @@ def main() -> None:
             quant = sum(len(web.encode_mesh(m.vertices, m.faces, quantise_above=0)["positions"]) +
                         len(web.encode_mesh(m.vertices, m.faces, quantise_above=0)["index"])
                         for m in (res.part, res.supports))
+            imap = re.search(r'<script type="importmap">.*?</script>', page, re.S)
+            vendor = len(imap.group(0)) if imap else 0
             faces = len(res.part.faces) + len(res.supports.faces)
-            line = (f"{name:8s} faces {faces:7d}  page {len(page) / 1e6:5.2f} MB (meshes {meshes / 1e6:4.2f} MB, "
+            line = (f"{name:8s} faces {faces:7d}  page {len(page) / 1e6:5.2f} MB (three.js {vendor / 1e6:4.2f} MB, meshes {meshes / 1e6:4.2f} MB, "
                     f"{quant / 1e6:4.2f} MB as uint16)  built in {build * 1000:6.1f} ms")
             if args.browser and chromium:
                 path = Path(tmp) / f"{name}.html"

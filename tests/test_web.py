@@ -17,6 +17,7 @@ import os
 import re
 import shutil
 import subprocess
+from html import escape as html_escape
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -162,7 +163,7 @@ def test_contact_safety_factors_match_the_sized_tips(hook):
     """The page's contact factor is the sizing rule, capacity = green tensile x pi d^2 / 4 over the peak
     load (tension on a circular section, exact formula); its lowest equals the report's lowest tip factor
     to the rounding of the records (diameters 0.1 um, loads 1 uN)."""
-    c = web._contact_arrays(hook.contacts.to_records(), hook.report)
+    c = web.contact_safety(hook.contacts.to_records(), hook.report)
     sigma = hook.report["settings"]["resin"]["green_tensile_mpa"]
     d, f = hook.contacts.diameters, hook.contacts.loads
     expected = np.where(f > 0, sigma * np.pi * d**2 / 4 / np.where(f > 0, f, 1), np.inf)
@@ -195,10 +196,10 @@ def test_mesh_buffers_round_trip_exactly_or_within_one_quantum(hook):
 def test_colour_scale_is_lightness_ordered_and_classes_are_distinct():
     """The ramp falls in CIE L* from the target up (perceptual order); our sRGB->Lab conversion gives
     the published CIE values for white (100, 0, 0) and sRGB red (53.24, 80.09, 67.20; from memory)."""
-    np.testing.assert_allclose(web._srgb_to_lab(np.array([1.0, 1.0, 1.0])), [100, 0, 0], atol=0.05)
-    np.testing.assert_allclose(web._srgb_to_lab(np.array([1.0, 0.0, 0.0])), [53.24, 80.09, 67.20], atol=0.1)
+    np.testing.assert_allclose(web.srgb_to_lab(np.array([1.0, 1.0, 1.0])), [100, 0, 0], atol=0.05)
+    np.testing.assert_allclose(web.srgb_to_lab(np.array([1.0, 0.0, 0.0])), [53.24, 80.09, 67.20], atol=0.1)
     sf = np.geomspace(2.0, web.SF_SCALE_MAX, 40)
-    lab = web._srgb_to_lab(web.sf_colours(sf, 2.0) / 255.0)
+    lab = web.srgb_to_lab(web.sf_colours(sf, 2.0) / 255.0)
     assert np.all(np.diff(lab[:, 0]) <= 0.5), "lightness must fall (within 8-bit rounding) as the factor rises"
     assert lab[0, 0] - lab[-1, 0] > 50
     fail, under, ok, na = web.sf_colours([0.5, 1.5, 2.0, np.nan], 2.0)
@@ -221,7 +222,7 @@ def test_page_is_self_contained_and_lists_what_the_report_holds(hook):
         assert hashlib.sha256((vendor / name).read_bytes()).hexdigest() == digest, name
     assert (vendor / "LICENSE").read_text().startswith("The MIT License")
     for w in hook.report["warnings"]:
-        assert web._e(w["message"]) in html
+        assert html_escape(w["message"]) in html
     # Resin cautions (the report's own text, render.CAUTIONS): sensitiser, eyes, ventilation, UV, solvent, stubs, SDS.
     for phrase in ("skin sensitiser", "eye", "ventilation", "UV", "flammable", "sharp", "safety data sheet"):
         assert phrase in html, phrase
@@ -247,7 +248,7 @@ def test_failed_checks_are_located():
                                "first_specks": [{"layer": 19, "xy_mm": [3, 4]}],
                                "max_unsupported_reach_mm": 3.0, "reach_limit_mm": 2.0,
                                "worst_reach_layer": 39, "worst_reach_xy_mm": [5, 6]}}
-    marks = web._failures(report)
+    marks = web.failure_marks(report)
     # A layer k's top is (k + 1) x layer height (exact: the layers stack from the plate).
     assert [(m["kind"], m["xyz"]) for m in marks] == [("island", [1, 2, 0.5]), ("speck", [3, 4, 1.0]),
                                                         ("reach", [5, 6, 2.0])]
@@ -294,7 +295,7 @@ def test_failed_check_is_marked_in_the_view(hook, tmp_path, monkeypatch):
     html = page.read_text()
     assert "does not pass the print check" in html and "starting in mid-air" in html
     _, pixels = check_page(page, tmp_path, PART_IDS, out / "hook_unsupported.report.png", min_colours=50)
-    red = np.array([int(web._FAIL_COLOUR[i:i + 2], 16) for i in (1, 3, 5)])
+    red = np.array([int(web.FAIL_COLOUR[i:i + 2], 16) for i in (1, 3, 5)])
     assert np.count_nonzero(np.abs(pixels.astype(int) - red).max(axis=1) <= 12) > 20, "no failure ring drawn"
 
 

@@ -33,9 +33,10 @@ from typing import Any, Iterable
 
 import numpy as np
 
-from .render import CAUTIONS
+from .document import CAUTIONS
 
-__all__ = ["part_page", "batch_index", "sf_colours", "encode_mesh", "vendor_version",
+__all__ = ["part_page", "batch_index", "sf_colours", "encode_mesh", "vendor_version", "contact_safety",
+           "failure_marks", "srgb_to_lab", "FAIL_COLOUR",
            "SF_SCALE_MAX", "SF_ROUNDING_REL", "QUANTISE_ABOVE_BYTES"]
 
 #: Mesh buffers larger than this (bytes, positions plus indices, before base64)
@@ -58,7 +59,7 @@ SF_SCALE_MAX = 50.0
 # far above it.  Anchors are interpolated in CIE L*a*b* so lightness falls
 # steadily from the target to SF_SCALE_MAX (L* about 89, 66, 45, 18).
 _SF_ANCHORS = ("#ffe066", "#3bb273", "#2b6cb0", "#2d1e5f")
-_FAIL_COLOUR = "#e4002b"       # below 1: the tip tears off
+FAIL_COLOUR = "#e4002b"       # below 1: the tip tears off
 _UNDER_COLOUR = "#ff7f11"      # between 1 and the target
 _NA_COLOUR = "#9a9a9a"         # no factor known
 _PART_COLOUR = "#e6e1d6"
@@ -140,7 +141,7 @@ def _hex_to_rgb(h: str) -> np.ndarray:
     return np.array([int(h[i:i + 2], 16) for i in (1, 3, 5)], float) / 255.0
 
 
-def _srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
+def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
     """sRGB in [0, 1] to CIE L*a*b* (D65), by the IEC 61966-2-1 and CIE 15 formulas."""
     c = np.where(rgb <= 0.04045, rgb / 12.92, ((rgb + 0.055) / 1.055) ** 2.4)
     m = np.array([[0.4124, 0.3576, 0.1805], [0.2126, 0.7152, 0.0722], [0.0193, 0.1192, 0.9505]])
@@ -160,7 +161,7 @@ def _lab_to_srgb(lab: np.ndarray) -> np.ndarray:
 
 def _ramp(t: np.ndarray) -> np.ndarray:
     """Colours (n, 3) in [0, 1] along the safety ramp at positions t in [0, 1]."""
-    lab = _srgb_to_lab(np.array([_hex_to_rgb(h) for h in _SF_ANCHORS]))
+    lab = srgb_to_lab(np.array([_hex_to_rgb(h) for h in _SF_ANCHORS]))
     x = np.clip(np.asarray(t, float), 0, 1) * (len(lab) - 1)
     k = np.minimum(np.floor(x).astype(int), len(lab) - 2)
     w = (x - k)[:, None]
@@ -189,7 +190,7 @@ def sf_colours(sf, target: float) -> np.ndarray:
     out = _ramp(_ramp_position(np.nan_to_num(sf, nan=target), target))
     slack = 1.0 - SF_ROUNDING_REL
     out[sf < target * slack] = _hex_to_rgb(_UNDER_COLOUR)
-    out[sf < slack] = _hex_to_rgb(_FAIL_COLOUR)
+    out[sf < slack] = _hex_to_rgb(FAIL_COLOUR)
     out[np.isnan(sf)] = _hex_to_rgb(_NA_COLOUR)
     return np.round(out * 255).astype(np.uint8)
 
@@ -246,7 +247,7 @@ def _mesh_parts(mesh) -> tuple[np.ndarray, np.ndarray]:
 
 # --------------------------------------------------------------------------- contacts and failures
 
-def _contact_arrays(records: Iterable[dict], report: dict) -> dict:
+def contact_safety(records: Iterable[dict], report: dict) -> dict:
     """Points, diameters and safety factors of the contacts.
 
     A record's own ``safety_factor`` is used where present; otherwise the factor is
@@ -274,7 +275,7 @@ def _contact_arrays(records: Iterable[dict], report: dict) -> dict:
             "sf": np.array(sf, float), "loads": np.array(load, float)}
 
 
-def _failures(report: dict) -> list[dict]:
+def failure_marks(report: dict) -> list[dict]:
     """Locations of failed checks: islands and specks left in mid-air, reach past the limit, weak tips."""
     out = []
     layer_mm = _num(_get(report, "settings", "printer", "layer_mm")) or 0.0
@@ -448,7 +449,7 @@ def _legend(target: float) -> str:
     return (f'<div id="legend" class="legend"><div class="legend-title">Contact safety factor</div>'
             f'<div class="ramp" style="background: linear-gradient(to right, {grad})"></div>'
             f'<div class="ramp-ticks">{marks}</div>'
-            f'<div class="swatches"><span><i style="background:{_FAIL_COLOUR}"></i>below 1: fails</span>'
+            f'<div class="swatches"><span><i style="background:{FAIL_COLOUR}"></i>below 1: fails</span>'
             f'<span><i style="background:{_UNDER_COLOUR}"></i>1 to target {target:g}</span>'
             f'<span><i style="background:{_NA_COLOUR}"></i>n/a</span></div>'
             f'<div class="swatches"><span><i style="background:{_PART_COLOUR}"></i>part</span>'
@@ -555,6 +556,7 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
     report = report if isinstance(report, dict) else {}
     name = _get(report, "input", "name", default="part")
     target = _num(_get(report, "forces", "target_safety_factor")) or \
+        _num(_get(report, "settings", "rules", "safety_factor")) or \
         _num(_get(report, "settings", "supports", "safety_factor")) or 1.0
     verdict, vclass = _verdict(report)
 
@@ -567,9 +569,9 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
         both.append(cv)
     allv = np.concatenate(both) if both else np.zeros((1, 3))
     lo, hi = allv.min(axis=0), allv.max(axis=0)
-    c = _contact_arrays(contacts_records, report)
+    c = contact_safety(contacts_records, report)
     colours = sf_colours(c["sf"], target)
-    fails = _failures(report)
+    fails = failure_marks(report)
     scene = {
         "part": encode_mesh(pv, pf), "supports": encode_mesh(sv, sf_),
         "bounds": [lo.tolist(), hi.tolist()],
@@ -577,7 +579,7 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
                      "diameters": _b64(np.nan_to_num(c["diameters"], nan=0.0).astype("<f4")),
                      "colours": _b64(colours)},
         "failures": fails,
-        "colours": {"part": _PART_COLOUR, "supports": _SUPPORT_COLOUR, "fail": _FAIL_COLOUR},
+        "colours": {"part": _PART_COLOUR, "supports": _SUPPORT_COLOUR, "fail": FAIL_COLOUR},
         "plate": [_num(_get(report, "settings", "printer", k)) for k in ("build_x_mm", "build_y_mm")],
     }
     plot_svg, plot_data = _layer_plot(report)
