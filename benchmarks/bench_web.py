@@ -50,7 +50,8 @@ def main() -> None:
             imap = re.search(r'<script type="importmap">.*?</script>', page, re.S)
             vendor = len(imap.group(0)) if imap else 0
             faces = len(res.part.faces) + len(res.supports.faces)
-            line = (f"{name:8s} faces {faces:7d}  page {len(page) / 1e6:5.2f} MB (three.js {vendor / 1e6:4.2f} MB, meshes {meshes / 1e6:4.2f} MB, "
+            line = (f"{name:8s} faces {faces:7d}  page {len(page) / 1e6:5.2f} MB (three.js {vendor / 1e6:4.2f} MB, "
+                    f"meshes {meshes / 1e6:4.2f} MB, "
                     f"{quant / 1e6:4.2f} MB as uint16)  built in {build * 1000:6.1f} ms")
             if args.browser and chromium:
                 path = Path(tmp) / f"{name}.html"

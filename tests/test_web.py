@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import base64
 import json
-import math
 import os
 import re
 import shutil
@@ -26,8 +25,7 @@ import pytest
 import trimesh
 
 import supportgen
-from supportgen.report import batch_index, part_page
-from supportgen.report import web
+from supportgen.report import batch_index, part_page, web
 from supportgen.runs.demo import DEMO_PARTS, demo_part
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
@@ -303,7 +301,8 @@ def test_failed_check_is_marked_in_the_view(hook, tmp_path, monkeypatch):
 def test_batch_index_loads_with_two_rows_and_links(hook, tmp_path):
     out = _out_dir(tmp_path)
     r = hook.report
-    rows = [{"name": "hook", "page": "hook.report.html", "status": "ok", "peak_force_n": r["forces"]["peak_layer_force_n"],
+    rows = [{"name": "hook", "page": "hook.report.html", "status": "ok",
+             "peak_force_n": r["forces"]["peak_layer_force_n"],
              "contacts": r["supports"]["contacts"], "volume_mm3": r["supports"]["volume_mm3"],
              "time_s": r["timing_s"]["total"]},
             {"name": "hook_unsupported", "page": "hook_unsupported.report.html", "status": "failed-check",

@@ -28,8 +28,9 @@ import base64
 import html
 import json
 import math
+from collections.abc import Iterable
 from importlib import metadata, resources
-from typing import Any, Iterable
+from typing import Any
 
 import numpy as np
 
@@ -390,9 +391,11 @@ def _layer_plot(report: dict) -> tuple[str, dict]:
     svg = (f'<svg id="layer-plot" viewBox="0 0 {W} {H}" role="img" aria-label="cured area and separation force '
            f'per layer against height" data-left="{L}" data-right="{W - R}" data-zlo="{zlo}" data-zhi="{zhi:.6g}">'
            + "".join(panels) + xt +
-           f'<text class="axis-label" x="{(L + W - R) / 2}" y="{H - 4}" text-anchor="middle">height above the plate (mm)'
-           f'</text><line id="hover-line" class="hover" x1="0" x2="0" y1="{T}" y2="{H - B}" visibility="hidden"/></svg>')
-    data = {k: [None if not np.isfinite(v) else round(float(v), 5) for v in s[k]] for k in ("z", "area", "force", "unheld")}
+           f'<text class="axis-label" x="{(L + W - R) / 2}" y="{H - 4}" text-anchor="middle">'
+           'height above the plate (mm)</text>'
+           f'<line id="hover-line" class="hover" x1="0" x2="0" y1="{T}" y2="{H - B}" visibility="hidden"/></svg>')
+    data = {k: [None if not np.isfinite(v) else round(float(v), 5) for v in s[k]]
+            for k in ("z", "area", "force", "unheld")}
     return svg + (f'<p class="note">{_e(note)}</p>' if note else ""), data
 
 
@@ -400,7 +403,8 @@ def _histogram(values: np.ndarray, target: float | None, title: str, element_id:
     """SVG histogram of safety factors on log-spaced bins; bars coloured on the page's scale."""
     v = values[~np.isnan(values)]
     if len(v) == 0:
-        return f'<div class="hist" id="{element_id}"><h3>{_e(title)}</h3><p class="na">n/a: none in this report</p></div>'
+        return (f'<div class="hist" id="{element_id}"><h3>{_e(title)}</h3>'
+                '<p class="na">n/a: none in this report</p></div>')
     edges = np.concatenate([[0.0], np.geomspace(1.0, 100.0, 21), [np.inf]])
     counts = np.histogram(np.minimum(v, 1e300), bins=edges)[0]
     W, H, L, R, T, B = 340, 190, 40, 10, 10, 40
@@ -412,7 +416,8 @@ def _histogram(values: np.ndarray, target: float | None, title: str, element_id:
     bars = []
     for k, c in enumerate(counts):
         h = c / top * (H - T - B)
-        lo_txt = "below 1" if k == 0 else (f"{edges[k]:.3g} and above" if k == n - 1 else f"{edges[k]:.3g} to {edges[k + 1]:.3g}")
+        lo_txt = ("below 1" if k == 0 else f"{edges[k]:.3g} and above" if k == n - 1
+                  else f"{edges[k]:.3g} to {edges[k + 1]:.3g}")
         bars.append(f'<rect x="{L + k * bw + 0.5:.1f}" y="{H - B - h:.1f}" width="{bw - 1:.1f}" height="{h:.1f}" '
                     f'fill="{_css(colours[k])}"><title>{c} with safety factor {lo_txt}</title></rect>')
 
@@ -433,7 +438,8 @@ def _histogram(values: np.ndarray, target: float | None, title: str, element_id:
              f"{int(np.sum(v < (target or 1.0) * (1 - SF_ROUNDING_REL)))} below the target")
     return (f'<div class="hist" id="{element_id}"><h3>{_e(title)}</h3>'
             f'<svg viewBox="0 0 {W} {H}" role="img" aria-label="{_e(title)}">'
-            f'<line class="axis" x1="{L}" x2="{W - R}" y1="{H - B}" y2="{H - B}"/>' + "".join(bars) + ticks + yt + tline +
+            f'<line class="axis" x1="{L}" x2="{W - R}" y1="{H - B}" y2="{H - B}"/>'
+            + "".join(bars) + ticks + yt + tline +
             f'<text class="axis-label" x="{(L + W - R) / 2}" y="{H - 6}" text-anchor="middle">'
             f"safety factor (capacity / peak load, log scale)</text></svg><p class=\"stats\">{_e(stats)}</p></div>")
 
@@ -494,7 +500,8 @@ def _cautions_html() -> str:
         elif cur is not None and line.strip():
             cur.append(line.strip())
     lis = "".join(f"<li>{_e(' '.join(i))}</li>" for i in items)
-    return f'<section id="cautions" class="card cautions"><h2>Handling cautions</h2><p>{_e(intro)}</p><ul>{lis}</ul></section>'
+    return (f'<section id="cautions" class="card cautions"><h2>Handling cautions</h2><p>{_e(intro)}</p>'
+            f"<ul>{lis}</ul></section>")
 
 
 def _verdict(report: dict) -> tuple[str, str]:
@@ -515,7 +522,8 @@ def _page(title: str, body: str, script: str, head_extra: str = "") -> str:
             "<script>(function(){var b=function(){return document.body};"
             "function fail(m){var d=b();if(d&&!(d.dataset.status||'').startsWith('error'))d.dataset.status='error: '+m;"
             "window.__pageErrors=(window.__pageErrors||[]).concat([String(m)]);}"
-            "window.addEventListener('error',function(e){fail(e.message||('failed to load '+((e.target&&e.target.src)||'a resource')))},true);"
+            "window.addEventListener('error',function(e){fail(e.message||"
+            "('failed to load '+((e.target&&e.target.src)||'a resource')))},true);"
             "window.addEventListener('unhandledrejection',function(e){fail(e.reason&&e.reason.message||String(e.reason))});"
             "var ce=console.error;console.error=function(){fail(Array.prototype.join.call(arguments,' '));"
             "return ce.apply(console,arguments)};})();</script>"
@@ -599,7 +607,8 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
         ("contacts", _e(_get(sup, "contacts", default=len(c["points"]) or None)),
          f"{_e(_get(sup, 'landings', default='n/a'))} posts land on the part"),
         ("peak separation force", _e(_fmt(peak, 2, "N")),
-         f"{_fmt(100 * peak / rated, 0)} % of the rated {rated:g} N" if peak is not None and rated else "rated force n/a"),
+         f"{_fmt(100 * peak / rated, 0)} % of the rated {rated:g} N" if peak is not None and rated
+         else "rated force n/a"),
         ("lowest tip safety factor", _e(_fmt(min_tip, 2)), f"target {target:g}"),
         ("lowest post safety factor", _e(_fmt(_get(frc, "min_post_safety_factor"), 2)), f"target {target:g}"),
         ("support volume", _e(_fmt(_get(sup, "volume_mm3"), 0, "mm³")),
@@ -612,7 +621,7 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
 
     # check failures and warnings
     items = []
-    for k, f in enumerate(_get(ver, "failures", default=[]) or []):
+    for f in _get(ver, "failures", default=[]) or []:
         items.append(f'<li class="failure"><span class="tag fail">check failed</span> {_e(f)}</li>')
     for k, f in enumerate(fails):
         x, y, z = f["xyz"]
@@ -661,12 +670,19 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
     timing = _get(report, "timing_s", default={}) or {}
     timing_rows = [(k, _e(_fmt(v, 2, "s"))) for k, v in sorted(timing.items(), key=lambda kv: str(kv[0]))]
 
+    timing_html = _table(timing_rows, "timing") if timing_rows else '<p class="na" id="timing">n/a</p>'
+    settings = _get(report, "settings", default={})
+    settings_html = (_table(_flat(settings), "settings") if isinstance(settings, dict) and settings
+                     else '<p class="na" id="settings">n/a</p>')
+    contact_note = (f"{len(c_sf)} contacts with a known factor; lowest {np.min(c_sf):.3g}" if len(c_sf)
+                    else "contact safety factors: n/a")
     body = f"""
 <header class="top"><div><div class="kicker">supportgen report</div><h1 id="title">{_e(name)}</h1></div>
 <div id="verdict" class="verdict {vclass}">{_e(verdict)}</div></header>
 <main>
 <section class="viewer-row">
-  <div class="card viewer"><div id="view3d" class="view3d" tabindex="0" aria-label="3D view of the part on its supports"></div>
+  <div class="card viewer">
+    <div id="view3d" class="view3d" tabindex="0" aria-label="3D view of the part on its supports"></div>
     <div class="view-tools">
       <button id="btn-iso" type="button">Three-quarter view</button>
       <button id="btn-below" type="button">View from below</button>
@@ -680,20 +696,22 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
     <div class="hint">Drag to orbit, scroll to zoom, right-drag to pan. Grid: 10 mm squares on the build plate.</div>
   </div>
   <aside class="side"><div id="figures" class="figures">{cards_html}</div>{_legend(target)}
-    <div class="contact-stats">{_e(f"{len(c_sf)} contacts with a known factor; lowest {np.min(c_sf):.3g}" if len(c_sf) else "contact safety factors: n/a")}</div>
+    <div class="contact-stats">{_e(contact_note)}</div>
   </aside>
 </section>
 <section class="card" id="layers-card"><h2>Area and separation force per layer</h2>
-  <div class="plot-wrap">{plot_svg}<div id="readout" class="readout">Hover over the plot to read a layer.</div></div></section>
+  <div class="plot-wrap">{plot_svg}
+    <div id="readout" class="readout">Hover over the plot to read a layer.</div></div></section>
 <section class="card"><h2>Safety factor distributions</h2><div class="hists">{"".join(hists)}</div></section>
 <section class="card" id="warnings"><h2>Warnings and checks</h2>{warnings_html}</section>
 <section class="two">
-  <div class="card"><h2>Provenance</h2>{_table(prov_rows, "provenance")}<h3>Time per stage</h3>{_table(timing_rows, "timing") if timing_rows else '<p class="na">n/a</p>'}</div>
-  <div class="card"><h2>Settings</h2>{_table(_flat(_get(report, "settings", default={}) or {}), "settings") if _get(report, "settings") else '<p class="na" id="settings">n/a</p>'}</div>
+  <div class="card"><h2>Provenance</h2>{_table(prov_rows, "provenance")}<h3>Time per stage</h3>{timing_html}</div>
+  <div class="card"><h2>Settings</h2>{settings_html}</div>
 </section>
 {_cautions_html()}
 </main>
-<footer>Generated by supportgen {_e(_tool_version())}. Figures come from the model in the report; they are estimates, not measurements.</footer>
+<footer>Generated by supportgen {_e(_tool_version())}. Figures come from the model in the report;
+they are estimates, not measurements.</footer>
 <script type="application/json" id="scene-data">{_json_script(scene)}</script>
 <script type="application/json" id="plot-data">{_json_script(plot_data)}</script>
 """
