@@ -240,16 +240,22 @@ def test_missing_keys_show_na_and_never_crash():
 
 
 def test_failed_checks_are_located():
-    """Islands, specks and over-long reach each get a marker at the recorded position."""
-    report = {"settings": {"printer": {"layer_mm": 0.05}},
-              "verification": {"passed": False, "first_islands": [{"layer": 9, "z_mm": 0.5, "xy_mm": [1, 2]}],
-                               "first_specks": [{"layer": 19, "xy_mm": [3, 4]}],
-                               "max_unsupported_reach_mm": 3.0, "reach_limit_mm": 2.0,
-                               "worst_reach_layer": 39, "worst_reach_xy_mm": [5, 6]}}
-    marks = web.failure_marks(report)
+    """Islands, specks and over-long reach each get a marker at the recorded position, under the keys
+    Verification.to_dict writes today (and the reach keys' earlier names)."""
+    from supportgen.analysis.verify import Verification
+
+    ver = Verification(passed=False, watertight=True, n_islands=1,
+                       first_islands=({"layer": 9, "z_mm": 0.5, "xy_mm": [1, 2]},),
+                       specks=({"layer": 19, "xy_mm": [3, 4]},),
+                       max_unsupported_reach_mm=3.0, max_unsupported_reach_layer=39,
+                       max_unsupported_reach_xy=(5.0, 6.0), reach_limit_mm=2.0, tips_over_capacity=0, failures=("x",))
+    report = {"settings": {"printer": {"layer_mm": 0.05}}, "verification": ver.to_dict()}
     # A layer k's top is (k + 1) x layer height (exact: the layers stack from the plate).
-    assert [(m["kind"], m["xyz"]) for m in marks] == [("island", [1, 2, 0.5]), ("speck", [3, 4, 1.0]),
-                                                        ("reach", [5, 6, 2.0])]
+    expected = [("island", [1, 2, 0.5]), ("speck", [3, 4, 1.0]), ("reach", [5, 6, 2.0])]
+    assert [(m["kind"], m["xyz"]) for m in web.failure_marks(report)] == expected
+    old = dict(report["verification"], worst_reach_layer=39, worst_reach_xy_mm=[5, 6])
+    del old["max_unsupported_reach_layer"], old["max_unsupported_reach_xy_mm"]
+    assert [(m["kind"], m["xyz"]) for m in web.failure_marks({**report, "verification": old})] == expected
 
 
 # --------------------------------------------------------------------------- in the browser

@@ -292,12 +292,14 @@ def failure_marks(report: dict) -> list[dict]:
             out.append({"kind": kind, "xyz": [_num(xy[0]), _num(xy[1]), z or 0.0],
                         "text": f"{kind} starting in mid-air at layer {_get(i, 'layer', default='n/a')}"})
     reach, limit = _num(_get(ver, "max_unsupported_reach_mm")), _num(_get(ver, "reach_limit_mm"))
-    xy = _get(ver, "worst_reach_xy_mm")
+    # Key names of the current report first, then those of reports written before the rename.
+    xy = _get(ver, "max_unsupported_reach_xy_mm") or _get(ver, "worst_reach_xy_mm")
+    layer_key = "max_unsupported_reach_layer" if "max_unsupported_reach_layer" in ver else "worst_reach_layer"
     if reach is not None and limit is not None and reach > limit and isinstance(xy, (list, tuple)) and len(xy) >= 2:
-        layer = _num(_get(ver, "worst_reach_layer"))
+        layer = _num(_get(ver, layer_key))
         z = (layer + 1) * layer_mm if layer is not None else 0.0
         out.append({"kind": "reach", "xyz": [_num(xy[0]) or 0.0, _num(xy[1]) or 0.0, z],
-                    "text": f"layer {_get(ver, 'worst_reach_layer', default='n/a')} reaches {reach:.2f} mm "
+                    "text": f"layer {_get(ver, layer_key, default='n/a')} reaches {reach:.2f} mm "
                             f"past the layer below (limit {limit:g} mm)"})
     return out
 
