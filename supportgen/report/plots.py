@@ -13,7 +13,7 @@ import numpy as np
 
 from ..constants import EPS_FLOOR
 
-__all__ = ["plot_layers", "plot_tips", "plot_preview"]
+__all__ = ["plot_layers", "plot_tips", "plot_preview", "PREVIEW_VIEWS"]
 
 
 def _figure(**kwargs):
@@ -72,37 +72,57 @@ def plot_tips(safety: np.ndarray, target: float, title: str) -> bytes:
     return _png(fig)
 
 
-def plot_preview(part, supports, title: str) -> bytes:
-    """PNG bytes: the part (grey) on its supports (orange), seen from two sides.
+#: Preview views: (label, elevation, azimuth) in degrees; the last looks up from the plate.
+PREVIEW_VIEWS = (("front", 18, -60), ("back", 18, 120), ("from below", -90, -90))
 
-    Flat shading by the face normal's angle to a fixed light; painter's ordering
-    by matplotlib.  Cost O(faces); a 100k-face scene renders in a few seconds.
+
+def _scale_bar_mm(span_mm: float) -> float:
+    """A round length (1, 2 or 5 times a power of ten) near a fifth of ``span_mm``.
+
+    >>> _scale_bar_mm(48.0), _scale_bar_mm(7.0), _scale_bar_mm(130.0)
+    (10.0, 1.0, 20.0)
+    """
+    raw = max(span_mm, 1e-9) / 5
+    power = 10 ** np.floor(np.log10(raw))
+    return float(min((1, 2, 5, 10), key=lambda m: abs(np.log(m * power / raw))) * power)
+
+
+def plot_preview(part, supports, title: str) -> bytes:
+    """PNG bytes: the part (grey) on its supports (orange) from two sides and from below.
+
+    The views are orthographic and never crop (the whole scene's bounding cube
+    fits each panel); the view from below, where the contacts are, carries a
+    scale bar.  Flat shading by the face normal's angle to a light over the
+    viewer's shoulder; painter's ordering by matplotlib.  Cost O(faces); a
+    100k-face scene renders in a few seconds.
     """
     import trimesh
     from mpl_toolkits.mplot3d.art3d import Poly3DCollection
 
-    fig = _figure(figsize=(9, 4.8))
+    fig = _figure(figsize=(12, 4.6))
     lo = np.minimum(part.bounds[0], supports.bounds[0]) if len(supports.faces) else part.bounds[0]
     hi = np.maximum(part.bounds[1], supports.bounds[1]) if len(supports.faces) else part.bounds[1]
     span = float((hi - lo).max()) / 2
     mid = (hi + lo) / 2
-    for k, azim in enumerate((-60, 120)):
-        ax = fig.add_subplot(1, 2, k + 1, projection="3d")
-        a = np.radians(azim + 35)   # light from over the viewer's shoulder
-        light = np.array([0.55 * np.cos(a), 0.55 * np.sin(a), 0.8])
+    meshes = []
+    for mesh, rgb in ((supports, (0.91, 0.55, 0.2)), (part, (0.7, 0.72, 0.75))):
+        if len(mesh.faces) == 0:
+            continue
+        # Long faces sort badly in matplotlib's painter's ordering: split them first.
+        triangles = mesh.triangles
+        if len(mesh.faces) < 60_000:
+            verts, faces = trimesh.remesh.subdivide_to_size(mesh.vertices, mesh.faces, max_edge=span / 8, max_iter=6)
+            triangles = verts[faces]
+        cross = np.cross(triangles[:, 1] - triangles[:, 0], triangles[:, 2] - triangles[:, 0])
+        meshes.append((triangles, cross / np.maximum(np.linalg.norm(cross, axis=1, keepdims=True), EPS_FLOOR), rgb))
+    for k, (label, elev, azim) in enumerate(PREVIEW_VIEWS):
+        ax = fig.add_subplot(1, len(PREVIEW_VIEWS), k + 1, projection="3d")
+        ax.set_proj_type("ortho")
+        e, a = np.radians(elev), np.radians(azim + 35)
+        light = np.array([np.cos(e) * np.cos(a), np.cos(e) * np.sin(a), np.sin(e) + 0.6 * np.sign(elev or 1)])
         light /= np.linalg.norm(light)
         tris, colours = [], []
-        for mesh, rgb in ((supports, (0.91, 0.55, 0.2)), (part, (0.7, 0.72, 0.75))):
-            if len(mesh.faces) == 0:
-                continue
-            # Long faces sort badly in matplotlib's painter's ordering: split them first.
-            triangles = mesh.triangles
-            if len(mesh.faces) < 60_000:
-                verts, faces = trimesh.remesh.subdivide_to_size(mesh.vertices, mesh.faces, max_edge=span / 8,
-                                                                max_iter=6)
-                triangles = verts[faces]
-            cross = np.cross(triangles[:, 1] - triangles[:, 0], triangles[:, 2] - triangles[:, 0])
-            normals = cross / np.maximum(np.linalg.norm(cross, axis=1, keepdims=True), EPS_FLOOR)
+        for triangles, normals, rgb in meshes:
             shade = 0.35 + 0.65 * np.clip(normals @ light, 0, 1)
             tris.append(triangles)
             colours.append(np.column_stack([np.outer(shade, rgb), np.ones(len(shade))]))
@@ -112,8 +132,14 @@ def plot_preview(part, supports, title: str) -> bytes:
         ax.set_xlim(mid[0] - span, mid[0] + span)
         ax.set_ylim(mid[1] - span, mid[1] + span)
         ax.set_zlim(mid[2] - span, mid[2] + span)
-        ax.view_init(elev=18, azim=azim)
-        ax.set_box_aspect((1, 1, 1), zoom=1.35)
+        ax.view_init(elev=elev, azim=azim)
+        ax.set_box_aspect((1, 1, 1), zoom=0.95)
         ax.set_axis_off()
+        ax.set_title(label, fontsize=9)
+        if elev < 0:
+            bar = _scale_bar_mm(2 * span)
+            x0, y0, z0 = mid[0] - 0.9 * span, mid[1] - 0.95 * span, lo[2]
+            ax.plot([x0, x0 + bar], [y0, y0], [z0, z0], color="k", lw=2)
+            ax.text(x0 + bar / 2, y0 + 0.12 * span, z0, f"{bar:g} mm", ha="center", va="center", fontsize=8)
     fig.suptitle(title, fontsize=10)
     return _png(fig)
