@@ -122,3 +122,18 @@ def test_installed_command_and_demo(tmp_path):
     for path in solids:
         mesh = trimesh.load(path)
         assert mesh.is_watertight   # trimesh (reference library)
+
+
+def test_a_part_drawn_in_metres_is_refused_with_the_unit_and_scaled_on_request(tmp_path, capsys):
+    # A 12 mm box written in metres reads 0.012 units: too small to be millimetres
+    # (placement's 2 mm floor); the message names the unit, and --units m supports it.
+    box = trimesh.creation.box((0.012, 0.010, 0.004))
+    path = tmp_path / "bracket.stl"
+    box.export(path)
+    assert main(["generate", str(path), "-o", str(tmp_path / "out"), *COARSE]) == 1
+    said = capsys.readouterr().err
+    assert "bracket" in said and "--units m" in said and said.count("\n") == 1
+    assert main(["generate", str(path), "-o", str(tmp_path / "out"), "--units", "m", *COARSE]) == 0
+    made = trimesh.load(tmp_path / "out" / "bracket.supported.stl")
+    # Scaled by 1000 exactly: the part's 12 x 10 mm footprint is inside the solid's extent.
+    assert made.extents[0] >= 12.0 - 1e-6 and made.extents[1] >= 10.0 - 1e-6

@@ -53,12 +53,17 @@ def _each(inputs, work, args) -> int:
 def _run_generate(inputs, outdir: Path, args) -> int:
     import supportgen
 
+    from supportgen.io.units import group_bounds, unit_factor
+
     settings = settings_from(args)
+    position = "centre" if args.centre else args.position
+    factor = unit_factor(args.units, args.scale)
+    together = group_bounds(inputs, factor) if position == "auto" else None
 
     def work(path):
         t0 = time.perf_counter()
-        result = supportgen.generate(path, settings, strategy=args.strategy, centre=args.centre,
-                                     progress=not args.quiet)
+        result = supportgen.generate(path, settings, strategy=args.strategy, position=position, units=args.units,
+                                     scale=args.scale, group_bounds=together, progress=not args.quiet)
         result.save(outdir)
         if not args.quiet:
             print(_summary_line(result, time.perf_counter() - t0))
@@ -141,7 +146,15 @@ def build_parser() -> argparse.ArgumentParser:
     gen_opts = argparse.ArgumentParser(add_help=False, parents=[strategy])
     gen_opts.add_argument("--elevation", type=float, metavar="MM",
                           help="height of the part's lowest point above the plate (setting elevation_mm)")
-    gen_opts.add_argument("--centre", action="store_true", help="centre each part on the plate")
+    gen_opts.add_argument("--position", choices=("auto", "keep", "centre"), default="auto",
+                          help="x/y on the plate: auto keeps the parts where they lie on the plate and moves them "
+                               "(together, with a warning) where they do not; keep refuses parts off the plate; "
+                               "centre always centres (default: auto)")
+    gen_opts.add_argument("--centre", action="store_true", help="same as --position centre")
+    gen_opts.add_argument("--units", choices=("mm", "cm", "m", "in"), default="mm",
+                          help="length unit the files were drawn in; parts are scaled to millimetres (default: mm)")
+    gen_opts.add_argument("--scale", type=float, default=1.0, metavar="FACTOR",
+                          help="a further scale factor applied with --units (default: 1)")
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
     p.add_argument("inputs", nargs="+", metavar="INPUT", help="STL, OBJ, PLY or 3MF files")

@@ -10,10 +10,12 @@ from __future__ import annotations
 import dataclasses
 import math
 
+import numpy as np
+
 from ..errors import SettingsError
 from .meshio import LoadedMesh
 
-__all__ = ["UNITS", "unit_factor", "unit_hint", "scale_loaded"]
+__all__ = ["UNITS", "unit_factor", "unit_hint", "scale_loaded", "group_bounds"]
 
 #: Millimetres per unit.
 UNITS = {"mm": 1.0, "cm": 10.0, "m": 1000.0, "in": 25.4}   # the inch is 25.4 mm exactly (1959 agreement)
@@ -62,3 +64,27 @@ def scale_loaded(loaded: LoadedMesh, factor: float) -> LoadedMesh:
     mesh.apply_scale(factor)
     return dataclasses.replace(loaded, mesh=mesh, repairs=(*loaded.repairs, f"scaled by {factor:g} to millimetres"))
 
+
+
+def group_bounds(paths, factor: float = 1.0):
+    """Bounds (mm) of several mesh files together, or None when fewer than two can be read.
+
+    Used to place the parts of one run as a group, keeping their arrangement.  The
+    files are read without repair (positions only); an unreadable file is left out
+    here and reported when it is processed.
+    """
+    import trimesh
+
+    boxes = []
+    for path in paths:
+        try:
+            mesh = trimesh.load(str(path), force="mesh", process=False)
+            b = np.asarray(mesh.bounds, float) * factor
+        except Exception:  # noqa: BLE001 - any reader failure: the part is reported on its own turn
+            continue
+        if b.shape == (2, 3) and np.all(np.isfinite(b)):
+            boxes.append(b)
+    if len(boxes) < 2:
+        return None
+    boxes = np.array(boxes)
+    return np.array([boxes[:, 0].min(axis=0), boxes[:, 1].max(axis=0)])
