@@ -52,7 +52,6 @@ def _each(inputs, work, args) -> int:
 
 def _run_generate(inputs, outdir: Path, args) -> int:
     import supportgen
-
     from supportgen.io.units import group_bounds, unit_factor
 
     settings = settings_from(args)
