@@ -142,24 +142,28 @@ def _resolve_settings(settings, overrides) -> Settings:
 def _layer_contacts(part, stack: LayerStack, settings: Settings, contacts: Contacts, spacing_mm: float) -> Contacts:
     """``contacts`` plus contacts under every island and wherever a layer reaches too far.
 
-    An island point is added unless a contact already holds it (a tip over it, not
-    above it: :func:`~supportgen.supports.contacts.add_unheld`); a reach point unless
-    a contact lies within ``spacing_mm``.  A point whose upward ray misses the part (a
+    An island gets contacts unless a tip already touches its first layer
+    (:meth:`~supportgen.analysis.layers.Island.held_by`), and each of its points
+    unless a tip lies over it (:func:`~supportgen.supports.contacts.add_unheld`);
+    a reach point is added unless a contact lies within ``spacing_mm``.  A point whose upward ray misses the part (a
     feature a pixel or two wide) takes the nearest surface point within two layers
     and a pixel.
     """
     rules, pr = settings.rules, settings.printer
     near = 2 * pr.layer_mm + pr.pixel_mm
+    reach_across = rules.tip_min_mm / 2 + pr.pixel_mm
     xyz = []
     for isl in stack.islands:
         if isl.area_mm2 < speck_area_mm2(pr.pixel_mm):
             continue   # no tip can hold a speck; verify reports it
+        if isl.held_by(contacts.points, reach_across, pr.layer_mm).any():
+            continue   # a tip already touches its first layer
         xy = isl.points(rules.contact_spacing_mm, rules.seed)
         xyz.append(np.column_stack([xy, np.full(len(xy), isl.z_mm - pr.layer_mm)]))
     island = contacts_at(part, np.vstack(xyz) if xyz else np.zeros((0, 3)), "island", rules.tip_diameter_mm, near)
     reach_xyz = [[*o.xy, o.z_mm - pr.layer_mm] for o in stack.overreach]
     reach = contacts_at(part, np.array(reach_xyz).reshape(-1, 3), "reach", rules.tip_diameter_mm, near)
-    held = add_unheld(contacts, island, rules.tip_min_mm / 2 + pr.pixel_mm, pr.layer_mm)
+    held = add_unheld(contacts, island, reach_across, pr.layer_mm)
     return merge_contacts(held, reach, spacing_mm)
 
 
@@ -250,7 +254,8 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
     with timer("contacts"):
         contacts = sample_overhangs(part, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed)
         minima = contacts_at(part, oh.minima - [0, 0, OFFSET_MM], "minimum", rules.tip_diameter_mm)
-        contacts = merge_contacts(contacts, minima, rules.tip_diameter_mm)
+        # A local minimum is held only by a tip over it, not by one merely near it.
+        contacts = add_unheld(contacts, minima, rules.tip_min_mm / 2 + pr.pixel_mm, pr.layer_mm)
     with timer("layers"):
         stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm,
                                progress=progress and f"{name}: layers")

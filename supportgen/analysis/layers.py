@@ -107,6 +107,35 @@ class Island:
     col0: int
     grid: Grid
 
+    def held_by(self, xyz: np.ndarray, radius_mm: float, rise_mm: float) -> np.ndarray:
+        """Which of the points ``xyz`` (k, 3) would hold this island as tips.
+
+        A tip holds the island when it touches the island's first layer: its
+        point lies over the island's pixels (within ``radius_mm``, a tip's reach
+        across) and no more than ``rise_mm`` above the layer's mid-plane.  A tip
+        beside the island or higher up touches the part only after the island
+        has cured in mid-air.
+
+        Examples
+        --------
+        >>> g = Grid(0.0, 0.0, 0.1, 10, 10)
+        >>> isl = Island(3, 0.35, 0.04, (0.45, 0.45), np.ones((2, 2), bool), 4, 4, g)
+        >>> isl.held_by(np.array([[0.45, 0.45, 0.35], [0.45, 0.45, 2.0], [2.0, 2.0, 0.35]]), 0.1, 0.1).tolist()
+        [True, False, False]
+        """
+        xyz = np.atleast_2d(np.asarray(xyz, float))
+        if len(xyz) == 0:
+            return np.zeros(0, bool)
+        k = int(np.ceil(radius_mm / self.grid.pixel_mm))
+        padded = np.pad(self.mask, k)
+        near = ndimage.distance_transform_edt(~padded) * self.grid.pixel_mm <= radius_mm
+        rows, cols = self.grid.index(xyz[:, :2])
+        i, j = rows - self.row0 + k, cols - self.col0 + k
+        inside = (i >= 0) & (j >= 0) & (i < near.shape[0]) & (j < near.shape[1])
+        over = np.zeros(len(xyz), bool)
+        over[inside] = near[i[inside], j[inside]]
+        return over & (xyz[:, 2] <= self.z_mm + rise_mm)
+
     def points(self, spacing_mm: float, seed: int = 0) -> np.ndarray:
         """Points (n, 2) covering the island at about ``spacing_mm``, n >= 1.
 

@@ -56,6 +56,7 @@ import numpy as np
 import trimesh
 from scipy.sparse import coo_matrix, csr_matrix
 from scipy.sparse.csgraph import breadth_first_order, connected_components
+from scipy.spatial import cKDTree
 
 from ..constants import EPS_FLOOR, MERGE_FRACTION
 from ..errors import MeshError
@@ -197,13 +198,29 @@ def _clean_surface(v, f, label, repairs, hole_fraction, diag):
 
 
 def _merge(v, f, diag):
-    """Merge vertices equal to 1e-9 of the diagonal (below float32 STL resolution)."""
+    """Merge vertices closer than :data:`~supportgen.constants.MERGE_FRACTION` of the diagonal.
+
+    Exact duplicates are merged by sorting; near ones (float32 rounding and export
+    noise leave a shared corner as several points a few ulps apart) are joined by a
+    k-d tree pair query and connected components, so a cluster merges whole wherever
+    it sits (rounding to a grid would split clusters that straddle a cell edge).
+    """
     used = np.unique(f)
-    key = np.round((v[used] - v[used].min(axis=0)) / (MERGE_FRACTION * diag)).astype(np.int64)
-    _, first, inverse = np.unique(key, axis=0, return_index=True, return_inverse=True)
+    pts = v[used]
+    _, first, inverse = np.unique(pts, axis=0, return_index=True, return_inverse=True)
+    inverse = inverse.ravel()
+    uniq = pts[first]
+    pairs = cKDTree(uniq).query_pairs(MERGE_FRACTION * diag, output_type="ndarray")
+    if len(pairs):
+        n, label = connected_components(coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])),
+                                                   shape=(len(uniq), len(uniq))), directed=False)
+        rep = np.full(n, len(uniq))
+        np.minimum.at(rep, label, np.arange(len(uniq)))
+        keep, relabel = np.unique(rep[label], return_inverse=True)
+        uniq, inverse = uniq[keep], relabel.ravel()[inverse]
     remap = np.full(len(v), -1, dtype=np.int64)
-    remap[used] = inverse.ravel()
-    return v[used[first]], remap[f], len(used) - len(first)
+    remap[used] = inverse
+    return uniq, remap[f], len(used) - len(uniq)
 
 
 def _drop_faces(v, f, diag, repairs):

@@ -309,6 +309,11 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
         left a pinch point.
     """
     whole = to_manifold(part)
+    bodies = whole.decompose()
+    if len(bodies) > 1:
+        # Shells that touch or overlap (two parts side by side, a doubled shell) are one
+        # solid only once joined; left as separate shells they meet in coincident faces.
+        whole = _union(bodies, "part's bodies")
     for k, phase in enumerate(PHASES):
         parts, base = build_supports(plan, settings, phase * 2 * np.pi / _SEGMENTS)
         supports = _union(parts + base, "supports")
