@@ -338,6 +338,25 @@ def make_cases(seed: int = 0, *, orientations: int = 30, procedural_each: int = 
     return cases
 
 
+def ci_cases(n: int = 30, seed: int = 0, size_mm: float = 12.0) -> list[Case]:
+    """A reduced corpus for CI: ``n`` seeded cases, at least one of every generator kind
+    (corpus models only where the corpus is present), parts about ``size_mm`` across."""
+    pool = make_cases(seed, orientations=1, procedural_each=2, messy_each=2,
+                      corpus_sizes=(size_mm, 1.5 * size_mm), procedural_mm=size_mm)
+    first, rest = {}, []
+    for c in pool:
+        if c.generator in first:
+            rest.append(c)
+        else:
+            first[c.generator] = c
+    chosen = list(first.values())
+    rng = np.random.default_rng(seed)
+    extra = max(0, min(n - len(chosen), len(rest)))
+    chosen += [rest[i] for i in sorted(rng.choice(len(rest), extra, replace=False))]
+    order = {c.id: i for i, c in enumerate(pool)}
+    return sorted(chosen, key=lambda c: order[c.id])
+
+
 def _base_part(name: str, size: float, rng) -> trimesh.Trimesh:
     if name in CORPUS_MODELS:
         return _turn_to_corner(_scaled(corpus_mesh(name), size), rng)
