@@ -39,7 +39,8 @@ KNOWN = {
     "corpus-horse-12-o00": "check: island left after the repair rounds (verify fails too)",
     "messy-hole-lattice-01": "check: island held by less than a speck; verify counts one touching pixel as held",
     "units-metres-box": "silent-pass: a part in metres is supported instead of refused with a unit hint",
-    "touching-00": "GeometryError: pinch points at joints of collinear posts; message does not name the input",
+    "touching-00": "GeometryError: pinch points where a tip crosses the contact face of two touching bodies "
+                   "(combine keeps the part's shells unjoined); message does not name the input",
 }
 
 
@@ -51,8 +52,12 @@ def _param(case):
 
 @pytest.fixture(scope="module")
 def outcomes(tmp_path_factory):
-    """Every CI case run once, two worker processes (the machine has two cores)."""
-    rows = stress.run_cases(CASES, tmp_path_factory.mktemp("stress"), workers=2, timeout=240.0,
+    """Every CI case run once, two worker processes (the machine has two cores).
+
+    The per-case limit only guards against a hang: it is far above any case's time even on a
+    loaded machine, so no pass or fail here depends on speed (times are in benchmarks/stress.py).
+    """
+    rows = stress.run_cases(CASES, tmp_path_factory.mktemp("stress"), workers=2, timeout=1200.0,
                             echo=lambda line: None)
     return {r["id"]: r for r in rows}
 
