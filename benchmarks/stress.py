@@ -29,7 +29,6 @@ from __future__ import annotations
 import argparse
 import json
 import multiprocessing as mp
-import os
 import re
 import shutil
 import statistics
