@@ -63,12 +63,17 @@ def _too_large(mesh, settings) -> bool:
                 or ext[2] + sp.lift_mm > pr.build_z_mm)
 
 
+def _plural(msg: str) -> str:
+    """"1 edge" and "3 edges" as one class: "# edge(s)" (idempotent)."""
+    return re.sub(r"# (edge|hole|face|tip|island|speck|vertex|vertice)s?\b(?!\()", r"# \1(s)", msg)
+
+
 def _message_class(msg: str, case_id: str) -> str:
     """A message with the input name and the numbers taken out: the failure's class."""
     msg = msg.strip().splitlines()[-1] if msg.strip() else ""
     msg = re.sub(r"\S*" + re.escape(case_id) + r"\.stl", "INPUT", msg).replace(case_id, "ID")
     msg = re.sub(r"[-+]?\d+(\.\d+)?", "#", msg)
-    msg = re.sub(r"# (edge|hole|face|tip|island|speck|vertex|vertice)s?\b", r"# \1(s)", msg)
+    msg = _plural(msg)
     return msg[:110]
 
 
@@ -208,7 +213,7 @@ def summarise(rows: list[dict]) -> dict:
     counts = Counter(r["outcome"] for r in rows)
     times = [r["seconds"] for r in rows if r.get("seconds") is not None]
     for r in rows:   # rows logged by an older run: the same class rule
-        r["cls"] = re.sub(r"# (edge|hole|face|tip|island|speck|vertex|vertice)s?\b", r"# \1(s)", r.get("cls", ""))
+        r["cls"] = _plural(r.get("cls", ""))
     classes = Counter(r["cls"] for r in rows if r["outcome"] in FAILING)
     example = {}
     for r in rows:
