@@ -81,7 +81,7 @@ class LoadedMesh:
 
 
 def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION, max_faces: int = Limits.max_faces,
-              max_unpacked_mb: float = Limits.max_unpacked_mb) -> LoadedMesh:
+              max_unpacked_mb: float = Limits.max_unpacked_mb, budget=None) -> LoadedMesh:
     """Read a mesh file, validate it and repair what can be repaired safely.
 
     Parameters
@@ -97,6 +97,8 @@ def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION, max_face
         Largest triangle count accepted, counted before parsing (3MF: after instancing).
     max_unpacked_mb : float
         Largest decompressed size of a 3MF archive, MB (2**20 bytes), checked before parsing.
+    budget : callable, optional
+        Called with the face count before parsing; may raise to refuse the file (a memory guard).
 
     Returns
     -------
@@ -156,6 +158,8 @@ def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION, max_face
     repairs = []
     faces_before = count_faces(data, ext, label, max_unpacked_mb=max_unpacked_mb)
     _cap_faces(faces_before, max_faces, label)
+    if budget is not None:
+        budget(faces_before)
     if ext == ".stl" and _is_ascii_stl(data):
         vertices, faces = _read_ascii_stl(data, label)
     else:

@@ -332,28 +332,28 @@ def _winding_number(points, tri):
 def _orient_shells(v, f, edges, repairs, samples=16):
     """Flip shells so that no region has a negative winding number. Shells are visited
     from the largest |volume| down; a shell's parent is the smallest shell that contains
-    all of its sampled vertices. A shell whose interior would get winding -1 is flipped
-    together with the shells nested in it, which keeps each nested shell's meaning
-    (opposite to its parent: cavity; same: embedded body)."""
+    it.  A shell whose interior would get winding -1 is flipped together with the shells
+    nested in it, which keeps each nested shell's meaning (opposite to its parent:
+    cavity; same: embedded body).
+
+    Containment comes from one pass over all shells: a ray along +x from a point of
+    each shell, its crossings with the other shells' triangles found through an R-tree
+    of their (y, z) bounds and counted with their orientation, gives the winding number
+    of that point for every shell at once (for a closed oriented surface, crossings out
+    minus crossings in).  Cost O(n log n + crossings) rather than a test per pair of
+    shells.  A ray that grazes an edge is retried from other points of the shell, and
+    after three the generalised winding number of ``samples`` vertices decides."""
     shell, k = edges["shell"], edges["n_shells"]
     vol = _signed_volumes(v, f, shell, k)
-    lo = np.full((k, 3), np.inf)
-    hi = np.full((k, 3), -np.inf)
-    np.minimum.at(lo, shell, v[f].min(axis=1))
-    np.maximum.at(hi, shell, v[f].max(axis=1))
     order = np.argsort(-np.abs(vol), kind="stable")
+    rank = np.empty(k, int)
+    rank[order] = np.arange(k)
+    containers = _shell_containers(v, f, shell, k, samples) if k > 1 else [np.zeros(0, int)]
     wind = np.zeros(k, int)
     parity = np.zeros(k, bool)
-    for rank, i in enumerate(order):
-        parent = -1
-        bigger = order[:rank][::-1]  # smaller shells first: the innermost container wins
-        boxed = bigger[(lo[bigger] <= lo[i]).all(axis=1) & (hi[i] <= hi[bigger]).all(axis=1)]
-        for j in boxed:
-            corners = np.unique(f[shell == i])
-            pts = v[corners[np.linspace(0, len(corners) - 1, samples).astype(int)]]
-            if (np.abs(_winding_number(pts, v[f[shell == j]])) > 0.5).all():
-                parent = j
-                break
+    for i in order:
+        outer = containers[i][rank[containers[i]] < rank[i]]
+        parent = int(outer[np.argmax(rank[outer])]) if len(outer) else -1   # the innermost container
         w0, p0 = (wind[parent], parity[parent]) if parent >= 0 else (0, False)
         s = int(np.sign(vol[i])) * (-1 if p0 else 1)
         parity[i] = p0 ^ (w0 + s < 0)
@@ -362,3 +362,54 @@ def _orient_shells(v, f, edges, repairs, samples=16):
     if n:
         repairs.append(f"flipped {_count(n, 'inside-out shell')}")
     return np.where(parity[shell][:, None], f[:, ::-1], f)
+
+
+def _shell_containers(v, f, shell, k, samples, tries=3):
+    """For each shell, the other shells that contain it (non-zero winding number at one of its
+    points), from one +x ray per shell; see :func:`_orient_shells`."""
+    tri = v[f]
+    yz = tri[:, :, 1:]
+    tree = trimesh.util.bounds_tree(np.column_stack([yz.min(axis=1), yz.max(axis=1)]))
+    xmax = tri[:, :, 0].max(axis=1)
+    # Edge vectors in the (y, z) plane and the sign of each face's normal along +x.
+    a, b, c = yz[:, 0], yz[:, 1], yz[:, 2]
+    det = (b[:, 0] - a[:, 0]) * (c[:, 1] - a[:, 1]) - (c[:, 0] - a[:, 0]) * (b[:, 1] - a[:, 1])
+    by_shell = np.argsort(shell, kind="stable")
+    starts = np.searchsorted(shell[by_shell], np.arange(k + 1))
+    scale = np.abs(yz).max() + 1.0
+    out = []
+    for i in range(k):
+        faces_i = by_shell[starts[i]:starts[i + 1]]
+        found = None
+        for t in range(tries):
+            fi = faces_i[(t * len(faces_i)) // tries]
+            p = tri[fi].mean(axis=0)
+            cand = np.fromiter(tree.intersection((p[1], p[2], p[1], p[2])), int)
+            cand = cand[(shell[cand] != i) & (xmax[cand] > p[0]) & (np.abs(det[cand]) > 0)]
+            if not len(cand):
+                found = np.zeros(0, int)
+                break
+            # Barycentric coordinates of (p.y, p.z) in each candidate's projection.
+            d = det[cand]
+            ap = p[1:] - a[cand]
+            u = ((b[cand, 0] - a[cand, 0]) * ap[:, 1] - (b[cand, 1] - a[cand, 1]) * ap[:, 0]) / d   # weight of c
+            w = ((c[cand, 1] - a[cand, 1]) * ap[:, 0] - (c[cand, 0] - a[cand, 0]) * ap[:, 1]) / d   # weight of b
+            bary = np.column_stack([1 - u - w, w, u])
+            hit = (bary >= 0).all(axis=1)
+            x = (bary * tri[cand, :, 0]).sum(axis=1)
+            near = (np.abs(bary) < 1e-9).any(axis=1) | (np.abs(x - p[0]) < 1e-9 * scale)
+            if (near & ((bary > -1e-9).all(axis=1))).any():
+                continue          # grazes an edge or starts on a face: ambiguous, try another point
+            hit &= x > p[0]
+            wn = np.bincount(shell[cand[hit]], np.sign(d[hit]), minlength=k)
+            found = np.flatnonzero(np.rint(wn) != 0)
+            break
+        if found is None:         # every ray grazed: generalised winding number of sampled vertices
+            corners = np.unique(f[faces_i])
+            pts = v[corners[np.linspace(0, len(corners) - 1, samples).astype(int)]]
+            others = [j for j in range(k) if j != i]
+            found = np.array([j for j in others
+                              if (np.abs(_winding_number(pts, tri[by_shell[starts[j]:starts[j + 1]]])) > 0.5).all()],
+                             int)
+        out.append(found)
+    return out
