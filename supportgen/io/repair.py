@@ -374,42 +374,56 @@ def _shell_containers(v, f, shell, k, samples, tries=3):
     # Edge vectors in the (y, z) plane and the sign of each face's normal along +x.
     a, b, c = yz[:, 0], yz[:, 1], yz[:, 2]
     det = (b[:, 0] - a[:, 0]) * (c[:, 1] - a[:, 1]) - (c[:, 0] - a[:, 0]) * (b[:, 1] - a[:, 1])
-    by_shell = np.argsort(shell, kind="stable")
+    # Faces of each shell, those facing most along x first: a ray leaves them cleanly, while one
+    # from a face lying in a coordinate plane would run along the faces of other shells in it.
+    area2 = np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
+    by_shell = np.lexsort((-np.abs(det) / np.maximum(area2, EPS_FLOOR), shell))
     starts = np.searchsorted(shell[by_shell], np.arange(k + 1))
+    all_faces = np.argsort(shell, kind="stable")
     scale = np.abs(yz).max() + 1.0
-    out = []
-    for i in range(k):
-        faces_i = by_shell[starts[i]:starts[i + 1]]
-        found = None
-        for t in range(tries):
-            fi = faces_i[(t * len(faces_i)) // tries]
-            p = tri[fi].mean(axis=0)
-            cand = np.fromiter(tree.intersection((p[1], p[2], p[1], p[2])), int)
-            cand = cand[(shell[cand] != i) & (xmax[cand] > p[0]) & (np.abs(det[cand]) > 0)]
-            if not len(cand):
-                found = np.zeros(0, int)
-                break
-            # Barycentric coordinates of (p.y, p.z) in each candidate's projection.
-            d = det[cand]
-            ap = p[1:] - a[cand]
-            u = ((b[cand, 0] - a[cand, 0]) * ap[:, 1] - (b[cand, 1] - a[cand, 1]) * ap[:, 0]) / d   # weight of c
-            w = ((c[cand, 1] - a[cand, 1]) * ap[:, 0] - (c[cand, 0] - a[cand, 0]) * ap[:, 1]) / d   # weight of b
-            bary = np.column_stack([1 - u - w, w, u])
-            hit = (bary >= 0).all(axis=1)
-            x = (bary * tri[cand, :, 0]).sum(axis=1)
-            near = (np.abs(bary) < 1e-9).any(axis=1) | (np.abs(x - p[0]) < 1e-9 * scale)
-            if (near & ((bary > -1e-9).all(axis=1))).any():
-                continue          # grazes an edge or starts on a face: ambiguous, try another point
-            hit &= x > p[0]
-            wn = np.bincount(shell[cand[hit]], np.sign(d[hit]), minlength=k)
-            found = np.flatnonzero(np.rint(wn) != 0)
+    weights = np.array([0.2113248654, 0.3166247904, 0.4720503442])   # no simple ratios: off every edge
+    count = np.diff(starts)
+    found: list = [None] * k
+    pending = np.arange(k)
+    for t in range(tries):
+        pending = pending[count[pending] > t]
+        if not len(pending):
             break
-        if found is None:         # every ray grazed: generalised winding number of sampled vertices
-            corners = np.unique(f[faces_i])
-            pts = v[corners[np.linspace(0, len(corners) - 1, samples).astype(int)]]
-            others = [j for j in range(k) if j != i]
-            found = np.array([j for j in others
-                              if (np.abs(_winding_number(pts, tri[by_shell[starts[j]:starts[j + 1]]])) > 0.5).all()],
-                             int)
-        out.append(found)
-    return out
+        step = np.maximum(1, count[pending] // (4 * tries))
+        p = np.einsum("j,ijk->ik", weights, tri[by_shell[starts[pending] + t * step]])
+        ids, per = tree.intersection_v(p[:, 1:], p[:, 1:])
+        ids = np.asarray(ids, int)
+        owner = np.repeat(np.arange(len(pending)), np.asarray(per, np.int64))
+        keep = (shell[ids] != pending[owner]) & (xmax[ids] > p[owner, 0]) & (det[ids] != 0)
+        ids, owner = ids[keep], owner[keep]
+        # Barycentric coordinates of each ray's (y, z) in each candidate's projection.
+        q = p[owner, 1:] - a[ids]
+        e1, e2, d = b[ids] - a[ids], c[ids] - a[ids], det[ids]
+        wb = (q[:, 0] * e2[:, 1] - q[:, 1] * e2[:, 0]) / d
+        wc = (e1[:, 0] * q[:, 1] - e1[:, 1] * q[:, 0]) / d
+        bary = np.column_stack([1 - wb - wc, wb, wc])
+        x = (bary * tri[ids, :, 0]).sum(axis=1)
+        near = ((np.abs(bary) < 1e-9).any(axis=1) | (np.abs(x - p[owner, 0]) < 1e-9 * scale)) \
+            & (bary > -1e-9).all(axis=1)
+        grazed = np.bincount(owner[near], minlength=len(pending)) > 0
+        hit = (bary >= 0).all(axis=1) & (x > p[owner, 0]) & ~grazed[owner]
+        # Winding number of each ray's start for each shell it crosses: signed crossings.
+        pair, inverse = np.unique(owner[hit] * k + shell[ids[hit]], return_inverse=True)
+        wn = np.rint(np.bincount(inverse, np.sign(d[hit]), minlength=len(pair)))
+        inside = pair[wn != 0]
+        clean = np.flatnonzero(~grazed)
+        split = np.searchsorted(inside // k, clean, side="left"), np.searchsorted(inside // k, clean, side="right")
+        for o, lo, hi in zip(clean, *split):
+            found[pending[o]] = inside[lo:hi] % k
+        pending = pending[grazed]
+    for i in range(k):
+        faces_i = all_faces[starts[i]:starts[i + 1]]
+        if found[i] is not None:
+            continue
+        # Every ray grazed an edge: the generalised winding number of sampled vertices decides.
+        corners = np.unique(f[faces_i])
+        pts = v[corners[np.linspace(0, len(corners) - 1, samples).astype(int)]]
+        others = [j for j in range(k) if j != i]
+        found[i] = np.array([j for j in others if (np.abs(_winding_number(
+            pts, tri[all_faces[starts[j]:starts[j + 1]]])) > 0.5).all()], int)
+    return found
