@@ -103,6 +103,8 @@ def _same_outputs(a: Path, b: Path) -> None:
         elif name.endswith(".batch.json"):
             ja, jb = json.loads(fa[name]), json.loads(fb[name])
             ja.pop("seconds"), jb.pop("seconds")
+            for doc in (ja, jb):     # the report's own bytes carry its timings: compare its name only
+                doc["outputs"] = [o if o["role"] != "report" else o["file"] for o in doc["outputs"]]
             assert ja == jb, name
         else:
             assert fa[name] == fb[name], name

@@ -91,7 +91,8 @@ class _SignalsHeld:
     SIGNALS = {signal.SIGINT, signal.SIGTERM}
 
     def __enter__(self):
-        self.old = signal.pthread_sigmask(signal.SIG_BLOCK, self.SIGNALS) if hasattr(signal, "pthread_sigmask") else None
+        masking = hasattr(signal, "pthread_sigmask")
+        self.old = signal.pthread_sigmask(signal.SIG_BLOCK, self.SIGNALS) if masking else None
         return self
 
     def __exit__(self, *exc):
