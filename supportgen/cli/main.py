@@ -66,7 +66,7 @@ def _plan_outputs(inputs, outdir: Path, args) -> list[str]:
 
     names = assign_names([part_name(p) for p in inputs], args.name_clash, [str(p) for p in inputs])
     for path, name in zip(inputs, names):
-        if name != part_name(path) and not args.quiet:
+        if name != part_name(path):        # said even with --quiet: the user must find the files
             err(f"note: {path}: outputs named {name}.* ({part_name(path)}.* is another input's)")
     refuse_overwrites([outdir / f"{n}{s}" for n in names for s in OUTPUTS.values()], inputs)
     prepare_folder(outdir)
@@ -99,9 +99,9 @@ def _run_generate(inputs, outdir: Path, args) -> int:
             with stop_on_signals():
                 return _each(inputs, work, args)
         except KeyboardInterrupt:
-            err(f"interrupted: {len(saved)} of {len(inputs)} input(s) saved complete"
-                f"{' (' + ', '.join(saved) + ')' if saved else ''}; the rest not done, their previous outputs "
-                "untouched, no partial file left")
+            err(f"interrupted: {len(saved)} of {len(inputs)} input(s) done"
+                f"{' (' + ', '.join(saved) + ')' if saved else ''}; every other input has its previous outputs "
+                "or a complete new set, never a mix; no partial file left")
             return 130
 
 

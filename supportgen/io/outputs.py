@@ -22,6 +22,7 @@ import hashlib
 import os
 import signal
 import tempfile
+import threading
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -84,20 +85,38 @@ def os_error_line(path, exc: OSError, doing: str = "write") -> str:
 
 
 class _SignalsHeld:
-    """Hold SIGINT and SIGTERM back (``pthread_sigmask``) while a set is renamed into place;
-    a signal that arrives meanwhile is delivered when the block ends.  A no-op where the
-    platform has no signal masks."""
+    """Hold SIGINT and SIGTERM back while a set is renamed into place; a signal that arrives
+    meanwhile is raised again, to the handler it would have reached, when the block ends.
 
-    SIGNALS = {signal.SIGINT, signal.SIGTERM}
+    In the main thread the handlers are swapped for a recorder (a per-thread signal mask is not
+    enough: the kernel hands a process-directed signal to any thread that does not block it);
+    elsewhere the thread's signal mask is used.  A signal ignored on entry stays ignored.
+    """
+
+    SIGNALS = (signal.SIGINT, signal.SIGTERM)
 
     def __enter__(self):
-        masking = hasattr(signal, "pthread_sigmask")
-        self.old = signal.pthread_sigmask(signal.SIG_BLOCK, self.SIGNALS) if masking else None
+        self.caught: list[int] = []
+        self.saved: dict = {}
+        self.mask = None
+        if threading.current_thread() is threading.main_thread():
+            for s in self.SIGNALS:
+                handler = signal.getsignal(s)
+                if handler in (signal.SIG_IGN, None):
+                    continue
+                self.saved[s] = handler
+                signal.signal(s, lambda signum, frame: self.caught.append(signum))
+        elif hasattr(signal, "pthread_sigmask"):
+            self.mask = signal.pthread_sigmask(signal.SIG_BLOCK, self.SIGNALS)
         return self
 
     def __exit__(self, *exc):
-        if self.old is not None:
-            signal.pthread_sigmask(signal.SIG_SETMASK, self.old)
+        for s, handler in self.saved.items():
+            signal.signal(s, handler)
+        if self.mask is not None:
+            signal.pthread_sigmask(signal.SIG_SETMASK, self.mask)
+        for s in dict.fromkeys(self.caught):
+            signal.raise_signal(s)          # now, to its own handler (or its default action)
         return False
 
 
