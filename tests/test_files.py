@@ -13,6 +13,7 @@ The expectations rest on:
 
 from __future__ import annotations
 
+import dataclasses
 import errno
 import io
 import json
@@ -559,3 +560,48 @@ def test_full_disk_gives_one_line_and_the_next_input_goes_on(tmp_path, capsys, m
             unmount()
     assert code == 1 and len(err) == 1 and "No space left on device" in err[0] and "big." in err[0]
     assert left == sorted(f"part{s}" for s in supportgen.pipeline.OUTPUTS.values())   # the next input is whole
+
+
+# --------------------------------------------------------------------------- 9. Dask time limits
+
+
+def test_a_late_task_saves_nothing(tmp_path):
+    from supportgen.runs.batch import Job, run_job
+
+    src = tmp_path / "p.stl"
+    _box().export(src)
+    out = tmp_path / "out"
+    out.mkdir()
+    job = Job(str(src), "p.stl", str(out), "p", _coarse(), "straight", timeout_s=1e-6)   # counted from its start
+    row = run_job(job)
+    assert row.status == "timeout" and "nothing saved" in row.reason
+    assert list(out.iterdir()) == []                                  # the whole set discarded, no temp file
+
+
+@dataclasses.dataclass(frozen=True)
+class _SleepJob:
+    rel: str
+    seconds: float
+    timeout_s: float | None = None
+
+
+def _sleep_run(job):
+    started = time.monotonic()
+    time.sleep(job.seconds)
+    late = job.timeout_s is not None and time.monotonic() - started > job.timeout_s
+    return (job.rel, "timeout" if late else "ok")
+
+
+def test_dask_limit_starts_when_the_task_starts(monkeypatch):
+    distributed = pytest.importorskip("distributed", reason="Dask distributed not installed (extra 'cluster')")
+    import supportgen.runs.workers as workers
+
+    monkeypatch.setattr(workers, "DASK_GRACE_S", 0.2)
+    rows = []
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as c, \
+            distributed.Client(c, set_as_default=False) as client:
+        # One thread: the slow task overruns and keeps the thread; the quick one must not inherit its clock.
+        jobs = [_SleepJob("slow", 3.0, 1.0), _SleepJob("quick", 0.5, 1.0)]
+        workers.run_dask(jobs, client, 1.0, rows.append, run=_sleep_run, discard=lambda job: None,
+                         lost=lambda job, status, reason, s: (job.rel, status))
+    assert dict(rows) == {"slow": "timeout", "quick": "ok"}
