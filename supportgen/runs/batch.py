@@ -258,7 +258,8 @@ def _manifest(job: Job, input_sha: str, row: FileResult):
     """The manifest's producer: a function of the staged files of the set (see ``commit_set``)."""
     def make(staged) -> bytes:
         doc = {"input": job.rel, "input_sha256": input_sha,
-               "settings_sha256": settings_hash(job.settings, job.strategy), "strategy": job.strategy, "outputs": [o.to_dict() for o in staged.values()],
+               "settings_sha256": settings_hash(job.settings, job.strategy), "strategy": job.strategy,
+               "outputs": [o.to_dict() for o in staged.values()],
                **{k: row.to_dict()[k] for k in SUMMARY_FIELDS[3:7]}}
         return (json.dumps(doc, indent=1, sort_keys=True) + "\n").encode("utf-8")
     return make
