@@ -13,7 +13,7 @@ The Python API::
     supportgen.check(mesh, settings)     # verify any supported mesh
 """
 
-from .errors import GeometryError, MeshError, PlacementError, SettingsError, SupportGenError
+from .errors import GeometryError, MeshError, OutputError, PlacementError, SettingsError, SupportGenError
 from .settings import PROFILES, Settings, load_settings
 from .supports.plan import Contacts, SupportPlan
 from .supports.strategies import STRATEGIES
@@ -32,5 +32,5 @@ def __getattr__(name):
 
 __all__ = [
     "generate", "check", "Result", "Settings", "load_settings", "PROFILES", "STRATEGIES", "Contacts",
-    "SupportPlan", "SupportGenError", "SettingsError", "MeshError", "PlacementError", "GeometryError",
+    "SupportPlan", "SupportGenError", "SettingsError", "MeshError", "PlacementError", "GeometryError", "OutputError",
 ]

@@ -14,6 +14,7 @@ __all__ = [
     "PlacementError",
     "GeometryError",
     "SizingError",
+    "OutputError",
 ]
 
 
@@ -39,3 +40,8 @@ class GeometryError(SupportGenError, RuntimeError):
 
 class SizingError(SupportGenError, ValueError):
     """Loads or a support plan cannot be sized (negative load, cycle, bad index)."""
+
+
+class OutputError(SupportGenError):
+    """An output folder or file cannot be used: it is a file, not writable, full, locked by
+    another run, or an output would replace an input."""

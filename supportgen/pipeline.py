@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import contextlib
 import time
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -25,20 +26,15 @@ from .analysis.placement import check_cures, place
 from .analysis.verify import Verification, speck_area_mm2, verify
 from .constants import OFFSET_MM
 from .errors import SupportGenError
-from .io.meshio import (
-    LoadedMesh,
-    atomic_write,
-    atomic_write_text,
-    load_mesh,
-    part_name,
-    prepare_mesh,
-    write_mesh,
-)
+from .io.budget import check_memory
+from .io.meshio import LoadedMesh, load_mesh, mesh_bytes, part_name, prepare_mesh
+from .io.outputs import commit_set, prepare_folder
 from .io.units import scale_loaded, unit_factor
 from .physics.loadpath import ForceProfile, ForceTracker
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
+from .report.web import part_page
 from .settings import Settings, load_settings
 from .supports.contacts import add_unheld, contacts_at, densify_points, merge_contacts, sample_overhangs
 from .supports.geometry import Solids, combine
@@ -50,7 +46,7 @@ __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DE
 
 #: What :meth:`Result.save` writes for a part NAME: role -> file name suffix.
 OUTPUTS = {"combined": ".supported.stl", "supports": ".supports.stl", "report": ".report.json",
-           "summary": ".report.md", "layers_plot": ".layers.png", "tips_plot": ".tips.png",
+           "summary": ".report.md", "page": ".report.html", "layers_plot": ".layers.png", "tips_plot": ".tips.png",
            "preview": ".preview.png"}
 
 #: ``tree`` verifies on the demo and the shared corpus with less support volume
@@ -76,46 +72,51 @@ class Result:
     forces: ForceProfile = field(repr=False)
     verification: Verification = field(repr=False)
 
-    def save(self, outdir: str | Path) -> dict[str, Path]:
+    def save(self, outdir: str | Path, *, extra: Mapping | None = None,
+             before_commit: Callable[[], None] | None = None) -> dict[str, Path]:
         """Write ``NAME.supported.stl``, ``NAME.supports.stl``, ``NAME.report.json``,
-        ``NAME.report.md`` and its plots (preview, layers, tips) into ``outdir``;
-        return the paths by role.
+        ``NAME.report.md`` and its plots (preview, layers, tips) into ``outdir`` as one
+        set; return the paths by role.
 
-        Each file is written atomically; if any write fails, the files of this
-        part already written are removed, so no partial set is left.  The
-        result itself is not changed: the saved JSON is ``result.report`` with
-        ``outputs`` filled in.
+        The set replaces a previous one whole or not at all
+        (:func:`supportgen.io.outputs.commit_set`); the saved JSON is ``result.report``
+        with ``outputs`` filled in: the path of each role, and under ``files`` the name,
+        size and SHA-256 of every other file of the set.  ``extra`` adds files to the set
+        (``role -> (file name, bytes or function of the staged files)``, made after the
+        report); ``before_commit`` may raise to discard the set.  The result itself is
+        not changed.
+
+        Raises
+        ------
+        supportgen.errors.OutputError
+            The folder is a file or not writable, or a file cannot be written (disk full):
+            one line; the previous set is untouched.
         """
-        outdir = Path(outdir)
-        outdir.mkdir(parents=True, exist_ok=True)
-        n = self.name
+        outdir = prepare_folder(outdir)
+        n, f = self.name, self.forces
         paths = {role: outdir / f"{n}{suffix}" for role, suffix in OUTPUTS.items()}
         report = {**self.report, "outputs": {k: str(p) for k, p in paths.items()}}
-        written: list[Path] = []
-        try:
-            write_mesh(self.combined, paths["combined"]); written.append(paths["combined"])
-            write_mesh(self.supports, paths["supports"]); written.append(paths["supports"])
-            f = self.forces
-            atomic_write(paths["layers_plot"], plot_layers(
-                self.layers.z_mm, self.layers.area_mm2, f.force_n, f"{n}: area and separation force per layer",
-                report["settings"]["printer"]["rated_force_n"]))
-            written.append(paths["layers_plot"])
-            atomic_write(paths["tips_plot"], plot_tips(
-                np.asarray(report["supports"]["tips"]["safety_factor"], float), report["forces"]["target_safety_factor"],
-                f"{n}: tip safety factors"))
-            written.append(paths["tips_plot"])
-            atomic_write(paths["preview"], plot_preview(self.part, self.supports, f"{n}: part on its supports"))
-            written.append(paths["preview"])
-            images = {"part on its supports": paths["preview"].name,
-                      "area and force per layer": paths["layers_plot"].name,
-                      "tip safety factors": paths["tips_plot"].name}
-            atomic_write_text(paths["summary"], markdown(report, n, images)); written.append(paths["summary"])
-            atomic_write_text(paths["report"], to_json(report)); written.append(paths["report"])
-        except BaseException:
-            for p in written:
-                p.unlink(missing_ok=True)
-            raise
-        return paths
+        images = {"part on its supports": paths["preview"].name,
+                  "area and force per layer": paths["layers_plot"].name,
+                  "tip safety factors": paths["tips_plot"].name}
+        rated = report["settings"]["printer"]["rated_force_n"]
+        makers = {
+            "combined": lambda staged: mesh_bytes(self.combined, ".stl", paths["combined"]),
+            "supports": lambda staged: mesh_bytes(self.supports, ".stl", paths["supports"]),
+            "layers_plot": lambda staged: plot_layers(self.layers.z_mm, self.layers.area_mm2, f.force_n,
+                                                      f"{n}: area and separation force per layer", rated),
+            "tips_plot": lambda staged: plot_tips(np.asarray(report["supports"]["tips"]["safety_factor"], float),
+                                                  report["forces"]["target_safety_factor"], f"{n}: tip safety factors"),
+            "preview": lambda staged: plot_preview(self.part, self.supports, f"{n}: part on its supports"),
+            "summary": lambda staged: markdown(report, n, images).encode("utf-8"),
+            "page": lambda staged: part_page(report, self.combined, self.supports, self.part,
+                                             report["supports"].get("contact_points", [])).encode("utf-8"),
+            "report": lambda staged: to_json({**report, "outputs": {
+                **report["outputs"], "files": [o.to_dict() for o in staged.values()]}}).encode("utf-8"),
+        }
+        files = {role: (paths[role].name, make) for role, make in makers.items()}
+        committed = commit_set(outdir, {**files, **(extra or {})}, before_commit=before_commit)
+        return {role: o.path for role, o in committed.items()}
 
 
 class _Timer:
@@ -243,7 +244,11 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
             loaded: LoadedMesh = prepare_mesh(source, name)
         else:
             name = name or part_name(source)
-            loaded = load_mesh(source)
+            lim = settings.limits
+            loaded = load_mesh(source, max_faces=lim.max_faces, max_unpacked_mb=lim.max_unpacked_mb,
+                               budget=lambda faces: check_memory(faces, None, settings, str(source)))
+        # Refuse before the layer grid is allocated a part that would not fit in memory.
+        check_memory(len(loaded.mesh.faces), loaded.mesh.bounds, settings, str(loaded.source))
     with timer("placement"):
         loaded = scale_loaded(loaded, unit_factor(units, scale))
         placed = place(loaded.mesh, settings, position="centre" if centre else position, name=name,

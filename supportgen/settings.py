@@ -11,8 +11,8 @@ unit, its valid range and where its default comes from:
     recalled, not checked against a source: treat as a starting point.
 
 No default is a measurement of ours.  Settings are read from TOML files with
-three tables, ``[printer]``, ``[resin]`` and ``[rules]``; every key is also
-accepted on its own (field names are unique across the three tables), which is
+four tables, ``[printer]``, ``[resin]``, ``[rules]`` and ``[limits]``; every key is also
+accepted on its own (field names are unique across the tables), which is
 how keyword overrides work in :func:`supportgen.generate`.
 
 Examples
@@ -45,6 +45,7 @@ __all__ = [
     "Printer",
     "Resin",
     "SupportRules",
+    "Limits",
     "Settings",
     "PROFILES",
     "MECHANISMS",
@@ -145,7 +146,21 @@ class SupportRules:
     seed: int = _f(0, 0, 2**31 - 1, "", "practice", "seed of every random choice, for repeatable output")
 
 
-_GROUPS = {"printer": Printer, "resin": Resin, "rules": SupportRules}
+@dataclass(frozen=True)
+class Limits:
+    """Caps on what one input may cost, checked before its file is parsed or its layers computed."""
+
+    max_faces: int = _f(3_000_000, 1, 2**31 - 1, "faces", "practice",
+                        "most triangles accepted in one input, counted after 3MF instancing (scans for "
+                        "dental and jewellery work are 0.1-2 million)")
+    max_unpacked_mb: float = _f(512.0, 1.0, 1e6, "MB", "practice",
+                                "largest decompressed size of a 3MF archive (its XML takes about 100 bytes "
+                                "a triangle, so the default holds the face limit with room to spare)")
+    memory_mb: float = _f(0.0, 0.0, 1e7, "MB", "practice",
+                          "memory one run may use; 0 means what the machine has available when it starts")
+
+
+_GROUPS = {"printer": Printer, "resin": Resin, "rules": SupportRules, "limits": Limits}
 
 #: Older names still read for one release, with a FutureWarning: old -> new.
 #: ``lift_mm`` read like the plate's motion between layers; ``max_reach_mm`` like
@@ -203,6 +218,7 @@ class Settings:
     printer: Printer = field(default_factory=Printer)
     resin: Resin = field(default_factory=Resin)
     rules: SupportRules = field(default_factory=SupportRules)
+    limits: Limits = field(default_factory=Limits)
 
     def __post_init__(self):
         for group in _GROUPS:
@@ -270,7 +286,7 @@ def load_settings(source: str | Path | Mapping[str, Any] | None = None, **overri
     ----------
     source : str, Path, mapping or None
         ``None`` for the defaults; a name from :data:`PROFILES`; a path to a TOML
-        file with ``[printer]``, ``[resin]`` and ``[rules]`` tables (flat keys
+        file with ``[printer]``, ``[resin]``, ``[rules]`` and ``[limits]`` tables (flat keys
         are accepted too); or a mapping of the same shape.
     **overrides
         Single values by field name, applied last.
@@ -306,6 +322,9 @@ def load_settings(source: str | Path | Mapping[str, Any] | None = None, **overri
             data = tomllib.loads(path.read_text(encoding="utf-8"))
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
             raise SettingsError(f"{path}: not a valid TOML file ({exc}); fix the syntax") from None
+        except OSError as exc:
+            raise SettingsError(f"{path}: cannot read the profile ({exc.strerror or exc}); "
+                                "check its permissions") from None
     flat: dict[str, Any] = {}
     for key, value in data.items():
         if isinstance(value, Mapping):

@@ -7,8 +7,8 @@ Registered from ``cli/main.py``::
 
 Exit status: 0 when every file was supported and passes the check (or was up
 to date), 1 when any failed, timed out, crashed, was refused or fails the
-check, 2 for usage errors, 130 after Ctrl-C (the summary of what finished is
-still written).
+check, 2 for usage errors, 130 after Ctrl-C or SIGTERM (the summary of what
+finished is still written, with ``interrupted: true``).
 """
 
 from __future__ import annotations
@@ -16,7 +16,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from .options import err, positive, settings_from
+from .options import err, nonnegative_seconds, positive, settings_from
 
 __all__ = ["add_parser", "cmd_batch"]
 
@@ -39,6 +39,11 @@ def add_parser(subparsers, parents) -> None:
     p.add_argument("--timeout", type=positive(float, "a time in seconds above 0"), metavar="S", help="stop any one file after S seconds")
     p.add_argument("--memory-limit", type=positive(float, "a memory size in MB above 0"), metavar="MB",
                    help="refuse files whose estimated peak memory per worker exceeds MB")
+    p.add_argument("--name-clash", choices=("rename", "refuse"), default="rename",
+                   help="files of one folder whose output names collide: name the later ones NAME-2 ... "
+                        "(default) or record them as failed")
+    p.add_argument("--wait", type=nonnegative_seconds, default=0.0, metavar="SECONDS",
+                   help="if another run is writing to OUT, wait up to SECONDS for it (default: refuse at once)")
     p.set_defaults(func=cmd_batch)
 
 
@@ -46,10 +51,10 @@ def cmd_batch(args) -> int:
     """Run the batch described by parsed ``args``; return the exit status."""
     from supportgen.runs.batch import run_batch
 
-
     summary = run_batch(Path(args.input), Path(args.output), settings_from(args), strategy=args.strategy,
                         workers=args.workers, cluster=args.cluster, resume=args.resume, pattern=args.pattern,
-                        timeout_s=args.timeout, memory_limit_mb=args.memory_limit, progress=not args.quiet)
+                        timeout_s=args.timeout, memory_limit_mb=args.memory_limit, progress=not args.quiet,
+                        name_clash=args.name_clash, wait_s=args.wait)
     for row in summary.results:
         if row.status in ("failed", "timeout", "crashed", "refused"):
             err(f"{row.status}: {row.file}: {row.reason}")

@@ -13,7 +13,7 @@ import sys
 import time
 from pathlib import Path
 
-from .options import common_options, err, settings_from, strategy_option
+from .options import common_options, err, nonnegative_seconds, settings_from, strategy_option
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
 
@@ -29,18 +29,19 @@ def _summary_line(result, seconds: float) -> str:
 
 def _each(inputs, work, args) -> int:
     """Run ``work(path)`` for every input; it returns the failure lines of its
-    check.  An error or a failed check is reported on stderr and makes the
-    status 1; the other inputs still run."""
+    check.  An error (bad input, a full disk, a permission) or a failed check is
+    reported on stderr as one line and makes the status 1; the other inputs
+    still run."""
     import supportgen
 
     status = EXIT_OK
     for path in inputs:
         try:
             failures = work(path)
-        except supportgen.SupportGenError as exc:
+        except (supportgen.SupportGenError, OSError) as exc:
             if args.debug:
                 raise
-            err(f"error: {exc}")
+            err(f"error: {exc if isinstance(exc, supportgen.SupportGenError) else _os_line(path, exc)}")
             status = EXIT_FAILED
             continue
         for failure in failures:
@@ -50,11 +51,38 @@ def _each(inputs, work, args) -> int:
     return status
 
 
+def _os_line(path, exc: OSError) -> str:
+    from supportgen.io.outputs import os_error_line
+
+    return os_error_line(path, exc, "read or write")
+
+
+def _plan_outputs(inputs, outdir: Path, args) -> list[str]:
+    """Output names for the inputs, refusing before any work an output that would replace an input
+    and an output folder that cannot be used."""
+    from supportgen.io.meshio import part_name
+    from supportgen.io.outputs import assign_names, prepare_folder, refuse_overwrites
+    from supportgen.pipeline import OUTPUTS
+
+    names = assign_names([part_name(p) for p in inputs], args.name_clash, [str(p) for p in inputs])
+    for path, name in zip(inputs, names):
+        if name != part_name(path):        # said even with --quiet: the user must find the files
+            err(f"note: {path}: outputs named {name}.* ({part_name(path)}.* is another input's)")
+    refuse_overwrites([outdir / f"{n}{s}" for n in names for s in OUTPUTS.values()], inputs)
+    prepare_folder(outdir)
+    return names
+
+
 def _run_generate(inputs, outdir: Path, args) -> int:
     import supportgen
+    from supportgen.io.lock import FolderLock
+    from supportgen.io.outputs import clean_temps
     from supportgen.io.units import group_bounds, unit_factor
+    from supportgen.runs.signals import stop_on_signals
 
     settings = settings_from(args)
+    names = dict(zip(map(str, inputs), _plan_outputs(inputs, outdir, args)))
+    saved: list[str] = []
     position = "centre" if args.centre else args.position
     factor = unit_factor(args.units, args.scale)
     together = group_bounds(inputs, factor) if position == "auto" else None
@@ -62,13 +90,24 @@ def _run_generate(inputs, outdir: Path, args) -> int:
     def work(path):
         t0 = time.perf_counter()
         result = supportgen.generate(path, settings, strategy=args.strategy, position=position, units=args.units,
-                                     scale=args.scale, group_bounds=together, progress=not args.quiet)
+                                     scale=args.scale, group_bounds=together, progress=not args.quiet,
+                                     name=names[str(path)])
         result.save(outdir)
+        saved.append(str(path))
         if not args.quiet:
             print(_summary_line(result, time.perf_counter() - t0))
         return result.report["verification"]["failures"]
 
-    return _each(inputs, work, args)
+    with FolderLock(outdir, wait_s=args.wait, warn=lambda m: err(f"warning: {m}")):
+        clean_temps(outdir)
+        try:
+            with stop_on_signals():
+                return _each(inputs, work, args)
+        except KeyboardInterrupt:
+            err(f"interrupted: {len(saved)} of {len(inputs)} input(s) done"
+                f"{' (' + ', '.join(saved) + ')' if saved else ''}; every other input has its previous outputs "
+                "or a complete new set, never a mix; no partial file left")
+            return 130
 
 
 def cmd_generate(args) -> int:
@@ -154,6 +193,12 @@ def build_parser() -> argparse.ArgumentParser:
                           help="length unit the files were drawn in; parts are scaled to millimetres (default: mm)")
     gen_opts.add_argument("--scale", type=float, default=1.0, metavar="FACTOR",
                           help="a further scale factor applied with --units (default: 1)")
+    gen_opts.add_argument("--name-clash", choices=("rename", "refuse"), default="rename",
+                          help="inputs whose output names collide: name the later ones NAME-2 ... (default) "
+                               "or refuse them")
+    gen_opts.add_argument("--wait", type=nonnegative_seconds, default=0.0, metavar="SECONDS",
+                          help="if another run is writing to the output folder, wait up to SECONDS for it "
+                               "(default: refuse at once)")
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
     p.add_argument("inputs", nargs="+", metavar="INPUT", help="STL, OBJ, PLY or 3MF files")
@@ -201,6 +246,11 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         err("interrupted; finished files are complete, nothing half-written was left")
         return 130
+    except OSError as exc:
+        if getattr(args, "debug", False):
+            raise
+        err(f"error: {_os_line(getattr(exc, 'filename', None) or '(file)', exc)}")
+        return EXIT_FAILED
     except Exception as exc:  # noqa: BLE001 - the one place that turns errors into a line
         import supportgen
 

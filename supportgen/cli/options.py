@@ -6,7 +6,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-__all__ = ["common_options", "strategy_option", "positive", "settings_from", "err"]
+__all__ = ["common_options", "strategy_option", "positive", "nonnegative_seconds", "settings_from", "err"]
 
 
 def common_options() -> argparse.ArgumentParser:
@@ -54,6 +54,21 @@ def positive(cast, what: str = "a positive number"):
 
     parse.__name__ = f"positive {cast.__name__}"
     return parse
+
+
+def nonnegative_seconds(text: str) -> float:
+    """An argparse type: a time in seconds, 0 or more.
+
+    >>> nonnegative_seconds("2.5"), nonnegative_seconds("0")
+    (2.5, 0.0)
+    """
+    try:
+        value = float(text)
+    except ValueError:
+        value = -1.0
+    if not value >= 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"{text!r}: give a time in seconds, 0 or more")
+    return value
 
 
 def _value(text: str):

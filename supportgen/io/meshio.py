@@ -10,13 +10,16 @@ flipped.  What remains must be finite, closed, orientable and enclose volume, or
 is wrong and what to do.
 
 Writing is atomic (a temporary file in the same folder, then :func:`os.replace`), so a
-failure leaves no partial file.
+failure leaves no partial file; a part's whole output set is committed together by
+:func:`supportgen.io.outputs.commit_set`.  Input caps (faces after instancing, a 3MF
+archive's decompressed size) are checked before the parser runs.
 """
 
 from __future__ import annotations
 
 import io
 import os
+import re
 import tempfile
 import warnings
 import zipfile
@@ -28,7 +31,9 @@ import numpy as np
 import trimesh
 
 from supportgen.errors import MeshError
+from supportgen.io.outputs import TEMP_PREFIX, TEMP_SUFFIX
 from supportgen.io.repair import HOLE_FRACTION, repair_arrays
+from supportgen.settings import Limits
 
 __all__ = [
     "READ_FORMATS",
@@ -39,6 +44,9 @@ __all__ = [
     "load_mesh",
     "prepare_mesh",
     "write_mesh",
+    "mesh_bytes",
+    "count_faces",
+    "decode_text",
     "atomic_write",
     "atomic_write_text",
 ]
@@ -72,7 +80,8 @@ class LoadedMesh:
     source: str
 
 
-def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION) -> LoadedMesh:
+def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION, max_faces: int = Limits.max_faces,
+              max_unpacked_mb: float = Limits.max_unpacked_mb, budget=None) -> LoadedMesh:
     """Read a mesh file, validate it and repair what can be repaired safely.
 
     Parameters
@@ -84,6 +93,12 @@ def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION) -> Loade
         How the file is named in error messages; defaults to ``str(path)``.
     hole_fraction : float
         Largest hole closed automatically, as a fraction of its shell's surface area.
+    max_faces : int
+        Largest triangle count accepted, counted before parsing (3MF: after instancing).
+    max_unpacked_mb : float
+        Largest decompressed size of a 3MF archive, MB (2**20 bytes), checked before parsing.
+    budget : callable, optional
+        Called with the face count before parsing; may raise to refuse the file (a memory guard).
 
     Returns
     -------
@@ -96,7 +111,8 @@ def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION) -> Loade
         Missing, empty or unreadable file; unknown extension; truncated binary STL (the
         header's triangle count is checked against the file size before parsing);
         NaN/inf coordinates; flat or zero-volume parts; non-manifold edges; non-orientable
-        or open surfaces that cannot be closed.
+        or open surfaces that cannot be closed; over ``max_faces`` triangles or (3MF) over
+        ``max_unpacked_mb`` decompressed, refused before parsing with the setting to raise.
 
     Notes
     -----
@@ -140,21 +156,57 @@ def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION) -> Loade
     if not data.strip():
         raise MeshError(f"{label}: the file is empty; export the model again")
     repairs = []
-    if ext == ".stl":
-        data = _check_stl_size(data, label, repairs)
+    faces_before = count_faces(data, ext, label, max_unpacked_mb=max_unpacked_mb)
+    _cap_faces(faces_before, max_faces, label)
+    if budget is not None:
+        budget(faces_before)
+    if ext == ".stl" and _is_ascii_stl(data):
+        vertices, faces = _read_ascii_stl(data, label)
+    else:
+        if ext == ".stl":
+            data = _check_stl_size(data, label, repairs)
+        vertices, faces = _parse(data, ext, label)
+    _cap_faces(len(faces), max_faces, label)
+    mesh, fixed = repair_arrays(vertices, faces, label, merge_is_repair=ext != ".stl",
+                                hole_fraction=hole_fraction)
+    return LoadedMesh(mesh=mesh, repairs=tuple(repairs) + fixed, source=str(path))
+
+
+def _cap_faces(n: int, cap: int, label: str) -> None:
+    if n > cap:
+        raise MeshError(f"{label}: {n:,} triangles (after instancing) is over the limit of {cap:,}; "
+                        f"simplify the model, or raise the limit with --set max_faces={n}")
+
+
+def _parse(data: bytes, ext: str, label: str):
+    """Vertices and faces through trimesh (binary STL, OBJ, PLY, 3MF), text decoded here."""
     try:
         with warnings.catch_warnings():  # bad numbers are reported by our own checks below
             warnings.simplefilter("ignore", RuntimeWarning)
-            loaded = trimesh.load_mesh(trimesh.util.wrap_as_stream(data), file_type=ext[1:],
-                                       process=False)
-        vertices, faces = np.asarray(loaded.vertices), np.asarray(loaded.faces)
+            if ext == ".obj":
+                # Decoded here (UTF-8, else Latin-1): trimesh would reach for an optional package.
+                stream = io.StringIO(decode_text(data))
+            else:
+                stream = trimesh.util.wrap_as_stream(data)
+            loaded = trimesh.load_mesh(stream, file_type=ext[1:], process=False)
+        return np.asarray(loaded.vertices), np.asarray(loaded.faces)
     except Exception as exc:  # parsers of untrusted files raise many types; report them all
         raise MeshError(f"{label}: unreadable {ext[1:].upper()} file ({type(exc).__name__}: "
                         f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); "
                         "export the model again") from exc
-    mesh, fixed = repair_arrays(vertices, faces, label, merge_is_repair=ext != ".stl",
-                                hole_fraction=hole_fraction)
-    return LoadedMesh(mesh=mesh, repairs=tuple(repairs) + fixed, source=str(path))
+
+
+def decode_text(data: bytes) -> str:
+    """Text of a mesh file: UTF-8 (a byte-order mark is dropped), else Latin-1, which decodes any
+    byte; only names and comments can hold non-ASCII text, and the geometry is ASCII either way.
+
+    >>> decode_text(b"\\xef\\xbb\\xbfv 1 2 3"), decode_text(b"# caf\\xe9")
+    ('v 1 2 3', '# café')
+    """
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        return data.decode("latin-1")
 
 
 def prepare_mesh(mesh, name, *, hole_fraction: float = HOLE_FRACTION) -> LoadedMesh:
@@ -218,23 +270,32 @@ def write_mesh(mesh, path) -> None:
     Cost O(n) in faces. The same mesh always gives the same bytes (3MF is written here,
     with fixed zip timestamps, following the 3MF Core Specification 1.2.3).
     """
-    ext = Path(path).suffix.lower()
-    if ext not in WRITE_FORMATS:
-        raise MeshError(f"{path}: cannot write file type {ext or '(no extension)'!r}; "
-                        f"use one of {', '.join(WRITE_FORMATS)}")
-    if not isinstance(mesh, trimesh.Trimesh) or len(mesh.faces) == 0:
-        raise MeshError(f"{path}: nothing to write (no triangles); check the model")
-    if ext == ".3mf":
-        data = _threemf_bytes(np.asarray(mesh.vertices), np.asarray(mesh.faces))
-    elif ext == ".ply":
-        data = mesh.export(file_type="ply", encoding="binary")
-    else:
-        data = mesh.export(file_type="stl")  # trimesh writes binary STL
     try:
+        data = mesh_bytes(mesh, Path(path).suffix.lower(), path)
         atomic_write(path, data)
     except OSError as exc:
         raise MeshError(f"{path}: cannot write ({exc.strerror or exc}); "
                         "check that the folder exists and is writable") from exc
+
+
+def mesh_bytes(mesh, ext: str, label="mesh") -> bytes:
+    """The bytes :func:`write_mesh` writes for ``mesh`` as ``ext`` (``.stl``, ``.3mf`` or ``.ply``).
+
+    Raises
+    ------
+    MeshError
+        Unknown extension or empty mesh; the message names ``label``.
+    """
+    if ext not in WRITE_FORMATS:
+        raise MeshError(f"{label}: cannot write file type {ext or '(no extension)'!r}; "
+                        f"use one of {', '.join(WRITE_FORMATS)}")
+    if not isinstance(mesh, trimesh.Trimesh) or len(mesh.faces) == 0:
+        raise MeshError(f"{label}: nothing to write (no triangles); check the model")
+    if ext == ".3mf":
+        return _threemf_bytes(np.asarray(mesh.vertices), np.asarray(mesh.faces))
+    if ext == ".ply":
+        return mesh.export(file_type="ply", encoding="binary")
+    return mesh.export(file_type="stl")  # trimesh writes binary STL
 
 
 def atomic_write(path, data: bytes) -> None:
@@ -258,7 +319,7 @@ def atomic_write(path, data: bytes) -> None:
     A new file gets mode 0o644; an existing file keeps its mode.
     """
     path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    fd, tmp = tempfile.mkstemp(prefix=f"{TEMP_PREFIX}{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
     done = False
     try:
         with os.fdopen(fd, "wb") as handle:
@@ -300,10 +361,6 @@ def atomic_write_text(path, text: str) -> None:
 
 def _check_stl_size(data: bytes, label: str, repairs: list) -> bytes:
     """Refuse a truncated binary STL before the parser sees it; trim trailing bytes."""
-    head = data[:4096]
-    text = head.isascii() and not any(b < 9 or 13 < b < 32 for b in head)
-    if text and head.lstrip()[:5].lower() == b"solid":
-        return data  # ASCII STL
     if len(data) < 84:
         raise MeshError(f"{label}: binary STL too short ({len(data)} bytes, the header "
                         "alone is 84); export the model again")
@@ -315,6 +372,138 @@ def _check_stl_size(data: bytes, label: str, repairs: list) -> bytes:
     if len(data) > expected:
         repairs.append(f"ignored {len(data) - expected} bytes after the last triangle")
     return data[:expected]
+
+
+_BOM = b"\xef\xbb\xbf"
+_VERTEX = re.compile(rb"vertex\s+(\S+)\s+(\S+)\s+(\S+)", re.IGNORECASE)
+
+
+def _is_ascii_stl(data: bytes) -> bool:
+    """ASCII STL by its structure: ``solid`` first (after a byte-order mark and blanks), facets
+    with vertices and their ends, and not a binary STL whose size matches its own header (a
+    binary header may start with "solid" too).  The solid's name may be in any encoding."""
+    if len(data) >= 84 and len(data) == 84 + 50 * int.from_bytes(data[80:84], "little"):
+        return False
+    body = data[3:] if data.startswith(_BOM) else data
+    if body.lstrip()[:5].lower() != b"solid":
+        return False
+    low = body.lower()
+    return (b"vertex" in low and b"endfacet" in low) or b"endsolid" in low
+
+
+def _read_ascii_stl(data: bytes, label: str):
+    """Vertices (3 per facet) and faces of an ASCII STL, read from the ``vertex x y z`` lines alone
+    (3D Systems, *StereoLithography Interface Specification*, 1989: names and comments are free text)."""
+    coords = _VERTEX.findall(data)
+    if not coords:
+        return np.zeros((0, 3)), np.zeros((0, 3), np.int64)   # "contains no triangles" from the checks
+    if len(coords) % 3:
+        raise MeshError(f"{label}: unreadable ASCII STL ({len(coords)} vertex lines, not three per facet); "
+                        "export the model again")
+    try:
+        v = np.array(coords, dtype=float)
+    except ValueError as exc:
+        raise MeshError(f"{label}: unreadable ASCII STL (a vertex coordinate is not a number: "
+                        f"{str(exc)[:60]}); export the model again") from exc
+    return v, np.arange(len(v), dtype=np.int64).reshape(-1, 3)
+
+
+_PLY_FACES = re.compile(rb"^element\s+face\s+(\d+)", re.MULTILINE)
+_CORE_NS = b"http://schemas.microsoft.com/3dmanufacturing/core/2015/02"
+
+
+def count_faces(data: bytes, ext: str, label: str, *, max_unpacked_mb: float = Limits.max_unpacked_mb) -> int:
+    """Triangles a mesh file will make, counted without parsing it (0 where it cannot tell).
+
+    Binary STL: the header's count; ASCII STL: ``endfacet`` lines; PLY: the header's
+    ``element face``; OBJ: ``f`` lines; 3MF: the triangles of every build item's object,
+    components multiplied out (3MF Core Specification 1.2.3, sections 4.1-4.2 and 5), after
+    checking the archive's decompressed size (the sizes its ZIP central directory declares,
+    APPNOTE 6.3.9 section 4.4.9; Python's ``zipfile`` never returns more than a member declares).
+
+    Raises
+    ------
+    MeshError
+        A 3MF archive that would decompress to more than ``max_unpacked_mb``.
+    """
+    if ext == ".stl":
+        if _is_ascii_stl(data):
+            return data.lower().count(b"endfacet")
+        return int.from_bytes(data[80:84], "little") if len(data) >= 84 else 0
+    if ext == ".ply":
+        m = _PLY_FACES.search(data[:65536])
+        return int(m.group(1)) if m else 0
+    if ext == ".obj":
+        return data.count(b"\nf ") + data.startswith(b"f ")
+    if ext == ".3mf":
+        return _threemf_faces(data, label, max_unpacked_mb)
+    return 0
+
+
+def _threemf_faces(data: bytes, label: str, max_unpacked_mb: float) -> int:
+    try:
+        archive = zipfile.ZipFile(io.BytesIO(data))
+        infos = archive.infolist()
+    except (zipfile.BadZipFile, ValueError, OSError):
+        return 0                 # not a ZIP: the parser reports it
+    unpacked = sum(i.file_size for i in infos)
+    cap = int(max_unpacked_mb * 2**20)
+    if unpacked > cap:
+        raise MeshError(f"{label}: the 3MF archive would unpack to {unpacked / 2**20:,.0f} MB, over the limit of "
+                        f"{max_unpacked_mb:g} MB; check the file's origin, or raise the limit with "
+                        f"--set max_unpacked_mb={int(unpacked / 2**20) + 1}")
+    objects: dict[tuple[str, str], tuple[int, list]] = {}
+    items: list[tuple[str, str]] = []
+    for info in infos:
+        if not info.filename.lower().endswith(".model"):
+            continue
+        try:
+            xml = archive.read(info)
+        except Exception:  # noqa: BLE001 - a damaged member: the parser reports it
+            return 0
+        part = "/" + info.filename.lstrip("/")
+        _model_objects(xml, part, objects, items)
+    memo: dict = {}
+
+    def faces(key, depth=0) -> int:
+        if key in memo:
+            return memo[key]
+        if key not in objects or depth > 64:
+            return 0
+        own, comps = objects[key]
+        memo[key] = own + sum(faces(c, depth + 1) for c in comps)
+        return memo[key]
+
+    return sum(faces(k) for k in items)
+
+
+_ATTR = re.compile(rb'([\w:]+)\s*=\s*["\']([^"\']*)["\']')
+
+
+def _model_objects(xml: bytes, part: str, objects: dict, items: list) -> None:
+    """Objects (own triangles, component references) and build items of one 3MF model part."""
+    m = re.search(rb'xmlns(?::(\w+))?\s*=\s*["\']' + re.escape(_CORE_NS), xml[:65536])
+    pre = (m.group(1) + b":") if m and m.group(1) else b""
+    tri, tris = b"<" + pre + b"triangle", b"<" + pre + b"triangles"
+    obj_re = re.compile(rb"<" + re.escape(pre) + rb"object\b([^>]*)>(.*?)</" + re.escape(pre) + rb"object>", re.S)
+    comp_re = re.compile(rb"<" + re.escape(pre) + rb"component\b([^>]*)>")
+    item_re = re.compile(rb"<" + re.escape(pre) + rb"item\b([^>]*)>")
+
+    def attrs(text: bytes) -> dict:
+        return {k.split(b":")[-1].decode("latin-1"): v.decode("latin-1") for k, v in _ATTR.findall(text)}
+
+    for om in obj_re.finditer(xml):
+        a, body = attrs(om.group(1)), om.group(2)
+        comps = []
+        for cm in comp_re.finditer(body):
+            c = attrs(cm.group(1))
+            comps.append((c.get("path", part), c.get("objectid", "")))
+        objects[(part, a.get("id", ""))] = (body.count(tri) - body.count(tris), comps)
+    build = re.search(rb"<" + re.escape(pre) + rb"build\b(.*?)</" + re.escape(pre) + rb"build>", xml, re.S)
+    if build:
+        for im in item_re.finditer(build.group(1)):
+            a = attrs(im.group(1))
+            items.append((a.get("path", part), a.get("objectid", "")))
 
 
 # ----------------------------------------------------------------------------- writing

@@ -13,15 +13,26 @@ Engines (:mod:`supportgen.runs.workers`)
     sends the same job function to a Dask distributed scheduler (``pip install
     'supportgen[cluster]'``); workers must have supportgen installed and see the
     input and output folders at the same paths (a shared file system).  A Dask
-    task past its deadline is recorded as ``timeout`` and cancelled, and if it
-    ever finishes it writes nothing.
-Resume
-    After a successful save, ``NAME.batch.json`` beside the outputs records the
-    sha256 of the input bytes and of ``settings.to_toml()`` plus the strategy.
-    With ``resume=True`` a file whose manifest matches and whose outputs all
-    exist is ``skipped``.  Every output is written atomically; the outputs of a
-    file that fails, times out, crashes or is interrupted are removed, so an
-    output set is either complete (with its manifest) or absent.
+    task's time limit starts when the task starts; past it the task saves
+    nothing (its set is discarded whole) and the next task is not affected.
+Output sets and resume
+    Each file's outputs and its manifest ``NAME.batch.json`` are committed as
+    one set (:func:`supportgen.io.outputs.commit_set`): a file that fails,
+    times out, crashes or is interrupted leaves its previous set as it was and
+    no temporary file.  The manifest records the sha256 of the input bytes, of
+    ``settings.to_toml()`` plus the strategy, and the size and sha256 of every
+    output; with ``resume=True`` a file is ``skipped`` only when all of them
+    match what is on disk.
+One run per output folder
+    The output folder is locked for the run (:class:`supportgen.io.lock.FolderLock`);
+    a second batch or ``generate`` on it waits (``wait_s``) or refuses.
+    SIGINT and SIGTERM both stop the batch like Ctrl-C: workers are stopped,
+    the summary is written with ``interrupted: true``, exit status 130.
+Names
+    Outputs are named by :func:`supportgen.io.meshio.part_name`; inputs of one
+    folder whose names collide get distinct names (``NAME-2`` ...) or, with
+    ``name_clash="refuse"``, fail; an output that would replace an input is
+    refused before any work.
 Memory guard
     :func:`estimate_peak_mb` is a calibrated linear model of a worker's peak
     resident memory; with ``memory_limit_mb`` a file whose estimate exceeds it
@@ -36,11 +47,9 @@ from __future__ import annotations
 import csv
 import dataclasses
 import fnmatch
-import hashlib
 import io
 import json
 import os
-import sys
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -49,9 +58,24 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import SupportGenError
-from ..io.meshio import READ_FORMATS, part_name
+from ..io.budget import MEMORY_BASE_MB, MEMORY_FACE_BYTES, MEMORY_MASK_FACTOR, estimate_peak_mb, mesh_footprint
+from ..io.lock import FolderLock
+from ..io.meshio import READ_FORMATS, atomic_write_text, part_name
+from ..report.web import batch_index
+from ..io.outputs import (
+    CLASH_MODES,
+    assign_names,
+    clean_temps,
+    os_error_line,
+    prepare_folder,
+    refuse_overwrites,
+    remove_temps,
+    sha256_of,
+)
 from ..pipeline import DEFAULT_STRATEGY, OUTPUTS
 from ..settings import Settings
+from .memory import peak_rss_mb
+from .signals import stop_on_signals
 from .workers import dask_client, run_dask, run_local
 
 __all__ = ["SUFFIXES", "STATUSES", "BAD_STATUSES", "SUMMARY_FIELDS", "OUTPUT_SUFFIXES", "MANIFEST_SUFFIX",
@@ -62,21 +86,12 @@ __all__ = ["SUFFIXES", "STATUSES", "BAD_STATUSES", "SUMMARY_FIELDS", "OUTPUT_SUF
 SUFFIXES = READ_FORMATS
 STATUSES = ("ok", "failed", "timeout", "crashed", "skipped", "refused")
 BAD_STATUSES = frozenset({"failed", "timeout", "crashed", "refused"})
-SUMMARY_FIELDS = ("file", "status", "reason", "contacts", "support_volume_mm3", "passed", "seconds", "peak_mb")
-# What Result.save writes for one part (kept in step with supportgen.pipeline.Result.save; the tests check it).
+SUMMARY_FIELDS = ("file", "status", "reason", "contacts", "support_volume_mm3", "passed", "seconds", "peak_mb",
+                  "peak_force_n")
+#: What Result.save writes for one part (supportgen.pipeline.OUTPUTS), plus the manifest in the same set.
 OUTPUT_SUFFIXES = tuple(OUTPUTS.values())
 MANIFEST_SUFFIX = ".batch.json"
-
-# Peak resident memory of one worker (MB) ~ BASE + FACTOR * mask bytes / 2**20 + FACE_BYTES * faces / 2**20,
-# mask = one uint8 layer mask over the part's x/y bounds.  Measured with resource.getrusage(RUSAGE_SELF).ru_maxrss
-# of fresh processes (benchmarks/bench_batch.py --calibrate-memory, 2 cores, Linux, 2026-12-01): flat plates
-# 10-70 mm (0.04-1.2 Mpx), spheres of 1,280-81,920 faces and the three demo parts; least squares gave
-# 240 MB + 331 B/px + 1,400 B/face.  The constants below are raised so that no measured run exceeds its
-# estimate (estimate / measured from 1.10 for the lattice trivet to 1.93 for the largest flat plate).
-# The stages are still changing: rerun the calibration when they settle.
-MEMORY_BASE_MB = 250.0        # the imported libraries plus a small part
-MEMORY_MASK_FACTOR = 700.0    # bytes per pixel of the layer grid (masks, crossings, pressure solve)
-MEMORY_FACE_BYTES = 2500.0    # per input face
+file_hash = sha256_of        # sha256 (hex) of a file's bytes
 
 
 @dataclass(frozen=True)
@@ -91,6 +106,7 @@ class FileResult:
     passed: bool | None = None
     seconds: float = 0.0
     peak_mb: float | None = None      # the worker process's peak resident memory so far (an upper bound)
+    peak_force_n: float | None = None
 
     @property
     def bad(self) -> bool:
@@ -141,7 +157,17 @@ class Job:
     settings: Settings
     strategy: str
     memory_limit_mb: float | None = None
-    deadline: float | None = None   # wall-clock time after which nothing is saved (Dask)
+    timeout_s: float | None = None  # counted from the job's own start, in the worker (Dask): past it nothing is saved
+    note: str = ""              # said in the row (a renamed output)
+
+    @property
+    def files(self) -> list[str]:
+        """Names of the files of this job's output set, the manifest last."""
+        return [f"{self.name}{s}" for s in (*OUTPUT_SUFFIXES, MANIFEST_SUFFIX)]
+
+    @property
+    def manifest(self) -> Path:
+        return Path(self.outdir) / f"{self.name}{MANIFEST_SUFFIX}"
 
 
 def discover(input_dir: str | Path, pattern: str | None = None, exclude: str | Path | None = None) -> list[Path]:
@@ -191,162 +217,103 @@ def discover(input_dir: str | Path, pattern: str | None = None, exclude: str | P
 
 def settings_hash(settings: Settings, strategy: str) -> str:
     """sha256 (hex) of ``settings.to_toml()`` followed by the strategy name."""
+    import hashlib
+
     return hashlib.sha256(f"{settings.to_toml()}\nstrategy = {strategy!r}\n".encode()).hexdigest()
 
 
-def file_hash(path: str | Path) -> str:
-    """sha256 (hex) of a file's bytes, read in 1 MiB blocks."""
-    h = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
-def mesh_footprint(path: str | Path) -> tuple[int, np.ndarray]:
-    """Face count and (2, 3) bounds of a mesh file, without repairing it.
-
-    A binary STL is read with one ``numpy.frombuffer`` (O(faces), 50 bytes a
-    face); other formats go through :func:`supportgen.io.meshio.load_mesh`.
-
-    Raises
-    ------
-    supportgen.errors.MeshError
-        The file cannot be read as a mesh.
-    """
-    path = Path(path)
-    size = path.stat().st_size
-    if path.suffix.lower() == ".stl" and size >= 84:
-        with open(path, "rb") as handle:
-            head = handle.read(84)
-            n = int(np.frombuffer(head, "<u4", 1, 80)[0])
-            if n > 0 and size == 84 + 50 * n:
-                rec = np.frombuffer(handle.read(), np.dtype([("n", "<f4", 3), ("v", "<f4", (3, 3)), ("a", "<u2")]))
-                v = rec["v"].reshape(-1, 3).astype(float)
-                return n, np.array([v.min(0), v.max(0)])
-    from ..io.meshio import load_mesh
-
-    mesh = load_mesh(path).mesh
-    return len(mesh.faces), np.asarray(mesh.bounds, float)
-
-
-def estimate_peak_mb(faces: int, bounds, settings: Settings) -> float:
-    """Estimated peak resident memory (MB) of one worker supporting a part.
-
-    Parameters
-    ----------
-    faces : int
-        Number of triangles of the input.
-    bounds : (2, 3) array_like
-        Its axis-aligned bounds, mm.
-    settings : Settings
-        Gives the pixel pitch of the layer grid.
-
-    Returns
-    -------
-    float
-        ``MEMORY_BASE_MB + MEMORY_MASK_FACTOR * mask / 2**20 + MEMORY_FACE_BYTES * faces / 2**20``
-        with ``mask = (extent_x / pixel) * (extent_y / pixel)`` bytes (one uint8 layer mask).
-
-    Notes
-    -----
-    O(1).  The constants are fitted to measured peaks (see the module
-    constants); the fit is rounded up so it errs on the safe side.
-
-    Examples
-    --------
-    A 20 x 10 mm footprint at 0.05 mm pixels is a 400 x 200 pixel mask:
-
-    >>> mb = estimate_peak_mb(1000, [[0, 0, 0], [20, 10, 5]], Settings())
-    >>> bool(mb == MEMORY_BASE_MB + (MEMORY_MASK_FACTOR * 400 * 200 + MEMORY_FACE_BYTES * 1000) / 2**20)
-    True
-    """
-    ext = np.ptp(np.asarray(bounds, float)[:, :2], axis=0)
-    mask = float(np.prod(ext / settings.printer.pixel_mm))
-    return MEMORY_BASE_MB + (MEMORY_MASK_FACTOR * mask + MEMORY_FACE_BYTES * faces) / 2**20
-
-
-def _outputs(job: Job) -> list[Path]:
-    return [Path(job.outdir) / f"{job.name}{s}" for s in (*OUTPUT_SUFFIXES, MANIFEST_SUFFIX)]
-
-
 def discard_outputs(job: Job) -> None:
-    """Remove a file's outputs (those its manifest lists too), manifest and any temporary file a killed write left."""
-    paths = _outputs(job)
-    try:
-        listed = json.loads(paths[-1].read_text(encoding="utf-8")).get("outputs", [])
-    except (OSError, ValueError, AttributeError):
-        listed = []
-    for p in [*paths, *(paths[-1].parent / Path(n).name for n in listed if n.startswith(f"{job.name}."))]:
-        p.unlink(missing_ok=True)
-        for tmp in p.parent.glob(f".{p.name}.*.tmp"):
-            tmp.unlink(missing_ok=True)
+    """Remove what a stopped or failed job left unfinished: the temporary files of its set.
+
+    Its previous committed set, if any, is left as it was (it is whole: see the module notes).
+    Names are compared as strings, never turned into a glob.
+    """
+    remove_temps(job.outdir, job.files)
 
 
 def _row(job: Job, report: dict, status: str, seconds: float, reason: str = "") -> FileResult:
     ver = report["verification"]
     if not reason and not ver["passed"]:
         reason = "check failed: " + "; ".join(ver.get("failures", [])[:3])
-    return FileResult(job.rel, status, reason, int(report["supports"]["contacts"]),
-                      round(float(report["supports"]["volume_mm3"]), 3), bool(ver["passed"]), round(seconds, 3))
+    return FileResult(job.rel, status, reason or job.note, int(report["supports"]["contacts"]),
+                      round(float(report["supports"]["volume_mm3"]), 3), bool(ver["passed"]), round(seconds, 3),
+                      peak_force_n=round(float(report["forces"]["peak_layer_force_n"]), 4))
 
 
-def _peak_mb() -> float | None:
-    """Peak resident memory of this process so far, MB (None where ``resource`` is missing)."""
-    try:
-        import resource
-    except ImportError:
+class _Late(Exception):
+    """A job finished after its time limit: its set is not committed."""
+
+
+def _refusal(job: Job, t0: float) -> FileResult | None:
+    """The ``refused`` row when the memory estimate is over the job's limit, else None."""
+    if job.memory_limit_mb is None:
         return None
-    kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    return round(kb / (1024**2 if sys.platform == "darwin" else 1024), 1)     # bytes on macOS, KiB elsewhere
+    faces, bounds = mesh_footprint(job.source, job.settings)
+    need = estimate_peak_mb(faces, bounds, job.settings)
+    if need <= job.memory_limit_mb:
+        return None
+    return FileResult(job.rel, "refused", f"{job.rel}: needs about {need:.0f} MB ({faces} faces, "
+                      f"{np.ptp(bounds[:, 0]):.1f} x {np.ptp(bounds[:, 1]):.1f} mm at "
+                      f"{job.settings.printer.pixel_mm} mm pixels), over the {job.memory_limit_mb:g} MB "
+                      "limit; raise --memory-limit or use coarser pixels", seconds=round(time.perf_counter() - t0, 3))
+
+
+def _manifest(job: Job, input_sha: str, row: FileResult):
+    """The manifest's producer: a function of the staged files of the set (see ``commit_set``)."""
+    def make(staged) -> bytes:
+        doc = {"input": job.rel, "input_sha256": input_sha,
+               "settings_sha256": settings_hash(job.settings, job.strategy), "strategy": job.strategy,
+               "outputs": [o.to_dict() for o in staged.values()],
+               **{k: row.to_dict()[k] for k in SUMMARY_FIELDS[3:7]}}
+        return (json.dumps(doc, indent=1, sort_keys=True) + "\n").encode("utf-8")
+    return make
 
 
 def run_job(job: Job) -> FileResult:
-    """Support one file and save its outputs and manifest (runs in a worker).
+    """Support one file and commit its outputs and manifest as one set (runs in a worker).
 
     Returns
     -------
     FileResult
-        ``ok``, ``failed`` (the one-line :class:`SupportGenError` message, or
-        ``internal error: ...``) or ``refused`` (memory guard).
+        ``ok``, ``failed`` (the one-line :class:`SupportGenError` or OS error message, or
+        ``internal error: ...``), ``refused`` (memory guard) or ``timeout`` (finished past
+        ``job.timeout_s`` counted from this call: nothing saved).
 
     Notes
     -----
     Errors are returned, not raised, so that one file cannot stop a batch.
     """
     t0 = time.perf_counter()
+    deadline = time.monotonic() + job.timeout_s if job.timeout_s else None
+
+    def in_time() -> None:
+        if deadline is not None and time.monotonic() > deadline:
+            raise _Late
+
     try:
         from .. import pipeline
-        from ..io.meshio import atomic_write_text
 
         input_sha = file_hash(job.source)
-        if job.memory_limit_mb is not None:
-            faces, bounds = mesh_footprint(job.source)
-            need = estimate_peak_mb(faces, bounds, job.settings)
-            if need > job.memory_limit_mb:
-                discard_outputs(job)
-                return FileResult(job.rel, "refused", f"{job.rel}: needs about {need:.0f} MB ({faces} faces, "
-                                  f"{np.ptp(bounds[:, 0]):.1f} x {np.ptp(bounds[:, 1]):.1f} mm at "
-                                  f"{job.settings.printer.pixel_mm} mm pixels), over the {job.memory_limit_mb:g} MB "
-                                  "limit; raise --memory-limit or use coarser pixels",
-                                  seconds=round(time.perf_counter() - t0, 3))
+        refused = _refusal(job, t0)
+        if refused is not None:
+            return refused
         result = pipeline.generate(job.source, job.settings, strategy=job.strategy, name=job.name, progress=False)
-        if job.deadline is not None and time.time() > job.deadline:
-            return FileResult(job.rel, "timeout", "finished after its deadline; nothing saved",
-                              seconds=round(time.perf_counter() - t0, 3))
-        saved = result.save(job.outdir)
+        in_time()
         row = _row(job, result.report, "ok", time.perf_counter() - t0)
-        manifest = {"input": job.rel, "input_sha256": input_sha,
-                    "settings_sha256": settings_hash(job.settings, job.strategy), "strategy": job.strategy,
-                    "outputs": sorted(p.name for p in saved.values()), **{k: row.to_dict()[k] for k in SUMMARY_FIELDS[3:7]}}
-        atomic_write_text(_outputs(job)[-1], json.dumps(manifest, indent=1, sort_keys=True) + "\n")
-        return dataclasses.replace(row, peak_mb=_peak_mb())
+        result.save(job.outdir, extra={"manifest": (job.manifest.name, _manifest(job, input_sha, row))},
+                    before_commit=in_time)
+        return dataclasses.replace(row, peak_mb=peak_rss_mb())
+    except _Late:
+        return FileResult(job.rel, "timeout", f"took longer than {job.timeout_s:g} s; finished late, nothing saved",
+                          seconds=round(time.perf_counter() - t0, 3))
     except SupportGenError as exc:
         reason = str(exc)
+    except OSError as exc:
+        reason = os_error_line(job.source, exc, "read or write")
     except Exception as exc:  # noqa: BLE001 - a bug in one stage must not stop the batch; recorded per file
         reason = f"internal error: {type(exc).__name__}: {exc} (run `supportgen generate` on it with --debug)"
     discard_outputs(job)
-    return FileResult(job.rel, "failed", reason, seconds=round(time.perf_counter() - t0, 3), peak_mb=_peak_mb())
+    return FileResult(job.rel, "failed", reason, seconds=round(time.perf_counter() - t0, 3), peak_mb=peak_rss_mb())
 
 
 def _lost(job: Job, status: str, reason: str, seconds: float) -> FileResult:
@@ -354,42 +321,55 @@ def _lost(job: Job, status: str, reason: str, seconds: float) -> FileResult:
     return FileResult(job.rel, status, reason, seconds=seconds)
 
 
-def _up_to_date(job: Job, settings_sha: str) -> FileResult | None:
-    """The skipped row when the manifest matches the input and settings and every output exists."""
-    paths = _outputs(job)
+def _up_to_date(job: Job, settings_sha: str) -> dict | None:
+    """The manifest when it matches the input and settings and every output of the set is on disk with
+    its recorded size and sha256; else None."""
     try:
-        m = json.loads(paths[-1].read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+        m = json.loads(job.manifest.read_text(encoding="utf-8"))
+        listed = {o["file"]: o for o in m["outputs"]}
+    except (OSError, ValueError, KeyError, TypeError):
         return None
-    names = set(m.get("outputs", [])) | {p.name for p in paths[:-1]}
-    if m.get("settings_sha256") != settings_sha or not all((paths[-1].parent / n).exists() for n in names):
+    if m.get("settings_sha256") != settings_sha or not set(job.files[:-1]) <= set(listed):
         return None
-    if m.get("input_sha256") != file_hash(job.source):
-        return None
-    return FileResult(job.rel, "skipped", "outputs up to date (same input and settings)", m.get("contacts"),
-                      m.get("support_volume_mm3"), m.get("passed"), 0.0)
+    folder = Path(job.outdir)
+    for name, o in listed.items():
+        path = folder / Path(name).name
+        try:
+            if path.stat().st_size != o["bytes"] or file_hash(path) != o["sha256"]:
+                return None
+        except (OSError, KeyError, TypeError):
+            return None
+    return m if m.get("input_sha256") == file_hash(job.source) else None
 
 
-def _plan_jobs(root: Path, out: Path, rels: list[Path], settings, strategy, memory_limit_mb):
-    """Jobs in path order, plus rows for files whose output name clashes with an earlier one."""
-    jobs, clashes, seen = [], [], {}
+def _skipped(job: Job, m: dict, reason: str = "outputs up to date (same input and settings)",
+             status: str = "skipped") -> FileResult:
+    return FileResult(job.rel, status, reason, m.get("contacts"), m.get("support_volume_mm3"), m.get("passed"), 0.0)
+
+
+def _plan_jobs(root: Path, out: Path, rels: list[Path], settings, strategy, memory_limit_mb, clash="rename"):
+    """Jobs in path order with distinct output names per folder, plus ``failed`` rows for name clashes
+    when ``clash="refuse"``."""
+    jobs, clashes, folders = [], [], {}
     for rel in rels:
-        name = part_name(rel)
-        key = (rel.parent.as_posix(), name)
-        if key in seen:
-            clashes.append(FileResult(rel.as_posix(), "failed", f"{rel.as_posix()}: its outputs ({name}.*) would "
-                                      f"overwrite those of {seen[key]}; rename one of them"))
-            continue
-        seen[key] = rel.as_posix()
-        jobs.append(Job(str(root / rel), rel.as_posix(), str(out / rel.parent), name, settings, strategy,
-                        memory_limit_mb))
-    return jobs, clashes
+        folders.setdefault(rel.parent.as_posix(), []).append(rel)
+    for group in folders.values():
+        stems = [part_name(r) for r in group]
+        names = assign_names(stems, "rename")
+        for rel, stem, name in zip(group, stems, names):
+            if name != stem and clash == "refuse":
+                first = group[[s.casefold() for s in stems].index(stem.casefold())].as_posix()
+                clashes.append(FileResult(rel.as_posix(), "failed", f"{rel.as_posix()}: its outputs ({stem}.*) would "
+                                          f"overwrite those of {first}; rename one of them or use --name-clash rename"))
+                continue
+            note = f"outputs named {name}.* ({stem}.* is another input's)" if name != stem else ""
+            jobs.append(Job(str(root / rel), rel.as_posix(), str(out / rel.parent), name, settings, strategy,
+                            memory_limit_mb, note=note))
+    return sorted(jobs, key=lambda j: j.rel), clashes
 
 
 def write_summary(summary: BatchSummary, meta: dict) -> None:
     """Write ``batch-summary.csv`` and ``batch-summary.json`` atomically."""
-    from ..io.meshio import atomic_write_text
-
     rows = [r.to_dict() for r in summary.results]
     buf = io.StringIO()
     writer = csv.DictWriter(buf, fieldnames=SUMMARY_FIELDS, lineterminator="\n")
@@ -399,12 +379,62 @@ def write_summary(summary: BatchSummary, meta: dict) -> None:
     doc = {**meta, "interrupted": summary.interrupted, "pending": summary.pending, "counts": summary.counts,
            "exit_code": summary.exit_code, "files": rows}
     atomic_write_text(summary.json_path, json.dumps(doc, indent=1) + "\n")
+    atomic_write_text(summary.output_dir / "index.html", batch_index(
+        [{"name": r["file"], "page": (Path(r["file"]).parent / f"{part_name(r['file'])}.report.html").as_posix()
+          if r["contacts"] is not None else None, "status": r["status"], "reason": r["reason"],
+          "peak_force_n": r["peak_force_n"], "contacts": r["contacts"], "volume_mm3": r["support_volume_mm3"],
+          "time_s": r["seconds"]} for r in rows], title=f"Batch: {summary.output_dir.name}"))
+
+
+def _check_folders(root: Path, out: Path, workers, clash) -> bool:
+    """Usage checks before any work; True when the output folder lies inside the input folder."""
+    if workers is not None and workers < 1:
+        raise SupportGenError(f"batch: workers={workers}; give 1 or more worker processes")
+    if clash not in CLASH_MODES:
+        raise SupportGenError(f"batch: name_clash={clash!r}; give one of {', '.join(CLASH_MODES)}")
+    if root.resolve() == out.resolve():
+        raise SupportGenError(f"batch: output folder {out} is the input folder; outputs would be read back as "
+                              "inputs next time: give another -o folder")
+    return out.resolve().is_relative_to(root.resolve())
+
+
+def _execute(todo: list[Job], client, workers, timeout_s, record) -> tuple[bool, BaseException | None]:
+    """Run the jobs on the chosen engine; (interrupted, exception to re-raise after the summary)."""
+    try:
+        if client is not None:
+            run_dask(todo, client, timeout_s, record, run=run_job, discard=discard_outputs, lost=_lost)
+        else:
+            run_local(todo, workers or os.cpu_count() or 1, timeout_s, record, run=run_job,
+                      discard=discard_outputs, lost=_lost)
+    except KeyboardInterrupt:
+        return True, None
+    except Exception as exc:  # noqa: BLE001 - write the summary of what finished, then re-raise
+        return True, exc
+    return False, None
+
+
+def _progress(total: int, done: list, enabled: bool, on_result):
+    """A tqdm bar and the ``record`` callback that appends a row, moves the bar and calls ``on_result``."""
+    from tqdm import tqdm
+
+    bar = tqdm(total=total, desc="supportgen batch", unit="part", disable=not enabled, dynamic_ncols=True)
+    bar.update(len(done))
+
+    def record(row: FileResult) -> None:
+        done.append(row)
+        bar.update(1)
+        bar.set_postfix(done=sum(not r.bad for r in done), failed=sum(r.bad for r in done))
+        if on_result is not None:
+            on_result(row)
+
+    return bar, record
 
 
 def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings | None = None, *,
               strategy: str = DEFAULT_STRATEGY, workers: int | None = None, cluster=None, resume: bool = False,
               pattern: str | None = None, timeout_s: float | None = None, memory_limit_mb: float | None = None,
-              progress: bool = True, on_result: Callable[[FileResult], None] | None = None) -> BatchSummary:
+              progress: bool = True, on_result: Callable[[FileResult], None] | None = None,
+              name_clash: str = "rename", wait_s: float | None = 0.0) -> BatchSummary:
     """Support every mesh under ``input_dir`` into a mirrored tree under ``output_dir``.
 
     Parameters
@@ -421,7 +451,7 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
         A Dask scheduler address (``tcp://host:port``) or an object with a
         ``scheduler_address`` (e.g. ``distributed.LocalCluster``).
     resume : bool
-        Skip files whose manifest matches (see the module notes).
+        Skip files whose manifest and outputs match (see the module notes).
     pattern : str, optional
         Glob on the relative path or the file name.
     timeout_s : float, optional
@@ -434,77 +464,80 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
         Called in this process with each :class:`FileResult` as it arrives; an
         exception it raises stops the batch like Ctrl-C (KeyboardInterrupt) or
         propagates after the summary is written.
+    name_clash : {"rename", "refuse"}
+        Inputs of one folder whose output names collide: distinct names, or ``failed``.
+    wait_s : float, optional
+        Another run holds the output folder: wait this long (None: without limit), then refuse.
 
     Returns
     -------
     BatchSummary
         Also written to ``batch-summary.csv`` and ``.json`` in ``output_dir``.
-        On Ctrl-C the running files are stopped and discarded, the summary of
-        what finished is written and ``interrupted`` is True (exit code 130).
+        On SIGINT or SIGTERM (in the main thread) the running files are stopped
+        and their unfinished sets discarded, the summary of what finished is
+        written and ``interrupted`` is True (exit code 130).
 
     Raises
     ------
     SupportGenError
         Missing input folder, unknown strategy, bad worker count, Dask missing
-        or unreachable, or worker processes that cannot start.
+        or unreachable, worker processes that cannot start; an output folder that
+        is a file, not writable, or in use by another run; an output that would
+        replace an input.
 
     Notes
     -----
     Wall time ~ sum of the per-file times / workers; parent memory O(files).
     """
-    from tqdm import tqdm
-
     from ..supports.strategies import get_strategy
 
     settings = settings if settings is not None else Settings()
     get_strategy(strategy)
-    if workers is not None and workers < 1:
-        raise SupportGenError(f"batch: workers={workers}; give 1 or more worker processes")
     root, out = Path(input_dir), Path(output_dir)
-    if root.resolve() == out.resolve():
-        raise SupportGenError(f"batch: output folder {out} is the input folder; outputs would be read back as "
-                              "inputs next time: give another -o folder")
-    inside = out.resolve().is_relative_to(root.resolve())
+    inside = _check_folders(root, out, workers, name_clash)
     rels = discover(root, pattern, exclude=out if inside else None)
+    jobs, results = _plan_jobs(root, out, rels, settings, strategy, memory_limit_mb, name_clash)
+    refuse_overwrites([Path(j.outdir) / n for j in jobs for n in j.files], [root / r for r in rels])
+    prepare_folder(out)
     client = dask_client(cluster) if cluster is not None else None
-    out.mkdir(parents=True, exist_ok=True)
-    jobs, results = _plan_jobs(root, out, rels, settings, strategy, memory_limit_mb)
     sha = settings_hash(settings, strategy)
-    todo = []
-    for job in jobs:
-        row = _up_to_date(job, sha) if resume else None
-        (results.append(row) if row else todo.append(job))
-    bar = tqdm(total=len(rels), desc="supportgen batch", unit="part", disable=not progress, dynamic_ncols=True)
-    bar.update(len(results))
-
-    def record(row: FileResult) -> None:
-        results.append(row)
-        bar.update(1)
-        bar.set_postfix(done=sum(not r.bad for r in results), failed=sum(r.bad for r in results))
-        if on_result is not None:
-            on_result(row)
-
-    interrupted, raised = False, None
     try:
-        if client is not None:
-            run_dask(todo, client, timeout_s, record, run=run_job, discard=discard_outputs, lost=_lost)
-        else:
-            run_local(todo, workers or os.cpu_count() or 1, timeout_s, record, run=run_job,
-                      discard=discard_outputs, lost=_lost)
-    except KeyboardInterrupt:
-        interrupted = True
-    except Exception as exc:  # noqa: BLE001 - write the summary of what finished, then re-raise
-        interrupted, raised = True, exc
+        with FolderLock(out, wait_s=wait_s), stop_on_signals():
+            clean_temps(out, recursive=True)      # left by a killed run; the lock says none is running
+            summary, raised = _run_locked(jobs, results, client, sha, out, root, strategy, workers,
+                                          resume, timeout_s, progress, on_result)
     finally:
-        bar.close()
         if client is not None:
             client.close()
+    if raised is not None:
+        raise raised
+    return summary
+
+
+def _run_locked(jobs, results, client, sha, out, root, strategy, workers, resume, timeout_s, progress, on_result):
+    """The batch proper, with the output folder locked: resume, run, write the summary."""
+    total, todo = len(jobs) + len(results), []
+    for job in jobs:
+        m = _up_to_date(job, sha) if resume else None
+        (results.append(_skipped(job, m)) if m else todo.append(job))
+    if client is not None and timeout_s:
+        todo = [dataclasses.replace(j, timeout_s=timeout_s) for j in todo]
+    bar, record = _progress(total, results, progress, on_result)
+    try:
+        interrupted, raised = _execute(todo, client, workers, timeout_s, record)
+    finally:
+        bar.close()
     done = {r.file for r in results}
+    if interrupted:
+        # A set committed just as the batch stopped is complete (its manifest and hashes say so): count it done.
+        for job in todo:
+            m = None if job.rel in done else _up_to_date(job, sha)
+            if m:
+                results.append(_skipped(job, m, "outputs complete (saved as the batch was stopped)", "ok"))
+        done = {r.file for r in results}
     summary = BatchSummary(tuple(sorted(results, key=lambda r: r.file)), out, interrupted,
                            sum(j.rel not in done for j in todo))
     write_summary(summary, {"input_dir": str(root), "output_dir": str(out), "strategy": strategy,
                             "settings_sha256": sha, "engine": "dask" if client is not None else "local",
                             "workers": None if client is not None else (workers or os.cpu_count())})
-    if raised is not None:
-        raise raised
-    return summary
+    return summary, raised

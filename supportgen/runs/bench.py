@@ -25,17 +25,14 @@ about twofold, so the stage times then overstate.
 from __future__ import annotations
 
 import csv
-import ctypes
 import dataclasses
 import io
 import json
 import math
 import os
-import resource
 import sys
 import time
-import tracemalloc
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -45,11 +42,11 @@ from ..errors import SettingsError, SupportGenError
 from ..io.meshio import READ_FORMATS, atomic_write, atomic_write_text, load_mesh, part_name
 from ..settings import Settings
 from ..supports.strategies import get_strategy
+from .memory import MEMORY_METHODS, measure_peak
 
 __all__ = ["BenchTable", "MEMORY_METHODS", "REPORT_COLUMNS", "STAGES", "find_models", "measure_peak",
            "report_row", "baseline_ratios", "run_bench", "grid_settings", "machine_line"]
 
-MEMORY_METHODS = ("rss", "tracemalloc")
 #: Pipeline stages in the order they run; a stage a report adds later goes after them.
 STAGES = ("load", "placement", "overhangs", "contacts", "layers", "forces", "routing", "sizing", "geometry",
           "verify")
@@ -142,79 +139,6 @@ def find_models(folder: str | Path) -> list[tuple[str, Path]]:
         raise SupportGenError(f"{folder}: no model files; put {', '.join(READ_FORMATS)} files in it")
     stems = [part_name(p) for p in files]
     return [(s if stems.count(s) == 1 else f"{s}_{p.suffix[1:].lower()}", p) for s, p in zip(stems, files)]
-
-
-def _rss_kb(field: str) -> int | None:
-    try:
-        with open("/proc/self/status", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith(field + ":"):
-                    return int(line.split()[1])
-    except OSError:
-        return None
-    return None
-
-
-def _trim_heap() -> None:
-    """Hand free heap pages back to the system (glibc ``malloc_trim``), so that a run reusing
-    memory freed by an earlier one still shows as resident-set growth; a no-op elsewhere."""
-    try:
-        ctypes.CDLL(None).malloc_trim(0)
-    except (OSError, AttributeError):
-        pass
-
-
-def measure_peak(fn: Callable[[], object], method: str = "rss") -> tuple[object, float, str]:
-    """Call ``fn()`` and measure its peak memory.
-
-    Parameters
-    ----------
-    fn : callable
-        Called once, without arguments.
-    method : {"rss", "tracemalloc"}
-        See the module notes.
-
-    Returns
-    -------
-    value : object
-        What ``fn`` returned.
-    peak_mb : float
-        Peak memory in MB (10^6 bytes).
-    used : str
-        The method actually used: ``"tracemalloc"``, ``"rss-hwm"`` or, where the
-        high-water mark cannot be reset, ``"ru_maxrss-delta"``.
-
-    Raises
-    ------
-    SettingsError
-        Unknown ``method``; the message lists the valid ones.
-    """
-    if method not in MEMORY_METHODS:
-        raise SettingsError(f"unknown memory method '{method}'; valid methods: {', '.join(MEMORY_METHODS)}")
-    if method == "tracemalloc":
-        tracemalloc.start()
-        try:
-            value = fn()
-            peak = tracemalloc.get_traced_memory()[1]
-        finally:
-            tracemalloc.stop()
-        return value, peak / 1e6, "tracemalloc"
-    _trim_heap()
-    before = _rss_kb("VmRSS")
-    try:
-        with open("/proc/self/clear_refs", "w", encoding="ascii") as fh:
-            fh.write("5")  # resets VmHWM to the current RSS (proc(5))
-        reset = before is not None
-    except OSError:
-        reset = False
-    if reset:
-        value = fn()
-        return value, max(0, (_rss_kb("VmHWM") or 0) - before) * 1024 / 1e6, "rss-hwm"
-    start = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    value = fn()
-    # ru_maxrss is in KiB on Linux, bytes on macOS.
-    unit = 1 if sys.platform == "darwin" else 1024
-    return value, (resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - start) * unit / 1e6, "ru_maxrss-delta"
 
 
 def _stage_order(timings: Sequence[dict]) -> list[str]:
