@@ -171,6 +171,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     batch_cmd.add_parser(sub, [common, strategy])
     bench_cmd.add_parser(sub, [common])
+    from . import orient as orient_cmd
+
+    orient_cmd.add_parser(sub, [common])
     return parser
 
 
