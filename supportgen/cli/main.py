@@ -58,7 +58,8 @@ def _run_generate(inputs, outdir: Path, args) -> int:
     def work(path):
         t0 = time.perf_counter()
         result = supportgen.generate(path, settings, strategy=args.strategy, centre=args.centre,
-                                     progress=not args.quiet)
+                                     progress=not args.quiet, orient=getattr(args, "orient", "keep"),
+                                     rotate=getattr(args, "rotate", None))
         result.save(outdir)
         if not args.quiet:
             print(_summary_line(result, time.perf_counter() - t0))
@@ -142,6 +143,10 @@ def build_parser() -> argparse.ArgumentParser:
     gen_opts.add_argument("--elevation", type=float, metavar="MM",
                           help="height of the part's lowest point above the plate (setting elevation_mm)")
     gen_opts.add_argument("--centre", action="store_true", help="centre each part on the plate")
+    gen_opts.add_argument("--orient", choices=("keep", "auto"), default="keep",
+                          help="keep the given orientation (default) or choose one from the physics (auto)")
+    gen_opts.add_argument("--rotate", type=float, nargs=3, metavar=("X", "Y", "Z"),
+                          help="turn each part by these degrees about x, then y, then z first")
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
     p.add_argument("inputs", nargs="+", metavar="INPUT", help="STL, OBJ, PLY or 3MF files")
