@@ -25,6 +25,7 @@ from .analysis.overhangs import find_overhangs
 from .analysis.placement import check_cures, place
 from .analysis.verify import Verification, speck_area_mm2, verify
 from .constants import OFFSET_MM
+from .errors import SettingsError
 from .io.meshio import (
     LoadedMesh,
     atomic_write,
@@ -35,7 +36,6 @@ from .io.meshio import (
     write_mesh,
 )
 from .io.units import scale_loaded, unit_factor
-from .errors import SettingsError
 from .physics.loadpath import ForceProfile, ForceTracker
 from .physics.orientation import orient as choose_orientation
 from .physics.orientation import rotation_from_angles, turn

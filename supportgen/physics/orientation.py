@@ -187,7 +187,7 @@ def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings) -> dict[str
     order = np.argsort(src, kind="stable")
     src, dst = src[order], dst[order]
     starts = np.flatnonzero(np.r_[True, src[1:] != src[:-1]])
-    edge_t = np.ascontiguousarray((vt[:, dst] - vt[:, src]))
+    edge_t = np.ascontiguousarray(vt[:, dst] - vt[:, src])
     cos_a = np.cos(np.radians(settings.rules.overhang_angle_deg))
     elev = settings.rules.elevation_mm
     out = {k: np.zeros(len(dirs)) for k in ("height_mm", "overhang_area_mm2", "minima", "support_volume_mm3")}

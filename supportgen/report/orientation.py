@@ -97,8 +97,8 @@ def plot_orientation(o: Orientation, part, title: str) -> bytes:
     ax = axes[2]
     tri = np.asarray(part.vertices)[np.asarray(part.faces)]
     shade = 0.35 + 0.6 * np.clip(np.asarray(part.face_normals) @ np.array([0.3, -0.4, 0.87]), 0, 1)
-    ax.add_collection3d(Poly3DCollection(tri, facecolors=np.column_stack([shade * 0.4, shade * 0.6, shade, np.ones_like(shade)]),
-                                         linewidths=0))
+    colours = np.column_stack([shade * 0.4, shade * 0.6, shade, np.ones_like(shade)])
+    ax.add_collection3d(Poly3DCollection(tri, facecolors=colours, linewidths=0))
     lo3, hi3 = part.bounds
     c, r = (lo3 + hi3) / 2, float((hi3 - lo3).max()) / 2
     ax.set_xlim(c[0] - r, c[0] + r)

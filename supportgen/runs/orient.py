@@ -63,7 +63,8 @@ def orient_file(source, outdir, settings: Settings | None = None, **kwargs) -> t
     paths = {role: outdir / f"{res.name}{suffix}" for role, suffix in ORIENT_OUTPUTS.items()}
     written: list[Path] = []
     try:
-        write_mesh(res.part, paths["mesh"]); written.append(paths["mesh"])
+        write_mesh(res.part, paths["mesh"])
+        written.append(paths["mesh"])
         atomic_write(paths["map"], plot_orientation(res.orientation, res.part, f"{res.name}: orientations by score"))
         written.append(paths["map"])
         atomic_write_text(paths["summary"], orientation_markdown(res.orientation, res.name, paths["map"].name))
