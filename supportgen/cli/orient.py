@@ -28,6 +28,10 @@ def add_parser(subparsers, parents) -> None:
     p.add_argument("-o", "--output", default=".", metavar="OUTDIR", help="output folder (default: here)")
     p.add_argument("--directions", type=positive(int, "a number of directions"), default=None, metavar="N",
                    help="directions spread over the sphere (setting orient_directions)")
+    p.add_argument("--units", choices=("mm", "cm", "m", "in"), default="mm",
+                   help="length unit of the files (default mm)")
+    p.add_argument("--scale", type=positive(float, "the longest side in mm as a positive number, e.g. 50"),
+                   metavar="MM", help="scale each part so its longest side is MM (for unitless meshes)")
     p.set_defaults(func=cmd_orient)
 
 
@@ -39,7 +43,8 @@ def cmd_orient(args) -> int:
     status = EXIT_OK
     for path in args.inputs:
         try:
-            res, paths = orient_file(Path(path), Path(args.output), settings, n_directions=args.directions)
+            res, paths = orient_file(Path(path), Path(args.output), settings, n_directions=args.directions,
+                                     longest_mm=args.scale, units=args.units)
         except supportgen.SupportGenError as exc:
             if args.debug:
                 raise

@@ -37,8 +37,12 @@ class Oriented:
 
 
 def orient_part(source, settings: Settings | None = None, *, name: str | None = None, units: str = "mm",
-                scale: float = 1.0, n_directions: int | None = None) -> Oriented:
-    """Load (or take) a mesh, search its orientations and place it turned as chosen."""
+                scale: float = 1.0, n_directions: int | None = None, longest_mm: float | None = None) -> Oriented:
+    """Load (or take) a mesh, search its orientations and place it turned as chosen.
+
+    ``units`` and ``scale`` as in :func:`supportgen.generate`; ``longest_mm``, when
+    given, scales the part so its longest side is that many mm (for unitless meshes).
+    """
     settings = Settings() if settings is None else settings
     if isinstance(source, trimesh.Trimesh):
         name = name or "part"
@@ -47,6 +51,8 @@ def orient_part(source, settings: Settings | None = None, *, name: str | None = 
         name = name or part_name(source)
         loaded = load_mesh(source)
     loaded = scale_loaded(loaded, unit_factor(units, scale))
+    if longest_mm is not None:
+        loaded = scale_loaded(loaded, float(longest_mm) / float(loaded.mesh.extents.max()))
     o = orient(loaded.mesh, settings, n_directions=n_directions)
     placed = place(turn(loaded.mesh, o.rotation), settings, position="centre", name=name)
     return Oriented(name, o, placed.mesh, tuple(loaded.repairs) + tuple(placed.warnings))
