@@ -98,6 +98,8 @@ MAX_CELLS = 1_500_000
 EXACT_LAYERS = 2
 #: Best candidates of the even set refined, and directions tried in the cap around each.
 REFINE_BEST, REFINE_EACH = 3, 30
+#: Smallest scale of a term, as a fraction of its largest value over the candidates (see :func:`orient`).
+SCALE_FLOOR = 1e-3
 _DIR_CHUNK = 16                     # directions per vectorised block of the surface terms
 
 
@@ -121,7 +123,7 @@ def rotation_to_up(d) -> np.ndarray:
     d = np.asarray(d, float)
     d = d / max(float(np.linalg.norm(d)), EPS_ZERO)
     c = float(d[2])
-    if c < -1.0 + 1e-12:
+    if c < -1.0 + EPS_ZERO:
         return np.diag([1.0, -1.0, -1.0])
     v = np.array([d[1], -d[0], 0.0])                   # d x z
     vx = np.array([[0.0, -v[2], v[1]], [v[2], 0.0, -v[0]], [-v[1], v[0], 0.0]])
@@ -461,7 +463,9 @@ def orient(mesh: trimesh.Trimesh, settings=None, *, n_directions: int | None = N
     dirs = np.vstack([[0.0, 0.0, 1.0], fibonacci_sphere(n)])
     terms = score_directions(mesh, dirs, settings, pixel_mm)
     weights = {k: float(getattr(o, WEIGHTS[k])) for k in TERMS}
-    scales = {k: max(float(np.median(terms[k])), float(np.abs(terms[k]).max()) * 1e-3, EPS_SMALL) for k in TERMS}
+    # A term zero for most directions (minima of a convex part) is scaled by a thousandth of its largest value.
+    scales = {k: max(float(np.median(terms[k])), float(np.abs(terms[k]).max()) * SCALE_FLOOR, EPS_SMALL)
+              for k in TERMS}
     # A cup is measured against a layer's area: most directions have none, so its own median would be 0.
     scales["cup_area_mm2"] = max(float(np.median(terms["peak_area_mm2"])), EPS_SMALL)
     total = _totals(terms, weights, scales)
