@@ -11,6 +11,7 @@ The Python API::
     result.report                        # the same dict as NAME.report.json
     result.save("outdir/")
     supportgen.check(mesh, settings)     # verify any supported mesh
+    supportgen.orient(mesh, settings)    # score up-directions, choose how the part stands
 """
 
 from .errors import GeometryError, MeshError, OutputError, PlacementError, SettingsError, SupportGenError
@@ -28,9 +29,13 @@ def __getattr__(name):
         from . import pipeline
 
         return getattr(pipeline, name)
+    if name == "orient":
+        from .physics.orientation import orient
+
+        return orient
     raise AttributeError(f"module 'supportgen' has no attribute {name!r}")
 
 __all__ = [
-    "generate", "check", "Result", "Settings", "load_settings", "PROFILES", "STRATEGIES", "Contacts",
+    "generate", "check", "orient", "Result", "Settings", "load_settings", "PROFILES", "STRATEGIES", "Contacts",
     "SupportPlan", "SupportGenError", "SettingsError", "MeshError", "PlacementError", "GeometryError", "OutputError",
 ]

@@ -12,6 +12,7 @@ too far, contacts are added there and the plan rebuilt, at most twice) -> report
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -25,12 +26,14 @@ from .analysis.overhangs import find_overhangs
 from .analysis.placement import check_cures, place
 from .analysis.verify import Verification, speck_area_mm2, verify
 from .constants import OFFSET_MM
-from .errors import SupportGenError
+from .errors import SettingsError, SupportGenError
 from .io.budget import check_memory
 from .io.meshio import LoadedMesh, load_mesh, mesh_bytes, part_name, prepare_mesh
 from .io.outputs import commit_set, prepare_folder
 from .io.units import scale_loaded, unit_factor
 from .physics.loadpath import ForceProfile, ForceTracker
+from .physics.orientation import orient as choose_orientation
+from .physics.orientation import rotation_from_angles, turn
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
@@ -54,6 +57,8 @@ OUTPUTS = {"combined": ".supported.stl", "supports": ".supports.stl", "report": 
 DEFAULT_STRATEGY = "tree"
 MAX_DENSIFY_ROUNDS = 4
 MAX_REPAIR_ROUNDS = 4
+#: ``generate(orient=...)``: keep the given orientation, or choose one from the physics.
+ORIENT_CHOICES = ("keep", "auto")
 
 
 @dataclass(frozen=True)
@@ -182,6 +187,25 @@ def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Setting
                             loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
 
 
+def _orient(loaded: LoadedMesh, how: str, rotate, settings: Settings) -> tuple[LoadedMesh, dict]:
+    """The loaded part turned by ``rotate`` (degrees about x, y, z) and, for ``how="auto"``, to the
+    chosen up-direction; and the report's record ``{rotation, chosen_by}``."""
+    if how not in ORIENT_CHOICES:
+        raise SettingsError(f"orient={how!r}: choose one of {', '.join(ORIENT_CHOICES)}")
+    rot, by = np.eye(3), "given"
+    if rotate is not None:
+        angles = np.asarray(rotate, float).ravel()
+        if angles.shape != (3,) or not np.isfinite(angles).all():
+            raise SettingsError(f"rotate={rotate!r}: give three finite angles in degrees, about x, y and z")
+        rot, by = rotation_from_angles(*angles), "rotate"
+    if how == "auto":
+        found = choose_orientation(turn(loaded.mesh, rot), settings)
+        rot, by = found.rotation @ rot, ("rotate+auto" if by == "rotate" else "auto")
+    if by != "given":
+        loaded = dataclasses.replace(loaded, mesh=turn(loaded.mesh, rot))
+    return loaded, {"rotation": [[float(x) for x in row] for row in rot], "chosen_by": by}
+
+
 def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY,
              **options) -> Result:
     """Support one part end to end.
@@ -208,6 +232,12 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         Bounds (mm, after scaling) of all parts placed together, so they move as one.
     progress : bool
         Progress bars over the layer passes.
+    orient : {"keep", "auto"}
+        Keep the given orientation (default: it may be deliberate), or turn the part
+        to the up-direction :func:`supportgen.physics.orientation.orient` chooses.
+    rotate : (3,) degrees, optional
+        Turn the part about x, then y, then z (fixed axes) before anything else;
+        with ``orient="auto"`` the search starts from the turned part.
     **overrides
         Single settings by name, e.g. ``contact_spacing_mm=1.8``.
 
@@ -231,7 +261,8 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
 
 def _generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
              name: str | None = None, position: str = "auto", centre: bool = False, units: str = "mm",
-             scale: float = 1.0, group_bounds=None, progress: bool = False, **overrides) -> Result:
+             scale: float = 1.0, group_bounds=None, progress: bool = False, orient: str = "keep", rotate=None,
+             **overrides) -> Result:
     """:func:`generate` without the naming of errors."""
     t_total = time.perf_counter()
     settings = _resolve_settings(settings, overrides)
@@ -251,6 +282,9 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
         check_memory(len(loaded.mesh.faces), loaded.mesh.bounds, settings, str(loaded.source))
     with timer("placement"):
         loaded = scale_loaded(loaded, unit_factor(units, scale))
+    with timer("orient"):
+        loaded, orientation = _orient(loaded, orient, rotate, settings)
+    with timer("placement"):
         placed = place(loaded.mesh, settings, position="centre" if centre else position, name=name,
                        group_bounds=group_bounds)
         part = placed.mesh
@@ -304,7 +338,7 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
     timer.seconds["total"] = time.perf_counter() - t_total
     records = RunRecords(name, None if isinstance(source, trimesh.Trimesh) else str(source), loaded, part, settings,
                          strategy, oh.area_mm2, contacts, plan, sized, solids, profile, stack, ver, densified,
-                         repaired, timer.seconds, placed.warnings)
+                         repaired, timer.seconds, placed.warnings, orientation)
     return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, build_report(records), stack, profile, ver)
 
 

@@ -11,7 +11,7 @@ unit, its valid range and where its default comes from:
     recalled, not checked against a source: treat as a starting point.
 
 No default is a measurement of ours.  Settings are read from TOML files with
-four tables, ``[printer]``, ``[resin]``, ``[rules]`` and ``[limits]``; every key is also
+five tables, ``[printer]``, ``[resin]``, ``[rules]``, ``[limits]`` and ``[orient]``; every key is also
 accepted on its own (field names are unique across the tables), which is
 how keyword overrides work in :func:`supportgen.generate`.
 
@@ -46,6 +46,7 @@ __all__ = [
     "Resin",
     "SupportRules",
     "Limits",
+    "OrientRules",
     "Settings",
     "PROFILES",
     "MECHANISMS",
@@ -160,7 +161,44 @@ class Limits:
                           "memory one run may use; 0 means what the machine has available when it starts")
 
 
-_GROUPS = {"printer": Printer, "resin": Resin, "rules": SupportRules, "limits": Limits}
+
+@dataclass(frozen=True)
+class OrientRules:
+    """How ``supportgen orient`` searches and weighs the up-directions of a part.
+
+    Each weight multiplies its term divided by the term's median over the
+    candidates (so the weights are unitless and a weight of 0 switches the term
+    off); the reasoning behind each default is in its doc.
+    """
+
+    orient_directions: int = _f(500, 20, 20000, "", "practice",
+                                "up-directions tried, spread evenly over the sphere (Fibonacci lattice), "
+                                "before the best are refined")
+    orient_pixel_mm: float = _f(0.3, 0.05, 5.0, "mm", "practice",
+                                "pixel and layer of the coarse grid the scorer slices on (raised for large "
+                                "parts to keep the grid under a few million cells)")
+    weight_force: float = _f(3.0, 0.0, 100.0, "", "practice",
+                             "peak layer separation force: it tears parts off their supports and is what "
+                             "this tool sizes supports from, so it weighs most")
+    weight_near_peak: float = _f(0.5, 0.0, 100.0, "", "practice",
+                                 "layers within orient_near_fraction of the peak force: many near-peak layers "
+                                 "load the same tips again and again (fatigue), a lesser concern")
+    weight_cup: float = _f(3.0, 0.0, 100.0, "", "practice",
+                           "largest sealed cavity area facing the film (suction cup): it multiplies the force "
+                           "and traps resin, a common cause of failed prints")
+    weight_overhang: float = _f(1.0, 0.0, 100.0, "", "practice",
+                                "overhang area: contacts needed, so scars on the surface")
+    weight_minima: float = _f(0.5, 0.0, 100.0, "", "practice",
+                              "local minima: each needs a contact of its own")
+    weight_volume: float = _f(1.0, 0.0, 100.0, "", "practice",
+                              "support volume estimate: resin used and removal work")
+    weight_height: float = _f(1.0, 0.0, 100.0, "", "practice",
+                              "print height: layers, so print time")
+    orient_near_fraction: float = _f(0.9, 0.1, 1.0, "", "practice",
+                                     "a layer is near the peak when its force is at least this fraction of it")
+
+
+_GROUPS = {"printer": Printer, "resin": Resin, "rules": SupportRules, "limits": Limits, "orient": OrientRules}
 
 #: Older names still read for one release, with a FutureWarning: old -> new.
 #: ``lift_mm`` read like the plate's motion between layers; ``max_reach_mm`` like
@@ -213,12 +251,13 @@ def _check_value(name: str, f: dataclasses.Field, value: Any) -> Any:
 
 @dataclass(frozen=True)
 class Settings:
-    """All settings of one run: ``printer``, ``resin`` and the support ``rules``."""
+    """All settings of one run: ``printer``, ``resin``, the support ``rules`` and how to ``orient``."""
 
     printer: Printer = field(default_factory=Printer)
     resin: Resin = field(default_factory=Resin)
     rules: SupportRules = field(default_factory=SupportRules)
     limits: Limits = field(default_factory=Limits)
+    orient: OrientRules = field(default_factory=OrientRules)
 
     def __post_init__(self):
         for group in _GROUPS:

@@ -85,13 +85,16 @@ def _run_generate(inputs, outdir: Path, args) -> int:
     saved: list[str] = []
     position = "centre" if args.centre else args.position
     factor = unit_factor(args.units, args.scale)
-    together = group_bounds(inputs, factor) if position == "auto" else None
+    turned = getattr(args, "orient", "keep") != "keep" or getattr(args, "rotate", None) is not None
+    # Parts keep their arrangement only as given: a part turned on its own has no common frame.
+    together = group_bounds(inputs, factor) if position == "auto" and not turned else None
 
     def work(path):
         t0 = time.perf_counter()
         result = supportgen.generate(path, settings, strategy=args.strategy, position=position, units=args.units,
                                      scale=args.scale, group_bounds=together, progress=not args.quiet,
-                                     name=names[str(path)])
+                                     name=names[str(path)], orient=getattr(args, "orient", "keep"),
+                                     rotate=getattr(args, "rotate", None))
         result.save(outdir)
         saved.append(str(path))
         if not args.quiet:
@@ -199,6 +202,10 @@ def build_parser() -> argparse.ArgumentParser:
     gen_opts.add_argument("--wait", type=nonnegative_seconds, default=0.0, metavar="SECONDS",
                           help="if another run is writing to the output folder, wait up to SECONDS for it "
                                "(default: refuse at once)")
+    gen_opts.add_argument("--orient", choices=("keep", "auto"), default="keep",
+                          help="keep the given orientation (default) or choose one from the physics (auto)")
+    gen_opts.add_argument("--rotate", type=float, nargs=3, metavar=("X", "Y", "Z"),
+                          help="turn each part by these degrees about x, then y, then z first")
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
     p.add_argument("inputs", nargs="+", metavar="INPUT", help="STL, OBJ, PLY or 3MF files")
@@ -228,6 +235,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     batch_cmd.add_parser(sub, [common, strategy])
     bench_cmd.add_parser(sub, [common])
+    from . import orient as orient_cmd
+
+    orient_cmd.add_parser(sub, [common])
     return parser
 
 

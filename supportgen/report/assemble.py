@@ -51,6 +51,8 @@ class RunRecords:
     contacts_added_after_check: int
     timing_s: dict
     placement_warnings: tuple[str, ...] = ()
+    #: ``{rotation: 3x3, chosen_by: given|rotate|auto|rotate+auto}``: how the input was turned.
+    orientation: dict | None = None
 
 
 def collect_warnings(r: RunRecords) -> list[dict]:
@@ -132,6 +134,7 @@ def build_report(r: RunRecords) -> dict:
         "estimates": {"layers": layers, "print_time_s": layers * pr.layer_cycle_s, "resin_ml": volume_ml,
                       "resin_g": volume_ml * r.settings.resin.density_g_cm3,
                       "resin_cost": volume_ml / 1000.0 * r.settings.resin.price_per_l},
+        "orientation": r.orientation or {"rotation": np.eye(3).tolist(), "chosen_by": "given"},
         "timing_s": dict(r.timing_s),
         "warnings": collect_warnings(r),
         "provenance": provenance(r.settings, r.source_path),

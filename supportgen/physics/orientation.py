@@ -1,0 +1,492 @@
+"""Orientation: choose how a part stands on the plate from the physics of printing it.
+
+Every candidate is an *up-direction* ``d`` in the part's own frame: the part is
+turned by the shortest rotation that takes ``d`` to build +z (away from the
+plate; :func:`rotation_to_up`).  Candidates are spread evenly over the whole
+sphere by a Fibonacci lattice (:func:`fibonacci_sphere`), the given orientation
+(``d = +z``) is always one of them, and the best few are refined in a cap of
+one lattice spacing around each.  Each candidate is scored on terms in
+physical units (:data:`TERMS`):
+
+``peak_force_n``
+    the largest layer separation force, from the project's law
+    (:func:`supportgen.physics.separation.separation` on a :class:`LayerShape`);
+``near_peak_layers``
+    layers whose force is at least ``orient_near_fraction`` of that peak;
+``cup_area_mm2``
+    the largest sealed cavity of a layer facing the film (a suction cup: empty
+    pixels enclosed in the layer and closed below, as in
+    :func:`supportgen.physics.pressure.sealed_cavities`);
+``overhang_area_mm2``, ``minima``
+    down-facing area tilted less than the critical angle from horizontal, and
+    strict local minima of height (each needs a contact), the rules of
+    :mod:`supportgen.analysis.overhangs`;
+``support_volume_mm3``
+    the volume under the overhang faces down to the plate (projected area times
+    height above the plate, including the elevation), the support-volume measure
+    of Ezair, Massarwi and Elber, "Orientation analysis of 3D objects toward
+    minimal support volume in 3D-printing", Computers & Graphics 51 (2015),
+    without their occlusion step (so it errs high where the part shades itself);
+``height_mm``
+    print height, so layers and time.
+
+The total is ``sum_i w_i t_i / median(t_i)`` over the first, even set of
+candidates (so the weights are unitless and a term's scale does not matter);
+the weights and their reasoning are in :class:`supportgen.settings.OrientRules`.
+The Pareto-optimal candidates (no other is at least as good in every weighted
+term and better in one) are listed so that a user can pick another.
+
+Layer grid and its error
+------------------------
+The layer terms slice the turned part on a coarse grid: pixel and layer both
+``pixel_mm`` (:func:`scoring_pixel`: ``orient_pixel_mm``, raised so the grid
+over the part's bounding sphere stays under :data:`MAX_CELLS`).  A pixel is
+cured when its centre is inside (the rasteriser of
+:mod:`supportgen.analysis.raster`), so every layer's outline is within half a
+pixel of the true section: its area is within ``perimeter * pixel_mm / 2`` of
+the exact section at the sampled height (:func:`area_error_bound`), and the
+sampled height is within half a layer of any given plane.  The force of each
+component uses Saint-Venant's estimate of the torsion constant,
+``J ~ A^4 / (4 pi^2 I_p)`` (exact for an ellipse, +8 % for a square, -6 % for a
+thin strip; S. P. Timoshenko and J. N. Goodier, Theory of Elasticity, 3rd ed.,
+1970, torsion chapter), and the :data:`EXACT_LAYERS` layers with the largest
+estimated force are solved exactly on the coarse grid
+(:func:`supportgen.physics.pressure.solve_components`, 2 % bound), so the peak
+is the exact coarse value unless the estimate misranks layers by more than its
+own error.  Since ``J`` grows as ``A^2`` for a fixed shape, the peak force is
+within about twice the relative area bound plus 2 %.
+
+Examples
+--------
+>>> d = fibonacci_sphere(500)
+>>> d.shape, bool(np.allclose(np.linalg.norm(d, axis=1), 1.0))
+((500, 3), True)
+>>> r = rotation_to_up(np.array([1.0, 0.0, 0.0]))
+>>> (r @ [1.0, 0.0, 0.0]).round(12).tolist()
+[0.0, 0.0, 1.0]
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import trimesh
+from scipy import ndimage
+
+from ..analysis.layers import Grid
+from ..analysis.raster import layer_count, ray_crossings
+from ..constants import EPS_SMALL, EPS_ZERO
+from ..errors import MeshError, SettingsError
+from .pressure import solve_components
+from .separation import READS_LABELS, LayerShape, separation
+
+__all__ = ["TERMS", "WEIGHTS", "MAX_CELLS", "EXACT_LAYERS", "Orientation", "LayerProfile", "fibonacci_sphere",
+           "rotation_to_up", "rotation_from_angles", "scoring_pixel", "area_error_bound", "surface_terms",
+           "layer_profile", "score_directions", "pareto_front", "orient", "turn"]
+
+#: Score terms, in physical units, and the weight setting of each.
+TERMS = ("peak_force_n", "near_peak_layers", "cup_area_mm2", "overhang_area_mm2", "minima",
+         "support_volume_mm3", "height_mm")
+WEIGHTS = {"peak_force_n": "weight_force", "near_peak_layers": "weight_near_peak", "cup_area_mm2": "weight_cup",
+           "overhang_area_mm2": "weight_overhang", "minima": "weight_minima",
+           "support_volume_mm3": "weight_volume", "height_mm": "weight_height"}
+#: Cells (layers x rows x columns over the part's bounding sphere) the scoring grid may have:
+#: a few million keeps one candidate to tens of milliseconds (benchmarks/bench_orient.py).
+MAX_CELLS = 1_500_000
+#: Layers per candidate whose torsion constant is solved exactly (the rest use the estimate).
+EXACT_LAYERS = 2
+#: Best candidates of the even set refined, and directions tried in the cap around each.
+REFINE_BEST, REFINE_EACH = 3, 30
+#: Smallest scale of a term, as a fraction of its largest value over the candidates (see :func:`orient`).
+SCALE_FLOOR = 1e-3
+_DIR_CHUNK = 16                     # directions per vectorised block of the surface terms
+
+
+def fibonacci_sphere(n: int) -> np.ndarray:
+    """``n`` unit vectors spread evenly over the sphere (Fibonacci lattice), (n, 3).
+
+    Point ``i`` has ``z = 1 - (2 i + 1) / n`` and longitude ``i`` times the golden
+    angle ``pi (3 - sqrt 5)``: equal areas in z, so even on the sphere (Archimedes).
+    """
+    if n < 1:
+        raise SettingsError(f"orientation: {n} directions asked for; ask for at least 1")
+    i = np.arange(n) + 0.5
+    z = 1.0 - 2.0 * i / n
+    r = np.sqrt(np.clip(1.0 - z * z, 0.0, None))
+    phi = i * np.pi * (3.0 - np.sqrt(5.0))
+    return np.column_stack([r * np.cos(phi), r * np.sin(phi), z])
+
+
+def rotation_to_up(d) -> np.ndarray:
+    """The shortest rotation (3, 3) taking unit vector ``d`` to +z (Rodrigues); half a turn about x for -z."""
+    d = np.asarray(d, float)
+    d = d / max(float(np.linalg.norm(d)), EPS_ZERO)
+    c = float(d[2])
+    if c < -1.0 + EPS_ZERO:
+        return np.diag([1.0, -1.0, -1.0])
+    v = np.array([d[1], -d[0], 0.0])                   # d x z
+    vx = np.array([[0.0, -v[2], v[1]], [v[2], 0.0, -v[0]], [-v[1], v[0], 0.0]])
+    return np.eye(3) + vx + vx @ vx / (1.0 + c)
+
+
+def rotation_from_angles(rx: float, ry: float, rz: float) -> np.ndarray:
+    """Rotation (3, 3) turning a part by ``rx``, then ``ry``, then ``rz`` degrees about the fixed x, y, z axes.
+
+    >>> rotation_from_angles(90, 0, 0).round(12) @ [0, 0, 1]
+    array([ 0., -1.,  0.])
+    """
+    a = np.radians([rx, ry, rz])
+    c, s = np.cos(a), np.sin(a)
+    x = np.array([[1, 0, 0], [0, c[0], -s[0]], [0, s[0], c[0]]])
+    y = np.array([[c[1], 0, s[1]], [0, 1, 0], [-s[1], 0, c[1]]])
+    z = np.array([[c[2], -s[2], 0], [s[2], c[2], 0], [0, 0, 1]])
+    return z @ y @ x
+
+
+def turn(mesh: trimesh.Trimesh, rotation) -> trimesh.Trimesh:
+    """A copy of ``mesh`` turned by ``rotation`` (3, 3) about the origin."""
+    t = np.eye(4)
+    t[:3, :3] = np.asarray(rotation, float)
+    out = mesh.copy()
+    out.apply_transform(t)
+    return out
+
+
+def scoring_pixel(mesh: trimesh.Trimesh, settings) -> float:
+    """Pixel (and layer) of the scoring grid: ``orient_pixel_mm``, raised so a cube around the
+    part's bounding sphere has at most :data:`MAX_CELLS` cells."""
+    diag = float(np.linalg.norm(mesh.extents))
+    return max(settings.orient.orient_pixel_mm, diag / MAX_CELLS ** (1.0 / 3.0))
+
+
+def area_error_bound(perimeter_mm: float, pixel_mm: float) -> float:
+    """Largest difference (mm^2) between a layer's pixel area and its exact section: the outline
+    is within half a pixel, so at most ``perimeter * pixel / 2``."""
+    return perimeter_mm * pixel_mm / 2.0
+
+
+def _check_mesh(mesh) -> None:
+    if not isinstance(mesh, trimesh.Trimesh) or len(mesh.faces) == 0:
+        raise MeshError("orientation: the mesh has no faces; load a closed triangle mesh first")
+
+
+def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings) -> dict[str, np.ndarray]:
+    """Height, overhang area, strict local minima and support volume for many up-directions at once.
+
+    Vectorised over blocks of directions: O(F K) for F faces and K directions.
+    Overhang faces are those with ``-n . d > cos(overhang_angle_deg)`` (the rule
+    of :func:`supportgen.analysis.overhangs.overhang_faces`); every face counts,
+    since the part stands ``elevation_mm`` above the plate on its supports.
+    """
+    vt = np.ascontiguousarray(np.asarray(mesh.vertices, float).T)
+    nt = np.ascontiguousarray(np.asarray(mesh.face_normals, float).T)
+    a = np.asarray(mesh.area_faces, float)
+    ct = np.ascontiguousarray(np.asarray(mesh.triangles_center, float).T)
+    e = np.asarray(mesh.edges_unique)
+    src = np.concatenate([e[:, 0], e[:, 1]])
+    dst = np.concatenate([e[:, 1], e[:, 0]])
+    order = np.argsort(src, kind="stable")
+    src, dst = src[order], dst[order]
+    starts = np.flatnonzero(np.r_[True, src[1:] != src[:-1]])
+    edge_t = np.ascontiguousarray(vt[:, dst] - vt[:, src])
+    cos_a = np.cos(np.radians(settings.rules.overhang_angle_deg))
+    elev = settings.rules.elevation_mm
+    out = {k: np.zeros(len(dirs)) for k in ("height_mm", "overhang_area_mm2", "minima", "support_volume_mm3")}
+    for lo in range(0, len(dirs), _DIR_CHUNK):
+        d = np.asarray(dirs[lo: lo + _DIR_CHUNK], float)            # (k, 3): rows are directions
+        sl = slice(lo, lo + len(d))
+        h = d @ vt
+        hmin = h.min(axis=1)
+        out["height_mm"][sl] = h.max(axis=1) - hmin
+        down = -(d @ nt)
+        over = down > cos_a
+        out["overhang_area_mm2"][sl] = over @ a
+        lift = d @ ct - hmin[:, None] + elev
+        out["support_volume_mm3"][sl] = np.where(over, down * lift, 0.0) @ a
+        rise = np.minimum.reduceat(d @ edge_t, starts, axis=1)
+        out["minima"][sl] = (rise > EPS_SMALL).sum(axis=1)
+    return out
+
+
+@dataclass(frozen=True)
+class LayerProfile:
+    """Per-layer figures of one candidate on the scoring grid (arrays of length L)."""
+
+    pixel_mm: float
+    z_mm: np.ndarray
+    area_mm2: np.ndarray
+    sealed_mm2: np.ndarray
+    force_n: np.ndarray
+    exact: np.ndarray            # layers whose force used the solved torsion constant
+
+    @property
+    def peak_force_n(self) -> float:
+        return float(self.force_n.max(initial=0.0))
+
+
+class _Posed:
+    """Vertices and faces, all that the rasteriser reads of a mesh."""
+
+    def __init__(self, vertices, faces):
+        self.vertices, self.faces = vertices, faces
+
+
+_IN_LAYER_4 = np.zeros((3, 3, 3), bool)
+_IN_LAYER_4[1] = ndimage.generate_binary_structure(2, 1)
+_IN_LAYER_8 = np.zeros((3, 3, 3), bool)
+_IN_LAYER_8[1] = True
+
+
+def _occupancy(vertices, faces, pixel_mm):
+    """Cured cells (L, ny, nx) of a turned part, plate at its lowest point; and the grid."""
+    vz = vertices.copy()
+    vz[:, 2] -= vz[:, 2].min()
+    lo, hi = vz.min(axis=0), vz.max(axis=0)
+    grid = Grid.covering(np.array([lo, hi]), pixel_mm)
+    nl = max(layer_count(float(hi[2]), pixel_mm), 1)
+    # Triangles whose x/y box holds no pixel centre cross no ray: leave them out
+    # (the same box test as the rasteriser; most of a fine mesh on a coarse grid).
+    u = (vz[:, 0] - grid.x0) / grid.pixel_mm
+    w = (vz[:, 1] - grid.y0) / grid.pixel_mm
+    hit = np.ones(len(faces), bool)
+    for c in (u, w):
+        c0, c1, c2 = c[faces[:, 0]], c[faces[:, 1]], c[faces[:, 2]]
+        hit &= np.ceil(np.minimum(np.minimum(c0, c1), c2)) <= np.floor(np.maximum(np.maximum(c0, c1), c2))
+    idx, z, sg = ray_crossings(_Posed(vz, faces[hit]), grid)
+    k = np.clip(np.floor(z / pixel_mm - 0.5).astype(np.int64) + 1, 0, nl)
+    npx = grid.ny * grid.nx
+    wind = np.bincount(k * npx + idx, weights=sg, minlength=(nl + 1) * npx)[: nl * npx]
+    occ = np.cumsum(wind.reshape(nl, grid.ny, grid.nx), axis=0) > 0.5
+    return occ, grid
+
+
+def _sealed(occ: np.ndarray) -> np.ndarray:
+    """Sealed cavities of every layer: the rule of :func:`supportgen.physics.pressure.sealed_cavities`
+    (4-connected holes not reaching the border nor an empty vented pixel of the layer below)."""
+    lab, n = ndimage.label(~occ, _IN_LAYER_4)
+    outside = np.zeros(n + 1, bool)
+    outside[0] = True
+    for edge in (lab[:, 0], lab[:, -1], lab[:, :, 0], lab[:, :, -1]):
+        outside[edge] = True
+    sealed = np.zeros_like(occ)
+    if outside.all():
+        return sealed
+    holes = ~outside[lab]
+    for k in np.flatnonzero(holes.any(axis=(1, 2))):
+        if k == 0:
+            continue                                     # nothing below the first layer: vented
+        vent_below = ~occ[k - 1] & ~sealed[k - 1]
+        hk = holes[k]
+        vented = outside.copy()
+        vented[lab[k][hk & vent_below]] = True
+        sealed[k] = ~vented[lab[k]]
+    return sealed
+
+
+def _layer_forces(suction, pixel_mm, settings):
+    """Force per layer (estimate), components' labels, the first label of each layer, and the law."""
+    lab, n = ndimage.label(suction, _IN_LAYER_8)
+    nl = suction.shape[0]
+    law = separation(settings.printer.mechanism)
+    force = np.zeros(nl)
+    if n == 0:
+        return force, lab, np.zeros(nl + 1, np.int64), law
+    kk, rr, cc = np.nonzero(lab)
+    li = lab[kk, rr, cc] - 1
+    cnt = np.bincount(li, minlength=n).astype(float)
+    sr, sc = np.bincount(li, rr, n), np.bincount(li, cc, n)
+    srr, scc = np.bincount(li, rr.astype(float) ** 2, n), np.bincount(li, cc.astype(float) ** 2, n)
+    p2 = pixel_mm * pixel_mm
+    ip = p2 * p2 * ((srr - sr * sr / cnt) + (scc - sc * sc / cnt) + cnt / 6.0)
+    area = cnt * p2
+    j_est = area ** 4 / (4.0 * np.pi ** 2 * ip)
+    comp_layer = np.zeros(n, np.int64)
+    comp_layer[li] = kk
+    first = np.searchsorted(comp_layer, np.arange(nl + 1))   # labels run in scan order, layer by layer
+    if settings.printer.mechanism in READS_LABELS:
+        for k in np.flatnonzero(first[1:] > first[:-1]):
+            a, b = first[k], first[k + 1]
+            sub = np.where(lab[k] > 0, lab[k] - a, 0)
+            force[k] = law(LayerShape(sub, pixel_mm, area[a:b], j_est[a:b]), settings).sum()
+    else:
+        f = law(LayerShape(np.zeros((0, 0), np.int32), pixel_mm, area, j_est), settings)
+        force = np.bincount(comp_layer, f, nl)
+    return force, lab, first, law
+
+
+def layer_profile(mesh, rotation, pixel_mm: float, settings) -> LayerProfile:
+    """Area, sealed-cavity area and separation force of every layer of ``mesh`` turned by ``rotation``.
+
+    Layer ``k`` is sampled at ``(k + 1/2) pixel_mm`` above the turned part's
+    lowest point, on pixels of ``pixel_mm``; errors as in the module notes.
+    The :data:`EXACT_LAYERS` layers of largest estimated force are solved by
+    :func:`supportgen.physics.pressure.solve_components`.
+    """
+    _check_mesh(mesh)
+    v = (np.asarray(rotation, float) @ np.asarray(mesh.vertices, float).T).T
+    occ, _grid = _occupancy(v, np.asarray(mesh.faces), pixel_mm)
+    sealed = _sealed(occ)
+    p2 = pixel_mm * pixel_mm
+    force, lab, first, law = _layer_forces(occ | sealed, pixel_mm, settings)
+    exact = np.zeros(len(force), bool)
+    for k in np.argsort(force)[::-1][:EXACT_LAYERS]:
+        a, b = first[k], first[k + 1]
+        if b <= a:
+            continue
+        sub = np.where(lab[k] > 0, lab[k] - a, 0).astype(np.int32)
+        solved = solve_components(sub, range(1, b - a + 1), pixel_mm)
+        jj = np.array([solved[i][0] for i in range(1, b - a + 1)])
+        aa = np.array([solved[i][1] for i in range(1, b - a + 1)])
+        force[k] = law(LayerShape(sub, pixel_mm, aa, jj), settings).sum()
+        exact[k] = True
+    nl = occ.shape[0]
+    return LayerProfile(pixel_mm, (np.arange(nl) + 0.5) * pixel_mm, occ.sum(axis=(1, 2)) * p2,
+                        sealed.sum(axis=(1, 2)) * p2, force, exact)
+
+
+def score_directions(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, pixel_mm: float | None = None
+                     ) -> dict[str, np.ndarray]:
+    """Every term of :data:`TERMS` for each up-direction of ``dirs`` (K, 3), in physical units."""
+    _check_mesh(mesh)
+    dirs = np.atleast_2d(np.asarray(dirs, float))
+    pixel_mm = scoring_pixel(mesh, settings) if pixel_mm is None else pixel_mm
+    out = surface_terms(mesh, dirs, settings)
+    frac = settings.orient.orient_near_fraction
+    for key in ("peak_force_n", "near_peak_layers", "cup_area_mm2", "peak_area_mm2"):
+        out[key] = np.zeros(len(dirs))
+    for i, d in enumerate(dirs):
+        prof = layer_profile(mesh, rotation_to_up(d), pixel_mm, settings)
+        peak = prof.peak_force_n
+        out["peak_force_n"][i] = peak
+        out["near_peak_layers"][i] = np.count_nonzero(prof.force_n >= frac * peak) if peak > 0 else 0
+        out["cup_area_mm2"][i] = prof.sealed_mm2.max(initial=0.0)
+        out["peak_area_mm2"][i] = prof.area_mm2.max(initial=0.0)
+    return out
+
+
+def pareto_front(values: np.ndarray) -> np.ndarray:
+    """Indices of the rows of ``values`` (n, m) that no other row dominates (lower is better).
+
+    >>> pareto_front(np.array([[1, 2], [2, 1], [2, 2], [1, 2]])).tolist()
+    [0, 1, 3]
+    """
+    v = np.asarray(values, float)
+    le = (v[:, None, :] <= v[None, :, :]).all(axis=2)       # le[j, i]: row j at least as good as row i
+    lt = (v[:, None, :] < v[None, :, :]).any(axis=2)
+    dominated = (le & lt).any(axis=0)
+    return np.flatnonzero(~dominated)
+
+
+@dataclass(frozen=True)
+class Orientation:
+    """Every scored candidate and the one chosen.
+
+    ``directions`` (n, 3) are up-directions in the input frame, ``rotations`` (n, 3, 3)
+    turn the input so that direction points away from the plate; ``terms`` maps each
+    name of :data:`TERMS` (and ``peak_area_mm2``) to (n,) values; ``total`` is the
+    weighted score (lower is better); ``keep`` is the given orientation's index.
+    """
+
+    directions: np.ndarray
+    rotations: np.ndarray
+    terms: dict
+    total: np.ndarray
+    chosen: int
+    keep: int
+    pareto: np.ndarray
+    refined: np.ndarray
+    pixel_mm: float
+    weights: dict
+    scales: dict = field(default_factory=dict)
+
+    @property
+    def rotation(self) -> np.ndarray:
+        return self.rotations[self.chosen]
+
+    def candidate(self, i: int) -> dict:
+        """One candidate as plain values."""
+        return {"index": int(i), "direction": [round(float(x), 6) for x in self.directions[i]],
+                "rotation": [[round(float(x), 9) for x in row] for row in self.rotations[i]],
+                "refined": bool(self.refined[i]),
+                "terms": {k: float(self.terms[k][i]) for k in (*TERMS, "peak_area_mm2")},
+                "total": float(self.total[i])}
+
+    def to_dict(self) -> dict:
+        return {"chosen": self.candidate(self.chosen), "given": self.candidate(self.keep),
+                "pareto": [int(i) for i in self.pareto], "weights": dict(self.weights),
+                "scales": {k: float(v) for k, v in self.scales.items()},
+                "grid": {"pixel_mm": self.pixel_mm, "layer_mm": self.pixel_mm,
+                         "error": "each layer's outline within half a pixel of the exact section (area within "
+                                  "perimeter x pixel / 2); force within about twice that, relative, plus 2 %"},
+                "candidates": [self.candidate(i) for i in range(len(self.total))]}
+
+
+def _totals(terms, weights, scales):
+    return sum(weights[k] * terms[k] / scales[k] for k in TERMS)
+
+
+def orient(mesh: trimesh.Trimesh, settings=None, *, n_directions: int | None = None,
+           pixel_mm: float | None = None) -> Orientation:
+    """Score up-directions over the whole sphere and choose the best (lowest weighted total).
+
+    Parameters
+    ----------
+    mesh : trimesh.Trimesh
+        A closed part, in any position and orientation.
+    settings : Settings, optional
+        Uses the printer, resin and rules (force law, overhang angle, elevation) and
+        the ``[orient]`` group (directions, scoring pixel, weights).
+    n_directions : int, optional
+        Directions of the even set (default ``orient_directions``).
+    pixel_mm : float, optional
+        Scoring pixel (default :func:`scoring_pixel`).
+
+    Returns
+    -------
+    Orientation
+
+    Notes
+    -----
+    The even set (plus the given orientation) is scored, the :data:`REFINE_BEST`
+    best are refined by :data:`REFINE_EACH` directions each within one lattice
+    spacing ``sqrt(4 pi / n)``, and the terms of every candidate are divided by
+    their medians over the even set.  Cost O(K (F + cells)) for K candidates.
+    """
+    from ..settings import Settings
+
+    settings = Settings() if settings is None else settings
+    _check_mesh(mesh)
+    o = settings.orient
+    n = o.orient_directions if n_directions is None else int(n_directions)
+    pixel_mm = scoring_pixel(mesh, settings) if pixel_mm is None else float(pixel_mm)
+    dirs = np.vstack([[0.0, 0.0, 1.0], fibonacci_sphere(n)])
+    terms = score_directions(mesh, dirs, settings, pixel_mm)
+    weights = {k: float(getattr(o, WEIGHTS[k])) for k in TERMS}
+    # A term zero for most directions (minima of a convex part) is scaled by a thousandth of its largest value.
+    scales = {k: max(float(np.median(terms[k])), float(np.abs(terms[k]).max()) * SCALE_FLOOR, EPS_SMALL)
+              for k in TERMS}
+    # A cup is measured against a layer's area: most directions have none, so its own median would be 0.
+    scales["cup_area_mm2"] = max(float(np.median(terms["peak_area_mm2"])), EPS_SMALL)
+    total = _totals(terms, weights, scales)
+    best = np.argsort(total)[:REFINE_BEST]
+    spacing = np.sqrt(4.0 * np.pi / n)
+    rng = np.random.default_rng(settings.rules.seed)
+    extra = []
+    for b in best:
+        r = rotation_to_up(dirs[b]).T                       # takes +z to dirs[b]
+        t = spacing * np.sqrt(rng.random(REFINE_EACH))
+        ph = rng.random(REFINE_EACH) * 2 * np.pi
+        local = np.column_stack([np.sin(t) * np.cos(ph), np.sin(t) * np.sin(ph), np.cos(t)])
+        extra.append(local @ r.T)
+    extra = np.vstack(extra)
+    more = score_directions(mesh, extra, settings, pixel_mm)
+    dirs = np.vstack([dirs, extra])
+    terms = {k: np.concatenate([terms[k], more[k]]) for k in terms}
+    total = _totals(terms, weights, scales)
+    refined = np.r_[np.zeros(n + 1, bool), np.ones(len(extra), bool)]
+    active = [k for k in TERMS if weights[k] > 0]
+    pareto = pareto_front(np.column_stack([terms[k] for k in active]))
+    rotations = np.stack([rotation_to_up(d) for d in dirs])
+    return Orientation(dirs, rotations, terms, total, int(np.argmin(total)), 0, pareto, refined, pixel_mm,
+                       weights, scales)

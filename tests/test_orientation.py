@@ -1,0 +1,166 @@
+"""Orientation search: sections, symmetry, invariance, cups, the thin plate, and the oriented output.
+
+Directions are kept few (tens, not the default 500) so the file stays quick on 2
+shared cores; every check compares against exact geometry, a published table or
+trimesh, named beside it.
+"""
+
+from __future__ import annotations
+
+import json
+
+import manifold3d as m3d
+import numpy as np
+import pytest
+import trimesh
+
+import supportgen
+from supportgen.cli.main import main
+from supportgen.physics import orientation as O
+from supportgen.runs.demo import demo_part
+from supportgen.runs.orient import ORIENT_OUTPUTS
+from supportgen.supports.geometry import to_trimesh
+
+
+def _roark_j(w: float, t: float) -> float:
+    """Torsion constant of a w x t rectangle (w >= t): Roark's Formulas for Stress and Strain,
+    7th ed., table 10.7 case 4: K = a b^3 (16/3 - 3.36 (b/a)(1 - b^4 / (12 a^4))), a = w/2, b = t/2."""
+    a, b = w / 2, t / 2
+    return a * b**3 * (16 / 3 - 3.36 * b / a * (1 - b**4 / (12 * a**4)))
+
+
+def test_cube_sections_face_and_corner():
+    a, p = 20.0, 0.25
+    s = supportgen.Settings()
+    cube = trimesh.creation.box((a, a, a))
+    flat = O.layer_profile(cube, np.eye(3), p, s)
+    bound = O.area_error_bound(4 * a, p)
+    # Exact geometry: every section of a cube stood on a face is the face, a^2.
+    assert np.all(np.abs(flat.area_mm2 - a * a) <= bound)
+    assert len(flat.area_mm2) == round(a / p)
+    corner = O.layer_profile(cube, O.rotation_to_up(np.array([1.0, 1.0, 1.0])), p, s)
+    hexagon = 3 * np.sqrt(3) / 4 * a * a          # exact geometry: the central section is a regular hexagon
+    hex_bound = O.area_error_bound(6 * a / np.sqrt(2), p)
+    mid = int(np.argmin(np.abs(corner.z_mm - a * np.sqrt(3) / 2)))
+    assert abs(corner.area_mm2[mid] - hexagon) <= hex_bound
+    assert abs(corner.area_mm2.max() - hexagon) <= hex_bound
+    # The same layer by trimesh's section at the same height (reference library).
+    turned = O.turn(cube, O.rotation_to_up(np.array([1.0, 1.0, 1.0])))
+    turned.apply_translation((0, 0, -turned.bounds[0, 2]))
+    ref = turned.section(plane_origin=[0, 0, corner.z_mm[mid]], plane_normal=[0, 0, 1]).to_2D()[0].area
+    assert abs(corner.area_mm2[mid] - ref) <= hex_bound
+
+
+def test_sphere_scores_alike_in_every_direction():
+    r, p = 10.0, 0.3
+    s = supportgen.Settings()
+    sphere = trimesh.creation.icosphere(subdivisions=4, radius=r)
+    dirs = np.vstack([O.fibonacci_sphere(9), [[0.0, 0.0, 1.0]]])
+    t = O.score_directions(sphere, dirs, s, p)
+    # Symmetry: the peak layer is the equator, pi r^2, within the stated bound (outline within half a pixel).
+    area_rel = O.area_error_bound(2 * np.pi * r, p) / (np.pi * r * r)
+    assert np.all(np.abs(t["peak_area_mm2"] / (np.pi * r * r) - 1) <= area_rel + 0.01)   # +1 %: facets of the icosphere
+    # Force ~ J ~ A^2: twice the area bound, plus the 2 % of the coarse pressure solve (module notes).
+    f = t["peak_force_n"]
+    assert (f.max() - f.min()) / f.mean() <= 2 * (2 * area_rel + 0.02)
+    assert np.ptp(t["height_mm"]) <= 0.01 * 2 * r
+    assert np.ptp(t["overhang_area_mm2"]) <= 0.03 * t["overhang_area_mm2"].mean()
+
+
+def test_same_physical_orientation_after_a_random_turn():
+    s = supportgen.Settings()
+    hook = demo_part("hook")
+    rng = np.random.default_rng(7)
+    q = rng.normal(size=4)
+    q /= np.linalg.norm(q)
+    r0 = trimesh.transformations.quaternion_matrix(q)[:3, :3]          # a random rotation (trimesh)
+    first = O.orient(hook, s, n_directions=40, pixel_mm=0.8)
+    second = O.orient(O.turn(hook, r0), s, n_directions=40, pixel_mm=0.8)
+    back = r0.T @ second.directions[second.chosen]                     # the second choice in the first frame
+    again = O.score_directions(hook, back[None, :], s, 0.8)
+    total = sum(first.weights[k] * again[k][0] / first.scales[k] for k in O.TERMS)
+    # Invariance within the search resolution: equally good under one scorer (a few % of the score).
+    assert total <= first.total[first.chosen] * 1.1
+    h1 = first.terms["height_mm"][first.chosen]
+    assert abs(again["height_mm"][0] - h1) <= 0.15 * h1
+
+
+def _open_box(outer=(20.0, 20.0, 15.0), wall=2.0) -> trimesh.Trimesh:
+    x, y, z = outer
+    box = m3d.Manifold.cube(outer).translate((-x / 2, -y / 2, 0.0))
+    hollow = m3d.Manifold.cube((x - 2 * wall, y - 2 * wall, z)).translate((-x / 2 + wall, -y / 2 + wall, wall))
+    return to_trimesh(box - hollow)                                     # opening toward +z
+
+
+def test_open_box_is_never_stood_as_a_sealed_cup():
+    s = supportgen.Settings()
+    cup = _open_box()
+    o = O.orient(cup, s, n_directions=40, pixel_mm=0.5)
+    # Given orientation: opening toward the film, the sealed cavity is the inner 16 x 16 mm (exact geometry).
+    assert abs(o.terms["cup_area_mm2"][o.keep] - 16 * 16) <= O.area_error_bound(4 * 16, 0.5)
+    opening = o.rotation @ [0.0, 0.0, 1.0]
+    assert opening[2] < 0.5, opening            # never within 60 degrees of facing the film
+    assert o.terms["cup_area_mm2"][o.chosen] < 0.05 * 16 * 16
+
+
+def test_thin_plate_is_stood_with_a_lower_peak_force_than_flat():
+    s = supportgen.Settings()
+    plate = trimesh.creation.box((60.0, 40.0, 3.0))
+    o = O.orient(plate, s, n_directions=40, pixel_mm=0.5)
+    flat, chosen = o.terms["peak_force_n"][o.keep], o.terms["peak_force_n"][o.chosen]
+    # The largest layers flat (60 x 40) and on the long edge (60 x 3): Roark's exact rectangle constants.
+    ratio = _roark_j(60.0, 40.0) / _roark_j(60.0, 3.0)
+    assert flat / chosen >= ratio, (flat, chosen, ratio)
+
+
+def test_rotation_helpers_against_trimesh():
+    # rotation_from_angles is Rz Ry Rx about fixed axes, as trimesh.transformations.euler_matrix 'sxyz'.
+    ref = trimesh.transformations.euler_matrix(*np.radians([30.0, -20.0, 75.0]), axes="sxyz")[:3, :3]
+    assert np.allclose(O.rotation_from_angles(30.0, -20.0, 75.0), ref)
+    for d in (O.fibonacci_sphere(7)):
+        assert np.allclose(O.rotation_to_up(d) @ d, [0, 0, 1])
+        assert np.allclose(np.linalg.det(O.rotation_to_up(d)), 1.0)
+    # Pareto: a dominated row is left out (definition).
+    assert O.pareto_front(np.array([[1.0, 1.0], [2.0, 2.0], [0.5, 3.0]])).tolist() == [0, 2]
+
+
+def test_oriented_output_feeds_generate_and_passes_the_check(tmp_path, coarse):
+    src = tmp_path / "cup.stl"
+    part = _open_box((12.0, 12.0, 8.0), 2.0)
+    part.export(src)
+    status = main(["orient", str(src), "-o", str(tmp_path / "out"), "--directions", "30", "--quiet",
+                   "--set", "orient_pixel_mm=0.4"])
+    assert status == 0
+    paths = {role: tmp_path / "out" / f"cup{suffix}" for role, suffix in ORIENT_OUTPUTS.items()}
+    assert all(p.is_file() for p in paths.values())
+    data = json.loads(paths["json"].read_text())
+    assert len(data["candidates"]) >= 31 and data["pareto"]
+    assert paths["map"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"                  # PNG signature
+    oriented = trimesh.load(paths["mesh"])
+    # trimesh: the turned part is the same closed solid, standing elevation_mm above the plate.
+    assert oriented.is_watertight and abs(oriented.volume - part.volume) < 1e-3 * part.volume
+    assert abs(oriented.bounds[0, 2] - coarse.rules.elevation_mm) < 1e-3
+    result = supportgen.generate(paths["mesh"], coarse, name="cup_oriented")
+    assert result.report["verification"]["passed"], result.report["verification"]["failures"]
+    assert result.report["orientation"]["chosen_by"] == "given"
+
+
+def test_generate_rotate_is_recorded_and_bad_values_are_refused(coarse):
+    box = trimesh.creation.box((12.0, 8.0, 4.0))
+    r = supportgen.generate(box, coarse, rotate=(90.0, 0.0, 0.0), strategy="straight")
+    rec = r.report["orientation"]
+    assert rec["chosen_by"] == "rotate"
+    assert np.allclose(rec["rotation"], O.rotation_from_angles(90, 0, 0))
+    assert np.allclose(r.part.extents, [12.0, 4.0, 8.0], atol=1e-6)       # the 8 mm side now stands up
+    with pytest.raises(supportgen.SettingsError, match="orient"):
+        supportgen.generate(box, coarse, orient="sideways")
+    with pytest.raises(supportgen.SettingsError, match="rotate"):
+        supportgen.generate(box, coarse, rotate=(1.0, 2.0))
+
+
+def test_orient_cli_bad_input_one_line(tmp_path, capsys):
+    bad = tmp_path / "broken.stl"
+    bad.write_text("not a mesh")
+    assert main(["orient", str(bad), "-o", str(tmp_path), "--quiet"]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "broken.stl" in err[0]
