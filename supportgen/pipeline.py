@@ -29,10 +29,12 @@ from .physics.loadpath import ForceProfile, ForceTracker
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
+from .report.protection import add_protection, contacts_csv, plot_underside, protection_section
 from .settings import Settings, load_settings
-from .supports.contacts import contacts_at, densify_points, merge_contacts, sample_overhangs
+from .supports.contacts import contacts_at, contacts_from_rows, densify_points, merge_contacts, sample_overhangs
 from .supports.geometry import Solids, combine
 from .supports.plan import Contacts, SupportPlan
+from .supports.protect import Guard, Holder, guard_for
 from .supports.sizing import SizedPlan, over_capacity, size_plan, tip_diameter
 from .supports.strategies import get_strategy
 
@@ -41,7 +43,7 @@ __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DE
 #: What :meth:`Result.save` writes for a part NAME: role -> file name suffix.
 OUTPUTS = {"combined": ".supported.stl", "supports": ".supports.stl", "report": ".report.json",
            "summary": ".report.md", "layers_plot": ".layers.png", "tips_plot": ".tips.png",
-           "preview": ".preview.png"}
+           "preview": ".preview.png", "contacts": ".contacts.csv", "underside": ".underside.png"}
 
 #: ``tree`` verifies on the demo and the shared corpus with less support volume
 #: than ``straight`` (benchmarks/compare_strategies.py).
@@ -65,6 +67,7 @@ class Result:
     layers: LayerStack = field(repr=False)
     forces: ForceProfile = field(repr=False)
     verification: Verification = field(repr=False)
+    guard: Guard | None = field(default=None, repr=False)
 
     def save(self, outdir: str | Path) -> dict[str, Path]:
         """Write ``NAME.supported.stl``, ``NAME.supports.stl``, ``NAME.report.json``,
@@ -99,6 +102,8 @@ class Result:
             images = {"part on its supports": paths["preview"].name,
                       "area and force per layer": paths["layers_plot"].name,
                       "tip safety factors": paths["tips_plot"].name}
+            atomic_write_text(paths["contacts"], self.contacts_csv()); written.append(paths["contacts"])
+            atomic_write(paths["underside"], self.underside_png()); written.append(paths["underside"])
             atomic_write_text(paths["summary"], markdown(report, n, images)); written.append(paths["summary"])
             atomic_write_text(paths["report"], to_json(report)); written.append(paths["report"])
         except BaseException:
@@ -106,6 +111,16 @@ class Result:
                 p.unlink(missing_ok=True)
             raise
         return paths
+
+    def contacts_csv(self) -> str:
+        """``NAME.contacts.csv`` text: the contacts in input coordinates (:mod:`supportgen.io.contactsfile`)."""
+        offset = self.guard.offset if self.guard is not None else np.zeros(3)
+        return contacts_csv(self.contacts, self.plan, self.report["supports"]["tips"]["safety_factor"], offset)
+
+    def underside_png(self) -> bytes:
+        """The part seen from below, contacts marked and protected faces shaded (PNG bytes)."""
+        protected = self.guard.faces if self.guard is not None else None
+        return plot_underside(self.part, protected, self.contacts, self.plan, f"{self.name}: seen from below")
 
 
 class _Timer:
@@ -164,7 +179,8 @@ def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Setting
 
 
 def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
-             name: str | None = None, centre: bool = False, progress: bool = False, **overrides) -> Result:
+             name: str | None = None, centre: bool = False, progress: bool = False, protect=None,
+             contacts=None, **overrides) -> Result:
     """Support one part end to end.
 
     Parameters
@@ -181,6 +197,13 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         Centre the part on the plate.
     progress : bool
         Progress bars over the layer passes.
+    protect : selector text, bool mask over the input faces, callable or a list of them, optional
+        Faces that must carry no tip and no landing (:mod:`supportgen.supports.protect`);
+        a part file's side-car ``NAME.protect.toml`` is added.
+    contacts : str, Path or ContactRows, optional
+        A contacts file (:mod:`supportgen.io.contactsfile`) used instead of generating
+        contacts; routing, sizing, the union and the check are recomputed, and contacts
+        are added only where the check needs them (the report says so).
     **overrides
         Single settings by name, e.g. ``contact_spacing_mm=1.8``.
 
@@ -194,6 +217,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         Bad input, settings or geometry; the message names the input.
     """
     t_total = time.perf_counter()
+    contacts_file = contacts   # the name ``contacts`` is the run's contacts below
     settings = _resolve_settings(settings, overrides)
     plan_fn = get_strategy(strategy)
     timer = _Timer()
@@ -206,7 +230,11 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
             name = name or part_name(source)
             loaded = load_mesh(source)
     with timer("placement"):
-        part = place(loaded.mesh, settings, centre=centre, name=name).mesh
+        placement = place(loaded.mesh, settings, centre=centre, name=name)
+        part = placement.mesh
+        guard = guard_for(loaded.mesh, part, placement.offset, settings, protect,
+                          None if isinstance(source, trimesh.Trimesh) else source, name)
+        hold = Holder(guard, settings)
     with timer("overhangs"):
         oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
     with timer("contacts"):
@@ -218,15 +246,21 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
                                progress=progress and f"{name}: layers")
         # Island and reach points closer than the spacing to a contact are already held by it.
         contacts = merge_contacts(contacts, _layer_contacts(part, stack, settings), rules.contact_spacing_mm)
+    fixed, file_info = 0, None
+    if contacts_file is not None:
+        contacts, fixed = contacts_from_rows(contacts_file, part, placement.offset, settings)
+        file_info = {"path": str(contacts_file), "rows": len(contacts), "locked": fixed}
+    contacts = hold(contacts, fixed)
     densified = repaired = 0
     for _ in range(MAX_DENSIFY_ROUNDS):
         with timer("forces"):
             profile = _forces(part, stack.grid, contacts, settings, progress)
         over = over_capacity(profile.contact_loads, settings)
-        if not over.any():
+        if not over.any() or file_info:   # a contacts file is honoured: no contacts added here
             break
         with timer("contacts"):
             more = densify_points(contacts, over, part, settings)
+        more = hold(more, len(contacts))
         if len(more) == len(contacts):
             break
         densified += len(more) - len(contacts)
@@ -234,7 +268,7 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     contacts = _sized_contacts(contacts, profile, settings)
     for attempt in range(MAX_REPAIR_ROUNDS + 1):
         with timer("routing"):
-            plan = plan_fn(part, contacts, settings)
+            plan = plan_fn(part, contacts, settings, **guard.plan_options())
         with timer("sizing"):
             sized: SizedPlan = size_plan(plan, contacts.loads, settings)
         with timer("geometry"):
@@ -246,7 +280,8 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
             break
         # Hold what the plan missed (islands left, layers reaching too far), then plan again.
         with timer("contacts"):
-            more = merge_contacts(contacts, _layer_contacts(part, ver.layers, settings), rules.tip_diameter_mm)
+            more = hold(merge_contacts(contacts, _layer_contacts(part, ver.layers, settings), rules.tip_diameter_mm),
+                        len(contacts))
         if len(more) == len(contacts):
             break
         repaired += len(more) - len(contacts)
@@ -257,7 +292,11 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     records = RunRecords(name, None if isinstance(source, trimesh.Trimesh) else str(source), loaded, part, settings,
                          strategy, oh.area_mm2, contacts, plan, sized, solids, profile, stack, ver, densified,
                          repaired, timer.seconds)
-    return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, build_report(records), stack, profile, ver)
+    if file_info is not None:
+        file_info["added_by_check"] = repaired
+    report = add_protection(build_report(records), protection_section(guard, hold, contacts, sized.plan, file_info), name)
+    return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver,
+                  guard)
 
 
 def check(mesh, settings: Settings | str | Path | None = None, *, progress: bool = False, **overrides) -> Verification:
