@@ -58,7 +58,8 @@ def _run_generate(inputs, outdir: Path, args) -> int:
     def work(path):
         t0 = time.perf_counter()
         result = supportgen.generate(path, settings, strategy=args.strategy, centre=args.centre,
-                                     progress=not args.quiet)
+                                     progress=not args.quiet, protect=getattr(args, "protect", None),
+                                     contacts=getattr(args, "contacts", None))
         result.save(outdir)
         if not args.quiet:
             print(_summary_line(result, time.perf_counter() - t0))
@@ -68,6 +69,9 @@ def _run_generate(inputs, outdir: Path, args) -> int:
 
 
 def cmd_generate(args) -> int:
+    if getattr(args, "contacts", None) and len(args.inputs) != 1:
+        err("error: --contacts FILE belongs to one part; give exactly one INPUT with it")
+        return EXIT_USAGE
     return _run_generate([Path(p) for p in args.inputs], Path(args.output), args)
 
 
@@ -142,10 +146,17 @@ def build_parser() -> argparse.ArgumentParser:
     gen_opts.add_argument("--elevation", type=float, metavar="MM",
                           help="height of the part's lowest point above the plate (setting elevation_mm)")
     gen_opts.add_argument("--centre", action="store_true", help="centre each part on the plate")
+    gen_opts.add_argument("--protect", action="append", metavar="SELECTOR",
+                          help="faces that must get no tip or landing (repeatable), in the part's own "
+                               "coordinates: box:X0,Y0,Z0,X1,Y1,Z1 | normal:DX,DY,DZ,DEG | height:Z0,Z1 | "
+                               "mesh:PATH[,TOL] | colour:R,G,B; a file NAME.protect.toml next to a part adds its list")
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
     p.add_argument("inputs", nargs="+", metavar="INPUT", help="STL, OBJ, PLY or 3MF files")
     p.add_argument("-o", "--output", default=".", metavar="OUTDIR", help="output folder (default: here)")
+    p.add_argument("--contacts", metavar="FILE",
+                   help="use the contacts in FILE (a NAME.contacts.csv, edited) instead of placing them; "
+                        "routing, sizing and the check are recomputed")
     p.set_defaults(func=cmd_generate)
 
     p = sub.add_parser("demo", parents=[common, gen_opts], help="run the built-in example batch end to end")

@@ -127,7 +127,8 @@ def plot_underside(part: trimesh.Trimesh, protected: np.ndarray | None, contacts
     fig = _figure(figsize=(5.6, 5.6))
     ax = fig.subplots()
     xy = tri[order][:, :, :2] * np.array([-1.0, 1.0])
-    ax.add_collection(PolyCollection(xy, facecolors=colours[order], edgecolors="none"))
+    # Edges in the face colour close the hairline gaps that would show faces behind.
+    ax.add_collection(PolyCollection(xy, facecolors=colours[order], edgecolors=colours[order], linewidths=0.3))
     p = contacts.points
     ax.scatter(-p[:, 0], p[:, 1], s=10, c="#1f4e79", marker="o", label=f"contacts ({len(p)})", zorder=3)
     land = plan.tip_points[plan.tip_contact < 0]
