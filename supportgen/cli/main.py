@@ -54,11 +54,16 @@ def _run_generate(inputs, outdir: Path, args) -> int:
     import supportgen
 
     settings = settings_from(args)
+    protect = list(getattr(args, "protect", None) or [])
+    if args.profile and Path(args.profile).is_file():   # a profile's [protect] table
+        from supportgen.supports.protect import selectors_from_toml
+
+        protect += selectors_from_toml(args.profile)
 
     def work(path):
         t0 = time.perf_counter()
         result = supportgen.generate(path, settings, strategy=args.strategy, centre=args.centre,
-                                     progress=not args.quiet, protect=getattr(args, "protect", None),
+                                     progress=not args.quiet, protect=protect or None,
                                      contacts=getattr(args, "contacts", None))
         result.save(outdir)
         if not args.quiet:
