@@ -160,7 +160,7 @@ def contacts_csv(contacts: Contacts, plan: SupportPlan, tip_safety, offset) -> s
     per = np.full(len(contacts), np.inf)
     served = plan.tip_contact >= 0
     if len(sf) == len(plan.tip_contact):
-        np.minimum.at(per, plan.tip_contact[served], sf[served])
+        np.fmin.at(per, plan.tip_contact[served], sf[served])   # fmin: a missing factor (nan) is skipped
     per[~np.isfinite(per)] = np.nan
     return format_contacts(contacts.points - np.asarray(offset, float), contacts.normals, contacts.kinds,
                            _tip_diameters(contacts, plan), contacts.loads, per)
