@@ -6,7 +6,7 @@ distance of a protected face (tips that would scar it), contacts moved and merge
 by the protected plan, supports that could only be held from protected surface,
 landings on protected faces (unprotected vs protected plan), and the check.
 
-    python benchmarks/protect_figures.py            # canister lid + spot (corpus, 25x)
+    python benchmarks/protect_figures.py            # canister lid + fandisk (corpus, 50 mm)
     python benchmarks/protect_figures.py --quick    # canister lid only
 
 The corpus model is read from ../shared/corpus/ (skipped with a note when absent).
@@ -30,8 +30,8 @@ CORPUS = Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus"
 
 def figures(name, mesh, protect):
     t0 = time.perf_counter()
-    plain = generate(mesh, name=name)
-    prot = generate(mesh, name=name, protect=protect)
+    plain = generate(mesh, name=name, centre=True)
+    prot = generate(mesh, name=name, protect=protect, centre=True)
     g = prot.guard
     p = prot.report["protection"]
     land_plain = plain.plan.tip_points[plain.plan.tip_contact < 0]
@@ -60,16 +60,15 @@ def main():
     figures("canister_lid", demo_part("canister_lid"), DEMO_PROTECT["canister_lid"])
     if args.quick:
         return
-    spot = CORPUS / "spot.obj"
-    if not spot.is_file():
-        print(f"skipped spot: {spot} not found (the shared corpus is not beside this checkout)")
+    path = CORPUS / "fandisk.obj"
+    if not path.is_file():
+        print(f"skipped fandisk: {path} not found (the shared corpus is not beside this checkout)")
         return
-    mesh = load_mesh(spot).mesh
-    mesh.apply_scale(25.0)   # 0.94 x 1.69 x 1.72 units -> about 24 x 42 x 43 mm
-    # The lowest 3 mm of the model, as given (a face shown on the shelf, say).
+    mesh = load_mesh(path).mesh
+    mesh.apply_scale(50.0 / float(mesh.extents.max()))   # longest side 50 mm, as benchmarks/compare_strategies.py
+    # The lowest 3 mm of the part as given: a sealing face that must stay clean, say.
     z0 = float(mesh.bounds[0, 2])
-    figures("spot", mesh, [f"box:-30,-30,{z0 - 1:.3f},30,30,{z0 + 3:.3f}"])
-
+    figures("fandisk", mesh, [f"box:-1000,-1000,{z0 - 1:.3f},1000,1000,{z0 + 3:.3f}"])
 
 if __name__ == "__main__":
     main()

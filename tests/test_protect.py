@@ -283,3 +283,22 @@ def test_cli_protect_and_contacts_and_sidecar(tmp_path, capsys):
     assert main(["generate", str(part), "-o", str(out3), "--quiet", "--contacts", str(bad)]) == 1
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "bad.csv: line 2: y_mm 'two' is not a number" in err[0]
+
+
+def test_batch_carries_protect_option_and_sidecar_files(tmp_path):
+    import json
+
+    src = tmp_path / "in"
+    src.mkdir()
+    for name in ("a", "b"):
+        write_mesh(_slab(), src / f"{name}.stl")
+    # Side-car for a only: its underside; the batch option adds the top face (z = 1.5) to both.
+    (src / "a.protect.toml").write_text('protect = ["normal:0,0,-1,5"]\n')
+    out = tmp_path / "out"
+    assert main(["batch", str(src), "-o", str(out), "--workers", "1", "--quiet", "--protect", "height:1.4,1.6"]) == 0
+    a = json.loads((out / "a.report.json").read_text())["protection"]
+    b = json.loads((out / "b.report.json").read_text())["protection"]
+    # Source: exact geometry of trimesh.creation.box: two triangles per side.
+    assert a["protected_faces"] == 4 and b["protected_faces"] == 2
+    assert a["contacts_on_protected"] == 0 and b["contacts_on_protected"] == 0
+    assert (out / "a.contacts.csv").is_file() and (out / "b.underside.png").is_file()

@@ -39,6 +39,9 @@ def add_parser(subparsers, parents) -> None:
     p.add_argument("--timeout", type=positive(float, "a time in seconds above 0"), metavar="S", help="stop any one file after S seconds")
     p.add_argument("--memory-limit", type=positive(float, "a memory size in MB above 0"), metavar="MB",
                    help="refuse files whose estimated peak memory per worker exceeds MB")
+    p.add_argument("--protect", action="append", metavar="SELECTOR",
+                   help="faces of every part that must get no tip or landing (repeatable; see generate --help); "
+                        "a file NAME.protect.toml next to a part adds its own")
     p.set_defaults(func=cmd_batch)
 
 
@@ -49,7 +52,8 @@ def cmd_batch(args) -> int:
 
     summary = run_batch(Path(args.input), Path(args.output), settings_from(args), strategy=args.strategy,
                         workers=args.workers, cluster=args.cluster, resume=args.resume, pattern=args.pattern,
-                        timeout_s=args.timeout, memory_limit_mb=args.memory_limit, progress=not args.quiet)
+                        timeout_s=args.timeout, memory_limit_mb=args.memory_limit, progress=not args.quiet,
+                        protect=args.protect or ())
     for row in summary.results:
         if row.status in ("failed", "timeout", "crashed", "refused"):
             err(f"{row.status}: {row.file}: {row.reason}")

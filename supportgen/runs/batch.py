@@ -142,6 +142,7 @@ class Job:
     strategy: str
     memory_limit_mb: float | None = None
     deadline: float | None = None   # wall-clock time after which nothing is saved (Dask)
+    protect: tuple = ()             # protect selectors for every file (side-car files add their own)
 
 
 def discover(input_dir: str | Path, pattern: str | None = None, exclude: str | Path | None = None) -> list[Path]:
@@ -330,7 +331,8 @@ def run_job(job: Job) -> FileResult:
                                   f"{job.settings.printer.pixel_mm} mm pixels), over the {job.memory_limit_mb:g} MB "
                                   "limit; raise --memory-limit or use coarser pixels",
                                   seconds=round(time.perf_counter() - t0, 3))
-        result = pipeline.generate(job.source, job.settings, strategy=job.strategy, name=job.name, progress=False)
+        result = pipeline.generate(job.source, job.settings, strategy=job.strategy, name=job.name, progress=False,
+                                   protect=list(job.protect) or None)
         if job.deadline is not None and time.time() > job.deadline:
             return FileResult(job.rel, "timeout", "finished after its deadline; nothing saved",
                               seconds=round(time.perf_counter() - t0, 3))
@@ -404,7 +406,8 @@ def write_summary(summary: BatchSummary, meta: dict) -> None:
 def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings | None = None, *,
               strategy: str = DEFAULT_STRATEGY, workers: int | None = None, cluster=None, resume: bool = False,
               pattern: str | None = None, timeout_s: float | None = None, memory_limit_mb: float | None = None,
-              progress: bool = True, on_result: Callable[[FileResult], None] | None = None) -> BatchSummary:
+              progress: bool = True, on_result: Callable[[FileResult], None] | None = None,
+              protect=()) -> BatchSummary:
     """Support every mesh under ``input_dir`` into a mirrored tree under ``output_dir``.
 
     Parameters
@@ -430,6 +433,9 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
         Refuse files whose :func:`estimate_peak_mb` exceeds this.
     progress : bool
         A tqdm bar on stderr (done, failed, ETA).
+    protect : sequence of str, optional
+        Protect selectors (:mod:`supportgen.supports.protect`) for every file; a file's
+        side-car ``NAME.protect.toml`` adds its own.  Not part of the resume key.
     on_result : callable, optional
         Called in this process with each :class:`FileResult` as it arrives; an
         exception it raises stops the batch like Ctrl-C (KeyboardInterrupt) or
@@ -469,6 +475,7 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
     client = dask_client(cluster) if cluster is not None else None
     out.mkdir(parents=True, exist_ok=True)
     jobs, results = _plan_jobs(root, out, rels, settings, strategy, memory_limit_mb)
+    jobs = [dataclasses.replace(j, protect=tuple(protect)) for j in jobs] if protect else jobs
     sha = settings_hash(settings, strategy)
     todo = []
     for job in jobs:

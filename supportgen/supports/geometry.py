@@ -31,7 +31,7 @@ from ..errors import GeometryError
 from ..settings import Settings
 from .plan import SupportPlan
 
-__all__ = ["Solids", "PHASES", "to_manifold", "to_trimesh", "frustum", "build_supports", "pinch_points", "combine"]
+__all__ = ["Solids", "PHASES", "TIP_INSET", "to_manifold", "to_trimesh", "frustum", "build_supports", "pinch_points", "combine"]
 
 _SEGMENTS = 16
 
@@ -52,11 +52,12 @@ def to_trimesh(solid: m3d.Manifold) -> trimesh.Trimesh:
                            np.asarray(out.tri_verts, dtype=np.int64), process=False)
 
 
-#: A tip's wide end is this fraction of its node's radius, so that its rim lies just
-#: inside the joint sphere: at full radius a tilted tip's rim and a post's rim cross
-#: on the sphere at points, and the union keeps pinch points there whatever the
-#: facet phase (seen on tips leaving side walls).  Our choice: 1 % off the radius.
-_TIP_INSET = 0.99
+#: When every facet turn leaves a pinch point, the turns are tried again with each
+#: tip's wide end at this fraction of its node's radius, its rim just inside the
+#: joint sphere: at full radius a tilted tip's rim and a post's rim cross on the
+#: sphere at points, and the union keeps pinch points there whatever the facet
+#: turn (seen on tips leaving side walls).  Our choice: 1 % off the radius.
+TIP_INSET = 0.99
 
 
 def _rotation_to(direction: np.ndarray) -> np.ndarray:
@@ -167,7 +168,7 @@ def _sphere(centre, radius: float, phase: float) -> m3d.Manifold:
     return (solid.rotate((deg, deg, deg)) if phase else solid).translate(tuple(centre))
 
 
-def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
+def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0, tip_inset: float = 1.0
                    ) -> tuple[list[m3d.Manifold], list[m3d.Manifold]]:
     """Primitive solids of a plan: (tips, posts and joints; base parts).
 
@@ -204,7 +205,7 @@ def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
         if length < EPS_REL:
             continue
         p_in = p + axis / length * rules.tip_depth_mm
-        parts.append(frustum(q, p_in, node_r[node] * _TIP_INSET, d / 2, phase=phase))
+        parts.append(frustum(q, p_in, node_r[node] * tip_inset, d / 2, phase=phase))
     # Feet: posts sink half the base thickness into the base so the union is sound.
     base = _base(plan, settings, phase)
     for f in plan.feet:
@@ -249,7 +250,8 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
 
     Both come out without pinch points (see :func:`pinch_points`): where a
     union has one, the facets of every support solid are turned by a fraction
-    of a segment (:data:`PHASES`) and the union made again.
+    of a segment (:data:`PHASES`) and the union made again; if every turn
+    leaves one, the turns are tried again with the tips inset (:data:`TIP_INSET`).
 
     Raises
     ------
@@ -258,13 +260,13 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
         left a pinch point.
     """
     whole = to_manifold(part)
-    for k, phase in enumerate(PHASES):
-        parts, base = build_supports(plan, settings, phase * 2 * np.pi / _SEGMENTS)
+    for phase, inset in [(p, 1.0) for p in PHASES] + [(p, TIP_INSET) for p in PHASES]:
+        parts, base = build_supports(plan, settings, phase * 2 * np.pi / _SEGMENTS, inset)
         supports = _union(parts + base, "supports")
         combined = _union([whole, supports], "part and supports")
         sup_mesh, comb_mesh = to_trimesh(supports), to_trimesh(combined)
         if pinch_points(sup_mesh) == 0 and pinch_points(comb_mesh) == 0:
             base_solid = _union(base, "base")
             return Solids(sup_mesh, comb_mesh, float(supports.volume()), float(base_solid.volume()))
-    raise GeometryError(f"the supports touch themselves or the part at a point after {len(PHASES)} tries "
+    raise GeometryError(f"the supports touch themselves or the part at a point after {2 * len(PHASES)} tries "
                         "(pinch points a file cannot keep); change contact_spacing_mm slightly and run again")
