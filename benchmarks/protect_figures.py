@@ -8,6 +8,7 @@ landings on protected faces (unprotected vs protected plan), and the check.
 
     python benchmarks/protect_figures.py            # canister lid + fandisk (corpus, 50 mm)
     python benchmarks/protect_figures.py --quick    # canister lid only
+    python benchmarks/protect_figures.py --whole-bottom   # fandisk with its lowest 3 mm protected
 
 The corpus model is read from ../shared/corpus/ (skipped with a note when absent).
 """
@@ -35,7 +36,8 @@ def figures(name, mesh, protect):
     g = prot.guard
     p = prot.report["protection"]
     land_plain = plain.plan.tip_points[plain.plan.tip_contact < 0]
-    print(f"{name}: selectors {protect}; protected faces {p['protected_faces']} in {len(p['regions'])} region(s), "
+    names = [getattr(x, "__name__", x) for x in protect]
+    print(f"{name}: selectors {names}; protected faces {p['protected_faces']} in {len(p['regions'])} region(s), "
           f"keep-off {g.keep_off_mm} mm")
     print(f"  unprotected plan: {len(plain.contacts)} contacts, {int(np.sum(g.avoid(plain.contacts.points)))} within "
           f"the keep-off of a protected face, {plain.plan.landings} landings of which "
@@ -46,7 +48,8 @@ def figures(name, mesh, protect):
           f"{p['contacts_on_protected']} contacts / {p['landings_on_protected']} landings, {prot.plan.landings} "
           f"landings elsewhere, check {'passes' if prot.report['verification']['passed'] else 'FAILS'} "
           f"{prot.report['verification']['failures']}")
-    print(f"  scar budget: rest {p['rest']}; regions {[(r['contacts'], round(r['tip_area_mm2'], 4)) for r in p['regions']]}")
+    regions = [(r["contacts"], round(r["tip_area_mm2"], 4)) for r in p["regions"]]
+    print(f"  scar budget: rest {p['rest']}; regions (contacts, tip area mm2) {regions}")
     for u in p["unholdable"][:3]:
         print("  ", u["message"])
     print(f"  warnings: {sorted({w['code'] for w in prot.report['warnings']})}; "
@@ -56,6 +59,7 @@ def figures(name, mesh, protect):
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--quick", action="store_true")
+    ap.add_argument("--whole-bottom", action="store_true", help="fandisk: protect the lowest 3 mm (cannot be held)")
     args = ap.parse_args()
     figures("canister_lid", demo_part("canister_lid"), DEMO_PROTECT["canister_lid"])
     if args.quick:
@@ -68,7 +72,15 @@ def main():
     mesh.apply_scale(50.0 / float(mesh.extents.max()))   # longest side 50 mm, as benchmarks/compare_strategies.py
     # The lowest 3 mm of the part as given: a sealing face that must stay clean, say.
     z0 = float(mesh.bounds[0, 2])
-    figures("fandisk", mesh, [f"box:-1000,-1000,{z0 - 1:.3f},1000,1000,{z0 + 3:.3f}"])
+    if args.whole_bottom:
+        figures("fandisk", mesh, [f"box:-1000,-1000,{z0 - 1:.3f},1000,1000,{z0 + 3:.3f}"])
+        return
+
+    def patch(centres, normals):
+        """A 5 mm patch of the underside (a gasket seat, say): the API's function form."""
+        return (np.linalg.norm(centres[:, :2] - [10.15, 143.21], axis=1) < 2.5) & (centres[:, 2] < z0 + 3)
+
+    figures("fandisk", mesh, [patch])
 
 if __name__ == "__main__":
     main()

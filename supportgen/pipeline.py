@@ -294,7 +294,8 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
                          repaired, timer.seconds)
     if file_info is not None:
         file_info["added_by_check"] = repaired
-    report = add_protection(build_report(records), protection_section(guard, hold, contacts, sized.plan, file_info), name)
+    scars = protection_section(guard, hold, contacts, sized.plan, file_info)
+    report = add_protection(build_report(records), scars, name)
     return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver,
                   guard)
 

@@ -27,7 +27,8 @@ def _slab(a=3.0, b=3.0, h=1.5):
 
 
 def _ring(r_out=4.0, r_in=2.0, h=2.0, n=64):
-    solid = m3d.Manifold.cylinder(h, r_out, r_out, n) - m3d.Manifold.cylinder(h + 2, r_in, r_in, n).translate((0, 0, -1))
+    bore = m3d.Manifold.cylinder(h + 2, r_in, r_in, n).translate((0, 0, -1))
+    solid = m3d.Manifold.cylinder(h, r_out, r_out, n) - bore
     m = solid.to_mesh()
     return trimesh.Trimesh(np.asarray(m.vert_properties)[:, :3], np.asarray(m.tri_verts), process=False)
 

@@ -124,7 +124,8 @@ def parse_contacts(text: str, label: str = "contacts") -> ContactRows:
             try:
                 v = float(raw)
             except ValueError:
-                raise SettingsError(f"{label}: line {k}: {col} {raw!r} is not a number; fix or delete the row") from None
+                raise SettingsError(f"{label}: line {k}: {col} {raw!r} is not a number; "
+                                    "fix or delete the row") from None
             if not math.isfinite(v):
                 raise SettingsError(f"{label}: line {k}: {col} {raw!r} is not finite; fix or delete the row")
             return v

@@ -81,7 +81,8 @@ def canister_lid() -> trimesh.Trimesh:
     outer = m3d.Manifold.cylinder(10.0, 12.0, 12.0, 96)
     inner = m3d.Manifold.cylinder(10.0, 10.5, 10.5, 96).translate((0, 0, 2.0))
     lid = outer - inner
-    ridge = (m3d.Manifold.cylinder(1.0, 10.5, 10.5, 96) - m3d.Manifold.cylinder(1.0, 9.7, 10.1, 96)).translate((0, 0, 6.0))
+    ridge = m3d.Manifold.cylinder(1.0, 10.5, 10.5, 96) - m3d.Manifold.cylinder(1.0, 9.7, 10.1, 96)
+    ridge = ridge.translate((0, 0, 6.0))
     lid = lid + ridge
     lid = lid - m3d.Manifold.cylinder(4.0, 0.8, 0.8, 24).translate((6.0, 0.0, -1.0))
     lid = lid - m3d.Manifold.cylinder(1.4, 1.8, 1.8, 48).translate((0.0, 0.0, -1.0))

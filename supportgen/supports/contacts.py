@@ -26,8 +26,8 @@ from scipy.spatial import cKDTree
 from ..analysis.overhangs import Overhangs
 from ..constants import EPS_REL
 from ..errors import SizingError
-from ..settings import Settings
 from ..io.contactsfile import ContactRows, read_contacts
+from ..settings import Settings
 from .plan import CONTACT_KINDS, Contacts
 
 __all__ = ["RSA_DENSITY", "poisson_disk", "sample_overhangs", "contacts_at", "merge_contacts",

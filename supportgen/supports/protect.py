@@ -48,7 +48,6 @@ from __future__ import annotations
 import dataclasses
 import math
 import tomllib
-from collections.abc import Callable
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -117,7 +116,7 @@ def parse_selector(text: str, base_dir: str | Path | None = None) -> Selector:
     >>> parse_selector("cone:1,2")
     Traceback (most recent call last):
     ...
-    supportgen.errors.SettingsError: protect selector 'cone:1,2': unknown kind 'cone'; use box:X0,Y0,Z0,X1,Y1,Z1, normal:DX,DY,DZ,DEG, height:Z0,Z1, mesh:PATH[,TOL] or colour:R,G,B
+    supportgen.errors.SettingsError: protect selector 'cone:1,2': unknown kind 'cone'; use box:...
     """
     hint = "use box:X0,Y0,Z0,X1,Y1,Z1, normal:DX,DY,DZ,DEG, height:Z0,Z1, mesh:PATH[,TOL] or colour:R,G,B"
     kind, sep, rest = str(text).partition(":")
