@@ -438,8 +438,9 @@ class Guard:
         xyz = point - self.offset
         return {"point_mm": [round(float(v), 3) for v in xyz], "region": int(region[0]),
                 "suggested_rotation": {"axis": [round(float(v), 3) for v in axis], "angle_deg": round(angle, 1)},
-                "message": (f"a support needed near x {xyz[0]:.2f}, y {xyz[1]:.2f}, z {xyz[2]:.2f} mm (input "
-                            f"coordinates) can only be held from protected region {int(region[0])}; not placed. "
+                "message": (f"the contact planned near x {xyz[0]:.2f}, y {xyz[1]:.2f}, z {xyz[2]:.2f} mm (input "
+                            f"coordinates) could only sit on protected region {int(region[0])}; left out (the "
+                            "check says whether the part still prints). "
                             f"Turn the part {angle:.0f} degrees about the axis ({axis[0]:.2f}, {axis[1]:.2f}, "
                             f"{axis[2]:.2f}) so that region faces away from the plate, or protect less")}
 
