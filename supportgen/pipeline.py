@@ -37,11 +37,20 @@ from .physics.orientation import rotation_from_angles, turn
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
+from .report.protection import add_protection, contacts_csv, plot_underside, protection_section
 from .report.web import part_page
 from .settings import Settings, load_settings
-from .supports.contacts import add_unheld, contacts_at, densify_points, merge_contacts, sample_overhangs
+from .supports.contacts import (
+    add_unheld,
+    contacts_at,
+    contacts_from_rows,
+    densify_points,
+    merge_contacts,
+    sample_overhangs,
+)
 from .supports.geometry import Solids, combine
 from .supports.plan import Contacts, SupportPlan
+from .supports.protect import Guard, Holder, guard_for
 from .supports.sizing import SizedPlan, over_capacity, size_plan, tip_diameter
 from .supports.strategies import get_strategy
 
@@ -50,7 +59,7 @@ __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DE
 #: What :meth:`Result.save` writes for a part NAME: role -> file name suffix.
 OUTPUTS = {"combined": ".supported.stl", "supports": ".supports.stl", "report": ".report.json",
            "summary": ".report.md", "page": ".report.html", "layers_plot": ".layers.png", "tips_plot": ".tips.png",
-           "preview": ".preview.png"}
+           "preview": ".preview.png", "contacts": ".contacts.csv", "underside": ".underside.png"}
 
 #: ``tree`` verifies on the demo and the shared corpus with less support volume
 #: than ``straight`` (benchmarks/compare_strategies.py).
@@ -76,6 +85,7 @@ class Result:
     layers: LayerStack = field(repr=False)
     forces: ForceProfile = field(repr=False)
     verification: Verification = field(repr=False)
+    guard: Guard | None = field(default=None, repr=False)
 
     def save(self, outdir: str | Path, *, extra: Mapping | None = None,
              before_commit: Callable[[], None] | None = None) -> dict[str, Path]:
@@ -113,6 +123,8 @@ class Result:
             "tips_plot": lambda staged: plot_tips(np.asarray(report["supports"]["tips"]["safety_factor"], float),
                                                   report["forces"]["target_safety_factor"], f"{n}: tip safety factors"),
             "preview": lambda staged: plot_preview(self.part, self.supports, f"{n}: part on its supports"),
+            "contacts": lambda staged: self.contacts_csv().encode("utf-8"),
+            "underside": lambda staged: self.underside_png(),
             "summary": lambda staged: markdown(report, n, images).encode("utf-8"),
             "page": lambda staged: part_page(report, self.combined, self.supports, self.part,
                                              report["supports"].get("contact_points", [])).encode("utf-8"),
@@ -122,6 +134,16 @@ class Result:
         files = {role: (paths[role].name, make) for role, make in makers.items()}
         committed = commit_set(outdir, {**files, **(extra or {})}, before_commit=before_commit)
         return {role: o.path for role, o in committed.items()}
+
+    def contacts_csv(self) -> str:
+        """``NAME.contacts.csv`` text: the contacts in input coordinates (:mod:`supportgen.io.contactsfile`)."""
+        offset = self.guard.offset if self.guard is not None else np.zeros(3)
+        return contacts_csv(self.contacts, self.plan, self.report["supports"]["tips"]["safety_factor"], offset)
+
+    def underside_png(self) -> bytes:
+        """The part seen from below, contacts marked and protected faces shaded (PNG bytes)."""
+        protected = self.guard.faces if self.guard is not None else None
+        return plot_underside(self.part, protected, self.contacts, self.plan, f"{self.name}: seen from below")
 
 
 class _Timer:
@@ -238,6 +260,13 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
     rotate : (3,) degrees, optional
         Turn the part about x, then y, then z (fixed axes) before anything else;
         with ``orient="auto"`` the search starts from the turned part.
+    protect : selector text, bool mask over the input faces, callable or a list of them, optional
+        Faces that must carry no tip and no landing (:mod:`supportgen.supports.protect`);
+        a part file's side-car ``NAME.protect.toml`` is added.
+    contacts : str, Path or ContactRows, optional
+        A contacts file (:mod:`supportgen.io.contactsfile`) used instead of generating
+        contacts; routing, sizing, the union and the check are recomputed, and contacts
+        are added only where the check needs them (the report says so).
     **overrides
         Single settings by name, e.g. ``contact_spacing_mm=1.8``.
 
@@ -262,9 +291,10 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
 def _generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
              name: str | None = None, position: str = "auto", centre: bool = False, units: str = "mm",
              scale: float = 1.0, group_bounds=None, progress: bool = False, orient: str = "keep", rotate=None,
-             **overrides) -> Result:
+             protect=None, contacts=None, **overrides) -> Result:
     """:func:`generate` without the naming of errors."""
     t_total = time.perf_counter()
+    contacts_file = contacts   # the name ``contacts`` is the run's contacts below
     settings = _resolve_settings(settings, overrides)
     plan_fn = get_strategy(strategy)
     timer = _Timer()
@@ -288,6 +318,9 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
         placed = place(loaded.mesh, settings, position="centre" if centre else position, name=name,
                        group_bounds=group_bounds)
         part = placed.mesh
+        guard = guard_for(loaded.mesh, part, placed.offset, settings, protect,
+                          None if isinstance(source, trimesh.Trimesh) else source, name)
+        hold = Holder(guard, settings)
     with timer("overhangs"):
         oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
     with timer("contacts"):
@@ -300,15 +333,21 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
                                progress=progress and f"{name}: layers")
         check_cures(stack.area_mm2, settings, name)
         contacts = _layer_contacts(part, stack, settings, contacts, rules.contact_spacing_mm)
+    fixed, file_info = 0, None
+    if contacts_file is not None:
+        contacts, fixed = contacts_from_rows(contacts_file, part, placed.offset, settings)
+        file_info = {"path": str(contacts_file), "rows": len(contacts), "locked": fixed}
+    contacts = hold(contacts, fixed)
     densified = repaired = 0
     for _ in range(MAX_DENSIFY_ROUNDS):
         with timer("forces"):
             profile = _forces(part, stack.grid, contacts, settings, progress)
         over = over_capacity(profile.contact_loads, settings)
-        if not over.any():
+        if not over.any() or file_info:   # a contacts file is honoured: no contacts added here
             break
         with timer("contacts"):
             more = densify_points(contacts, over, part, settings)
+        more = hold(more, len(contacts))
         if len(more) == len(contacts):
             break
         densified += len(more) - len(contacts)
@@ -316,7 +355,7 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
     contacts = _sized_contacts(contacts, profile, settings)
     for attempt in range(MAX_REPAIR_ROUNDS + 1):
         with timer("routing"):
-            plan = plan_fn(part, contacts, settings)
+            plan = plan_fn(part, contacts, settings, **guard.plan_options())
         with timer("sizing"):
             sized: SizedPlan = size_plan(plan, contacts.loads, settings)
         with timer("geometry"):
@@ -328,7 +367,7 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
             break
         # Hold what the plan missed (islands left, layers reaching too far), then plan again.
         with timer("contacts"):
-            more = _layer_contacts(part, ver.layers, settings, contacts, rules.tip_diameter_mm)
+            more = hold(_layer_contacts(part, ver.layers, settings, contacts, rules.tip_diameter_mm), len(contacts))
         if len(more) == len(contacts):
             break
         repaired += len(more) - len(contacts)
@@ -339,7 +378,12 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
     records = RunRecords(name, None if isinstance(source, trimesh.Trimesh) else str(source), loaded, part, settings,
                          strategy, oh.area_mm2, contacts, plan, sized, solids, profile, stack, ver, densified,
                          repaired, timer.seconds, placed.warnings, orientation)
-    return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, build_report(records), stack, profile, ver)
+    if file_info is not None:
+        file_info["added_by_check"] = repaired
+    scars = protection_section(guard, hold, contacts, sized.plan, file_info)
+    report = add_protection(build_report(records), scars, name)
+    return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver,
+                  guard)
 
 
 def check(mesh, settings: Settings | str | Path | None = None, *, progress: bool = False, **overrides) -> Verification:

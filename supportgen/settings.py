@@ -366,6 +366,8 @@ def load_settings(source: str | Path | Mapping[str, Any] | None = None, **overri
                                 "check its permissions") from None
     flat: dict[str, Any] = {}
     for key, value in data.items():
+        if key == "protect":
+            continue   # protected surfaces, read by supportgen.supports.protect.selectors_from_toml
         if isinstance(value, Mapping):
             key = _renamed(key)
             if key not in _GROUPS:

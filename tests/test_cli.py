@@ -118,7 +118,9 @@ def test_installed_command_and_demo(tmp_path):
     run = subprocess.run([*cmd, "demo", "-o", str(tmp_path / "demo"), *COARSE], capture_output=True, text=True)
     assert run.returncode == 0, run.stderr
     solids = sorted((tmp_path / "demo").glob("*.supported.stl"))
-    assert len(solids) == 3
+    from supportgen.runs.demo import DEMO_PARTS
+
+    assert len(solids) == len(DEMO_PARTS)
     for path in solids:
         mesh = trimesh.load(path)
         assert mesh.is_watertight   # trimesh (reference library)

@@ -44,6 +44,9 @@ def add_parser(subparsers, parents) -> None:
                         "(default) or record them as failed")
     p.add_argument("--wait", type=nonnegative_seconds, default=0.0, metavar="SECONDS",
                    help="if another run is writing to OUT, wait up to SECONDS for it (default: refuse at once)")
+    p.add_argument("--protect", action="append", metavar="SELECTOR",
+                   help="faces of every part that must get no tip or landing (repeatable; see generate --help); "
+                        "a file NAME.protect.toml next to a part adds its own")
     p.set_defaults(func=cmd_batch)
 
 
@@ -54,7 +57,8 @@ def cmd_batch(args) -> int:
     summary = run_batch(Path(args.input), Path(args.output), settings_from(args), strategy=args.strategy,
                         workers=args.workers, cluster=args.cluster, resume=args.resume, pattern=args.pattern,
                         timeout_s=args.timeout, memory_limit_mb=args.memory_limit, progress=not args.quiet,
-                        name_clash=args.name_clash, wait_s=args.wait)
+                        name_clash=args.name_clash, wait_s=args.wait,
+                        protect=args.protect or ())
     for row in summary.results:
         if row.status in ("failed", "timeout", "crashed", "refused"):
             err(f"{row.status}: {row.file}: {row.reason}")

@@ -89,12 +89,19 @@ def _run_generate(inputs, outdir: Path, args) -> int:
     # Parts keep their arrangement only as given: a part turned on its own has no common frame.
     together = group_bounds(inputs, factor) if position == "auto" and not turned else None
 
+    protect = list(getattr(args, "protect", None) or [])
+    if args.profile and Path(args.profile).is_file():   # a profile's [protect] table
+        from supportgen.supports.protect import selectors_from_toml
+
+        protect += selectors_from_toml(args.profile)
+
     def work(path):
         t0 = time.perf_counter()
         result = supportgen.generate(path, settings, strategy=args.strategy, position=position, units=args.units,
                                      scale=args.scale, group_bounds=together, progress=not args.quiet,
                                      name=names[str(path)], orient=getattr(args, "orient", "keep"),
-                                     rotate=getattr(args, "rotate", None))
+                                     rotate=getattr(args, "rotate", None), protect=protect or None,
+                                     contacts=getattr(args, "contacts", None))
         result.save(outdir)
         saved.append(str(path))
         if not args.quiet:
@@ -114,6 +121,9 @@ def _run_generate(inputs, outdir: Path, args) -> int:
 
 
 def cmd_generate(args) -> int:
+    if getattr(args, "contacts", None) and len(args.inputs) != 1:
+        err("error: --contacts FILE belongs to one part; give exactly one INPUT with it")
+        return EXIT_USAGE
     return _run_generate([Path(p) for p in args.inputs], Path(args.output), args)
 
 
@@ -206,10 +216,17 @@ def build_parser() -> argparse.ArgumentParser:
                           help="keep the given orientation (default) or choose one from the physics (auto)")
     gen_opts.add_argument("--rotate", type=float, nargs=3, metavar=("X", "Y", "Z"),
                           help="turn each part by these degrees about x, then y, then z first")
+    gen_opts.add_argument("--protect", action="append", metavar="SELECTOR",
+                          help="faces that must get no tip or landing (repeatable), in the part's own "
+                               "coordinates: box:X0,Y0,Z0,X1,Y1,Z1 | normal:DX,DY,DZ,DEG | height:Z0,Z1 | "
+                               "mesh:PATH[,TOL] | colour:R,G,B; a file NAME.protect.toml next to a part adds its list")
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
     p.add_argument("inputs", nargs="+", metavar="INPUT", help="STL, OBJ, PLY or 3MF files")
     p.add_argument("-o", "--output", default=".", metavar="OUTDIR", help="output folder (default: here)")
+    p.add_argument("--contacts", metavar="FILE",
+                   help="use the contacts in FILE (a NAME.contacts.csv, edited) instead of placing them; "
+                        "routing, sizing and the check are recomputed")
     p.set_defaults(func=cmd_generate)
 
     p = sub.add_parser("demo", parents=[common, gen_opts], help="run the built-in example batch end to end")

@@ -94,6 +94,9 @@ def repair_arrays(vertices, faces, label: str, *, merge_is_repair: bool = True,
     -------
     mesh : trimesh.Trimesh
         Closed, consistently wound, encloses positive volume (built with ``process=False``).
+        ``mesh.metadata["source_face"]`` maps each face to the input face it came
+        from (-1 for faces added to close a hole), so per-face marks on the input
+        (protected surfaces, colours) survive the repair.
     repairs : tuple of str
         One short line per repair made, in the order of the module notes.
 
@@ -152,16 +155,18 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
     if extent.min() <= _FLAT * extent.max() or diag == 0:
         raise MeshError(f"{label}: flat part ({extent.min():.3g} thick across "
                         f"{extent.max():.3g}), it encloses no volume; give it thickness")
+    source = np.arange(len(f))
     v, f, merged = _merge(v, f, diag)
     if merged and merge_is_repair:
         repairs.append(f"merged {merged} coincident vertices" if merged > 1
                        else "merged 1 coincident vertex")
-    f = _drop_faces(v, f, diag, repairs)
+    kept = _drop_faces(v, f, diag, repairs)
+    f, source = f[kept], source[kept]
     if len(f) == 0:
         raise MeshError(f"{label}: every face is degenerate; export the model again")
     done = len(repairs)
     try:
-        return _clean_surface(v, f, label, repairs, hole_fraction, diag)
+        return _clean_surface(v, f, source, label, repairs, hole_fraction, diag)
     except MeshError as exc:
         del repairs[done:]      # the surface route's partial repairs are not what was done
         # Open, non-manifold or non-orientable: the printer still cures whatever the
@@ -171,10 +176,12 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
         except MeshError as none:
             raise MeshError(f"{none}; the surface also failed repair: {str(exc).removeprefix(label + ': ')}") from exc
         repairs.append(line)
+        # A rebuilt solid has no face of the input: none carries an input face's marks.
+        mesh.metadata["source_face"] = np.full(len(mesh.faces), -1)
         return mesh
 
 
-def _clean_surface(v, f, label, repairs, hole_fraction, diag):
+def _clean_surface(v, f, source, label, repairs, hole_fraction, diag):
     """Steps 3-6 of the module notes on a merged, degenerate-free soup; MeshError where they cannot finish."""
     edges = _edges(f, len(v))
     if edges["nonmanifold"]:
@@ -188,6 +195,7 @@ def _clean_surface(v, f, label, repairs, hole_fraction, diag):
         raise MeshError(f"{label}: encloses no volume ({volume:.3g}); "
                         "check the model is a solid, not a surface")
     mesh = trimesh.Trimesh(v, f, process=False)
+    mesh.metadata["source_face"] = np.concatenate([source, np.full(len(f) - len(source), -1)])
     if not (mesh.is_watertight and mesh.is_winding_consistent):
         raise MeshError(f"{label}: repair could not close the surface; "
                         "close it in a modeller and export again")
@@ -224,7 +232,8 @@ def _merge(v, f, diag):
 
 
 def _drop_faces(v, f, diag, repairs):
-    """Drop faces with a repeated corner or zero area, then duplicates (any winding).
+    """Indices of the faces kept after dropping those with a repeated corner or zero
+    area, then duplicates (any winding).
 
     A zero-area face with three distinct corners is kept when the surface is
     closed with it: there it is a sliver of a sound solid (boolean unions make
@@ -242,12 +251,12 @@ def _drop_faces(v, f, diag, repairs):
     if (~keep).sum():
         n = int((~keep).sum())
         repairs.append(f"dropped {_count(n, 'degenerate face')}")
-    f, s = f[keep], s[keep]
+    idx, s = np.flatnonzero(keep), s[keep]
     _, first = np.unique(s, axis=0, return_index=True)
-    if len(first) < len(f):
-        n = len(f) - len(first)
+    if len(first) < len(idx):
+        n = len(idx) - len(first)
         repairs.append(f"dropped {_count(n, 'duplicate face')}")
-    return f[np.sort(first)]
+    return idx[np.sort(first)]
 
 
 def _edges(f, nv):

@@ -159,6 +159,7 @@ class Job:
     memory_limit_mb: float | None = None
     timeout_s: float | None = None  # counted from the job's own start, in the worker (Dask): past it nothing is saved
     note: str = ""              # said in the row (a renamed output)
+    protect: tuple = ()         # protect selectors for every file (side-car files add their own)
 
     @property
     def files(self) -> list[str]:
@@ -297,7 +298,8 @@ def run_job(job: Job) -> FileResult:
         refused = _refusal(job, t0)
         if refused is not None:
             return refused
-        result = pipeline.generate(job.source, job.settings, strategy=job.strategy, name=job.name, progress=False)
+        result = pipeline.generate(job.source, job.settings, strategy=job.strategy, name=job.name, progress=False,
+                                   protect=list(job.protect) or None)
         in_time()
         row = _row(job, result.report, "ok", time.perf_counter() - t0)
         result.save(job.outdir, extra={"manifest": (job.manifest.name, _manifest(job, input_sha, row))},
@@ -434,7 +436,8 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
               strategy: str = DEFAULT_STRATEGY, workers: int | None = None, cluster=None, resume: bool = False,
               pattern: str | None = None, timeout_s: float | None = None, memory_limit_mb: float | None = None,
               progress: bool = True, on_result: Callable[[FileResult], None] | None = None,
-              name_clash: str = "rename", wait_s: float | None = 0.0) -> BatchSummary:
+              name_clash: str = "rename", wait_s: float | None = 0.0,
+              protect=()) -> BatchSummary:
     """Support every mesh under ``input_dir`` into a mirrored tree under ``output_dir``.
 
     Parameters
@@ -460,6 +463,9 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
         Refuse files whose :func:`estimate_peak_mb` exceeds this.
     progress : bool
         A tqdm bar on stderr (done, failed, ETA).
+    protect : sequence of str, optional
+        Protect selectors (:mod:`supportgen.supports.protect`) for every file; a file's
+        side-car ``NAME.protect.toml`` adds its own.  Not part of the resume key.
     on_result : callable, optional
         Called in this process with each :class:`FileResult` as it arrives; an
         exception it raises stops the batch like Ctrl-C (KeyboardInterrupt) or
@@ -500,6 +506,7 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
     refuse_overwrites([Path(j.outdir) / n for j in jobs for n in j.files], [root / r for r in rels])
     prepare_folder(out)
     client = dask_client(cluster) if cluster is not None else None
+    jobs = [dataclasses.replace(j, protect=tuple(protect)) for j in jobs] if protect else jobs
     sha = settings_hash(settings, strategy)
     try:
         with FolderLock(out, wait_s=wait_s), stop_on_signals():

@@ -14,6 +14,14 @@ will print (z up, away from the plate), and sized like real samples:
 ``trivet``
     A lattice trivet, a square grid of 3 mm bars on four short feet: many
     thin layers and four islands (the feet start in mid-air once lifted).
+``canister_lid``
+    A 24 mm storage-canister lid, opening upward like the jar lid, with two
+    surfaces that must stay free of scars: its inside touches food (every
+    up-facing face: the floor, the thread's top, the rim), and the maker's mark,
+    a 3.6 mm disc debossed 0.4 mm into the crown, is what people see on the
+    shelf.  Its side-car file ``canister_lid.protect.toml`` names them
+    (:data:`DEMO_PROTECT`), so the tip that would sit on the mark is moved to the
+    crown around it and no post stands on the floor inside.
 
 Nothing here is measured data: it exists to show the tool end to end.
 """
@@ -25,7 +33,7 @@ from pathlib import Path
 import manifold3d as m3d
 import trimesh
 
-__all__ = ["DEMO_PARTS", "demo_part", "write_demo_inputs"]
+__all__ = ["DEMO_PARTS", "DEMO_PROTECT", "demo_part", "write_demo_inputs"]
 
 
 def _mesh(solid: m3d.Manifold) -> trimesh.Trimesh:
@@ -68,7 +76,25 @@ def trivet() -> trimesh.Trimesh:
     return _mesh(m3d.Manifold.batch_boolean(bars + feet, m3d.OpType.Add))
 
 
-DEMO_PARTS = {"jar_lid": jar_lid, "hook": hook, "trivet": trivet}
+def canister_lid() -> trimesh.Trimesh:
+    """A 24 mm lid, opening up, vent off-centre, a 3.6 mm maker's mark debossed 0.4 mm in the crown."""
+    outer = m3d.Manifold.cylinder(10.0, 12.0, 12.0, 96)
+    inner = m3d.Manifold.cylinder(10.0, 10.5, 10.5, 96).translate((0, 0, 2.0))
+    lid = outer - inner
+    ridge = m3d.Manifold.cylinder(1.0, 10.5, 10.5, 96) - m3d.Manifold.cylinder(1.0, 9.7, 10.1, 96)
+    ridge = ridge.translate((0, 0, 6.0))
+    lid = lid + ridge
+    lid = lid - m3d.Manifold.cylinder(4.0, 0.8, 0.8, 24).translate((6.0, 0.0, -1.0))
+    lid = lid - m3d.Manifold.cylinder(1.4, 1.8, 1.8, 48).translate((0.0, 0.0, -1.0))
+    return _mesh(lid)
+
+
+DEMO_PARTS = {"jar_lid": jar_lid, "hook": hook, "trivet": trivet, "canister_lid": canister_lid}
+
+#: Protected surfaces of demo parts (selectors in the part's own coordinates), written as
+#: side-car files next to the demo inputs: the canister lid's food-contact inside (faces
+#: looking up) and the ceiling of its debossed maker's mark (the faces at z = 0.4 mm).
+DEMO_PROTECT = {"canister_lid": ["normal:0,0,1,5", "height:0.39,0.41"]}
 
 
 def demo_part(name: str) -> trimesh.Trimesh:
@@ -83,7 +109,8 @@ def demo_part(name: str) -> trimesh.Trimesh:
 
 
 def write_demo_inputs(folder: str | Path) -> list[Path]:
-    """Write the demo parts as binary STL files into ``folder``; return their paths."""
+    """Write the demo parts as binary STL files into ``folder`` (with a side-car
+    ``NAME.protect.toml`` for each part in :data:`DEMO_PROTECT`); return their paths."""
     from ..io.meshio import write_mesh
 
     folder = Path(folder)
@@ -92,5 +119,8 @@ def write_demo_inputs(folder: str | Path) -> list[Path]:
     for name, make in DEMO_PARTS.items():
         path = folder / f"{name}.stl"
         write_mesh(make(), path)
+        if name in DEMO_PROTECT:
+            items = ", ".join(f'"{x}"' for x in DEMO_PROTECT[name])
+            (folder / f"{name}.protect.toml").write_text(f"protect = [{items}]\n", encoding="utf-8")
         paths.append(path)
     return paths

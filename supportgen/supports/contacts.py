@@ -26,11 +26,12 @@ from scipy.spatial import cKDTree
 from ..analysis.overhangs import Overhangs
 from ..constants import EPS_REL
 from ..errors import SizingError
+from ..io.contactsfile import ContactRows, read_contacts
 from ..settings import Settings
-from .plan import Contacts
+from .plan import CONTACT_KINDS, Contacts
 
 __all__ = ["RSA_DENSITY", "poisson_disk", "sample_overhangs", "contacts_at", "merge_contacts",
-           "add_unheld", "expected_count", "densify_points"]
+           "add_unheld", "expected_count", "densify_points", "contacts_from_rows"]
 
 #: Samples per r^2 of a jammed random sequential addition (Feder 1980: coverage 0.547).
 RSA_DENSITY = 0.547 / (np.pi / 4)
@@ -300,3 +301,38 @@ def densify_points(contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Se
     new = Contacts(closest[taken], normals[taken], np.full(k, "densify"),
                    np.full(k, settings.rules.tip_diameter_mm))
     return Contacts.concat([contacts, new])
+
+
+def contacts_from_rows(rows, mesh: trimesh.Trimesh, offset, settings: Settings) -> tuple[Contacts, int]:
+    """Contacts from a contacts file (a path or :class:`~supportgen.io.contactsfile.ContactRows`,
+    input coordinates) on the placed part ``mesh`` (input moved by ``offset``).
+
+    Returns the contacts, locked rows first (in file order, points and given normals
+    exact), then the unlocked rows moved to the nearest point of the surface, and the
+    number of locked rows.  Kinds not in :data:`CONTACT_KINDS` (or blank) become
+    ``"manual"``; diameters start at ``tip_diameter_mm`` (tips are sized from loads later).
+
+    Examples
+    --------
+    >>> from supportgen.io.contactsfile import parse_contacts
+    >>> rows = parse_contacts("id,x_mm,y_mm,z_mm,locked\\n,0.5,0.5,-1.2,0\\n")
+    >>> c, k = contacts_from_rows(rows, trimesh.creation.box((2, 2, 2)), [0, 0, 0], Settings())
+    >>> c.points.round(6).tolist(), c.kinds.tolist(), k
+    ([[0.5, 0.5, -1.0]], ['manual'], 0)
+    """
+    if not isinstance(rows, ContactRows):
+        rows = read_contacts(rows)
+    order = np.r_[np.flatnonzero(rows.locked), np.flatnonzero(~rows.locked)]
+    pts = rows.points[order] + np.asarray(offset, float)
+    normals = rows.normals[order].copy()
+    locked = rows.locked[order]
+    need = ~locked | ~np.isfinite(normals).all(axis=1)
+    if need.any():
+        near, _, tri = trimesh.proximity.closest_point(mesh, pts[need])
+        moved = ~locked[need]
+        sel = np.flatnonzero(need)
+        pts[sel[moved]] = near[moved]
+        normals[sel] = np.asarray(mesh.face_normals)[tri]
+    kinds = np.array([k if k in CONTACT_KINDS else "manual" for k in rows.kinds[order]], "<U8")
+    n = len(pts)
+    return Contacts(pts, normals, kinds, np.full(n, settings.rules.tip_diameter_mm)), int(locked.sum())

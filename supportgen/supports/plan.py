@@ -17,9 +17,9 @@ import numpy as np
 __all__ = ["Contacts", "SupportPlan", "CONTACT_KINDS"]
 
 #: Why a contact exists: an overhang sample, a local minimum of the mesh, an
-#: island found in the layers, a layer that reaches too far, or added because a
-#: tip nearby would otherwise be over capacity.
-CONTACT_KINDS = ("overhang", "minimum", "island", "reach", "densify")
+#: island found in the layers, a layer that reaches too far, added because a
+#: tip nearby would otherwise be over capacity, or added by hand in a contacts file.
+CONTACT_KINDS = ("overhang", "minimum", "island", "reach", "densify", "manual")
 
 
 def _ro(a, dtype, shape_tail=()):

@@ -181,7 +181,7 @@ def _merge(tips: np.ndarray, s, field: Clearance, cost, b: _Builder):
     return blocked
 
 
-def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, max_nodes):
+def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, max_nodes, avoid=None):
     """Route nodes whose straight drop is blocked through the free-space graph.
 
     Each node joins the lattice nodes of the two layers below it inside its cone; one
@@ -197,6 +197,12 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
     g = free_space_graph(mesh, settings, field, np.array([lo, hi]), step_mm=step_mm, cost=cost,
                          max_nodes=max_nodes)
     hz, pitch, origin, shape = g.graph["step"], g.graph["pitch"], g.graph["origin"], g.graph["shape"]
+    if avoid is not None and "land" in g:
+        # No post may stand on a protected face: drop the landings there.
+        into = list(g.predecessors("land"))
+        if into:
+            hits = np.array([g.edges[n, "land"]["hit"] for n in into])
+            g.remove_edges_from([(n, "land") for n, bad in zip(into, avoid(hits)) if bad])
     rev = g.reverse(copy=False)
     search = {sink: nx.dijkstra_predecessor_and_distance(rev, sink) for sink in ("base", "land")
               if sink in g}
@@ -253,7 +259,8 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
 
 
 def plan_tree(mesh: trimesh.Trimesh, contacts: Contacts, settings, *, cost: Penalty | None = None,
-              graph_step_mm: float | None = None, max_graph_nodes: int = 60_000) -> SupportPlan:
+              graph_step_mm: float | None = None, max_graph_nodes: int = 60_000,
+              avoid=None) -> SupportPlan:
     """Branching supports: contacts merged into trunks that stand on the base or land on the part.
 
     Parameters
@@ -273,6 +280,9 @@ def plan_tree(mesh: trimesh.Trimesh, contacts: Contacts, settings, *, cost: Pena
         Layer height of the free-space lattice used for blocked routes (coarser is faster).
     max_graph_nodes : int
         Node budget of that lattice.
+    avoid : callable, optional
+        ``avoid(points) -> bool`` per (k, 3) landing point: True where no post may stand
+        (a protected face); such landings are removed from the lattice.
 
     Returns
     -------
@@ -325,7 +335,7 @@ def plan_tree(mesh: trimesh.Trimesh, contacts: Contacts, settings, *, cost: Pena
     # _merge makes the first nodes first, so served tip i sits on node i
     blocked = _merge(tips[served], s, field, cost, b) if len(served) else []
     if blocked:
-        _route_blocked(mesh, settings, field, cost, b, blocked, graph_step_mm, max_graph_nodes)
+        _route_blocked(mesh, settings, field, cost, b, blocked, graph_step_mm, max_graph_nodes, avoid)
     nodes = np.array(b.nodes).reshape(-1, 3)
     edges = np.array(sorted(b.edges), int).reshape(-1, 2)
     land_nodes = np.array(sorted(b.landings), int)

@@ -10,7 +10,10 @@
     keeps the clearance from the part gets a straight post instead.
 
 A strategy is a function ``(mesh, contacts, settings) -> SupportPlan``; add one
-by writing such a function and registering it in :data:`STRATEGIES`.
+by writing such a function and registering it in :data:`STRATEGIES`.  Where the
+part has protected faces the pipeline also passes ``avoid=``, a function of
+(k, 3) landing points that is True where a post must not stand
+(:meth:`supportgen.supports.protect.Guard.avoid`); both strategies honour it.
 """
 
 from __future__ import annotations
@@ -29,7 +32,8 @@ from .plan import Contacts, SupportPlan
 __all__ = ["STRATEGIES", "get_strategy", "plan_straight", "join_plans"]
 
 
-def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings) -> SupportPlan:
+def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings, *,
+                  avoid: Callable[[np.ndarray], np.ndarray] | None = None, reroute: bool = True) -> SupportPlan:
     """One vertical post per contact.
 
     Parameters
@@ -39,12 +43,19 @@ def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings)
     contacts : Contacts
     settings : Settings
         Uses ``tip_length_mm``, ``post_diameter_mm`` and ``base_thickness_mm``.
+    avoid : callable, optional
+        ``avoid(points) -> bool`` per landing point: True where no post may stand
+        (a protected face).  Those contacts are routed around the part by the tree
+        router (to the base or an allowed landing) when ``reroute``; otherwise, or
+        where that finds no way, they are left out (unserved).
+    reroute : bool
 
     Returns
     -------
     SupportPlan
         Nodes: for contact ``i``, node ``2i`` under the tip and node ``2i+1`` at the
-        post's foot (on the base) or above its landing on the part.
+        post's foot (on the base) or above its landing on the part (without
+        ``avoid``; with refused landings the plan is a join of sub-plans).
 
     Notes
     -----
@@ -63,6 +74,12 @@ def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings)
     below = node_top - np.array([0.0, 0.0, OFFSET_MM])
     hit_z = np.nan_to_num(surface_below(mesh, below[:, :2], np.arange(len(below)), below[:, 2])[0], nan=-np.inf)
     lands = hit_z > base_top
+    if avoid is not None and lands.any():
+        land_at = np.column_stack([node_top[:, :2], hit_z])
+        refused = np.zeros(n, bool)
+        refused[lands] = np.asarray(avoid(land_at[lands]), bool)
+        if refused.any():
+            return _without_refused(mesh, contacts, settings, refused, avoid, reroute)
     node_low = node_top.copy()
     node_low[:, 2] = np.where(lands, hit_z + tip_len, base_top)
     # A landing whose post would be shorter than nothing: hang the tip straight on the landing.
@@ -86,6 +103,25 @@ def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings)
     )
 
 
+def _without_refused(mesh, contacts, settings, refused, avoid, reroute) -> SupportPlan:
+    """Straight posts for the contacts whose landing is allowed; the refused ones routed
+    by the tree router (when ``reroute``) or left out."""
+    ok = np.flatnonzero(~refused)
+    plan = plan_straight(mesh, contacts.take(ok), settings)
+    plan = join_plans("straight", _empty_plan("straight"), plan, ok)
+    if reroute:
+        from .routing import plan_tree  # imported on use: routing pulls in the free-space graph
+
+        bad = np.flatnonzero(refused)
+        plan = join_plans("straight", plan, plan_tree(mesh, contacts.take(bad), settings, avoid=avoid), bad)
+    return plan
+
+
+def _empty_plan(strategy: str) -> SupportPlan:
+    return SupportPlan(strategy, np.zeros((0, 3)), np.zeros((0, 2), int), np.zeros(0), np.zeros((0, 3)),
+                       np.zeros(0, int), np.zeros(0), np.zeros(0, int), np.zeros(0, int))
+
+
 def join_plans(strategy: str, first: SupportPlan, second: SupportPlan, second_contacts: np.ndarray) -> SupportPlan:
     """One plan holding both: ``second``'s nodes renumbered after ``first``'s, and its
     tips' contact indices mapped through ``second_contacts`` (landings stay -1)."""
@@ -104,15 +140,17 @@ def join_plans(strategy: str, first: SupportPlan, second: SupportPlan, second_co
     )
 
 
-def _plan_tree(mesh, contacts, settings):
-    """Tree routing; a contact with no clear way down for a branch gets a straight post."""
+def _plan_tree(mesh, contacts, settings, *, avoid=None):
+    """Tree routing; a contact with no clear way down for a branch gets a straight post
+    (unless that post would stand on a face ``avoid`` refuses)."""
     from .routing import plan_tree  # imported on use: routing pulls in the free-space graph
 
-    plan = plan_tree(mesh, contacts, settings)
+    plan = plan_tree(mesh, contacts, settings, avoid=avoid)
     left = np.setdiff1d(np.arange(len(contacts)), plan.tip_contact[plan.tip_contact >= 0])
     if len(left) == 0:
         return plan
-    return join_plans("tree", plan, plan_straight(mesh, contacts.take(left), settings), left)
+    straight = plan_straight(mesh, contacts.take(left), settings, avoid=avoid, reroute=False)
+    return join_plans("tree", plan, straight, left)
 
 
 #: Strategy name -> function (mesh, contacts, settings) -> SupportPlan.
