@@ -11,7 +11,7 @@ True
 
 from __future__ import annotations
 
-__all__ = ["OFFSET_MM", "EPS_REL", "EPS_ZERO", "EPS_SMALL", "EPS_FLOOR", "MERGE_FRACTION"]
+__all__ = ["OFFSET_MM", "EPS_REL", "EPS_ZERO", "EPS_SMALL", "EPS_FLOOR", "MERGE_FRACTION", "EXACT_FRACTION"]
 
 #: Step taken off a surface so that a query starts clearly on one side of it
 #: (a ray below a contact, a node above the base): one micron, far below the
@@ -38,3 +38,8 @@ EPS_FLOOR = 1e-300
 #: far below any printable feature (0.7 um on a 70 mm diagonal, a seventieth of a
 #: 50 um pixel).
 MERGE_FRACTION = 1e-5
+
+#: Vertices closer than this fraction of the diagonal are the same point written
+#: twice (below float32 resolution): always merged.  The wider
+#: :data:`MERGE_FRACTION` applies only where it closes a surface that this leaves open.
+EXACT_FRACTION = 1e-9

@@ -58,7 +58,7 @@ from scipy.sparse import coo_matrix, csr_matrix
 from scipy.sparse.csgraph import breadth_first_order, connected_components
 from scipy.spatial import cKDTree
 
-from ..constants import EPS_FLOOR, MERGE_FRACTION
+from ..constants import EPS_FLOOR, EXACT_FRACTION, MERGE_FRACTION
 from ..errors import MeshError
 from .winding import solid_from_winding
 
@@ -156,7 +156,7 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
         raise MeshError(f"{label}: flat part ({extent.min():.3g} thick across "
                         f"{extent.max():.3g}), it encloses no volume; give it thickness")
     source = np.arange(len(f))
-    v, f, merged = _merge(v, f, diag)
+    v, f, merged = _merge_best(v, f, diag)
     if merged and merge_is_repair:
         repairs.append(f"merged {merged} coincident vertices" if merged > 1
                        else "merged 1 coincident vertex")
@@ -205,7 +205,32 @@ def _clean_surface(v, f, source, label, repairs, hole_fraction, diag):
 # ----------------------------------------------------------------------------- steps
 
 
-def _merge(v, f, diag):
+def _open_edges(f, nv) -> int:
+    """Boundary plus non-manifold edges: what keeps a surface from being closed."""
+    e = _edges(f, nv)
+    return len(e["boundary"]) + e["nonmanifold"]
+
+
+def _merge_best(v, f, diag):
+    """Exact duplicates merged; near ones too only where that closes the surface further.
+
+    A sound surface (a boolean union's output) can have edges far below a micron:
+    merging its near vertices would collapse them.  So the near merge of
+    :func:`_merge` is kept only when it leaves fewer open or non-manifold edges
+    than the exact one (float32 noise on shared corners).
+    """
+    v0, f0, n0 = _merge(v, f, diag, EXACT_FRACTION)
+    open0 = _open_edges(f0, len(v0))
+    if open0 == 0:
+        return v0, f0, n0
+    v1, f1, n1 = _merge(v, f, diag, MERGE_FRACTION)
+    keep = np.flatnonzero((f1[:, 0] != f1[:, 1]) & (f1[:, 1] != f1[:, 2]) & (f1[:, 0] != f1[:, 2]))
+    if _open_edges(f1[keep], len(v1)) < open0:
+        return v1, f1, n1
+    return v0, f0, n0
+
+
+def _merge(v, f, diag, fraction=MERGE_FRACTION):
     """Merge vertices closer than :data:`~supportgen.constants.MERGE_FRACTION` of the diagonal.
 
     Exact duplicates are merged by sorting; near ones (float32 rounding and export
@@ -218,7 +243,7 @@ def _merge(v, f, diag):
     _, first, inverse = np.unique(pts, axis=0, return_index=True, return_inverse=True)
     inverse = inverse.ravel()
     uniq = pts[first]
-    pairs = cKDTree(uniq).query_pairs(MERGE_FRACTION * diag, output_type="ndarray")
+    pairs = cKDTree(uniq).query_pairs(fraction * diag, output_type="ndarray")
     if len(pairs):
         n, label = connected_components(coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])),
                                                    shape=(len(uniq), len(uniq))), directed=False)

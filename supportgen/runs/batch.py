@@ -61,7 +61,6 @@ from ..errors import SupportGenError
 from ..io.budget import MEMORY_BASE_MB, MEMORY_FACE_BYTES, MEMORY_MASK_FACTOR, estimate_peak_mb, mesh_footprint
 from ..io.lock import FolderLock
 from ..io.meshio import READ_FORMATS, atomic_write_text, part_name
-from ..report.web import batch_index
 from ..io.outputs import (
     CLASH_MODES,
     assign_names,
@@ -73,6 +72,7 @@ from ..io.outputs import (
     sha256_of,
 )
 from ..pipeline import DEFAULT_STRATEGY, OUTPUTS
+from ..report.web import batch_index
 from ..settings import Settings
 from .memory import peak_rss_mb
 from .signals import stop_on_signals
