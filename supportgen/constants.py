@@ -11,7 +11,7 @@ True
 
 from __future__ import annotations
 
-__all__ = ["OFFSET_MM", "EPS_REL", "EPS_ZERO", "EPS_SMALL", "EPS_FLOOR", "MERGE_FRACTION"]
+__all__ = ["OFFSET_MM", "EPS_REL", "EPS_ZERO", "EPS_SMALL", "EPS_FLOOR", "MERGE_FRACTION", "STATICS_RCOND"]
 
 #: Step taken off a surface so that a query starts clearly on one side of it
 #: (a ray below a contact, a node above the base): one micron, far below the
@@ -36,3 +36,8 @@ EPS_FLOOR = 1e-300
 #: Vertices closer than this fraction of the bounding-box diagonal are one
 #: vertex: below float32 resolution, so merging never joins distinct points.
 MERGE_FRACTION = 1e-9
+
+#: Relative singular value below which a rigid part's rotation on its supports is
+#: taken as unresisted (supports in a line): with coordinates scaled by the
+#: supports' spread, contacts within 1e-4 of the spread of a line are that line.
+STATICS_RCOND = 1e-4

@@ -169,7 +169,9 @@ def _run_fraction(rows, starts, ends, s: int):
 
 
 def solve_runs(rows, starts, ends, edges: int, pixel_mm: float, origin, kept=None, factor=None):
-    """J, area, pressure samples and ``((s, I0, J0), state)`` of one component given by its runs.
+    """J, area, pressure samples ``(points, phi dA, dA)`` and ``((s, I0, J0), state)`` of one component.
+
+    The component is given by its runs.
 
     ``kept``: dict of earlier states by block key ``(s, I0, J0)``; the one with this
     component's key, if any, is offered to :func:`_factor_solve`.
@@ -179,11 +181,12 @@ def solve_runs(rows, starts, ends, edges: int, pixel_mm: float, origin, kept=Non
     frac, (i0, j0) = _run_fraction(rows, starts, ends, s)
     cell = s * pixel_mm
     phi, state = _factor_solve(frac, cell, None if kept is None else kept.get((s, i0, j0)))
-    w = phi * frac * cell * cell
+    da = frac * cell * cell
+    w = phi * da
     r, c = np.nonzero(w > 0)
     pts = np.column_stack([origin[0] + ((j0 + c) * s + (s - 1) / 2) * pixel_mm,
                            origin[1] + ((i0 + r) * s + (s - 1) / 2) * pixel_mm])
-    return 4.0 * float(w.sum()), area * pixel_mm**2, pts, w[r, c], ((s, i0, j0), state)
+    return 4.0 * float(w.sum()), area * pixel_mm**2, pts, w[r, c], da[r, c], ((s, i0, j0), state)
 
 
 def _pads(mask: np.ndarray, s: int) -> tuple[int, int]:
