@@ -18,7 +18,7 @@ from supportgen.errors import SettingsError
 from supportgen.physics import pressure as pz
 from supportgen.physics import separation as laws
 from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
-from supportgen.physics.loadpath import ForceTracker
+from supportgen.physics.loadpath import ForceTracker, statics_shares
 from supportgen.settings import Settings
 
 PX = 0.05
@@ -133,6 +133,23 @@ def test_convergence_rate_second_order():
     errs = [abs(pz.torsion_constant(np.ones((n, n), bool), 1.0 / n) / exact - 1) for n in (8, 16, 32, 64)]
     rates = np.log2(np.array(errs[:-1]) / np.array(errs[1:]))
     assert np.all((rates > 1.8) & (rates < 2.2)), rates
+
+
+def test_stepped_outline_converges_at_first_order():
+    # The order stated in supportgen.physics.pressure's Notes for a curved outline, measured:
+    # discs R = 8..64 pixels at 8 random sub-pixel centres each, RMS error of J against
+    # pi R^4 / 2 (Timoshenko & Goodier); fitted slope of log(error) on log(R) about -1.
+    rng = np.random.default_rng(0)
+    offs = rng.random((8, 2))
+    sizes = np.array([8, 16, 32, 64])
+    rms = []
+    for n in sizes:
+        yy, xx = np.mgrid[-n - 2:n + 2, -n - 2:n + 2] + 0.5
+        e = [pz.torsion_constant((xx - ox) ** 2 + (yy - oy) ** 2 < n**2, 1.0 / n) / (math.pi / 2) - 1 for ox, oy in offs]
+        rms.append(math.sqrt(np.mean(np.square(e))))
+    order = -np.polyfit(np.log(sizes), np.log(rms), 1)[0]
+    assert 0.8 < order < 1.3, order
+    assert rms[2] < 0.007                      # "0.5 % RMS at R = 32 pixels"
 
 
 def test_coarse_grid_within_stated_bound():
@@ -279,10 +296,102 @@ def test_contact_loads_sum_to_layer_force_every_layer():
     assert prof.to_dict()["peak_layer_index"] == int(np.argmax(prof.force_n))
 
 
+def test_statics_equal_springs_and_rigid_plate():
+    # REFERENCE.md s.3 (derived, exact statics of a rigid part on elastic supports):
+    # three equal springs at x = -a, 0, a under P at x_P take P/3 -+ P x_P / (2a), P/3.
+    a, P, xp = 2.0, 3.0, 0.7
+    xy = [[-a, 0.0], [0.0, 0.0], [a, 0.0]]
+    r = statics_shares(xy, [1, 1, 1], P, P * xp, 0.0)
+    assert r == pytest.approx([P / 3 - P * xp / (2 * a), P / 3, P / 3 + P * xp / (2 * a)], rel=1e-12)
+    # equal springs at the corners of a square, load at the centre: equal loads
+    assert statics_shares([[0, 0], [4, 0], [0, 4], [4, 4]], [2, 2, 2, 2], 8.0, 16.0, 16.0) == pytest.approx([2.0] * 4)
+    # two supports: the lever rule whatever their stiffness (statically determinate),
+    # also with the load off their line (that moment cannot be resisted and is dropped)
+    r2 = statics_shares([[1.0, 0.0], [5.0, 0.0]], [1.0, 7.0], 2.0, 2.0 * 2.0, 2.0 * 3.0)
+    assert r2 == pytest.approx([2.0 * (5 - 2) / 4, 2.0 * (2 - 1) / 4], rel=1e-12)
+    # unequal springs k = 1, 2, 3 at x = 0, 1, 3: R_i = k_i (u + t x_i) with sum R = P and
+    # sum R x = P x_P, solved by hand: [[6, 11], [11, 29]] (u, t) = (P, P x_P)
+    P, xp = 6.0, 1.5
+    u, t = np.linalg.solve([[6.0, 11.0], [11.0, 29.0]], [P, P * xp])
+    expect = np.array([1, 2, 3]) * (u + t * np.array([0.0, 1.0, 3.0]))
+    assert statics_shares([[0, 0], [1, 0], [3, 0]], [1, 2, 3], P, P * xp, 0.0) == pytest.approx(expect, rel=1e-12)
+    assert statics_shares([[0, 0], [1, 0], [3, 0]], [1, 2, 3], P, P * xp, 0.0).sum() == pytest.approx(P)
+
+
+def test_tracker_shares_an_offset_layer_by_statics():
+    # A disc layer centred at x = +1 mm on three equal contacts at x = -2, 0, 2 (same
+    # height: equal springs). The disc's load is symmetric about its centre, so statics
+    # gives P/3 - P/4, P/3, P/3 + P/4 (REFERENCE.md s.3). Equal shares (P/3 each) or
+    # nearest-contact shares would fail this.
+    yy, xx = centred(120)
+    m = (xx - 20) ** 2 + yy**2 < 60**2            # 3 mm radius at x = +1 mm (0.05 mm pixels)
+    pts = np.array([[-2.0, 0.0, 0.0], [0.0, 0.0, 0.0], [2.0, 0.0, 0.0]])
+    prof = run([m], pts)
+    P = prof.force_n[0]
+    # coarse cells sit at multiples of s in the image, not centred on the disc: its
+    # sampled centroid is off by a fraction of a cell, hence 0.2 %
+    assert prof.contact_loads == pytest.approx([P / 3 - P / 4, P / 3, P / 3 + P / 4], rel=2e-3)
+    assert prof.contact_loads.sum() == pytest.approx(P, rel=1e-12)
+
+
+def test_tilt_never_exceeds_pull_on_small_features():
+    # Domain monotonicity (Polya & Szego 1951): a peel band wets part of a layer, so it can
+    # never need more than pulling the layer straight off. Features smaller than the band,
+    # where the strip model alone would exceed the pull: discs, squares, a ring, thin bars.
+    yy, xx = centred(60)
+    r2 = xx**2 + yy**2
+    feats = [r2 < 6**2, r2 < 15**2, r2 < 30**2, (np.abs(xx) < 10) & (np.abs(yy) < 10),
+             (r2 < 25**2) & (r2 > 15**2), (np.abs(xx) < 2) & (np.abs(yy) < 40), (np.abs(yy) < 2) & (np.abs(xx) < 40)]
+    for s in (Settings(), Settings().override(force_area_n_mm2=0.0, force_calibration=1.0)):
+        for f in feats:
+            shape = shape_of(f)
+            tilt, pull = laws.tilt_force(shape, s), laws.pull_force(shape, s)
+            assert np.all(tilt <= pull * (1 + 1e-12))
+            assert tilt.sum() > 0
+
+
+def test_tilt_sweep_keeps_each_contacts_peak():
+    # A 20 x 3 mm bar along x on 9 equal contacts 2 mm apart. Peeling, only the band
+    # behind the front pulls: the layer force (worst instant) is below the pull force
+    # (Polya & Szego), and each contact keeps its own peak over the sweep: the peaks come
+    # at different instants, so they add up to more than any instant's force. On a rigid
+    # part a band at one end loads the end contact most (statics, REFERENCE.md s.3: the
+    # moment arm), so the end contacts' peaks exceed the middle one's.
+    yy, xx = centred(220)
+    bar = (np.abs(xx) < 200) & (np.abs(yy) < 30)
+    pts = np.column_stack([np.arange(-8.0, 8.1, 2.0), np.zeros(9), np.zeros(9)])
+    pull = run([bar], pts)
+    tilt = run([bar], pts, settings=Settings().override(mechanism="tilt"))
+    assert tilt.force_n[0] < pull.force_n[0]
+    assert tilt.contact_loads.sum() > 1.2 * tilt.force_n[0]
+    assert min(tilt.contact_loads[0], tilt.contact_loads[-1]) > 2.0 * tilt.contact_loads[4]
+    assert tilt.contact_squeeze_loads == pytest.approx(pull.contact_loads, rel=1e-9)   # the return squeeze: pull
+
+
+def test_slide_shear_is_a_side_load_shared_by_tip_area():
+    # Couette shear k mu A v / h (REFERENCE.md s.2), horizontal: equal tips share it
+    # equally, no contact is pulled, and the plate's return still squeezes by the pull law.
+    pts = np.array([[-2.0, 0.0, 0.0], [0.0, 0.0, 0.0], [2.0, 1.0, 0.0]])
+    s = Settings().override(mechanism="slide")
+    prof = run([disc(80, 84)], pts, settings=s)
+    shear = laws.slide_force(shape_of(disc(80, 84)), s).sum()
+    assert prof.force_n[0] == pytest.approx(shear, rel=1e-12)
+    assert prof.contact_side_loads == pytest.approx(np.full(3, shear / 3), rel=1e-12)
+    assert np.all(prof.contact_loads == 0)
+    assert prof.contact_squeeze_loads.sum() == pytest.approx(run([disc(80, 84)], pts).force_n[0], rel=1e-9)
+
+
 def test_rated_force_warning():
     # 4 mm disc at the raw law (c = 1) pulls about 5 N, over a 0.1 N rating
     prof = run([disc(80, 84)], settings=Settings().override(rated_force_n=0.1, force_calibration=1.0))
     assert "force-over-rated" in [c for c, _ in prof.warnings]
+    # raft and post layers join the record and the check, and the warning names the layer
+    quiet = run([np.zeros((168, 168), bool), disc(80, 84)], settings=Settings().override(rated_force_n=5.0))
+    assert "force-over-rated" not in [c for c, _ in quiet.warnings]
+    both = quiet.with_supports([7.0], [300.0])
+    assert both.force_n[0] == pytest.approx(7.0) and both.peak_layer_index == 0
+    msg = dict(both.warnings)["force-over-rated"]
+    assert "layer 0" in msg
 
 
 # --- calibration -------------------------------------------------------------------

@@ -163,15 +163,26 @@ class ForceProfile:
     support_force_n: np.ndarray | None = None
     rated_force_n: float | None = None
 
+    @property
+    def contact_tip_loads(self) -> np.ndarray:
+        """Axial load with the von Mises stress of each tip's peak tension and shear (N).
+
+        ``sqrt(T^2 + (16/3) S^2)``: tension ``4T/(pi d^2)`` with the peak shear
+        ``(4/3) 4S/(pi d^2)`` of a round section (Roark).
+        """
+        side = _or_zeros(self.contact_side_loads, self.contact_loads)
+        return np.sqrt(self.contact_loads**2 + (16.0 / 3.0) * side**2)
+
     def with_supports(self, force_n, area_mm2) -> ForceProfile:
         """This profile with the raft and post layers' force and area added (per layer index).
 
-        The arrays may be longer or shorter than the part's record; the record is
-        padded with zeros.  The peak and the rated-force warning are recomputed.
+        The arrays are cut or padded with zeros to the part's record (layer ``k`` at
+        ``[k, k + 1) * layer_mm`` above the plate).  The peak and the rated-force
+        warning are recomputed.
         """
         extra_f, extra_a = np.asarray(force_n, float), np.asarray(area_mm2, float)
-        n = max(self.force_n.size, extra_f.size)
-        pad = lambda a: np.pad(a, (0, n - a.size))  # noqa: E731
+        n = self.force_n.size or extra_f.size
+        pad = lambda a: np.pad(a[:n], (0, n - min(a.size, n)))  # noqa: E731
         support = pad(extra_f) + (pad(self.support_force_n) if self.support_force_n is not None else 0.0)
         force, area, unheld = pad(self.force_n) + pad(extra_f), pad(self.area_mm2) + pad(extra_a), pad(self.unheld_force_n)
         peak = int(np.argmax(force)) if n else -1

@@ -642,7 +642,7 @@ def size_plan(plan: SupportPlan, contact_loads, settings: Settings, compression_
     sized = plan.replace(tip_diameters=sz.tip_d, edge_radius=sz.diameter / 2.0)
     tip_cap = tip_capacity(sz.tip_d, sigma)
     tip_sf = _ratio(tip_cap, sz.tip_load)
-    tip_side_sf = _ratio(tip_cap, equivalent_tip_load(sz.tip_load, sz.tip_side))
+    tip_side_sf = np.where(sz.tip_side > 0, _ratio(tip_cap, equivalent_tip_load(sz.tip_load, sz.tip_side)), np.inf)
     edge_sf = np.minimum(_ratio(tip_capacity(sz.diameter, sigma), np.maximum(sz.tension, sz.compression)),
                          _ratio(sz.buckling, sz.compression))
     with np.errstate(divide="ignore", invalid="ignore"):
