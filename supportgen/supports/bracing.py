@@ -27,8 +27,10 @@ braces.
 * **Brace angle.**  Each brace runs from the braced point up or down to a
   neighbouring post (within four contact spacings and the run's length) at least
   :data:`BRACE_MIN_ANGLE_DEG` from horizontal, so it prints without support of its
-  own; the cheapest (shortest) such point is taken.  Braces are stored lower end
-  first.
+  own; the cheapest (shortest) such point is taken.  A brace ends at an existing
+  node or inside a vertical edge, never inside a leaning one: the joint ball the
+  geometry stage puts at a new node would touch a leaning edge's surface at a
+  point.  Braces are stored lower end first.
 * **Two-direction restraint.**  One brace holds a post in its own plane only, so
   two braces are added, in plan directions at least 45 degrees apart, and a node
   counts as braced, and ends a run, only when held in two such directions.  That
@@ -188,6 +190,11 @@ def post_runs(plan: SupportPlan, held: np.ndarray | None = None) -> PostRuns:
     return PostRuns(edge_run, chains, np.array(lengths), np.array(k), np.array(tops, bool))
 
 
+def _vertical(a, b) -> np.ndarray:
+    """Edges from ``a`` to ``b`` that are vertical to within float32 resolution."""
+    return np.hypot(*(b - a)[:, :2].T) <= 1e-6 * np.maximum(np.abs(b - a)[:, 2], 1.0)
+
+
 def _brace_targets(m, nodes, edges, cand, reach, gap, margin):
     """Two braces from point ``m`` up or down to ``cand`` edges in plan directions >= 45 deg apart, or None.
 
@@ -200,6 +207,9 @@ def _brace_targets(m, nodes, edges, cand, reach, gap, margin):
     rel = a[:, None, :] + t[None, :, None] * (b - a)[:, None, :] - m
     h = np.hypot(rel[..., 0], rel[..., 1])
     ok = (np.abs(rel[..., 2]) >= h * math.tan(math.radians(BRACE_MIN_ANGLE_DEG)) + margin) & (h >= gap) & (h <= reach)
+    # a brace may land inside a vertical edge only: the joint ball the geometry stage puts
+    # at a new node on a leaning edge touches that edge's surface tangentially (a pinch)
+    ok[~_vertical(a, b), 1:-1] = False
     if not ok.any():
         return None
     cost = np.where(ok, np.sqrt(h**2 + rel[..., 2] ** 2), np.inf)
@@ -254,6 +264,16 @@ def add_braces(plan: SupportPlan, runs: PostRuns, run_need: np.ndarray, run_slen
     ends = plan.nodes[plan.edges]
     lo, hi = ends.min(axis=1), ends.max(axis=1)    # bounding box of each edge, to cut the search
     requests, pairs, tops = [], [], set()
+    # runs already joined by a brace, either way: a second brace between the same two
+    # posts would cross the first in their common plane (and add no new direction)
+    partners: dict[int, set] = {}
+    if len(plan.braces):
+        node_run = np.full(len(plan.nodes), -1)
+        node_run[plan.edges[:, 0]] = runs.edge_run
+        node_run[plan.edges[:, 1]] = np.where(node_run[plan.edges[:, 1]] < 0, runs.edge_run, node_run[plan.edges[:, 1]])
+        for a, b in node_run[plan.braces]:
+            partners.setdefault(int(a), set()).add(int(b))
+            partners.setdefault(int(b), set()).add(int(a))
     for r in flagged:
         chain = runs.chains[r]
         cum = np.cumsum(seg[chain])
@@ -266,15 +286,22 @@ def add_braces(plan: SupportPlan, runs: PostRuns, run_need: np.ndarray, run_slen
         else:
             j = int(np.searchsorted(cum, cum[-1] / 2.0))
             t_at = 1.0 - (cum[j] - cum[-1] / 2.0) / seg[chain[j]]
+            if not _vertical(*plan.nodes[plan.edges[chain[j]]][:, None, :])[0]:
+                continue                                   # no new node on a leaning edge (see _brace_targets)
         a, b = plan.nodes[plan.edges[chain[j]]]
         m = a + t_at * (b - a)
         reach = min(max(cum[-1], runs.length[r]), 4.0 * s.contact_spacing_mm)   # neighbours only
         box = ((hi[:, 2] >= m[2] - 2.0 * reach) & (lo[:, 2] <= m[2] + 2.0 * reach)
                & np.all(lo[:, :2] <= m[:2] + reach, axis=1) & np.all(hi[:, :2] >= m[:2] - reach, axis=1))
         cand = np.flatnonzero(box & ~np.isin(plan.edges, plan.edges[chain]).any(axis=1))
+        cand = cand[~np.isin(runs.edge_run[cand], list(partners.get(int(r), ())))]
         found = _brace_targets(m, plan.nodes, plan.edges, cand, reach, s.post_diameter_mm, 3.0 * tol)
         if found is None:
             continue
+        for e, _ in found:
+            other = int(runs.edge_run[e])
+            partners.setdefault(int(r), set()).add(other)
+            partners.setdefault(other, set()).add(int(r))
         base = len(requests)
         requests += [(int(chain[j]), t_at), *found]
         pairs += [(base, base + 1), (base, base + 2)]
