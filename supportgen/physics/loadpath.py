@@ -335,7 +335,7 @@ class ForceTracker:
         n = len(self.points)
         squeeze_load, load, side = np.zeros(n), np.zeros(n), np.zeros(n)
         if self.mechanism == "tilt":
-            sweep = peel_sweep(*suction, nf, h, (self.grid.x0, self.grid.y0), self.settings)
+            sweep = peel_sweep(*suction[:4], nf, h, (self.grid.x0, self.grid.y0), self.settings)
             force, fx, fy = clamp_to_pull(*sweep, pull[0])
             worst = int(np.argmax(force.sum(axis=0))) if force.shape[1] else 0
             comp_force = force[:, worst] if force.shape[1] else np.zeros(nf)
@@ -407,14 +407,14 @@ class ForceTracker:
     def _geometry(self, suction, nf, edges, kept):
         """J, area and pressure samples per suction component; solves kept by coarse block key."""
         g = self.grid
-        rows, starts, ends, comp = suction
+        rows, starts, ends, comp, cav = suction
         order = np.argsort(comp, kind="stable")
         cut = np.searchsorted(comp[order], np.arange(1, nf + 2))
         geo, cache = {}, {}
         for i in range(1, nf + 1):
             o = order[cut[i - 1]: cut[i]]
             *out, (key, state) = solve_runs(rows[o], starts[o], ends[o], int(edges[i - 1]), g.pixel_mm,
-                                               (g.x0, g.y0), kept)
+                                               (g.x0, g.y0), kept, cavity=cav[o] if cav[o].any() else None)
             geo[i] = tuple(out)
             cache[key] = state
         return geo, cache
@@ -462,8 +462,8 @@ def _suction(runs, lab, n_labels: int, below):
 
     Parameters: the layer's runs and their 8-connected labels, and ``below`` the
     layer below's suction runs (None for the first layer: every hole is vented).
-    Returns the suction runs ``(rows, starts, ends, component)`` sorted by row and
-    start, the map label -> component (components of ``mask | sealed``, 8-connected),
+    Returns the suction runs ``(rows, starts, ends, component, is_cavity)`` sorted by
+    row and start, the map label -> component (components of ``mask | sealed``, 8-connected),
     the component count and each component's pixel-edge perimeter.
 
     The same cavities as :func:`supportgen.physics.pressure.sealed_cavities` (4-connected empty
@@ -498,7 +498,8 @@ def _suction(runs, lab, n_labels: int, below):
         nf, cl = edge_components(n_labels, lab[sealed] - 1, lab[sealed + 1] - 1) if n_labels > 1 else (1, np.zeros(1, int))
         fmap = np.r_[0, cl + 1]
     comp = fmap[lab]
-    suc = [np.r_[r, r[sealed]], np.r_[s, e[sealed]], np.r_[e, s[sealed + 1]], np.r_[comp, comp[sealed]]]
+    suc = [np.r_[r, r[sealed]], np.r_[s, e[sealed]], np.r_[e, s[sealed + 1]], np.r_[comp, comp[sealed]],
+           np.r_[np.zeros(r.size, bool), np.ones(sealed.size, bool)]]
     order = np.lexsort((suc[1], suc[0]))
     suc = tuple(x[order] for x in suc)
     ia, _, ln = run_overlaps(suc, (suc[0] - 1, suc[1], suc[2]))  # cured length shared with the next row

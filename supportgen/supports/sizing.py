@@ -351,6 +351,31 @@ def _brace_loads(plan: SupportPlan, node_side, node_comp, settings: Settings):
     return force, cap, d
 
 
+def _brace_floor(plan: SupportPlan, sz, settings: Settings):
+    """Per-edge diameter floor that gives every brace its safety factor, or None if all have it.
+
+    A brace is as thick as the thinner of the two posts it joins allows (see
+    :func:`_brace_loads`), so the posts at both ends of a weak brace are thickened
+    until the brace holds ``safety_factor`` times its load in tension and as a
+    pinned-pinned column (K = 1; Euler or Johnson).  Cost O(B + E).
+    """
+    load, cap, _ = _brace_loads(plan, sz.node_side, sz.node_comp, settings)
+    sf = settings.rules.safety_factor
+    weak = load * sf > cap * (1 + 1e-12)
+    if not weak.any():
+        return None
+    b = plan.braces.reshape(-1, 2)[weak]
+    e_mod, sigma = settings.resin.green_modulus_mpa, settings.resin.green_tensile_mpa
+    length = np.linalg.norm(plan.nodes[b[:, 1]] - plan.nodes[b[:, 0]], axis=1)
+    need = np.maximum(required_tip_diameter(load[weak], sigma, sf),
+                      required_post_diameter(load[weak], e_mod, sigma, length, 1.0, sf))
+    node_need = np.zeros(len(plan.nodes))
+    np.maximum.at(node_need, b[:, 0], need)
+    np.maximum.at(node_need, b[:, 1], need)
+    # brace diameter = the smaller end node's post radius, so each end needs a post of twice it
+    return 2.0 * np.maximum(node_need[plan.edges[:, 0]], node_need[plan.edges[:, 1]])
+
+
 def _out_ways(plan: SupportPlan) -> tuple[np.ndarray, np.ndarray]:
     """Per node: number of ways down (out-edges plus landing tips); mask of landing tips."""
     landing = plan.tip_contact < 0
@@ -435,7 +460,7 @@ class _Sizing(NamedTuple):
     node_comp: np.ndarray
 
 
-def _size(plan: SupportPlan, tension_c, compression_c, side_c, settings: Settings) -> _Sizing:
+def _size(plan: SupportPlan, tension_c, compression_c, side_c, settings: Settings, edge_floor=None) -> _Sizing:
     s, e_mod, sigma = settings.rules, settings.resin.green_modulus_mpa, settings.resin.green_tensile_mpa
     _, tension, tip_load = flow_loads(plan, tension_c)
     node_comp, compression, _ = flow_loads(plan, compression_c)
@@ -453,7 +478,8 @@ def _size(plan: SupportPlan, tension_c, compression_c, side_c, settings: Setting
     tip_floor = np.zeros(len(plan.nodes))
     np.maximum.at(tip_floor, plan.tip_nodes[contact_tip], tip_d[contact_tip])
     u, v = plan.edges[:, 0], plan.edges[:, 1]
-    d = np.maximum.reduce([need_b, need_t, need_s, np.full(len(u), 0.5 * s.post_diameter_mm), tip_floor[u]])
+    d = np.maximum.reduce([need_b, need_t, need_s, np.full(len(u), 0.5 * s.post_diameter_mm), tip_floor[u],
+                           np.zeros(len(u)) if edge_floor is None else edge_floor])
     for _ in range(len(d)):  # never thinner than what flows in from above: O(depth * E)
         inflow = np.zeros(len(plan.nodes))
         np.maximum.at(inflow, v, d)
@@ -638,6 +664,9 @@ def size_plan(plan: SupportPlan, contact_loads, settings: Settings, compression_
             break
         added += n
         sz = _size(plan, tension_c, compression_c, side_c, settings)
+    floor = _brace_floor(plan.replace(edge_radius=sz.diameter / 2.0), sz, settings)
+    if floor is not None:
+        sz = _size(plan, tension_c, compression_c, side_c, settings, floor)
     s, sigma = settings.rules, settings.resin.green_tensile_mpa
     sized = plan.replace(tip_diameters=sz.tip_d, edge_radius=sz.diameter / 2.0)
     tip_cap = tip_capacity(sz.tip_d, sigma)
