@@ -145,7 +145,8 @@ def test_stepped_outline_converges_at_first_order():
     rms = []
     for n in sizes:
         yy, xx = np.mgrid[-n - 2:n + 2, -n - 2:n + 2] + 0.5
-        e = [pz.torsion_constant((xx - ox) ** 2 + (yy - oy) ** 2 < n**2, 1.0 / n) / (math.pi / 2) - 1 for ox, oy in offs]
+        e = [pz.torsion_constant((xx - ox) ** 2 + (yy - oy) ** 2 < n**2, 1.0 / n) / (math.pi / 2) - 1
+             for ox, oy in offs]
         rms.append(math.sqrt(np.mean(np.square(e))))
     order = -np.polyfit(np.log(sizes), np.log(rms), 1)[0]
     assert 0.8 < order < 1.3, order
@@ -264,7 +265,8 @@ def test_sealed_ring_pulls_by_its_cavity_vented_ring_does_not():
     cup = run([full, ring, ring, ring], settings=s)
     tube = run([full & ~vent, ring, ring, ring], settings=s)
     Ro, Ri = ro * PX, ri * PX
-    unit = s.printer.force_calibration * 1e-6 * s.resin.viscosity_pa_s * s.printer.lift_speed_mm_s * 3 / s.printer.film_gap_mm**3
+    p = s.printer
+    unit = p.force_calibration * 1e-6 * s.resin.viscosity_pa_s * p.lift_speed_mm_s * 3 / p.film_gap_mm**3
     sealed_J = math.pi / 2 * (Ro**4 - Ri**4)
     assert cup.force_n[3] == pytest.approx(unit * sealed_J, rel=0.02)
     assert cup.force_n[3] < laws.pull_force(shape_of(full), s).sum()
@@ -425,6 +427,7 @@ def test_calibration_round_trip_factor_only(tmp_path):
     fit = fit_calibration(read_measurements(synthetic(tmp_path, 0.004, 0.0)), Settings())
     assert fit.factor == pytest.approx(0.004, rel=0.02) and not fit.uses_area
     assert calibrated_settings(fit, Settings()).printer.force_calibration == pytest.approx(fit.factor)
+    assert calibrated_settings(fit, Settings()).printer.force_area_n_mm2 == 0.0   # fitted without one
     assert "rms residual" in fit.to_text()
 
 

@@ -184,7 +184,8 @@ class ForceProfile:
         n = self.force_n.size or extra_f.size
         pad = lambda a: np.pad(a[:n], (0, n - min(a.size, n)))  # noqa: E731
         support = pad(extra_f) + (pad(self.support_force_n) if self.support_force_n is not None else 0.0)
-        force, area, unheld = pad(self.force_n) + pad(extra_f), pad(self.area_mm2) + pad(extra_a), pad(self.unheld_force_n)
+        force, area = pad(self.force_n) + pad(extra_f), pad(self.area_mm2) + pad(extra_a)
+        unheld = pad(self.unheld_force_n)
         peak = int(np.argmax(force)) if n else -1
         warns = tuple(w for w in self.warnings if w[0] != "force-over-rated")
         rated = self.rated_force_n

@@ -654,7 +654,8 @@ def size_plan(plan: SupportPlan, contact_loads, settings: Settings, compression_
     side_c = np.zeros_like(tension_c) if side_loads is None else _loads(side_loads, "side_loads")
     for name, arr in (("compression_loads", compression_c), ("side_loads", side_c)):
         if arr.shape != tension_c.shape:
-            raise SizingError(f"{name} has shape {arr.shape}, contact_loads {tension_c.shape}; pass one value per contact")
+            raise SizingError(f"{name} has shape {arr.shape}, contact_loads {tension_c.shape}; "
+                              "pass one value per contact")
     _check_plan(plan, len(tension_c))
     added = 0
     sz = _size(plan, tension_c, compression_c, side_c, settings)
