@@ -35,6 +35,7 @@ from supportgen.supports.sizing import (
     size_plan,
     tip_capacity,
     tip_diameter,
+    support_layer_forces,
     tip_shear_stress,
 )
 
@@ -358,6 +359,26 @@ def test_over_capacity_reported():
     json.dumps(report, allow_nan=False)
     assert report["tips_over_capacity"] == 1
     assert report["tip_diameter_mm"]["max"] == pytest.approx(S.rules.tip_max_mm)
+
+
+def test_raft_and_post_layers_in_the_force_record():
+    # One post on a raft disc of radius foot radius + base_margin_mm (the geometry stage's
+    # outline for a single foot). Raft layers pull like a disc: J = pi R^4 / 2
+    # (Timoshenko & Goodier; Stefan's law), rasterised at the pixel pitch, so within 2 %;
+    # post layers have the post's cross-section pi r^2 (exact).
+    plan = make_plan([(0, 0, 11.0), (0, 0, 1.0)], [(0, 1)], [(0, 0)], [1])
+    from supportgen.physics.separation import LayerShape, pull_force
+    s = S
+    force, area = support_layer_forces(plan, s, 300)
+    lh, R = s.printer.layer_mm, 0.5 + s.rules.base_margin_mm
+    k_raft = int(round(s.rules.base_thickness_mm / lh))
+    disc_f = pull_force(LayerShape(np.zeros((0, 0), int), 0.05, np.array([math.pi * R**2]),
+                                   np.array([math.pi * R**4 / 2])), s)[0]
+    assert force[:k_raft] == pytest.approx(np.full(k_raft, disc_f), rel=0.02)
+    assert area[:k_raft] == pytest.approx(np.full(k_raft, math.pi * R**2), rel=0.02)
+    mid = int(5.0 / lh)                                          # z = 5 mm: inside the post
+    assert area[mid] == pytest.approx(math.pi * 0.5**2, rel=1e-12)
+    assert area[int(12.0 / lh)] == 0.0 and len(force) == 300
 
 
 def test_bad_plans_rejected():
