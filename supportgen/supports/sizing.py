@@ -695,7 +695,7 @@ def support_layer_forces(plan: SupportPlan, settings: Settings, n_layers: int = 
     around the feet (the outline :mod:`supportgen.supports.geometry` builds, without
     its closing between feet), ``base_thickness_mm`` thick from the plate; the posts
     as discs of their sized diameters where they cross each layer.  Each layer's
-    force is the pull law on those regions (a disc's torsion constant is
+    force is the printer's separation law on those regions (posts: pull, or shear when sliding) (a disc's torsion constant is
     ``pi R^4 / 2``; the raft's is solved on a coarse grid): the record the rated-force
     check reads.  Layer ``k`` spans ``[k, k + 1) * layer_mm``.  With ``pads`` the
     base is one disc per foot.
@@ -711,7 +711,7 @@ def support_layer_forces(plan: SupportPlan, settings: Settings, n_layers: int = 
     O(L * E) for the posts.
     """
     from ..physics.pressure import coarse_factor, torsion_constant
-    from ..physics.separation import LayerShape, pull_force
+    from ..physics.separation import LayerShape, pull_force, separation, slide_force
 
     pr, rules = settings.printer, settings.rules
     lh = pr.layer_mm
@@ -744,7 +744,8 @@ def support_layer_forces(plan: SupportPlan, settings: Settings, n_layers: int = 
         p = np.pad(crop, 1)
         edges = int((p[1:, :] != p[:-1, :]).sum() + (p[:, 1:] != p[:, :-1]).sum())
         j_raft[i] = torsion_constant(crop, h, int(coarse_factor(crop.sum(), edges)))
-    f_raft = float(pull_force(LayerShape(np.zeros((0, 0), np.int32), h, a_raft, j_raft), settings).sum())
+    law = separation(pr.mechanism)       # the raft leaves the film like any layer: by the printer's mechanism
+    f_raft = float(law(LayerShape(lab, h, a_raft, j_raft, origin=(gx[0], gy[0])), settings).sum())
     k_raft = int(np.ceil(rules.base_thickness_mm / lh))
     force[:k_raft] += f_raft
     area[:k_raft] += float(a_raft.sum())
@@ -759,6 +760,7 @@ def support_layer_forces(plan: SupportPlan, settings: Settings, n_layers: int = 
                 continue
             a = np.pi * rr[cut] ** 2
             shape = LayerShape(np.zeros((0, 0), np.int32), h, a, np.pi * rr[cut] ** 4 / 2.0)
-            force[k] += float(pull_force(shape, settings).sum())
+            # posts are narrower than the peel band, so tilting takes them off like a pull
+            force[k] += float((slide_force if pr.mechanism == "slide" else pull_force)(shape, settings).sum())
             area[k] += float(a.sum())
     return force, area
