@@ -332,6 +332,19 @@ def test_statics_equal_springs_and_rigid_plate():
     assert statics_shares([[0, 0], [1, 0], [3, 0]], [1, 2, 3], P, P * xp, 0.0).sum() == pytest.approx(P)
 
 
+def test_statics_nearly_collinear_supports_stay_bounded():
+    # Contacts 10 mm apart along x with a third 0.01 mm off their line: the rigid-body
+    # reactions to a load 3 mm off the line would be hundreds of times the load. Such a
+    # thin spread is taken as a line (supportgen.constants.STATICS_RCOND) and shared by
+    # the lever rule along it (REFERENCE.md s.3): P (10 - 5)/10 split over the middle
+    # pair, every reaction between 0 and P, and the force balance exact.
+    P = 2.0
+    r = statics_shares([[0.0, 0.0], [10.0, 0.0], [5.0, 0.01]], [1, 1, 1], P, P * 5.0, P * 3.0)
+    assert r.sum() == pytest.approx(P, rel=1e-12)
+    assert np.all((r >= -1e-9) & (r <= P))
+    assert r == pytest.approx([P / 3, P / 3, P / 3], abs=1e-3)      # load above the centre line
+
+
 def test_tracker_shares_an_offset_layer_by_statics():
     # A disc layer centred at x = +1 mm on three equal contacts at x = -2, 0, 2 (same
     # height: equal springs). The disc's load is symmetric about its centre, so statics
