@@ -38,9 +38,10 @@ EPS_FLOOR = 1e-300
 MERGE_FRACTION = 1e-9
 
 #: Relative singular value below which a rigid part's rotation on its supports is
-#: taken as unresisted (supports in a line).  With coordinates scaled by the
-#: supports' RMS spread the moment matrix goes as spread squared, so 1e-2 treats
-#: contacts whose spread across a line is under about a tenth of their spread
-#: along it as that line: otherwise nearly collinear contacts resist an off-line
-#: moment with reactions hundreds of times the load (a corpus part reached 1e5 N).
+#: taken as unresisted.  Coordinates are scaled by the larger of the supports' RMS
+#: spread and the loaded region's RMS radius, and the moment matrix goes as spread
+#: squared, so 1e-2 treats contacts whose spread in a direction is under about a
+#: tenth of that scale as a line (or a point): otherwise close or nearly collinear
+#: contacts resist a far moment with reactions hundreds of times the load (a
+#: corpus part reached 1e5 N).
 STATICS_RCOND = 1e-2

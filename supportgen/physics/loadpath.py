@@ -70,7 +70,7 @@ from .separation import (
 __all__ = ["ForceTracker", "ForceProfile", "statics_shares", "statics_matrix"]
 
 
-def statics_matrix(xy, stiffness) -> np.ndarray:
+def statics_matrix(xy, stiffness, length_scale: float = 0.0) -> np.ndarray:
     """(n, 3) matrix ``G``: reactions ``G @ (F, sum f x, sum f y)`` of a rigid part on springs.
 
     Parameters
@@ -79,6 +79,11 @@ def statics_matrix(xy, stiffness) -> np.ndarray:
         Support positions (mm).
     stiffness : (n,) float ndarray
         Spring stiffness of each support (any common unit, e.g. ``E A / L``).
+    length_scale : float
+        Size of the loaded region (mm), e.g. its RMS radius: the supports' spread is
+        measured against the larger of it and their own spread, so a cluster of
+        contacts far smaller than the part it holds shares the load by stiffness
+        instead of resisting the part's moments with huge, opposite reactions.
 
     Notes
     -----
@@ -98,7 +103,7 @@ def statics_matrix(xy, stiffness) -> np.ndarray:
     k = np.asarray(stiffness, float)
     c = (k[:, None] * xy).sum(axis=0) / k.sum()
     d = xy - c
-    scale = max(float(np.sqrt((k[:, None] * d**2).sum() / k.sum())), EPS_ZERO)
+    scale = max(float(np.sqrt((k[:, None] * d**2).sum() / k.sum())), float(length_scale), EPS_ZERO)
     b = np.column_stack([np.ones(len(k)), d / scale])
     n = b.T @ (k[:, None] * b)
     g = (k[:, None] * b) @ np.linalg.pinv(n, rcond=STATICS_RCOND)
@@ -350,7 +355,9 @@ class ForceTracker:
             if not hold:
                 unheld += comp_force[i - 1]
                 continue
-            g = statics_matrix(self.points[hold, :2], self._stiff[hold])
+            pts, da = geo[i][2], geo[i][4]
+            spread = float(np.sqrt((da @ ((pts - da @ pts / da.sum()) ** 2).sum(axis=1)) / da.sum())) if da.sum() > 0 else 0.0
+            g = statics_matrix(self.points[hold, :2], self._stiff[hold], spread)
             r_pull = g @ pull[:, i - 1]
             squeeze_load[hold] += r_pull
             if self.mechanism == "tilt" and force.shape[1]:
