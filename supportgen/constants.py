@@ -11,7 +11,8 @@ True
 
 from __future__ import annotations
 
-__all__ = ["OFFSET_MM", "EPS_REL", "EPS_ZERO", "EPS_SMALL", "EPS_FLOOR", "MERGE_FRACTION", "EXACT_FRACTION"]
+__all__ = ["OFFSET_MM", "EPS_REL", "EPS_ZERO", "EPS_SMALL", "EPS_FLOOR", "MERGE_FRACTION", "EXACT_FRACTION",
+           "STATICS_RCOND"]
 
 #: Step taken off a surface so that a query starts clearly on one side of it
 #: (a ray below a contact, a node above the base): one micron, far below the
@@ -43,3 +44,12 @@ MERGE_FRACTION = 1e-5
 #: twice (below float32 resolution): always merged.  The wider
 #: :data:`MERGE_FRACTION` applies only where it closes a surface that this leaves open.
 EXACT_FRACTION = 1e-9
+
+#: Relative singular value below which a rigid part's rotation on its supports is
+#: taken as unresisted.  Coordinates are scaled by the larger of the supports' RMS
+#: spread and the loaded region's RMS radius, and the moment matrix goes as spread
+#: squared, so 1e-2 treats contacts whose spread in a direction is under about a
+#: tenth of that scale as a line (or a point): otherwise close or nearly collinear
+#: contacts resist a far moment with reactions hundreds of times the load (a
+#: corpus part reached 1e5 N).
+STATICS_RCOND = 1e-2

@@ -51,7 +51,7 @@ from .supports.contacts import (
 from .supports.geometry import Solids, combine
 from .supports.plan import Contacts, SupportPlan
 from .supports.protect import Guard, Holder, guard_for
-from .supports.sizing import SizedPlan, over_capacity, size_plan, tip_diameter
+from .supports.sizing import SizedPlan, over_capacity, size_plan, support_layer_forces, tip_diameter
 from .supports.strategies import get_strategy
 
 __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
@@ -342,7 +342,7 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
     for _ in range(MAX_DENSIFY_ROUNDS):
         with timer("forces"):
             profile = _forces(part, stack.grid, contacts, settings, progress)
-        over = over_capacity(profile.contact_loads, settings)
+        over = over_capacity(profile.contact_tip_loads, settings)
         if not over.any() or file_info:   # a contacts file is honoured: no contacts added here
             break
         with timer("contacts"):
@@ -357,7 +357,8 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
         with timer("routing"):
             plan = plan_fn(part, contacts, settings, **guard.plan_options())
         with timer("sizing"):
-            sized: SizedPlan = size_plan(plan, contacts.loads, settings)
+            sized: SizedPlan = size_plan(plan, contacts.loads, settings, profile.contact_squeeze_loads,
+                                         side_loads=profile.contact_side_loads)
         with timer("geometry"):
             solids: Solids = combine(part, sized.plan, settings)
         with timer("verify"):
@@ -374,6 +375,8 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
         with timer("forces"):
             profile = _forces(part, stack.grid, more, settings, progress)
         contacts = _sized_contacts(more, profile, settings)
+    # the raft and the posts are layers too: in the per-layer record and the rated-force check
+    profile = profile.with_supports(*support_layer_forces(sized.plan, settings, len(profile.force_n)))
     timer.seconds["total"] = time.perf_counter() - t_total
     records = RunRecords(name, None if isinstance(source, trimesh.Trimesh) else str(source), loaded, part, settings,
                          strategy, oh.area_mm2, contacts, plan, sized, solids, profile, stack, ver, densified,

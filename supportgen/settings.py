@@ -85,16 +85,25 @@ class Printer:
                             "oxygen-inhibited layer on a silicone window is common practice)")
     force_calibration: float = _f(0.02, 1e-6, 10.0, "", "memory",
                                   "factor on the rigid-gap squeeze-film law: flexible films pull off far "
-                                  "below it; fit it from measurements with `supportgen calibrate`")
+                                  "below it. No published absolute force-area data were found to fit it "
+                                  "(benchmarks/force_data.csv); fit it from your own measurements with "
+                                  "`supportgen calibrate`")
     slide_calibration: float = _f(1.0, 1e-6, 10.0, "", "practice",
                                   "factor on the shear law when the film slides: a film sliding in its own "
                                   "plane gets no relief from flexing (an assumption), so 1; sliding then "
                                   "needs about a hundredth of the pull, as practice reports")
     peel_band_mm: float = _f(2.0, 0.1, 50.0, "mm", "memory",
                              "width of the still-wetted strip behind the peel front when the vat tilts")
-    force_area_n_mm2: float = _f(0.0, 0.0, 10.0, "N/mm2", "practice",
-                                 "force per mm2 of layer area added to the squeeze-film law (adhesion to "
-                                 "the film); 0 unless `supportgen calibrate` finds the data call for it")
+    force_area_n_mm2: float = _f(0.02, 0.0, 10.0, "N/mm2", "memory",
+                                 "adhesion force per mm2 of cured layer area, added to the squeeze-film "
+                                 "law. Linear in area: Kovalenko et al., MATEC Web of Conferences 40, 02005 "
+                                 "(2016). The value (2 N/cm2) is from memory (measured peaks of a few N to "
+                                 "tens of N for cm2-scale layers): no published absolute value was found; "
+                                 "fit it with `supportgen calibrate`")
+    ambient_pressure_pa: float = _f(101325.0, 1000.0, 200000.0, "Pa", "pub",
+                                    "ambient pressure over the vat: the most suction a liquid film can hold "
+                                    "before it cavitates is this minus the resin's vapour pressure "
+                                    "(ISO 2533 standard atmosphere, 101,325 Pa at sea level)")
     layer_cycle_s: float = _f(9.0, 0.5, 600.0, "s", "practice",
                               "time per layer: exposure (2-3 s) plus lift, peel and return (5-8 s)")
     rated_force_n: float = _f(80.0, 0.1, 5000.0, "N", "memory", "largest separation force the machine is meant to take")
@@ -110,6 +119,10 @@ class Resin:
                                   "tensile strength as printed; about half to two-thirds of cured 30-70 MPa")
     green_modulus_mpa: float = _f(1200.0, 10.0, 10000.0, "MPa", "memory",
                                   "Young's modulus as printed; cured standard resins 1.3-2.9 GPa")
+    vapour_pressure_pa: float = _f(0.0, 0.0, 50000.0, "Pa", "memory",
+                                   "vapour pressure of the liquid resin; acrylate monomers are of the order "
+                                   "of pascals, negligible against the ambient pressure, so 0 (the highest, "
+                                   "safe, cavitation ceiling)")
     density_g_cm3: float = _f(1.10, 0.5, 3.0, "g/cm3", "memory", "liquid density, 1.05-1.20 typical")
     price_per_l: float = _f(40.0, 0.0, 10000.0, "currency/L", "memory", "price of a litre, for cost estimates")
 

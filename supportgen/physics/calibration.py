@@ -173,17 +173,18 @@ def fit_calibration(measurements: np.ndarray, settings) -> CalibrationFit:
 
 
 def calibrated_settings(fit: CalibrationFit, settings):
-    """``settings`` with ``printer.force_calibration`` set from ``fit``.
+    """``settings`` with ``printer.force_calibration`` and ``force_area_n_mm2`` set from ``fit``.
 
-    The area term is written too when the settings have a ``force_area_n_mm2``
-    field; otherwise it is only reported by :meth:`CalibrationFit.to_text`.
+    The area term is written as fitted, 0 when the fit did not keep it (the factor
+    was fitted without one).  The fit uses the rigid-gap law without the
+    cavitation ceiling: measurements on layers whose film would cavitate (above
+    ``ceiling * A``) bias the factor low.
 
     Raises
     ------
     SettingsError
         The fitted factor is outside the setting's valid range.
     """
-    values = {"force_calibration": fit.factor}
-    if fit.uses_area and hasattr(settings.printer, "force_area_n_mm2"):
-        values["force_area_n_mm2"] = fit.area_n_mm2
+    # the factor was fitted with the area term it came with: 0 when not kept, not the default
+    values = {"force_calibration": fit.factor, "force_area_n_mm2": fit.area_n_mm2 if fit.uses_area else 0.0}
     return settings.override(values)

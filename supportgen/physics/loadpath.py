@@ -23,26 +23,108 @@ labelling and fresh solves.  About 4 ms per 1000 x 1000 layer on one core
 
 Holding contacts.  A contact attaches at the first layer at or above its z where a
 cured pixel lies within its tip radius; it holds the 3-D component (union-find over
-components of successive layers that overlap) of that pixel from then on.  A
-component's force is shared among its holding contacts by tributary area weighted
-by the pressure field: each sample of ``phi dA`` goes to the nearest holding
-contact in x/y.  A component with no holding contact is carried by the plate or not
-supported at all; its force is reported as ``unheld_force_n``.
+components of successive layers that overlap) of that pixel from then on.
+
+Sharing a load.  The part is a rigid body on elastic supports: each holding
+contact is a spring of stiffness ``E A / L`` (tip area ``A``, ``L`` its height
+above the plate), and its reaction follows from force and moment balance about
+both plan axes (:func:`statics_shares`; least squares with the unresisted moment
+dropped when the contacts lie in a line, one contact takes it all).  Only the
+resultant and its two first moments of each component's load enter, so a whole
+peel sweep is shared with one small matrix product.  By mechanism:
+
+* ``pull``: the bounded pressure field of each component (its samples);
+* ``tilt``: the peel band at every front position (:func:`~supportgen.physics.separation.peel_sweep`),
+  clamped to the pull force; each contact keeps its peak over the sweep;
+* ``slide``: the shear is horizontal; it is shared by tip area (equal tips, equal
+  shares) and reported as ``contact_side_loads``.
+
+Whatever the mechanism, the plate coming back down for the next layer squeezes
+the same film (Reynolds' pressure is linear in the gap speed), so the pull shares
+are kept as ``contact_squeeze_loads`` (compression for buckling), together with any
+push a contact takes while the part tips on its supports.  A component with no
+holding contact is carried by the plate or not supported at all; its force is
+reported as ``unheld_force_n``.
 """
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.spatial import cKDTree
 
-from ..analysis.runlength import box_runs, edge_components, paint_runs, run_overlaps
-from ..constants import EPS_FLOOR, EPS_REL, EPS_ZERO
+from ..analysis.runlength import box_runs, edge_components, run_overlaps
+from ..constants import EPS_REL, EPS_ZERO, STATICS_RCOND
 from .pressure import solve_runs
-from .separation import READS_LABELS, LayerShape, separation
+from .separation import (
+    SIDE_LOAD,
+    capped_sample_forces,
+    clamp_to_pull,
+    film_constants,
+    peel_sweep,
+    separation,
+    slide_force,
+)
 
-__all__ = ["ForceTracker", "ForceProfile"]
+__all__ = ["ForceTracker", "ForceProfile", "statics_shares", "statics_matrix"]
+
+
+def statics_matrix(xy, stiffness, length_scale: float = 0.0) -> np.ndarray:
+    """(n, 3) matrix ``G``: reactions ``G @ (F, sum f x, sum f y)`` of a rigid part on springs.
+
+    Parameters
+    ----------
+    xy : (n, 2) float ndarray
+        Support positions (mm).
+    stiffness : (n,) float ndarray
+        Spring stiffness of each support (any common unit, e.g. ``E A / L``).
+    length_scale : float
+        Size of the loaded region (mm), e.g. its RMS radius: the supports' spread is
+        measured against the larger of it and their own spread, so a cluster of
+        contacts far smaller than the part it holds shares the load by stiffness
+        instead of resisting the part's moments with huge, opposite reactions.
+
+    Notes
+    -----
+    Reactions ``R_i = k_i (u + a dx_i + b dy_i)`` about the stiffness-weighted centre,
+    with ``sum R = F`` and ``sum R dx``, ``sum R dy`` equal to the load's moments
+    (force and moment balance of the rigid part).  The 3 x 3 system is solved by a
+    pseudo-inverse: where the supports lie in a line the moment about that line
+    cannot be resisted and is dropped (``STATICS_RCOND``), so two supports share by
+    the lever rule and one takes all.  Cost O(n).
+
+    References
+    ----------
+    Rigid body on elastic supports: any statics text (e.g. Timoshenko & Young,
+    Engineering Mechanics), the bolt-group / pile-group formula.
+    """
+    xy = np.asarray(xy, float).reshape(-1, 2)
+    k = np.asarray(stiffness, float)
+    c = (k[:, None] * xy).sum(axis=0) / k.sum()
+    d = xy - c
+    scale = max(float(np.sqrt((k[:, None] * d**2).sum() / k.sum())), float(length_scale), EPS_ZERO)
+    b = np.column_stack([np.ones(len(k)), d / scale])
+    n = b.T @ (k[:, None] * b)
+    g = (k[:, None] * b) @ np.linalg.pinv(n, rcond=STATICS_RCOND)
+    # inputs (F, Fx, Fy) -> (F, (Fx - F cx)/scale, (Fy - F cy)/scale)
+    t = np.array([[1.0, 0.0, 0.0], [-c[0] / scale, 1.0 / scale, 0.0], [-c[1] / scale, 0.0, 1.0 / scale]])
+    return g @ t
+
+
+def statics_shares(xy, stiffness, force, fx, fy) -> np.ndarray:
+    """Reactions of supports at ``xy`` under loads ``force`` with moments ``fx = F x_P``, ``fy = F y_P``.
+
+    ``force``, ``fx``, ``fy`` may be arrays of M load cases; returns (n, M) (or (n,)
+    for scalars).  See :func:`statics_matrix`.
+
+    Examples
+    --------
+    >>> statics_shares([[-1.0, 0], [0, 0], [1.0, 0]], [1, 1, 1], 3.0, 0.0, 0.0).round(6).tolist()
+    [1.0, 1.0, 1.0]
+    """
+    g = statics_matrix(xy, stiffness)
+    return g @ np.array([force, fx, fy], float)
 
 
 @dataclass(frozen=True)
@@ -57,10 +139,19 @@ class ForceProfile:
     peak_layer_index : int
     peak_force_n : float
     contact_loads : (n,) float ndarray
-        Peak load of each contact (N).
+        Peak tensile (pulling) load of each contact (N); zero for a sliding film.
     contact_peak_layers : (n,) int ndarray
         Layer of that peak; -1 for a contact that never attached or carried nothing.
     warnings : tuple of (code, message)
+    contact_side_loads : (n,) float ndarray
+        Peak horizontal load of each contact (N): the sliding film's shear.
+    contact_squeeze_loads : (n,) float ndarray
+        Peak compressive load of each contact (N): the film squeezed as the plate
+        comes back down (the pull shares), or a push while the part tips.
+    mechanism : str
+    support_force_n : (L,) float ndarray
+        Force of the raft and post cross-sections in each layer (N), added to
+        ``force_n`` by :meth:`with_supports`; zeros until then.
     """
 
     force_n: np.ndarray
@@ -71,6 +162,42 @@ class ForceProfile:
     contact_loads: np.ndarray
     contact_peak_layers: np.ndarray
     warnings: tuple
+    contact_side_loads: np.ndarray | None = None
+    contact_squeeze_loads: np.ndarray | None = None
+    mechanism: str = "pull"
+    support_force_n: np.ndarray | None = None
+    rated_force_n: float | None = None
+
+    @property
+    def contact_tip_loads(self) -> np.ndarray:
+        """Axial load with the von Mises stress of each tip's peak tension and shear (N).
+
+        ``sqrt(T^2 + (16/3) S^2)``: tension ``4T/(pi d^2)`` with the peak shear
+        ``(4/3) 4S/(pi d^2)`` of a round section (Roark).
+        """
+        side = _or_zeros(self.contact_side_loads, self.contact_loads)
+        return np.sqrt(self.contact_loads**2 + (16.0 / 3.0) * side**2)
+
+    def with_supports(self, force_n, area_mm2) -> ForceProfile:
+        """This profile with the raft and post layers' force and area added (per layer index).
+
+        The arrays are cut or padded with zeros to the part's record (layer ``k`` at
+        ``[k, k + 1) * layer_mm`` above the plate).  The peak and the rated-force
+        warning are recomputed.
+        """
+        extra_f, extra_a = np.asarray(force_n, float), np.asarray(area_mm2, float)
+        n = self.force_n.size or extra_f.size
+        pad = lambda a: np.pad(a[:n], (0, n - min(a.size, n)))  # noqa: E731
+        support = pad(extra_f) + (pad(self.support_force_n) if self.support_force_n is not None else 0.0)
+        force, area = pad(self.force_n) + pad(extra_f), pad(self.area_mm2) + pad(extra_a)
+        unheld = pad(self.unheld_force_n)
+        peak = int(np.argmax(force)) if n else -1
+        warns = tuple(w for w in self.warnings if w[0] != "force-over-rated")
+        rated = self.rated_force_n
+        over = _over_rated(force, rated) if rated is not None else ()
+        return dataclasses.replace(self, force_n=force, area_mm2=area, unheld_force_n=unheld, peak_layer_index=peak,
+                                   peak_force_n=float(force[peak]) if n else 0.0, warnings=over + warns,
+                                   support_force_n=support)
 
     def to_dict(self) -> dict:
         """Plain dict for the JSON report (``forces.peak_layer_force_n`` etc.)."""
@@ -82,8 +209,28 @@ class ForceProfile:
             "unheld_force_n": [float(v) for v in self.unheld_force_n],
             "contact_loads_n": [float(v) for v in self.contact_loads],
             "contact_peak_layers": [int(v) for v in self.contact_peak_layers],
+            "contact_side_loads_n": [float(v) for v in _or_zeros(self.contact_side_loads, self.contact_loads)],
+            "contact_squeeze_loads_n": [float(v) for v in _or_zeros(self.contact_squeeze_loads, self.contact_loads)],
+            "support_force_n": [float(v) for v in _or_zeros(self.support_force_n, self.force_n)],
+            "mechanism": self.mechanism,
             "warnings": [{"code": c, "message": m} for c, m in self.warnings],
         }
+
+
+def _or_zeros(a, like):
+    return np.zeros(np.shape(like)) if a is None else a
+
+
+def _over_rated(force, rated) -> tuple:
+    """The force-over-rated warning, naming the worst layer and the first one over."""
+    over = np.nonzero(force > rated)[0]
+    if not over.size:
+        return ()
+    worst = int(np.argmax(force))
+    return (("force-over-rated",
+             f"{over.size} layer(s) exceed the rated separation force of {rated:g} N: the worst is layer "
+             f"{worst} at {force[worst]:.1f} N, the first layer {int(over[0])} at {force[over[0]]:.1f} N; "
+             "reorient the part, slow the lift or add a slower mode"),)
 
 
 #: Unheld force below which no warning is given (N): a thousandth of the smallest
@@ -121,10 +268,12 @@ class ForceTracker:
 
     def __init__(self, grid, layer_mm: float, contact_points, settings):
         self.grid, self.layer_mm, self.settings = grid, float(layer_mm), settings
-        self.law = separation(settings.printer.mechanism)
-        self._paints = settings.printer.mechanism in READS_LABELS
+        self.mechanism = settings.printer.mechanism
+        separation(self.mechanism)                 # SettingsError on an unknown name
         pts = np.asarray(contact_points, float).reshape(-1, 3)
         self.points = pts
+        # spring of each load path: E A / L with equal tips before sizing, L its height above the plate
+        self._stiff = 1.0 / np.maximum(pts[:, 2], self.layer_mm) if len(pts) else np.zeros(0)
         r = max(settings.rules.tip_diameter_mm / 2.0, grid.pixel_mm / 2.0)
         k = int(np.ceil(r / grid.pixel_mm))
         dr, dc = np.mgrid[-k: k + 1, -k: k + 1]
@@ -139,6 +288,8 @@ class ForceTracker:
         self._force, self._area, self._unheld = {}, {}, {}
         self._peak = np.zeros(len(pts))
         self._peak_layer = np.full(len(pts), -1)
+        self._side = np.zeros(len(pts))
+        self._squeeze = np.zeros(len(pts))
         self.last_loads, self.last_unheld_n = np.zeros(len(pts)), 0.0
         self.last_torsion_mm4 = np.zeros(0)
 
@@ -174,28 +325,71 @@ class ForceTracker:
         geo, cache = self._geometry(suction, nf, edges, {} if prev is None else prev["cache"])
         area = np.array([geo[i][1] for i in range(1, nf + 1)])
         jt = np.array([geo[i][0] for i in range(1, nf + 1)])
-        shape = LayerShape(paint_runs(*suction, labels.shape) if self._paints else np.zeros((0, 0), np.int32),
-                              h, area, jt)
-        comp_force = np.asarray(self.law(shape, self.settings), float)
-        holders: list[set] = [set() for _ in range(nf + 1)]
+        cured = np.bincount(fmap[lab] - 1, runs[2] - runs[1], nf) * h * h if nf else np.zeros(0)
+        holders: list[list] = [[] for _ in range(nf + 1)]
         for a in range(1, n_labels + 1):
-            holders[fmap[a]].update(self._held.get(self._find(node0 + a - 1), ()))
-        load = np.zeros(len(self.points))
+            holders[fmap[a]].extend(self._held.get(self._find(node0 + a - 1), ()))
+        # pull: the bounded pressure field of each component, its resultant and first moments
+        _, _, adh = film_constants(self.settings)
+        pull = np.zeros((3, nf))
+        for i in range(1, nf + 1):
+            pts, w, da = geo[i][2], geo[i][3], geo[i][4]
+            f = capped_sample_forces(w, da, self.settings)
+            fa = adh * cured[i - 1] * da / max(float(da.sum()), EPS_ZERO)
+            f = f + fa
+            pull[:, i - 1] = f.sum(), f @ pts[:, 0], f @ pts[:, 1]
+        n = len(self.points)
+        squeeze_load, load, side = np.zeros(n), np.zeros(n), np.zeros(n)
+        if self.mechanism == "tilt":
+            sweep = peel_sweep(*suction[:4], nf, h, (self.grid.x0, self.grid.y0), self.settings)
+            force, fx, fy = clamp_to_pull(*sweep, pull[0])
+            worst = int(np.argmax(force.sum(axis=0))) if force.shape[1] else 0
+            comp_force = force[:, worst] if force.shape[1] else np.zeros(nf)
+        elif self.mechanism in SIDE_LOAD:
+            comp_force = slide_force(_Areas(area), self.settings)
+        else:
+            comp_force = pull[0]
         unheld = 0.0
         for i in range(1, nf + 1):
-            hold = sorted(holders[i])
+            hold = sorted(set(holders[i]))
             if not hold:
                 unheld += comp_force[i - 1]
-            elif len(hold) == 1:
-                load[hold[0]] += comp_force[i - 1]
+                continue
+            pts, da = geo[i][2], geo[i][4]
+            spread = float(np.sqrt((da @ ((pts - da @ pts / da.sum()) ** 2).sum(axis=1)) / da.sum())) if da.sum() > 0 else 0.0
+            g = statics_matrix(self.points[hold, :2], self._stiff[hold], spread)
+            r_pull = g @ pull[:, i - 1]
+            squeeze_load[hold] += r_pull
+            if self.mechanism == "tilt" and force.shape[1]:
+                r = g @ np.vstack([force[i - 1], fx[i - 1], fy[i - 1]])          # (n_hold, M): every front position
+                load[hold] += r[:, worst]
+                up = np.maximum(r.max(axis=1), 0.0)
+                push = np.maximum(-r.min(axis=1), 0.0)
+                self._squeeze[hold] = np.maximum(self._squeeze[hold], push)
+                better = up > self._peak[hold]
+                self._peak[np.array(hold)[better]] = up[better]
+                self._peak_layer[np.array(hold)[better]] = k
+            elif self.mechanism in SIDE_LOAD:
+                share = comp_force[i - 1] / len(hold)          # equal tips: shear shared by tip area
+                side[hold] += share
             else:
-                pts, w = geo[i][2], geo[i][3]
-                share = _tributary(self.points[hold, :2], pts, w)
-                load[hold] += comp_force[i - 1] * share / max(share.sum(), EPS_FLOOR)
-        self.last_loads, self.last_unheld_n = load, float(unheld)   # this layer, for checks
+                load[hold] += r_pull
+        # squeeze on the way back down: compression, plus any pull share that came out negative (a push)
+        self._squeeze = np.maximum(self._squeeze, np.maximum(squeeze_load, 0.0))
+        self._squeeze = np.maximum(self._squeeze, np.maximum(-load, 0.0))
+        if self.mechanism in SIDE_LOAD:
+            self.last_loads = side
+            self._side = np.maximum(self._side, side)
+            up = side > self._peak
+            self._peak_layer[up] = k
+            self._peak[up] = side[up]
+        else:
+            self.last_loads = load
+            if self.mechanism != "tilt":
+                up = load > self._peak
+                self._peak[up], self._peak_layer[up] = load[up], k
+        self.last_unheld_n = float(unheld)
         self.last_torsion_mm4 = jt
-        up = load > self._peak
-        self._peak[up], self._peak_layer[up] = load[up], k
         self._force[k] = float(comp_force.sum())
         self._area[k] = float((runs[2] - runs[1]).sum()) * h * h
         self._unheld[k] = float(unheld)
@@ -221,14 +415,14 @@ class ForceTracker:
     def _geometry(self, suction, nf, edges, kept):
         """J, area and pressure samples per suction component; solves kept by coarse block key."""
         g = self.grid
-        rows, starts, ends, comp = suction
+        rows, starts, ends, comp, cav = suction
         order = np.argsort(comp, kind="stable")
         cut = np.searchsorted(comp[order], np.arange(1, nf + 2))
         geo, cache = {}, {}
         for i in range(1, nf + 1):
             o = order[cut[i - 1]: cut[i]]
             *out, (key, state) = solve_runs(rows[o], starts[o], ends[o], int(edges[i - 1]), g.pixel_mm,
-                                               (g.x0, g.y0), kept)
+                                               (g.x0, g.y0), kept, cavity=cav[o] if cav[o].any() else None)
             geo[i] = tuple(out)
             cache[key] = state
         return geo, cache
@@ -241,13 +435,8 @@ class ForceTracker:
             force[k], area[k], unheld[k] = self._force[k], self._area[k], self._unheld[k]
         peak = int(np.argmax(force)) if n else -1
         peak_f = float(force[peak]) if n else 0.0
-        warns = []
         rated = self.settings.printer.rated_force_n
-        over = np.nonzero(force > rated)[0]
-        if over.size:
-            warns.append(("force-over-rated",
-                          f"{over.size} layer(s) exceed the rated separation force of {rated:g} N, the worst "
-                          f"layer {peak} at {peak_f:.1f} N; reorient the part, slow the lift or add a slower mode"))
+        warns = list(_over_rated(force, rated))
         never = np.nonzero(self._node < 0)[0]
         if never.size:
             warns.append(("contact-unattached",
@@ -261,8 +450,19 @@ class ForceTracker:
             warns.append(("force-unheld",
                           f"{int(significant.sum())} layer(s) pull on parts no contact holds yet (first: layer "
                           f"{first}, {unheld[first]:.3g} N); add contacts under them"))
-        return ForceProfile(force, area, unheld, peak, peak_f, self._peak.copy(),
-                            np.where(self._peak > 0, self._peak_layer, -1), tuple(warns))
+        side = self.mechanism in SIDE_LOAD
+        tension = np.zeros(len(self.points)) if side else self._peak.copy()
+        return ForceProfile(force, area, unheld, peak, peak_f, tension,
+                            np.where(self._peak > 0, self._peak_layer, -1), tuple(warns),
+                            contact_side_loads=self._side.copy(), contact_squeeze_loads=self._squeeze.copy(),
+                            mechanism=self.mechanism, support_force_n=np.zeros(n), rated_force_n=rated)
+
+
+class _Areas:
+    """The part of :class:`~supportgen.physics.separation.LayerShape` the slide law reads."""
+
+    def __init__(self, area):
+        self.area_mm2 = area
 
 
 def _suction(runs, lab, n_labels: int, below):
@@ -270,8 +470,8 @@ def _suction(runs, lab, n_labels: int, below):
 
     Parameters: the layer's runs and their 8-connected labels, and ``below`` the
     layer below's suction runs (None for the first layer: every hole is vented).
-    Returns the suction runs ``(rows, starts, ends, component)`` sorted by row and
-    start, the map label -> component (components of ``mask | sealed``, 8-connected),
+    Returns the suction runs ``(rows, starts, ends, component, is_cavity)`` sorted by
+    row and start, the map label -> component (components of ``mask | sealed``, 8-connected),
     the component count and each component's pixel-edge perimeter.
 
     The same cavities as :func:`supportgen.physics.pressure.sealed_cavities` (4-connected empty
@@ -306,7 +506,8 @@ def _suction(runs, lab, n_labels: int, below):
         nf, cl = edge_components(n_labels, lab[sealed] - 1, lab[sealed + 1] - 1) if n_labels > 1 else (1, np.zeros(1, int))
         fmap = np.r_[0, cl + 1]
     comp = fmap[lab]
-    suc = [np.r_[r, r[sealed]], np.r_[s, e[sealed]], np.r_[e, s[sealed + 1]], np.r_[comp, comp[sealed]]]
+    suc = [np.r_[r, r[sealed]], np.r_[s, e[sealed]], np.r_[e, s[sealed + 1]], np.r_[comp, comp[sealed]],
+           np.r_[np.zeros(r.size, bool), np.ones(sealed.size, bool)]]
     order = np.lexsort((suc[1], suc[0]))
     suc = tuple(x[order] for x in suc)
     ia, _, ln = run_overlaps(suc, (suc[0] - 1, suc[1], suc[2]))  # cured length shared with the next row
@@ -314,12 +515,3 @@ def _suction(runs, lab, n_labels: int, below):
     merged = np.bincount(comp - 1, minlength=nf) - np.bincount(comp[sealed] - 1, minlength=nf)
     edges = 2 * merged + 2 * area - 2 * np.bincount(suc[3][ia] - 1, ln, nf)
     return suc, fmap, nf, np.rint(edges).astype(np.int64)
-
-
-def _tributary(contacts_xy, pts, w):
-    """Sum of weights ``w`` at ``pts`` nearest each contact; exact ties split evenly."""
-    dist, near = cKDTree(contacts_xy).query(pts, k=2)
-    tie = np.abs(dist[:, 1] - dist[:, 0]) <= EPS_REL * np.maximum(dist[:, 0], EPS_ZERO)
-    half = np.where(tie, 0.5, 1.0) * w
-    m = len(contacts_xy)
-    return np.bincount(near[:, 0], half, m) + np.bincount(near[tie, 1], half[tie], m)
