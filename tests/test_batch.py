@@ -279,7 +279,8 @@ def test_timeout_and_memory_refusal(tmp_path):
     assert rows["wide_plate.stl"].status == "refused" and "MB" in rows["wide_plate.stl"].reason
     assert rows["slow_sphere.stl"].status == "timeout" and "0.2 s" in rows["slow_sphere.stl"].reason
     assert summary.exit_code == 1
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["batch-summary.csv", "batch-summary.json"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["batch-summary.csv", "batch-summary.json",
+                                                                     "index.html"]
 
 
 def test_command_line(folder, runs, tmp_path, capsys):

@@ -530,7 +530,8 @@ def test_full_disk_gives_one_line_and_the_next_input_goes_on(tmp_path, capsys, m
     import dataclasses
 
     small, _ = two_results
-    sphere = trimesh.creation.icosphere(subdivisions=5, radius=5.0)      # 20,480 faces: a 1 MB STL
+    # 81,920 faces: a 4 MB STL, well over the small part's set with its 1 MB report page
+    sphere = trimesh.creation.icosphere(subdivisions=6, radius=5.0)
     big = dataclasses.replace(small, name="big", combined=sphere)
     drawn = small.save(tmp_path / "drawn")
     _reuse_plots(monkeypatch, drawn)
