@@ -173,3 +173,16 @@ def test_contacts_are_added_where_a_tip_would_need_more_than_the_largest():
     capacity = s.resin.green_tensile_mpa * np.pi * c.diameters**2 / 4
     assert np.all(capacity >= s.rules.safety_factor * c.loads * (1 - 1e-9))
     assert heavy.report["verification"]["passed"]
+
+
+def test_summary_tip_row_is_the_lowest_tip_factor(coarse):
+    # The Markdown row for tips is the minimum of the tips' own safety factors in the JSON
+    # (posts have their own row); exact, the same numbers formatted to two places.
+    from supportgen.report.document import markdown
+
+    box = trimesh.creation.box((12, 10, 4))
+    r = supportgen.generate(box, coarse, strategy="straight", name="box")
+    tips = np.asarray(r.report["supports"]["tips"]["safety_factor"], float)
+    row = next(line for line in markdown(r.report, "box", {}).splitlines() if line.startswith("| lowest tip"))
+    assert f"| {float(np.min(tips[np.isfinite(tips)])):.2f}, " in row
+    assert r.report["forces"]["min_tip_safety_factor"] == pytest.approx(np.min(tips[np.isfinite(tips)]), rel=1e-9)

@@ -128,6 +128,8 @@ def build_report(r: RunRecords) -> dict:
                    "tips_over_capacity": sized.tips_over_capacity,
                    "min_tip_safety_factor": sized_dict["min_tip_safety_factor"],
                    "min_post_safety_factor": sized_dict["min_post_safety_factor"],
+                   **{k: sized_dict[k] for k in ("min_side_load_safety_factor", "min_brace_safety_factor")
+                      if k in sized_dict},
                    "target_safety_factor": rules.safety_factor},
         "verification": r.verification.to_dict(),
         "layers": r.layers.to_dict(),

@@ -86,7 +86,11 @@ def markdown(report: dict, name: str, images: dict[str, str]) -> str:
         f"| tip diameter, min / median / max (mm) | {_fmt(tip.get('min'))} / {_fmt(tip.get('median'))} / {_fmt(tip.get('max'))} |",
         f"| support volume (mm³), of which base | {_fmt(sup.get('volume_mm3'), 1)}, {_fmt(sup.get('base_volume_mm3'), 1)} |",
         f"| peak separation force (N), at layer | {_fmt(frc.get('peak_layer_force_n'))}, {frc.get('peak_layer_index')} |",
-        f"| lowest tip safety factor, tips over capacity | {_fmt(frc.get('min_safety_factor'))}, {frc.get('tips_over_capacity')} |",
+        f"| lowest tip safety factor, tips over capacity | {_fmt(frc.get('min_tip_safety_factor'))}, "
+        f"{frc.get('tips_over_capacity')} |",
+        f"| lowest post safety factor (tension, buckling) | {_fmt(frc.get('min_post_safety_factor'))} |",
+        f"| lowest side-load safety factor (shear, bending) | {_fmt(frc.get('min_side_load_safety_factor'))} |",
+        f"| lowest brace safety factor | {_fmt(frc.get('min_brace_safety_factor'))} |",
         f"| islands left, largest reach (mm) | {ver.get('islands')}, {_fmt(ver.get('max_unsupported_reach_mm'))} (limit {_fmt(ver.get('reach_limit_mm'))}) |",
         f"| layers, print time (h), resin (ml) | {est.get('layers')}, {_fmt((est.get('print_time_s') or 0) / 3600)}, {_fmt(est.get('resin_ml'), 1)} |",
         "",
