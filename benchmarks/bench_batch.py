@@ -46,15 +46,16 @@ def throughput(workers: list[int], repeat: int) -> None:
             best = np.inf
             for r in range(repeat):
                 t0 = time.perf_counter()
-                summary = run_batch(Path(tmp) / "in", Path(tmp) / f"out-{n}-{r}", Settings(), workers=n,
-                                    progress=False)
+                summary = run_batch(Path(tmp) / "in", Path(tmp) / f"out-{n}-{r}", Settings(), workers=n, progress=False)
                 best = min(best, time.perf_counter() - t0)
                 assert summary.counts["ok"] == len(inputs), summary.results
             peak = max(r.peak_mb or 0.0 for r in summary.results)
             per_file = ", ".join(f"{r.file} {r.seconds:.1f} s" for r in summary.results)
-            print(f"workers={n}: {best:.1f} s wall (best of {repeat}), {len(inputs) / best * 60:.2f} parts/min; "
-                  f"per file (last run): {per_file}; largest worker peak {peak:.0f} MB; "
-                  f"load average {os.getloadavg()[0]:.1f}")
+            print(
+                f"workers={n}: {best:.1f} s wall (best of {repeat}), {len(inputs) / best * 60:.2f} parts/min; "
+                f"per file (last run): {per_file}; largest worker peak {peak:.0f} MB; "
+                f"load average {os.getloadavg()[0]:.1f}"
+            )
 
 
 def _measure(path: str, overrides: dict, queue) -> None:
@@ -107,8 +108,11 @@ def calibrate() -> None:
             settings = Settings().override(kw)
             ext = np.ptp(bounds[:, :2], axis=0) / settings.printer.pixel_mm
             rows.append((path.stem, faces, float(np.prod(ext)), base, peak, estimate_peak_mb(faces, bounds, settings)))
-            print(f"{path.stem:14s} faces {faces:7d}  mask {ext[0]:.0f} x {ext[1]:.0f} px  base {base:.0f} MB  "
-                  f"peak {peak:.0f} MB  estimate {rows[-1][-1]:.0f} MB  ({time.perf_counter() - t0:.1f} s)", flush=True)
+            print(
+                f"{path.stem:14s} faces {faces:7d}  mask {ext[0]:.0f} x {ext[1]:.0f} px  base {base:.0f} MB  "
+                f"peak {peak:.0f} MB  estimate {rows[-1][-1]:.0f} MB  ({time.perf_counter() - t0:.1f} s)",
+                flush=True,
+            )
     a = np.array([[1.0, r[2] / 2**20, r[1] / 2**20] for r in rows])
     y = np.array([r[4] for r in rows])
     coef, *_ = np.linalg.lstsq(a, y, rcond=None)
@@ -116,8 +120,10 @@ def calibrate() -> None:
     # An upper bound: the same slopes, the intercept raised until no part is under-estimated.
     lift = max(0.0, float(np.max(y - a @ coef)))
     print(f"bounding: peak_MB <= {coef[0] + lift:.1f} + {coef[1]:.1f} * mask_MB + {coef[2]:.0f} B * faces / 2**20")
-    print(f"current constants: worst estimate/measured = {min(r[5] / r[4] for r in rows):.2f}, "
-          f"mean {np.mean([r[5] / r[4] for r in rows]):.2f}")
+    print(
+        f"current constants: worst estimate/measured = {min(r[5] / r[4] for r in rows):.2f}, "
+        f"mean {np.mean([r[5] / r[4] for r in rows]):.2f}"
+    )
 
 
 def main() -> None:

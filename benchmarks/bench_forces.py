@@ -41,8 +41,10 @@ def model() -> trimesh.Trimesh:
     inner = trimesh.creation.icosphere(subdivisions=5, radius=20.0)
     bore = trimesh.creation.cylinder(radius=3.0, height=20.0, sections=64)
     bore.apply_translation([0, 0, 20.0])
-    m = [manifold3d.Manifold(manifold3d.Mesh(np.asarray(t.vertices, np.float32), np.asarray(t.faces, np.uint32)))
-         for t in (outer, inner, bore)]
+    m = [
+        manifold3d.Manifold(manifold3d.Mesh(np.asarray(t.vertices, np.float32), np.asarray(t.faces, np.uint32)))
+        for t in (outer, inner, bore)
+    ]
     solid = m[0] - m[1] - m[2]
     out = solid.to_mesh()
     mesh = trimesh.Trimesh(np.asarray(out.vert_properties)[:, :3], np.asarray(out.tri_verts))
@@ -85,12 +87,18 @@ def bench(seed: int = 0, profile: bool = False) -> None:
     prof = tracker.result()
     total = time.perf_counter() - t0
     peak_mem = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(f"cores: {os.cpu_count()}  faces: {len(mesh.faces)}  grid: {grid.ny}x{grid.nx}  layers: {n}  "
-          f"load average before/after: {load_before[0]:.2f} / {os.getloadavg()[0]:.2f}")
-    print(f"forces (ForceTracker): {t_force:.2f} s wall, {cpu_force:.2f} s CPU   rasterise: {t_layers:.2f} s   "
-          f"label: {t_label:.2f} s   total: {total:.2f} s   peak RSS: {peak_mem:.0f} MiB")
-    print(f"peak layer {prof.peak_layer_index}: {prof.peak_force_n:.2f} N; "
-          f"largest contact load {prof.contact_loads.max():.3f} N; warnings: {[c for c, _ in prof.warnings]}")
+    print(
+        f"cores: {os.cpu_count()}  faces: {len(mesh.faces)}  grid: {grid.ny}x{grid.nx}  layers: {n}  "
+        f"load average before/after: {load_before[0]:.2f} / {os.getloadavg()[0]:.2f}"
+    )
+    print(
+        f"forces (ForceTracker): {t_force:.2f} s wall, {cpu_force:.2f} s CPU   rasterise: {t_layers:.2f} s   "
+        f"label: {t_label:.2f} s   total: {total:.2f} s   peak RSS: {peak_mem:.0f} MiB"
+    )
+    print(
+        f"peak layer {prof.peak_layer_index}: {prof.peak_force_n:.2f} N; "
+        f"largest contact load {prof.contact_loads.max():.3f} N; warnings: {[c for c, _ in prof.warnings]}"
+    )
     if prof_:
         pstats.Stats(prof_).sort_stats("cumulative").print_stats(r"supportgen|superlu|cKDTree|csgraph", 25)
 
@@ -132,9 +140,13 @@ def convergence() -> None:
             cells.append(f"{w / s:10.1f} {worst:+7.2f} {errs.mean():+6.2f}")
         print(f"{name:14s} {w:7.1f}  " + "  ".join(cells))
     print(f"worst error where w/H >= {pz.CELLS_ACROSS}: {worst_ok:.2f} % (stated bound 2 %)")
-    print("pixel solve against exact square (Roark 0.140577): " + ", ".join(
-        f"{n}px {100 * (pz.torsion_constant(np.ones((n, n), bool), 1 / n) / 0.1405770 - 1):+.3f}%"
-        for n in (8, 16, 32, 64, 128)))
+    print(
+        "pixel solve against exact square (Roark 0.140577): "
+        + ", ".join(
+            f"{n}px {100 * (pz.torsion_constant(np.ones((n, n), bool), 1 / n) / 0.1405770 - 1):+.3f}%"
+            for n in (8, 16, 32, 64, 128)
+        )
+    )
 
 
 if __name__ == "__main__":

@@ -84,14 +84,20 @@ def main() -> None:
     ap.add_argument("--seed", type=int, default=0)
     a = ap.parse_args()
     mesh, name = model(a.seed)
-    print(f"model: {name}; {len(mesh.faces)} faces, extents {np.round(mesh.extents, 2).tolist()} mm, "
-          f"closed={mesh.is_watertight}")
-    print(f"cores: {os.cpu_count()} ({platform.processor() or platform.machine()}), numpy {np.__version__}, "
-          f"trimesh {trimesh.__version__}; pixel {a.pixel} mm, layer {a.layer} mm")
+    print(
+        f"model: {name}; {len(mesh.faces)} faces, extents {np.round(mesh.extents, 2).tolist()} mm, "
+        f"closed={mesh.is_watertight}"
+    )
+    print(
+        f"cores: {os.cpu_count()} ({platform.processor() or platform.machine()}), numpy {np.__version__}, "
+        f"trimesh {trimesh.__version__}; pixel {a.pixel} mm, layer {a.layer} mm"
+    )
     t_ours, c_ours, m_ours, stack = timed(lambda: analyse_layers(mesh, a.pixel, a.layer, 1.5), a.repeat)
     t_ref, c_ref, m_ref, ref = timed(lambda: reference(mesh, stack.z_mm), a.repeat)
-    print(f"layers: {len(stack.z_mm)}, grid {stack.grid.ny}x{stack.grid.nx} pixels, "
-          f"islands {len(stack.islands)}, max reach {stack.max_unsupported_reach_mm:.3f} mm at layer {stack.max_unsupported_reach_layer}")
+    print(
+        f"layers: {len(stack.z_mm)}, grid {stack.grid.ny}x{stack.grid.nx} pixels, "
+        f"islands {len(stack.islands)}, max reach {stack.max_unsupported_reach_mm:.3f} mm at layer {stack.max_unsupported_reach_layer}"
+    )
     print(f"analyse_layers : {t_ours:7.3f} s wall, {c_ours:7.3f} s CPU, peak {m_ours / 2**20:7.1f} MiB")
     print(f"sections+areas : {t_ref:7.3f} s wall, {c_ref:7.3f} s CPU, peak {m_ref / 2**20:7.1f} MiB")
     print(f"speed-up       : {t_ref / t_ours:7.2f}x wall, {c_ref / c_ours:7.2f}x CPU")

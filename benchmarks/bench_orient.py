@@ -45,7 +45,7 @@ def model() -> tuple[trimesh.Trimesh, str]:
     horse = CORPUS / "horse.ply"
     if horse.exists():
         m = trimesh.load(horse, force="mesh")
-        m.invert()                                   # stored inside out (corpus README)
+        m.invert()  # stored inside out (corpus README)
         name = "horse.ply, turned right way out"
     else:
         m = trimesh.creation.torus(20.0, 6.0, major_sections=400, minor_sections=125)
@@ -68,25 +68,33 @@ def main() -> None:
     args = ap.parse_args()
     mesh, name = model()
     settings = Settings()
-    _ = mesh.edges_unique, mesh.triangles_center, mesh.face_normals     # trimesh caches, for both sides
-    print(f"machine: {platform.machine()}, {os.cpu_count()} cores, load average "
-          f"{' '.join(f'{x:.2f}' for x in os.getloadavg())}")
+    _ = mesh.edges_unique, mesh.triangles_center, mesh.face_normals  # trimesh caches, for both sides
+    print(
+        f"machine: {platform.machine()}, {os.cpu_count()} cores, load average "
+        f"{' '.join(f'{x:.2f}' for x in os.getloadavg())}"
+    )
     print(f"part: {name}, {len(mesh.faces)} faces, extents {np.round(mesh.extents, 1).tolist()} mm")
     z = np.arange(args.layer / 2, mesh.bounds[1, 2], args.layer)
     _, ref_wall, ref_cpu = timed(lambda: mesh.section_multiplane([0, 0, 0], [0, 0, 1], z))
-    print(f"reference: section_multiplane, {len(z)} layers of {args.layer * 1000:.0f} um: "
-          f"{ref_wall:.2f} s wall, {ref_cpu:.2f} s CPU")
+    print(
+        f"reference: section_multiplane, {len(z)} layers of {args.layer * 1000:.0f} um: "
+        f"{ref_wall:.2f} s wall, {ref_cpu:.2f} s CPU"
+    )
     dirs = fibonacci_sphere(args.directions)
     pixel = scoring_pixel(mesh, settings)
     terms, wall, cpu = timed(lambda: score_directions(mesh, dirs, settings, pixel))
-    print(f"scorer: {args.directions} directions, every term, {pixel:.3f} mm grid: {wall:.2f} s wall, {cpu:.2f} s CPU "
-          f"({1000 * cpu / args.directions:.0f} ms CPU a direction)")
+    print(
+        f"scorer: {args.directions} directions, every term, {pixel:.3f} mm grid: {wall:.2f} s wall, {cpu:.2f} s CPU "
+        f"({1000 * cpu / args.directions:.0f} ms CPU a direction)"
+    )
     print(f"ratio scorer / reference: {wall / ref_wall:.2f} wall, {cpu / ref_cpu:.2f} CPU (target <= 5)")
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"peak resident memory of the process: {peak:.0f} MB")
     best = int(np.argmin(terms["peak_force_n"]))
-    print(f"lowest peak force {terms['peak_force_n'][best]:.2f} N at up-direction {np.round(dirs[best], 3).tolist()}; "
-          f"highest {terms['peak_force_n'].max():.2f} N")
+    print(
+        f"lowest peak force {terms['peak_force_n'][best]:.2f} N at up-direction {np.round(dirs[best], 3).tolist()}; "
+        f"highest {terms['peak_force_n'].max():.2f} N"
+    )
 
 
 if __name__ == "__main__":

@@ -64,14 +64,16 @@ def main(argv=None) -> None:
     settings = Settings()
     s = settings.rules
     part, name = load_part(args.mesh, s.elevation_mm)
-    print(f"part {name}: {len(part.faces)} faces, extents {np.round(part.extents, 1).tolist()} mm; "
-          f"cores {os.cpu_count()}; seed {args.seed}")
+    print(
+        f"part {name}: {len(part.faces)} faces, extents {np.round(part.extents, 1).tolist()} mm; "
+        f"cores {os.cpu_count()}; seed {args.seed}"
+    )
     for n in args.sizes:
         contacts = sample_contacts(part, n, np.random.default_rng(args.seed))
         t0 = time.perf_counter()
         plan = plan_tree(part, contacts, settings)
         wall = time.perf_counter() - t0
-        tracemalloc.start()                      # a second run for memory: tracing slows it down
+        tracemalloc.start()  # a second run for memory: tracing slows it down
         plan_tree(part, contacts, settings)
         peak = tracemalloc.get_traced_memory()[1] / 2**20
         tracemalloc.stop()
@@ -79,9 +81,11 @@ def main(argv=None) -> None:
         straight = float((plan.nodes[plan.tip_nodes[served], 2] - s.base_thickness_mm).sum())
         length = plan.segment_length()
         rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-        print(f"contacts {n:5d}: {wall:6.2f} s, peak traced {peak:6.1f} MiB, peak RSS {rss:6.0f} MiB; "
-              f"served {int(served.sum())}, feet {len(plan.feet)}, landings {plan.landings}; "
-              f"post length {length:.0f} mm vs straight {straight:.0f} mm ({100 * (1 - length / straight):.1f} % less)")
+        print(
+            f"contacts {n:5d}: {wall:6.2f} s, peak traced {peak:6.1f} MiB, peak RSS {rss:6.0f} MiB; "
+            f"served {int(served.sum())}, feet {len(plan.feet)}, landings {plan.landings}; "
+            f"post length {length:.0f} mm vs straight {straight:.0f} mm ({100 * (1 - length / straight):.1f} % less)"
+        )
 
 
 if __name__ == "__main__":

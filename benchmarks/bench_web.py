@@ -42,24 +42,43 @@ def main() -> None:
             t = time.perf_counter()
             page = web.part_page(res.report, res.combined, res.supports, res.part, res.contacts.to_records())
             build = time.perf_counter() - t
-            meshes = sum(len(web.encode_mesh(m.vertices, m.faces)["positions"]) +
-                         len(web.encode_mesh(m.vertices, m.faces)["index"]) for m in (res.part, res.supports))
-            quant = sum(len(web.encode_mesh(m.vertices, m.faces, quantise_above=0)["positions"]) +
-                        len(web.encode_mesh(m.vertices, m.faces, quantise_above=0)["index"])
-                        for m in (res.part, res.supports))
+            meshes = sum(
+                len(web.encode_mesh(m.vertices, m.faces)["positions"])
+                + len(web.encode_mesh(m.vertices, m.faces)["index"])
+                for m in (res.part, res.supports)
+            )
+            quant = sum(
+                len(web.encode_mesh(m.vertices, m.faces, quantise_above=0)["positions"])
+                + len(web.encode_mesh(m.vertices, m.faces, quantise_above=0)["index"])
+                for m in (res.part, res.supports)
+            )
             imap = re.search(r'<script type="importmap">.*?</script>', page, re.S)
             vendor = len(imap.group(0)) if imap else 0
             faces = len(res.part.faces) + len(res.supports.faces)
-            line = (f"{name:8s} faces {faces:7d}  page {len(page) / 1e6:5.2f} MB (three.js {vendor / 1e6:4.2f} MB, "
-                    f"meshes {meshes / 1e6:4.2f} MB, "
-                    f"{quant / 1e6:4.2f} MB as uint16)  built in {build * 1000:6.1f} ms")
+            line = (
+                f"{name:8s} faces {faces:7d}  page {len(page) / 1e6:5.2f} MB (three.js {vendor / 1e6:4.2f} MB, "
+                f"meshes {meshes / 1e6:4.2f} MB, "
+                f"{quant / 1e6:4.2f} MB as uint16)  built in {build * 1000:6.1f} ms"
+            )
             if args.browser and chromium:
                 path = Path(tmp) / f"{name}.html"
                 path.write_text(page, encoding="utf-8")
                 t = time.perf_counter()
-                subprocess.run([chromium, "--headless", "--no-sandbox", "--use-angle=swiftshader",
-                                "--enable-unsafe-swiftshader", "--virtual-time-budget=5000", "--dump-dom",
-                                f"--user-data-dir={tmp}/profile", path.as_uri()], capture_output=True, timeout=300)
+                subprocess.run(
+                    [
+                        chromium,
+                        "--headless",
+                        "--no-sandbox",
+                        "--use-angle=swiftshader",
+                        "--enable-unsafe-swiftshader",
+                        "--virtual-time-budget=5000",
+                        "--dump-dom",
+                        f"--user-data-dir={tmp}/profile",
+                        path.as_uri(),
+                    ],
+                    capture_output=True,
+                    timeout=300,
+                )
                 line += f"  chromium load {time.perf_counter() - t:5.1f} s"
             print(line, flush=True)
 

@@ -30,10 +30,22 @@ from supportgen.runs.bench import grid_settings, machine_line, run_bench
 from supportgen.runs.demo import write_demo_inputs
 
 CORPUS = (Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus").resolve()
-SHOWN = (("model", "{}"), ("strategy", "{}"), ("contacts", "{}"), ("contact_area_mm2", "{:.2f}"),
-         ("support_volume_mm3", "{:.0f}"), ("base_volume_mm3", "{:.0f}"), ("resin_ml", "{:.2f}"),
-         ("islands", "{}"), ("max_reach_mm", "{:.2f}"), ("passed", "{}"), ("min_safety_factor", "{:.2f}"),
-         ("peak_layer_force_n", "{:.2f}"), ("total_s", "{:.1f}"), ("peak_memory_mb", "{:.0f}"))
+SHOWN = (
+    ("model", "{}"),
+    ("strategy", "{}"),
+    ("contacts", "{}"),
+    ("contact_area_mm2", "{:.2f}"),
+    ("support_volume_mm3", "{:.0f}"),
+    ("base_volume_mm3", "{:.0f}"),
+    ("resin_ml", "{:.2f}"),
+    ("islands", "{}"),
+    ("max_reach_mm", "{:.2f}"),
+    ("passed", "{}"),
+    ("min_safety_factor", "{:.2f}"),
+    ("peak_layer_force_n", "{:.2f}"),
+    ("total_s", "{:.1f}"),
+    ("peak_memory_mb", "{:.0f}"),
+)
 
 
 def _fmt(fmt: str, v) -> str:
@@ -82,16 +94,18 @@ def main() -> None:
     settings = grid_settings(args.pixel, args.layer, args.seed)
     strategies = [s.strip() for s in args.strategies.split(",") if s.strip()]
     print(machine_line())
-    print(f"settings: pixel {settings.printer.pixel_mm} mm, layer {settings.printer.layer_mm} mm, "
-          f"seed {settings.rules.seed}, strategies {', '.join(strategies)}; output {args.output}")
+    print(
+        f"settings: pixel {settings.printer.pixel_mm} mm, layer {settings.printer.layer_mm} mm, "
+        f"seed {settings.rules.seed}, strategies {', '.join(strategies)}; output {args.output}"
+    )
 
     if not args.skip_corpus:
         if CORPUS.is_dir():
             t0 = time.perf_counter()
-            table = run_bench(CORPUS, args.output / "corpus", settings, strategies, scale_mm=args.size,
-                              progress=False)
-            print_table(f"shared corpus, each scaled to {args.size:g} mm longest side, "
-                        f"{time.perf_counter() - t0:.0f} s", table)
+            table = run_bench(CORPUS, args.output / "corpus", settings, strategies, scale_mm=args.size, progress=False)
+            print_table(
+                f"shared corpus, each scaled to {args.size:g} mm longest side, {time.perf_counter() - t0:.0f} s", table
+            )
         else:
             print(f"\n== shared corpus: skipped, not found at {CORPUS}")
     if not args.skip_demo:

@@ -70,9 +70,11 @@ def main() -> None:
         fit = fit_calibration(meas, s)
         print("\nfit to the absolute rows:\n" + fit.to_text())
     else:
-        print(f"\n{len(meas)} absolute force-area row(s): no fit possible. The defaults "
-              f"force_calibration = {s.printer.force_calibration:g} and force_area_n_mm2 = "
-              f"{s.printer.force_area_n_mm2:g} N/mm^2 stay from memory.")
+        print(
+            f"\n{len(meas)} absolute force-area row(s): no fit possible. The defaults "
+            f"force_calibration = {s.printer.force_calibration:g} and force_area_n_mm2 = "
+            f"{s.printer.force_area_n_mm2:g} N/mm^2 stay from memory."
+        )
     # the default law against the sourced relations
     area_cm2 = np.array([1.0, 2.0, 5.0, 10.0, 20.0, 50.0])
     area = area_cm2 * 100.0
@@ -88,8 +90,10 @@ def main() -> None:
     for a, f, lin in zip(area_cm2, force, linear):
         sq = f - lin
         print(f"  {a:5.0f} cm^2  {f:8.2f} N  {lin / f:5.1%}  {sq / (ceiling * a * 100):5.1%}")
-    print(f"straight-line fit over 1-50 cm^2: {slope * 100:.3f} N/cm^2, R^2 = {r2:.4f} "
-          "(Kovalenko et al. 2016: linear in area)")
+    print(
+        f"straight-line fit over 1-50 cm^2: {slope * 100:.3f} N/cm^2, R^2 = {r2:.4f} "
+        "(Kovalenko et al. 2016: linear in area)"
+    )
     print(f"cavitation ceiling: {ceiling * 100:.2f} N/cm^2 (ISO 2533); layer thickness is no input of the law")
     print(f"1 cm^2: {force[0]:.1f} N, 10 cm^2: {force[3]:.1f} N (recalled range: a few N to tens of N)")
 

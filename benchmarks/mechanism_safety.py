@@ -67,12 +67,14 @@ def row(name: str, mesh, settings: Settings) -> str:
     sized = _SIZED[-1].to_dict()
     tip = sized.get("tip_diameter_mm", {}) or {}
     warn = [w["code"] for w in frc.get("warnings", [])]
-    return (f"{name:>16s} {settings.printer.mechanism:>5s} {res.forces.peak_force_n:9.2f} "
-            f"{_fmt(tip.get('min'), '{:.3f}')}-{_fmt(tip.get('max'), '{:.3f}')} "
-            f"{_fmt(sized.get('min_tip_safety_factor')):>6s} {_fmt(sized.get('min_post_safety_factor')):>6s} "
-            f"{_fmt(sized.get('min_side_load_safety_factor')):>6s} {_fmt(sized.get('min_brace_safety_factor')):>6s} "
-            f"{sized.get('tips_over_capacity', '-'):>4} {sized.get('braces', '-'):>5} "
-            f"{'over-rated' if 'force-over-rated' in warn else '':>10s} {time.perf_counter() - t0:6.1f}s")
+    return (
+        f"{name:>16s} {settings.printer.mechanism:>5s} {res.forces.peak_force_n:9.2f} "
+        f"{_fmt(tip.get('min'), '{:.3f}')}-{_fmt(tip.get('max'), '{:.3f}')} "
+        f"{_fmt(sized.get('min_tip_safety_factor')):>6s} {_fmt(sized.get('min_post_safety_factor')):>6s} "
+        f"{_fmt(sized.get('min_side_load_safety_factor')):>6s} {_fmt(sized.get('min_brace_safety_factor')):>6s} "
+        f"{sized.get('tips_over_capacity', '-'):>4} {sized.get('braces', '-'):>5} "
+        f"{'over-rated' if 'force-over-rated' in warn else '':>10s} {time.perf_counter() - t0:6.1f}s"
+    )
 
 
 def main() -> None:

@@ -37,23 +37,31 @@ def figures(name, mesh, protect):
     p = prot.report["protection"]
     land_plain = plain.plan.tip_points[plain.plan.tip_contact < 0]
     names = [getattr(x, "__name__", x) for x in protect]
-    print(f"{name}: selectors {names}; protected faces {p['protected_faces']} in {len(p['regions'])} region(s), "
-          f"keep-off {g.keep_off_mm} mm")
-    print(f"  unprotected plan: {len(plain.contacts)} contacts, {int(np.sum(g.avoid(plain.contacts.points)))} within "
-          f"the keep-off of a protected face, {plain.plan.landings} landings of which "
-          f"{int(np.sum(g.avoid(land_plain))) if len(land_plain) else 0} on protected faces, "
-          f"check {'passes' if plain.report['verification']['passed'] else 'FAILS'}")
-    print(f"  protected plan:   {len(prot.contacts)} contacts, moved {p['contacts_moved']} (merged "
-          f"{p['contacts_merged_after_moving']}), unholdable {len(p['unholdable'])}, on protected "
-          f"{p['contacts_on_protected']} contacts / {p['landings_on_protected']} landings, {prot.plan.landings} "
-          f"landings elsewhere, check {'passes' if prot.report['verification']['passed'] else 'FAILS'} "
-          f"{prot.report['verification']['failures']}")
+    print(
+        f"{name}: selectors {names}; protected faces {p['protected_faces']} in {len(p['regions'])} region(s), "
+        f"keep-off {g.keep_off_mm} mm"
+    )
+    print(
+        f"  unprotected plan: {len(plain.contacts)} contacts, {int(np.sum(g.avoid(plain.contacts.points)))} within "
+        f"the keep-off of a protected face, {plain.plan.landings} landings of which "
+        f"{int(np.sum(g.avoid(land_plain))) if len(land_plain) else 0} on protected faces, "
+        f"check {'passes' if plain.report['verification']['passed'] else 'FAILS'}"
+    )
+    print(
+        f"  protected plan:   {len(prot.contacts)} contacts, moved {p['contacts_moved']} (merged "
+        f"{p['contacts_merged_after_moving']}), unholdable {len(p['unholdable'])}, on protected "
+        f"{p['contacts_on_protected']} contacts / {p['landings_on_protected']} landings, {prot.plan.landings} "
+        f"landings elsewhere, check {'passes' if prot.report['verification']['passed'] else 'FAILS'} "
+        f"{prot.report['verification']['failures']}"
+    )
     regions = [(r["contacts"], round(r["tip_area_mm2"], 4)) for r in p["regions"]]
     print(f"  scar budget: rest {p['rest']}; regions (contacts, tip area mm2) {regions}")
     for u in p["unholdable"][:3]:
         print("  ", u["message"])
-    print(f"  warnings: {sorted({w['code'] for w in prot.report['warnings']})}; "
-          f"{time.perf_counter() - t0:.0f} s for both runs, {os.cpu_count()} cores, load {os.getloadavg()[0]:.1f}")
+    print(
+        f"  warnings: {sorted({w['code'] for w in prot.report['warnings']})}; "
+        f"{time.perf_counter() - t0:.0f} s for both runs, {os.cpu_count()} cores, load {os.getloadavg()[0]:.1f}"
+    )
 
 
 def main():
@@ -69,7 +77,7 @@ def main():
         print(f"skipped fandisk: {path} not found (the shared corpus is not beside this checkout)")
         return
     mesh = load_mesh(path).mesh
-    mesh.apply_scale(50.0 / float(mesh.extents.max()))   # longest side 50 mm, as benchmarks/compare_strategies.py
+    mesh.apply_scale(50.0 / float(mesh.extents.max()))  # longest side 50 mm, as benchmarks/compare_strategies.py
     # The lowest 3 mm of the part as given: a sealing face that must stay clean, say.
     z0 = float(mesh.bounds[0, 2])
     if args.whole_bottom:
@@ -81,6 +89,7 @@ def main():
         return (np.linalg.norm(centres[:, :2] - [10.15, 143.21], axis=1) < 2.5) & (centres[:, 2] < z0 + 3)
 
     figures("fandisk", mesh, [patch])
+
 
 if __name__ == "__main__":
     main()

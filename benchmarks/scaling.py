@@ -89,14 +89,26 @@ def point(mesh: trimesh.Trimesh, settings, strategy: str, repeat: int = 1) -> di
         gen.append((time.perf_counter() - t0, gen_mb))
         fresh = part.copy()  # no cached data from earlier calls
         t0 = time.perf_counter()
-        n_layers, sec_mb, _ = measure_peak(lambda: reference_sections(fresh, settings.printer.layer_mm), "rss")
+        n_layers, sec_mb, _ = measure_peak(
+            lambda fresh=fresh: reference_sections(fresh, settings.printer.layer_mm), "rss"
+        )
         sec.append((time.perf_counter() - t0, sec_mb))
     gen_s, sec_s = min(t for t, _ in gen), min(t for t, _ in sec)
     r = result.report
-    return {"faces": len(mesh.faces), "height_mm": float(mesh.extents[2]), "layers": n_layers,
-            "generate_s": gen_s, "section_s": sec_s, "ratio": gen_s / sec_s,
-            "generate_mb": max(m for _, m in gen), "section_mb": max(m for _, m in sec), "memory": method,
-            "contacts": r["supports"]["contacts"], "passed": r["verification"]["passed"], "stages": r["timing_s"]}
+    return {
+        "faces": len(mesh.faces),
+        "height_mm": float(mesh.extents[2]),
+        "layers": n_layers,
+        "generate_s": gen_s,
+        "section_s": sec_s,
+        "ratio": gen_s / sec_s,
+        "generate_mb": max(m for _, m in gen),
+        "section_mb": max(m for _, m in sec),
+        "memory": method,
+        "contacts": r["supports"]["contacts"],
+        "passed": r["verification"]["passed"],
+        "stages": r["timing_s"],
+    }
 
 
 def slope(x, y) -> float:
@@ -106,16 +118,22 @@ def slope(x, y) -> float:
 
 def show(title: str, rows: list[dict], key: str) -> None:
     print(f"\n== {title}")
-    print(f"{'faces':>9s} {'height':>7s} {'layers':>6s} {'generate s':>10s} {'section s':>9s} {'ratio':>6s} "
-          f"{'gen MB':>7s} {'sec MB':>7s} {'contacts':>8s} passed  slowest stages")
+    print(
+        f"{'faces':>9s} {'height':>7s} {'layers':>6s} {'generate s':>10s} {'section s':>9s} {'ratio':>6s} "
+        f"{'gen MB':>7s} {'sec MB':>7s} {'contacts':>8s} passed  slowest stages"
+    )
     for p in rows:
         st = sorted(((v, k) for k, v in p["stages"].items() if k != "total"), reverse=True)[:3]
-        print(f"{p['faces']:9d} {p['height_mm']:7.1f} {p['layers']:6d} {p['generate_s']:10.2f} "
-              f"{p['section_s']:9.2f} {p['ratio']:6.2f} {p['generate_mb']:7.0f} {p['section_mb']:7.0f} "
-              f"{p['contacts']:8d} {str(p['passed']):6s}  {', '.join(f'{k} {v:.1f}' for v, k in st)}")
+        print(
+            f"{p['faces']:9d} {p['height_mm']:7.1f} {p['layers']:6d} {p['generate_s']:10.2f} "
+            f"{p['section_s']:9.2f} {p['ratio']:6.2f} {p['generate_mb']:7.0f} {p['section_mb']:7.0f} "
+            f"{p['contacts']:8d} {str(p['passed']):6s}  {', '.join(f'{k} {v:.1f}' for v, k in st)}"
+        )
     x = [p[key] for p in rows]
-    print(f"log-log slope against {key}: generate {slope(x, [p['generate_s'] for p in rows]):.2f}, "
-          f"section {slope(x, [p['section_s'] for p in rows]):.2f} (1.00 = linear)")
+    print(
+        f"log-log slope against {key}: generate {slope(x, [p['generate_s'] for p in rows]):.2f}, "
+        f"section {slope(x, [p['section_s'] for p in rows]):.2f} (1.00 = linear)"
+    )
 
 
 def plot(face_rows, height_rows, path: Path) -> None:
@@ -126,8 +144,10 @@ def plot(face_rows, height_rows, path: Path) -> None:
     import matplotlib.ticker
 
     fig, axes = plt.subplots(1, 3, figsize=(13, 3.8))
-    for ax, rows, key, label in ((axes[0], face_rows, "faces", "faces"),
-                                 (axes[1], height_rows, "layers", "layers (part height)")):
+    for ax, rows, key, label in (
+        (axes[0], face_rows, "faces", "faces"),
+        (axes[1], height_rows, "layers", "layers (part height)"),
+    ):
         x = [p[key] for p in rows]
         ax.loglog(x, [p["generate_s"] for p in rows], "o-", label="generate")
         ax.loglog(x, [p["section_s"] for p in rows], "s--", label="trimesh section_multiplane")
@@ -137,10 +157,15 @@ def plot(face_rows, height_rows, path: Path) -> None:
         ax.grid(True, which="both", alpha=0.3)
     axes[0].set_title("time against face count")
     axes[1].set_title("time against layer count")
-    axes[2].loglog([p["faces"] for p in face_rows], [max(p["generate_mb"], 1e-3) for p in face_rows], "o-",
-                   label="generate")
-    axes[2].loglog([p["faces"] for p in face_rows], [max(p["section_mb"], 1e-3) for p in face_rows], "s--",
-                   label="section_multiplane")
+    axes[2].loglog(
+        [p["faces"] for p in face_rows], [max(p["generate_mb"], 1e-3) for p in face_rows], "o-", label="generate"
+    )
+    axes[2].loglog(
+        [p["faces"] for p in face_rows],
+        [max(p["section_mb"], 1e-3) for p in face_rows],
+        "s--",
+        label="section_multiplane",
+    )
     axes[2].set_xlabel("faces")
     axes[2].set_ylabel("peak RSS growth, MB")
     axes[2].set_title("peak memory against face count")
@@ -170,9 +195,11 @@ def main() -> None:
     settings = grid_settings(args.pixel, args.layer, args.seed)
     base, name = base_mesh()
     print(machine_line())
-    print(f"model: {name}, longest side {args.size:g} mm; pixel {settings.printer.pixel_mm} mm, layer "
-          f"{settings.printer.layer_mm} mm, strategy {args.strategy}, seed {settings.rules.seed}, "
-          f"best of {args.repeat} run(s) per point")
+    print(
+        f"model: {name}, longest side {args.size:g} mm; pixel {settings.printer.pixel_mm} mm, layer "
+        f"{settings.printer.layer_mm} mm, strategy {args.strategy}, seed {settings.rules.seed}, "
+        f"best of {args.repeat} run(s) per point"
+    )
 
     # Warm-up (untimed): first calls load modules and fill caches.
     supportgen.generate(trimesh.creation.icosphere(subdivisions=2, radius=5.0), settings, strategy=args.strategy)
@@ -181,21 +208,27 @@ def main() -> None:
         levels.append(levels[-1].subdivide())
     if name == "icosphere":
         levels = levels[1:]  # start near 5k faces like the corpus mesh
-    face_rows = [] if args.skip_faces else [point(sized(m, args.size), settings, args.strategy, args.repeat)
-                                            for m in levels]
+    face_rows = (
+        [] if args.skip_faces else [point(sized(m, args.size), settings, args.strategy, args.repeat) for m in levels]
+    )
     if face_rows:
         show(f"against face count ({name} subdivided, {args.size:g} mm)", face_rows, "faces")
     mid = base.subdivide().subdivide()
     heights = [float(h) for h in args.heights.split(",")]
-    height_rows = [] if args.skip_heights else [point(sized(mid, args.size, h), settings, args.strategy, args.repeat)
-                                                for h in heights]
+    height_rows = (
+        []
+        if args.skip_heights
+        else [point(sized(mid, args.size, h), settings, args.strategy, args.repeat) for h in heights]
+    )
     if height_rows:
         show(f"against part height ({len(mid.faces)} faces, stretched along z)", height_rows, "layers")
     target = [p for p in face_rows if 50_000 <= p["faces"] <= 200_000]
     for p in target[:1]:
         verdict = "meets" if p["ratio"] <= 3.0 else "misses"
-        print(f"\ntarget: generate within 3x trimesh sectioning for a ~100k-face {args.size:g} mm model: "
-              f"{p['faces']} faces, {p['generate_s']:.1f} s / {p['section_s']:.1f} s = {p['ratio']:.2f}x ({verdict})")
+        print(
+            f"\ntarget: generate within 3x trimesh sectioning for a ~100k-face {args.size:g} mm model: "
+            f"{p['faces']} faces, {p['generate_s']:.1f} s / {p['section_s']:.1f} s = {p['ratio']:.2f}x ({verdict})"
+        )
     if face_rows and height_rows:
         plot(face_rows, height_rows, args.png)
         print(f"curves: {args.png}")

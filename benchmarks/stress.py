@@ -59,12 +59,15 @@ def _too_large(mesh, settings) -> bool:
     """The part's footprint or height (with the base margin and lift) exceeds the build volume."""
     pr, sp = settings.printer, settings.supports
     ext = mesh.extents
-    return bool(ext[0] + 2 * sp.base_margin_mm > pr.build_x_mm or ext[1] + 2 * sp.base_margin_mm > pr.build_y_mm
-                or ext[2] + sp.lift_mm > pr.build_z_mm)
+    return bool(
+        ext[0] + 2 * sp.base_margin_mm > pr.build_x_mm
+        or ext[1] + 2 * sp.base_margin_mm > pr.build_y_mm
+        or ext[2] + sp.lift_mm > pr.build_z_mm
+    )
 
 
 def _plural(msg: str) -> str:
-    """"1 edge" and "3 edges" as one class: "# edge(s)" (idempotent)."""
+    """ "1 edge" and "3 edges" as one class: "# edge(s)" (idempotent)."""
     return re.sub(r"# (edge|hole|face|tip|island|speck|vertex|vertice)s?\b(?!\()", r"# \1(s)", msg)
 
 
@@ -81,12 +84,11 @@ def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = 
     """Build, support, save and check one case; never raises."""
     settings = supportgen.Settings()
     pr = settings.printer
-    row = {"id": case.id, "generator": case.generator, "seed": case.seed, "params": case.params,
-           "expect": case.expect}
+    row = {"id": case.id, "generator": case.generator, "seed": case.seed, "params": case.params, "expect": case.expect}
     t0 = time.perf_counter()
     try:
         mesh = sc.build_case(case)
-    except Exception as e:   # a generator bug is not the project's: record it apart
+    except Exception as e:  # a generator bug is not the project's: record it apart
         row.update(outcome="crash", cls=f"generator {type(e).__name__}: {e}"[:120], seconds=0.0)
         return row
     inputs = outdir / "inputs"
@@ -103,7 +105,7 @@ def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = 
         result = supportgen.generate(str(path), settings, name=case.id)
         if full_save:
             paths = result.save(outdir / "cases" / case.id)
-        else:   # the combined solid only, by the writer Result.save uses (the plots cost ~3 s a case)
+        else:  # the combined solid only, by the writer Result.save uses (the plots cost ~3 s a case)
             paths = {"combined": outdir / "cases" / case.id / f"{case.id}.supported.stl"}
             paths["combined"].parent.mkdir(parents=True, exist_ok=True)
             write_mesh(result.combined, paths["combined"])
@@ -112,10 +114,14 @@ def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = 
     except supportgen.SupportGenError as e:
         msg = str(e)
         row.update(seconds=time.perf_counter() - t0, message=msg, exception=type(e).__name__)
-        ok_refusal = case.expect == "refuse" or (isinstance(e, supportgen.PlacementError) and _too_large(mesh, settings))
+        ok_refusal = case.expect == "refuse" or (
+            isinstance(e, supportgen.PlacementError) and _too_large(mesh, settings)
+        )
         if not _one_line_naming(msg, case.id):
-            row.update(outcome="refused", cls=f"{type(e).__name__} (message not one line naming the input): "
-                                              f"{_message_class(msg, case.id)}")
+            row.update(
+                outcome="refused",
+                cls=f"{type(e).__name__} (message not one line naming the input): {_message_class(msg, case.id)}",
+            )
         elif ok_refusal:
             row.update(outcome="refused-ok", cls=f"{type(e).__name__}: {_message_class(msg, case.id)}")
         else:
@@ -123,8 +129,12 @@ def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = 
         return row
     except Exception as e:
         last = traceback.format_exc().strip().splitlines()[-1]
-        row.update(outcome="crash", seconds=time.perf_counter() - t0, message=last,
-                   cls=f"crash {type(e).__name__}: {_message_class(last, case.id)}")
+        row.update(
+            outcome="crash",
+            seconds=time.perf_counter() - t0,
+            message=last,
+            cls=f"crash {type(e).__name__}: {_message_class(last, case.id)}",
+        )
         return row
     try:
         chk = sc.independent_check(paths["combined"], pr.pixel_mm, pr.layer_mm, part_volume)
@@ -134,14 +144,21 @@ def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = 
     row["check"] = chk
     row["seconds"] = time.perf_counter() - t0
     if case.expect == "refuse":
-        row.update(outcome="silent-pass", cls="silent-pass: supported an input that should be refused "
-                                              f"({case.params.get('shape')}); check: {','.join(chk['failures']) or 'passed'}")
+        row.update(
+            outcome="silent-pass",
+            cls="silent-pass: supported an input that should be refused "
+            f"({case.params.get('shape')}); check: {','.join(chk['failures']) or 'passed'}",
+        )
     elif chk["failures"]:
-        row.update(outcome="fail-check", cls="check: " + ",".join(chk["failures"])
-                   + (" (the project's own verify passed it)" if row["project_passed"] else " (verify failed too)"))
+        row.update(
+            outcome="fail-check",
+            cls="check: "
+            + ",".join(chk["failures"])
+            + (" (the project's own verify passed it)" if row["project_passed"] else " (verify failed too)"),
+        )
     else:
         row.update(outcome="pass", cls="")
-    if not keep and row["outcome"] == "pass":   # failing cases keep their input and output for diagnosis
+    if not keep and row["outcome"] == "pass":  # failing cases keep their input and output for diagnosis
         shutil.rmtree(outdir / "cases" / case.id, ignore_errors=True)
         path.unlink(missing_ok=True)
     return row
@@ -154,12 +171,20 @@ def _child(case, outdir, keep, full_save, conn):
         conn.close()
 
 
-def run_cases(cases, outdir: Path, workers: int = 2, timeout: float = 300.0, keep: bool = False,
-              full_save: bool = False, echo=print, log: Path | None = None) -> list[dict]:
+def run_cases(
+    cases,
+    outdir: Path,
+    workers: int = 2,
+    timeout: float = 300.0,
+    keep: bool = False,
+    full_save: bool = False,
+    echo=print,
+    log: Path | None = None,
+) -> list[dict]:
     """Run ``cases`` in up to ``workers`` forked processes, one per case, each killed past ``timeout``;
     each finished row is appended to ``log`` (JSON lines) as it arrives, when given."""
     ctx = mp.get_context("fork")
-    for m in sc.CORPUS_MODELS:    # read the corpus once; children inherit it
+    for m in sc.CORPUS_MODELS:  # read the corpus once; children inherit it
         if sc.corpus_available():
             sc.corpus_mesh(m)
     todo = list(cases)
@@ -183,19 +208,40 @@ def run_cases(cases, outdir: Path, workers: int = 2, timeout: float = 300.0, kee
                     row = None
                 p.join()
                 if row is None:
-                    row = {"id": cid, "generator": case.generator, "seed": case.seed, "params": case.params,
-                           "expect": case.expect, "outcome": "crash", "cls": "crash: worker died",
-                           "seconds": time.perf_counter() - t0}
+                    row = {
+                        "id": cid,
+                        "generator": case.generator,
+                        "seed": case.seed,
+                        "params": case.params,
+                        "expect": case.expect,
+                        "outcome": "crash",
+                        "cls": "crash: worker died",
+                        "seconds": time.perf_counter() - t0,
+                    }
             elif not p.is_alive():
-                row = {"id": cid, "generator": case.generator, "seed": case.seed, "params": case.params,
-                       "expect": case.expect, "outcome": "crash",
-                       "cls": f"crash: worker died (exit code {p.exitcode})", "seconds": time.perf_counter() - t0}
+                row = {
+                    "id": cid,
+                    "generator": case.generator,
+                    "seed": case.seed,
+                    "params": case.params,
+                    "expect": case.expect,
+                    "outcome": "crash",
+                    "cls": f"crash: worker died (exit code {p.exitcode})",
+                    "seconds": time.perf_counter() - t0,
+                }
             elif time.perf_counter() - t0 > timeout:
                 p.kill()
                 p.join()
-                row = {"id": cid, "generator": case.generator, "seed": case.seed, "params": case.params,
-                       "expect": case.expect, "outcome": "timeout", "cls": f"timeout (> {timeout:g} s)",
-                       "seconds": time.perf_counter() - t0}
+                row = {
+                    "id": cid,
+                    "generator": case.generator,
+                    "seed": case.seed,
+                    "params": case.params,
+                    "expect": case.expect,
+                    "outcome": "timeout",
+                    "cls": f"timeout (> {timeout:g} s)",
+                    "seconds": time.perf_counter() - t0,
+                }
             if row is not None:
                 recv.close()
                 del running[cid]
@@ -203,7 +249,9 @@ def run_cases(cases, outdir: Path, workers: int = 2, timeout: float = 300.0, kee
                 if log is not None:
                     with open(log, "a") as fh:
                         fh.write(json.dumps(row, default=str) + "\n")
-                echo(f"[{len(rows)}/{len(cases)}] {cid}: {row['outcome']} {row.get('seconds', 0):.1f}s {row.get('cls', '')}")
+                echo(
+                    f"[{len(rows)}/{len(cases)}] {cid}: {row['outcome']} {row.get('seconds', 0):.1f}s {row.get('cls', '')}"
+                )
     order = {c.id: i for i, c in enumerate(cases)}
     return sorted(rows, key=lambda r: order[r["id"]])
 
@@ -212,7 +260,7 @@ def summarise(rows: list[dict]) -> dict:
     n = len(rows)
     counts = Counter(r["outcome"] for r in rows)
     times = [r["seconds"] for r in rows if r.get("seconds") is not None]
-    for r in rows:   # rows logged by an older run: the same class rule
+    for r in rows:  # rows logged by an older run: the same class rule
         r["cls"] = _plural(r.get("cls", ""))
     classes = Counter(r["cls"] for r in rows if r["outcome"] in FAILING)
     example = {}
@@ -221,23 +269,39 @@ def summarise(rows: list[dict]) -> dict:
             example.setdefault(r["cls"], r["id"])
     worst = max(rows, key=lambda r: r.get("seconds") or 0.0) if rows else None
     ok = counts["pass"] + counts["refused-ok"]
-    return {"cases": n, "counts": dict(counts), "pass_rate": ok / n if n else 0.0,
-            "strict_pass_rate": counts["pass"] / n if n else 0.0,
-            "median_s": statistics.median(times) if times else None, "worst_s": worst.get("seconds") if worst else None,
-            "worst_case": worst["id"] if worst else None,
-            "classes": [{"class": c, "cases": k, "example": example[c]} for c, k in classes.most_common()],
-            "failing": [r["id"] for r in rows if r["outcome"] in FAILING],
-            "by_generator": {g: dict(Counter(r["outcome"] for r in rows if r["generator"] == g))
-                             for g in sorted({r["generator"] for r in rows})}}
+    return {
+        "cases": n,
+        "counts": dict(counts),
+        "pass_rate": ok / n if n else 0.0,
+        "strict_pass_rate": counts["pass"] / n if n else 0.0,
+        "median_s": statistics.median(times) if times else None,
+        "worst_s": worst.get("seconds") if worst else None,
+        "worst_case": worst["id"] if worst else None,
+        "classes": [{"class": c, "cases": k, "example": example[c]} for c, k in classes.most_common()],
+        "failing": [r["id"] for r in rows if r["outcome"] in FAILING],
+        "by_generator": {
+            g: dict(Counter(r["outcome"] for r in rows if r["generator"] == g))
+            for g in sorted({r["generator"] for r in rows})
+        },
+    }
 
 
 def markdown(summary: dict, machine: str, argv: str) -> str:
     s = summary
-    lines = [f"# Stress corpus: {s['cases']} cases", "", f"`{argv}`", "", machine, "",
-             f"- pass rate (pass + right refusals): **{100 * s['pass_rate']:.1f} %**; "
-             f"outputs passing the independent check: {100 * s['strict_pass_rate']:.1f} %",
-             f"- time per case: median {s['median_s']:.1f} s, worst {s['worst_s']:.1f} s ({s['worst_case']})", "",
-             "| outcome | cases |", "|---|---:|"]
+    lines = [
+        f"# Stress corpus: {s['cases']} cases",
+        "",
+        f"`{argv}`",
+        "",
+        machine,
+        "",
+        f"- pass rate (pass + right refusals): **{100 * s['pass_rate']:.1f} %**; "
+        f"outputs passing the independent check: {100 * s['strict_pass_rate']:.1f} %",
+        f"- time per case: median {s['median_s']:.1f} s, worst {s['worst_s']:.1f} s ({s['worst_case']})",
+        "",
+        "| outcome | cases |",
+        "|---|---:|",
+    ]
     lines += [f"| {k} | {v} |" for k, v in sorted(s["counts"].items(), key=lambda kv: -kv[1])]
     lines += ["", "## Failure classes", "", "| class | cases | e.g. |", "|---|---:|---|"]
     lines += [f"| {c['class'].replace('|', '/')} | {c['cases']} | `{c['example']}` |" for c in s["classes"]]
@@ -256,12 +320,16 @@ def main(argv=None) -> int:
     ap.add_argument("--timeout", type=float, default=300.0, help="seconds per case")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--keep-outputs", action="store_true", help="keep the input and outputs of passing cases too")
-    ap.add_argument("--full-save", action="store_true",
-                    help="save every output with Result.save (plots and reports too), not only the combined STL")
+    ap.add_argument(
+        "--full-save",
+        action="store_true",
+        help="save every output with Result.save (plots and reports too), not only the combined STL",
+    )
     ap.add_argument("--ci", action="store_true", help="the 30 small cases of tests/test_stress.py instead")
     ap.add_argument("--resume", action="store_true", help="keep the rows already in OUTDIR/stress.jsonl")
-    ap.add_argument("--summarise", action="store_true",
-                    help="write the table from OUTDIR/stress.jsonl without running anything")
+    ap.add_argument(
+        "--summarise", action="store_true", help="write the table from OUTDIR/stress.jsonl without running anything"
+    )
     ap.add_argument("--list", action="store_true", help="list the case ids and stop")
     args = ap.parse_args(argv)
     cases = sc.ci_cases(30, args.seed) if args.ci else sc.make_cases(args.seed)
@@ -276,7 +344,7 @@ def main(argv=None) -> int:
         cases = [known[i] for i in args.case]
     else:
         # A seeded order (and subset), so that any prefix of a run is a fair sample of the corpus.
-        pick = np.random.default_rng(args.seed).permutation(len(cases))[:args.cases or len(cases)]
+        pick = np.random.default_rng(args.seed).permutation(len(cases))[: args.cases or len(cases)]
         cases = [cases[i] for i in pick]
     if args.list:
         for c in cases:
@@ -297,12 +365,13 @@ def main(argv=None) -> int:
         log.unlink(missing_ok=True)
         cases_left = cases
     t0 = time.perf_counter()
-    if args.summarise:   # the table of the rows logged so far (a seeded-order prefix of the corpus)
+    if args.summarise:  # the table of the rows logged so far (a seeded-order prefix of the corpus)
         rows = done
         print(f"summarising {len(rows)} of {len(cases)} cases")
     else:
-        rows = done + run_cases(cases_left, args.output, args.workers, args.timeout, args.keep_outputs,
-                                args.full_save, log=log)
+        rows = done + run_cases(
+            cases_left, args.output, args.workers, args.timeout, args.keep_outputs, args.full_save, log=log
+        )
     order = {c.id: i for i, c in enumerate(cases)}
     rows.sort(key=lambda r: order[r["id"]])
     wall = time.perf_counter() - t0
@@ -311,12 +380,17 @@ def main(argv=None) -> int:
     summary["workers"] = args.workers
     summary["corpus_cases"] = len(cases)
     cmd = "python benchmarks/stress.py " + " ".join(sys.argv[1:] if argv is None else argv)
-    (args.output / "stress.json").write_text(json.dumps({"machine": machine, "command": cmd, "summary": summary,
-                                                         "cases": rows}, indent=1, default=str))
+    (args.output / "stress.json").write_text(
+        json.dumps({"machine": machine, "command": cmd, "summary": summary, "cases": rows}, indent=1, default=str)
+    )
     md = markdown(summary, machine, cmd)
     if len(rows) < len(cases):
-        md = md.replace("\n", f"\n\n**Partial run: {len(rows)} of {len(cases)} cases** (the first of a seeded order, "
-                        "so a fair sample; finish with --resume)\n", 1)
+        md = md.replace(
+            "\n",
+            f"\n\n**Partial run: {len(rows)} of {len(cases)} cases** (the first of a seeded order, "
+            "so a fair sample; finish with --resume)\n",
+            1,
+        )
     else:
         md += f"\nwall time {wall:.0f} s with {args.workers} workers\n"
     (args.output / "stress.md").write_text(md)

@@ -118,6 +118,7 @@ def _tilt(mesh: trimesh.Trimesh, deg: float, rng: np.random.Generator) -> trimes
 
 # -- procedural parts (about `size` mm; pixel features stay in pixels) ---------------------------------
 
+
 def _union(meshes):
     return trimesh.boolean.union(meshes, engine="manifold")
 
@@ -143,7 +144,7 @@ def gen_plate(rng, size):
 def gen_wheel(rng, size):
     r = size / 2
     m = trimesh.creation.annulus(r_min=r * rng.uniform(0.2, 0.5), r_max=r, height=rng.uniform(3, 6), sections=96)
-    m.apply_transform(trimesh.transformations.rotation_matrix(np.pi / 2, [1, 0, 0]))   # on its edge
+    m.apply_transform(trimesh.transformations.rotation_matrix(np.pi / 2, [1, 0, 0]))  # on its edge
     return _tilt(m, rng.uniform(0, 10), rng)
 
 
@@ -153,14 +154,14 @@ def gen_cup(rng, size):
     inner = trimesh.creation.cylinder(radius=r - wall, height=h, sections=96)
     inner.apply_translation((0, 0, wall))
     m = _difference(outer, inner)
-    if rng.random() < 0.5:   # opening down: a cup that seals against the film
+    if rng.random() < 0.5:  # opening down: a cup that seals against the film
         m.apply_transform(trimesh.transformations.rotation_matrix(np.pi, [1, 0, 0]))
     return _tilt(m, rng.uniform(0, 20), rng)
 
 
 def gen_lattice(rng, size):
     n, s = 3, rng.uniform(0.8, 1.5)
-    size = 0.6 * size   # its diagonal, turned, stays near the other parts' size
+    size = 0.6 * size  # its diagonal, turned, stays near the other parts' size
     cell = size / n
     ticks = np.arange(n + 1) * cell - size / 2
     struts = []
@@ -175,8 +176,9 @@ def gen_lattice(rng, size):
 def gen_shell(rng, size):
     r, wall = size / 2, rng.uniform(0.6, 1.2)
     dome = _difference(trimesh.creation.icosphere(4, r), trimesh.creation.icosphere(4, r - wall))
-    dome = trimesh.boolean.intersection([dome, _box((2 * r + 2, 2 * r + 2, r + 1), (0, 0, r / 2 + 0.5))],
-                                        engine="manifold")
+    dome = trimesh.boolean.intersection(
+        [dome, _box((2 * r + 2, 2 * r + 2, r + 1), (0, 0, r / 2 + 0.5))], engine="manifold"
+    )
     return _turn_to_corner(dome, rng)
 
 
@@ -188,10 +190,10 @@ def gen_pins(rng, size):
         w = int(rng.integers(1, 4)) * PIXEL_MM
         x, y = rng.uniform(-size / 2 + 1, size / 2 - 1), rng.uniform(-size * 0.3 + 1, size * 0.3 - 1)
         if rng.random() < 0.5:
-            parts.append(_box((w, w, 3.0), (x, y, -1.4)))            # pin hanging under the block
+            parts.append(_box((w, w, 3.0), (x, y, -1.4)))  # pin hanging under the block
         else:
-            parts.append(_box((w, 8.0, 3.0), (x, y, -1.4)))          # fin hanging under the block
-    parts.append(_box((2 * PIXEL_MM, 4.0, 2.0), (size / 2 + 0.9, 0, 1.5)))   # a fin off one side
+            parts.append(_box((w, 8.0, 3.0), (x, y, -1.4)))  # fin hanging under the block
+    parts.append(_box((2 * PIXEL_MM, 4.0, 2.0), (size / 2 + 0.9, 0, 1.5)))  # a fin off one side
     return _tilt(_union(parts), rng.uniform(0, 30), rng)
 
 
@@ -208,19 +210,28 @@ def gen_touching(rng, size):
     """Two closed bodies in one file that touch (a face or an edge) but are not joined."""
     a = _box((size * 0.5, size * 0.4, size * 0.3))
     b = _box((size * 0.4, size * 0.3, size * 0.3))
-    if rng.random() < 0.5:   # stacked: b sits on a's top face, shifted
+    if rng.random() < 0.5:  # stacked: b sits on a's top face, shifted
         b.apply_translation((rng.uniform(-3, 3), rng.uniform(-3, 3), size * 0.3))
-    else:                    # side by side along one edge
+    else:  # side by side along one edge
         b.apply_translation((size * 0.45, size * 0.35, 0.0))
     return _turn_to_corner(trimesh.util.concatenate([a, b]), rng)
 
 
-PROCEDURAL_GENERATORS = {"disc": gen_disc, "plate": gen_plate, "wheel": gen_wheel, "cup": gen_cup,
-                         "lattice": gen_lattice, "shell": gen_shell, "pins": gen_pins, "voids": gen_voids,
-                         "touching": gen_touching}
+PROCEDURAL_GENERATORS = {
+    "disc": gen_disc,
+    "plate": gen_plate,
+    "wheel": gen_wheel,
+    "cup": gen_cup,
+    "lattice": gen_lattice,
+    "shell": gen_shell,
+    "pins": gen_pins,
+    "voids": gen_voids,
+    "touching": gen_touching,
+}
 
 
 # -- messy variants ------------------------------------------------------------------------------------
+
 
 def _soup(mesh):
     return trimesh.Trimesh(mesh.vertices.copy(), mesh.faces.copy(), process=False)
@@ -291,14 +302,29 @@ def mess_f32noise(m, rng):
     return trimesh.Trimesh(tri, np.arange(len(tri)).reshape(-1, 3), process=False)
 
 
-MESSY_GENERATORS = {"hole": mess_hole, "dupfaces": mess_dupfaces, "flipfaces": mess_flipfaces,
-                    "doubled": mess_doubled, "nmfan": mess_nmfan, "selfx": mess_selfx, "f32noise": mess_f32noise}
+MESSY_GENERATORS = {
+    "hole": mess_hole,
+    "dupfaces": mess_dupfaces,
+    "flipfaces": mess_flipfaces,
+    "doubled": mess_doubled,
+    "nmfan": mess_nmfan,
+    "selfx": mess_selfx,
+    "f32noise": mess_f32noise,
+}
 
 
 # -- the case list -------------------------------------------------------------------------------------
 
-def make_cases(seed: int = 0, *, orientations: int = 30, procedural_each: int = 10, messy_each: int = 8,
-               corpus_sizes=CORPUS_SIZES_MM, procedural_mm: float = 24.0) -> list[Case]:
+
+def make_cases(
+    seed: int = 0,
+    *,
+    orientations: int = 30,
+    procedural_each: int = 10,
+    messy_each: int = 8,
+    corpus_sizes=CORPUS_SIZES_MM,
+    procedural_mm: float = 24.0,
+) -> list[Case]:
     """Every case of the corpus for a master ``seed``.
 
     ``orientations`` random turns of each corpus model at each of ``corpus_sizes``;
@@ -341,8 +367,14 @@ def make_cases(seed: int = 0, *, orientations: int = 30, procedural_each: int = 
 def ci_cases(n: int = 30, seed: int = 0, size_mm: float = 12.0) -> list[Case]:
     """A reduced corpus for CI: ``n`` seeded cases, at least one of every generator kind
     (corpus models only where the corpus is present), parts about ``size_mm`` across."""
-    pool = make_cases(seed, orientations=1, procedural_each=2, messy_each=2,
-                      corpus_sizes=(size_mm, 1.5 * size_mm), procedural_mm=size_mm)
+    pool = make_cases(
+        seed,
+        orientations=1,
+        procedural_each=2,
+        messy_each=2,
+        corpus_sizes=(size_mm, 1.5 * size_mm),
+        procedural_mm=size_mm,
+    )
     first, rest = {}, []
     for c in pool:
         if c.generator in first:
@@ -387,10 +419,11 @@ def build_case(case: Case) -> trimesh.Trimesh:
 
 # -- the independent check -----------------------------------------------------------------------------
 
+
 def speck_area_mm2(pixel_mm: float) -> float:
     """A disc two pixels across: regions smaller than this are below the printer's resolution
     (the same rule as the project's verify, written here again so the check stays independent)."""
-    return float(np.pi * pixel_mm ** 2)
+    return float(np.pi * pixel_mm**2)
 
 
 def _ring_polygons(segments: np.ndarray):
@@ -443,17 +476,23 @@ def layer_polygons(mesh: trimesh.Trimesh, layer_mm: float):
         geom = _ring_polygons(segs[k])
         if geom is None:
             sec = mesh.section(plane_origin=[0, 0, zk], plane_normal=[0, 0, 1])
-            polys = [] if sec is None else [p.buffer(0) for p in sec.to_2D(to_2D=np.linalg.inv(to_3d[k]))[0].polygons_full]
+            polys = (
+                [] if sec is None else [p.buffer(0) for p in sec.to_2D(to_2D=np.linalg.inv(to_3d[k]))[0].polygons_full]
+            )
             geom = unary_union(polys) if polys else Polygon()
         if not isinstance(geom, (Polygon, MultiPolygon)):
-            geom = unary_union([g for g in getattr(geom, "geoms", []) if isinstance(g, (Polygon, MultiPolygon))]) \
-                if hasattr(geom, "geoms") else Polygon()
+            geom = (
+                unary_union([g for g in getattr(geom, "geoms", []) if isinstance(g, (Polygon, MultiPolygon))])
+                if hasattr(geom, "geoms")
+                else Polygon()
+            )
         out.append((float(zk), geom, to_3d[k]))
     return out
 
 
-def independent_check(path: str | Path, pixel_mm: float = 0.05, layer_mm: float = 0.05,
-                      part_volume_mm3: float | None = None) -> dict:
+def independent_check(
+    path: str | Path, pixel_mm: float = 0.05, layer_mm: float = 0.05, part_volume_mm3: float | None = None
+) -> dict:
     """Check a written combined STL without the project's code.
 
     Fails (``failures`` lists why) when the file does not read back watertight (trimesh),
@@ -465,8 +504,13 @@ def independent_check(path: str | Path, pixel_mm: float = 0.05, layer_mm: float 
 
     mesh = trimesh.load(path, force="mesh")
     failures = []
-    out = {"watertight": bool(mesh.is_watertight), "faces": int(len(mesh.faces)), "islands": 0,
-           "first_island": None, "volume_mm3": float(mesh.volume) if mesh.is_watertight else None}
+    out = {
+        "watertight": bool(mesh.is_watertight),
+        "faces": int(len(mesh.faces)),
+        "islands": 0,
+        "first_island": None,
+        "volume_mm3": float(mesh.volume) if mesh.is_watertight else None,
+    }
     if not mesh.is_watertight:
         failures.append("not-watertight")
     if len(mesh.faces) == 0 or mesh.bounds[1, 2] < layer_mm:
@@ -492,8 +536,12 @@ def independent_check(path: str | Path, pixel_mm: float = 0.05, layer_mm: float 
                 if out["first_island"] is None:
                     c = comp.representative_point()
                     xyz = trimesh.transform_points([[c.x, c.y, 0.0]], to_3d)[0]
-                    out["first_island"] = {"layer": k, "z_mm": z, "xy_mm": [float(xyz[0]), float(xyz[1])],
-                                           "area_mm2": float(comp.area)}
+                    out["first_island"] = {
+                        "layer": k,
+                        "z_mm": z,
+                        "xy_mm": [float(xyz[0]), float(xyz[1])],
+                        "area_mm2": float(comp.area),
+                    }
         below = geom
     if out["islands"]:
         failures.append("island")

@@ -28,17 +28,21 @@ def support_folder(folder: Path, outdir: Path, **overrides) -> list[dict]:
             continue
         result.save(outdir)
         contacts = result.contacts
-        rows.append({
-            "part": result.name,
-            "contacts": len(contacts),
-            "tip_mm_max": float(contacts.diameters.max()) if len(contacts) else 0.0,
-            "heaviest_tip_n": float(contacts.loads.max()) if len(contacts) else 0.0,
-            "part_mm3": result.report["input"]["volume_mm3"],
-            "supports_mm3": result.report["supports"]["volume_mm3"],
-            "passed": result.report["verification"]["passed"],
-        })
-        print(f"{result.name}: {len(contacts)} contacts, largest tip {rows[-1]['tip_mm_max']:.2f} mm, "
-              f"supports {rows[-1]['supports_mm3']:.0f} mm3, check {'passed' if rows[-1]['passed'] else 'FAILED'}")
+        rows.append(
+            {
+                "part": result.name,
+                "contacts": len(contacts),
+                "tip_mm_max": float(contacts.diameters.max()) if len(contacts) else 0.0,
+                "heaviest_tip_n": float(contacts.loads.max()) if len(contacts) else 0.0,
+                "part_mm3": result.report["input"]["volume_mm3"],
+                "supports_mm3": result.report["supports"]["volume_mm3"],
+                "passed": result.report["verification"]["passed"],
+            }
+        )
+        print(
+            f"{result.name}: {len(contacts)} contacts, largest tip {rows[-1]['tip_mm_max']:.2f} mm, "
+            f"supports {rows[-1]['supports_mm3']:.0f} mm3, check {'passed' if rows[-1]['passed'] else 'FAILED'}"
+        )
     return rows
 
 

@@ -35,7 +35,22 @@ def __getattr__(name):
         return orient
     raise AttributeError(f"module 'supportgen' has no attribute {name!r}")
 
+
 __all__ = [
-    "generate", "check", "orient", "Result", "Settings", "load_settings", "PROFILES", "STRATEGIES", "Contacts",
-    "SupportPlan", "SupportGenError", "SettingsError", "MeshError", "PlacementError", "GeometryError", "OutputError",
+    "generate",
+    "check",
+    "orient",
+    "Result",
+    "Settings",
+    "load_settings",
+    "PROFILES",
+    "STRATEGIES",
+    "Contacts",
+    "SupportPlan",
+    "SupportGenError",
+    "SettingsError",
+    "MeshError",
+    "PlacementError",
+    "GeometryError",
+    "OutputError",
 ]

@@ -11,8 +11,16 @@ True
 
 from __future__ import annotations
 
-__all__ = ["OFFSET_MM", "EPS_REL", "EPS_ZERO", "EPS_SMALL", "EPS_FLOOR", "MERGE_FRACTION", "EXACT_FRACTION",
-           "STATICS_RCOND"]
+__all__ = [
+    "OFFSET_MM",
+    "EPS_REL",
+    "EPS_ZERO",
+    "EPS_SMALL",
+    "EPS_FLOOR",
+    "MERGE_FRACTION",
+    "EXACT_FRACTION",
+    "STATICS_RCOND",
+]
 
 #: Step taken off a surface so that a query starts clearly on one side of it
 #: (a ray below a contact, a node above the base): one micron, far below the

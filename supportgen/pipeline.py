@@ -57,9 +57,18 @@ from .supports.strategies import get_strategy
 __all__ = ["Result", "generate", "check", "OUTPUTS", "DEFAULT_STRATEGY", "MAX_DENSIFY_ROUNDS"]
 
 #: What :meth:`Result.save` writes for a part NAME: role -> file name suffix.
-OUTPUTS = {"combined": ".supported.stl", "supports": ".supports.stl", "report": ".report.json",
-           "summary": ".report.md", "page": ".report.html", "layers_plot": ".layers.png", "tips_plot": ".tips.png",
-           "preview": ".preview.png", "contacts": ".contacts.csv", "underside": ".underside.png"}
+OUTPUTS = {
+    "combined": ".supported.stl",
+    "supports": ".supports.stl",
+    "report": ".report.json",
+    "summary": ".report.md",
+    "page": ".report.html",
+    "layers_plot": ".layers.png",
+    "tips_plot": ".tips.png",
+    "preview": ".preview.png",
+    "contacts": ".contacts.csv",
+    "underside": ".underside.png",
+}
 
 #: ``tree`` verifies on the demo and the shared corpus with less support volume
 #: than ``straight`` (benchmarks/compare_strategies.py).
@@ -87,8 +96,9 @@ class Result:
     verification: Verification = field(repr=False)
     guard: Guard | None = field(default=None, repr=False)
 
-    def save(self, outdir: str | Path, *, extra: Mapping | None = None,
-             before_commit: Callable[[], None] | None = None) -> dict[str, Path]:
+    def save(
+        self, outdir: str | Path, *, extra: Mapping | None = None, before_commit: Callable[[], None] | None = None
+    ) -> dict[str, Path]:
         """Write ``NAME.supported.stl``, ``NAME.supports.stl``, ``NAME.report.json``,
         ``NAME.report.md`` and its plots (preview, layers, tips) into ``outdir`` as one
         set; return the paths by role.
@@ -111,25 +121,33 @@ class Result:
         n, f = self.name, self.forces
         paths = {role: outdir / f"{n}{suffix}" for role, suffix in OUTPUTS.items()}
         report = {**self.report, "outputs": {k: str(p) for k, p in paths.items()}}
-        images = {"part on its supports": paths["preview"].name,
-                  "area and force per layer": paths["layers_plot"].name,
-                  "tip safety factors": paths["tips_plot"].name}
+        images = {
+            "part on its supports": paths["preview"].name,
+            "area and force per layer": paths["layers_plot"].name,
+            "tip safety factors": paths["tips_plot"].name,
+        }
         rated = report["settings"]["printer"]["rated_force_n"]
         makers = {
             "combined": lambda staged: mesh_bytes(self.combined, ".stl", paths["combined"]),
             "supports": lambda staged: mesh_bytes(self.supports, ".stl", paths["supports"]),
-            "layers_plot": lambda staged: plot_layers(self.layers.z_mm, self.layers.area_mm2, f.force_n,
-                                                      f"{n}: area and separation force per layer", rated),
-            "tips_plot": lambda staged: plot_tips(np.asarray(report["supports"]["tips"]["safety_factor"], float),
-                                                  report["forces"]["target_safety_factor"], f"{n}: tip safety factors"),
+            "layers_plot": lambda staged: plot_layers(
+                self.layers.z_mm, self.layers.area_mm2, f.force_n, f"{n}: area and separation force per layer", rated
+            ),
+            "tips_plot": lambda staged: plot_tips(
+                np.asarray(report["supports"]["tips"]["safety_factor"], float),
+                report["forces"]["target_safety_factor"],
+                f"{n}: tip safety factors",
+            ),
             "preview": lambda staged: plot_preview(self.part, self.supports, f"{n}: part on its supports"),
             "contacts": lambda staged: self.contacts_csv().encode("utf-8"),
             "underside": lambda staged: self.underside_png(),
             "summary": lambda staged: markdown(report, n, images).encode("utf-8"),
-            "page": lambda staged: part_page(report, self.combined, self.supports, self.part,
-                                             report["supports"].get("contact_points", [])).encode("utf-8"),
-            "report": lambda staged: to_json({**report, "outputs": {
-                **report["outputs"], "files": [o.to_dict() for o in staged.values()]}}).encode("utf-8"),
+            "page": lambda staged: part_page(
+                report, self.combined, self.supports, self.part, report["supports"].get("contact_points", [])
+            ).encode("utf-8"),
+            "report": lambda staged: to_json(
+                {**report, "outputs": {**report["outputs"], "files": [o.to_dict() for o in staged.values()]}}
+            ).encode("utf-8"),
         }
         files = {role: (paths[role].name, make) for role, make in makers.items()}
         committed = commit_set(outdir, {**files, **(extra or {})}, before_commit=before_commit)
@@ -183,9 +201,9 @@ def _layer_contacts(part, stack: LayerStack, settings: Settings, contacts: Conta
     xyz = []
     for isl in stack.islands:
         if isl.area_mm2 < speck_area_mm2(pr.pixel_mm):
-            continue   # no tip can hold a speck; verify reports it
+            continue  # no tip can hold a speck; verify reports it
         if isl.held_by(contacts.points, reach_across, pr.layer_mm).any():
-            continue   # a tip already touches its first layer
+            continue  # a tip already touches its first layer
         xy = isl.points(rules.contact_spacing_mm, rules.seed)
         xyz.append(np.column_stack([xy, np.full(len(xy), isl.z_mm - pr.layer_mm)]))
     island = contacts_at(part, np.vstack(xyz) if xyz else np.zeros((0, 3)), "island", rules.tip_diameter_mm, near)
@@ -198,15 +216,25 @@ def _layer_contacts(part, stack: LayerStack, settings: Settings, contacts: Conta
 def _forces(part, grid: Grid, contacts: Contacts, settings: Settings, progress: bool) -> ForceProfile:
     tracker = ForceTracker(grid, settings.printer.layer_mm, contacts.points, settings)
     pr = settings.printer
-    analyse_layers(part, pr.pixel_mm, pr.layer_mm, settings.rules.reach_limit_mm, grid=grid,
-                   observers=(tracker,), progress=progress and "forces")
+    analyse_layers(
+        part,
+        pr.pixel_mm,
+        pr.layer_mm,
+        settings.rules.reach_limit_mm,
+        grid=grid,
+        observers=(tracker,),
+        progress=progress and "forces",
+    )
     return tracker.result()
 
 
 def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Settings) -> Contacts:
     """Contacts with their peak loads and the tip diameters those loads need."""
-    return contacts.replace(diameters=tip_diameter(profile.contact_loads, settings),
-                            loads=profile.contact_loads, peak_layers=profile.contact_peak_layers)
+    return contacts.replace(
+        diameters=tip_diameter(profile.contact_loads, settings),
+        loads=profile.contact_loads,
+        peak_layers=profile.contact_peak_layers,
+    )
 
 
 def _orient(loaded: LoadedMesh, how: str, rotate, settings: Settings) -> tuple[LoadedMesh, dict]:
@@ -228,8 +256,9 @@ def _orient(loaded: LoadedMesh, how: str, rotate, settings: Settings) -> tuple[L
     return loaded, {"rotation": [[float(x) for x in row] for row in rot], "chosen_by": by}
 
 
-def generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY,
-             **options) -> Result:
+def generate(
+    source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, **options
+) -> Result:
     """Support one part end to end.
 
     Parameters
@@ -288,13 +317,27 @@ def generate(source, settings: Settings | str | Path | None = None, strategy: st
         raise type(exc)(f"{name}: {exc}") from exc
 
 
-def _generate(source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, *,
-             name: str | None = None, position: str = "auto", centre: bool = False, units: str = "mm",
-             scale: float = 1.0, group_bounds=None, progress: bool = False, orient: str = "keep", rotate=None,
-             protect=None, contacts=None, **overrides) -> Result:
+def _generate(
+    source,
+    settings: Settings | str | Path | None = None,
+    strategy: str = DEFAULT_STRATEGY,
+    *,
+    name: str | None = None,
+    position: str = "auto",
+    centre: bool = False,
+    units: str = "mm",
+    scale: float = 1.0,
+    group_bounds=None,
+    progress: bool = False,
+    orient: str = "keep",
+    rotate=None,
+    protect=None,
+    contacts=None,
+    **overrides,
+) -> Result:
     """:func:`generate` without the naming of errors."""
     t_total = time.perf_counter()
-    contacts_file = contacts   # the name ``contacts`` is the run's contacts below
+    contacts_file = contacts  # the name ``contacts`` is the run's contacts below
     settings = _resolve_settings(settings, overrides)
     plan_fn = get_strategy(strategy)
     timer = _Timer()
@@ -306,8 +349,12 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
         else:
             name = name or part_name(source)
             lim = settings.limits
-            loaded = load_mesh(source, max_faces=lim.max_faces, max_unpacked_mb=lim.max_unpacked_mb,
-                               budget=lambda faces: check_memory(faces, None, settings, str(source)))
+            loaded = load_mesh(
+                source,
+                max_faces=lim.max_faces,
+                max_unpacked_mb=lim.max_unpacked_mb,
+                budget=lambda faces: check_memory(faces, None, settings, str(source)),
+            )
         # Refuse before the layer grid is allocated a part that would not fit in memory.
         check_memory(len(loaded.mesh.faces), loaded.mesh.bounds, settings, str(loaded.source))
     with timer("placement"):
@@ -315,22 +362,33 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
     with timer("orient"):
         loaded, orientation = _orient(loaded, orient, rotate, settings)
     with timer("placement"):
-        placed = place(loaded.mesh, settings, position="centre" if centre else position, name=name,
-                       group_bounds=group_bounds)
+        placed = place(
+            loaded.mesh, settings, position="centre" if centre else position, name=name, group_bounds=group_bounds
+        )
         part = placed.mesh
-        guard = guard_for(loaded.mesh, part, placed.offset, settings, protect,
-                          None if isinstance(source, trimesh.Trimesh) else source, name)
+        guard = guard_for(
+            loaded.mesh,
+            part,
+            placed.offset,
+            settings,
+            protect,
+            None if isinstance(source, trimesh.Trimesh) else source,
+            name,
+        )
         hold = Holder(guard, settings)
     with timer("overhangs"):
         oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
     with timer("contacts"):
-        contacts = sample_overhangs(part, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed)
+        contacts = sample_overhangs(
+            part, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed
+        )
         minima = contacts_at(part, oh.minima - [0, 0, OFFSET_MM], "minimum", rules.tip_diameter_mm)
         # A local minimum is held only by a tip over it, not by one merely near it.
         contacts = add_unheld(contacts, minima, rules.tip_min_mm / 2 + pr.pixel_mm, pr.layer_mm)
     with timer("layers"):
-        stack = analyse_layers(part, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm,
-                               progress=progress and f"{name}: layers")
+        stack = analyse_layers(
+            part, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm, progress=progress and f"{name}: layers"
+        )
         check_cures(stack.area_mm2, settings, name)
         contacts = _layer_contacts(part, stack, settings, contacts, rules.contact_spacing_mm)
     fixed, file_info = 0, None
@@ -343,7 +401,7 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
         with timer("forces"):
             profile = _forces(part, stack.grid, contacts, settings, progress)
         over = over_capacity(profile.contact_tip_loads, settings)
-        if not over.any() or file_info:   # a contacts file is honoured: no contacts added here
+        if not over.any() or file_info:  # a contacts file is honoured: no contacts added here
             break
         with timer("contacts"):
             more = densify_points(contacts, over, part, settings)
@@ -357,14 +415,22 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
         with timer("routing"):
             plan = plan_fn(part, contacts, settings, **guard.plan_options())
         with timer("sizing"):
-            sized: SizedPlan = size_plan(plan, contacts.loads, settings, profile.contact_squeeze_loads,
-                                         side_loads=profile.contact_side_loads)
+            sized: SizedPlan = size_plan(
+                plan, contacts.loads, settings, profile.contact_squeeze_loads, side_loads=profile.contact_side_loads
+            )
         with timer("geometry"):
             solids: Solids = combine(part, sized.plan, settings)
         with timer("verify"):
-            ver = verify(solids.combined, settings, tip_safety=sized.tip_safety_factor / rules.safety_factor,
-                         progress=progress and "check", name=name)
-        if (ver.n_islands == 0 and ver.max_unsupported_reach_mm <= rules.reach_limit_mm) or attempt == MAX_REPAIR_ROUNDS:
+            ver = verify(
+                solids.combined,
+                settings,
+                tip_safety=sized.tip_safety_factor / rules.safety_factor,
+                progress=progress and "check",
+                name=name,
+            )
+        if (
+            ver.n_islands == 0 and ver.max_unsupported_reach_mm <= rules.reach_limit_mm
+        ) or attempt == MAX_REPAIR_ROUNDS:
             break
         # Hold what the plan missed (islands left, layers reaching too far), then plan again.
         with timer("contacts"):
@@ -378,15 +444,34 @@ def _generate(source, settings: Settings | str | Path | None = None, strategy: s
     # the raft and the posts are layers too: in the per-layer record and the rated-force check
     profile = profile.with_supports(*support_layer_forces(sized.plan, settings, len(profile.force_n)))
     timer.seconds["total"] = time.perf_counter() - t_total
-    records = RunRecords(name, None if isinstance(source, trimesh.Trimesh) else str(source), loaded, part, settings,
-                         strategy, oh.area_mm2, contacts, plan, sized, solids, profile, stack, ver, densified,
-                         repaired, timer.seconds, placed.warnings, orientation)
+    records = RunRecords(
+        name,
+        None if isinstance(source, trimesh.Trimesh) else str(source),
+        loaded,
+        part,
+        settings,
+        strategy,
+        oh.area_mm2,
+        contacts,
+        plan,
+        sized,
+        solids,
+        profile,
+        stack,
+        ver,
+        densified,
+        repaired,
+        timer.seconds,
+        placed.warnings,
+        orientation,
+    )
     if file_info is not None:
         file_info["added_by_check"] = repaired
     scars = protection_section(guard, hold, contacts, sized.plan, file_info)
     report = add_protection(build_report(records), scars, name)
-    return Result(name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver,
-                  guard)
+    return Result(
+        name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver, guard
+    )
 
 
 def check(mesh, settings: Settings | str | Path | None = None, *, progress: bool = False, **overrides) -> Verification:
@@ -404,4 +489,3 @@ def check(mesh, settings: Settings | str | Path | None = None, *, progress: bool
         name = Path(mesh).name
         tm = load_mesh(mesh).mesh
     return verify(tm, settings, progress=progress, name=name)
-

@@ -70,42 +70,81 @@ def _f(default, lo, hi, unit, source, doc, choices=None):
 class Printer:
     """The machine: its pixel grid, layer height, build volume and separation."""
 
-    pixel_mm: float = _f(0.05, 0.005, 0.5, "mm", "practice",
-                         "projected pixel pitch; 35-50 um on desktop machines, 50 um a fair default")
+    pixel_mm: float = _f(
+        0.05, 0.005, 0.5, "mm", "practice", "projected pixel pitch; 35-50 um on desktop machines, 50 um a fair default"
+    )
     layer_mm: float = _f(0.05, 0.005, 0.3, "mm", "practice", "layer height")
     build_x_mm: float = _f(130.0, 1.0, 2000.0, "mm", "practice", "build area, x (long side of a desktop screen)")
     build_y_mm: float = _f(80.0, 1.0, 2000.0, "mm", "practice", "build area, y")
     build_z_mm: float = _f(160.0, 1.0, 2000.0, "mm", "practice", "largest printable height")
-    mechanism: str = _f("pull", None, None, "", "practice",
-                        "how a layer leaves the film: pull (straight off), slide (sideways) or tilt (peel)",
-                        choices=MECHANISMS)
+    mechanism: str = _f(
+        "pull",
+        None,
+        None,
+        "",
+        "practice",
+        "how a layer leaves the film: pull (straight off), slide (sideways) or tilt (peel)",
+        choices=MECHANISMS,
+    )
     lift_speed_mm_s: float = _f(1.0, 0.01, 50.0, "mm/s", "practice", "speed at which the plate leaves the film")
-    film_gap_mm: float = _f(0.05, 0.001, 1.0, "mm", "practice",
-                            "liquid gap between cured layer and film as it starts to separate (5-50 um "
-                            "oxygen-inhibited layer on a silicone window is common practice)")
-    force_calibration: float = _f(0.02, 1e-6, 10.0, "", "memory",
-                                  "factor on the rigid-gap squeeze-film law: flexible films pull off far "
-                                  "below it. No published absolute force-area data were found to fit it "
-                                  "(benchmarks/force_data.csv); fit it from your own measurements with "
-                                  "`supportgen calibrate`")
-    slide_calibration: float = _f(1.0, 1e-6, 10.0, "", "practice",
-                                  "factor on the shear law when the film slides: a film sliding in its own "
-                                  "plane gets no relief from flexing (an assumption), so 1; sliding then "
-                                  "needs about a hundredth of the pull, as practice reports")
-    peel_band_mm: float = _f(2.0, 0.1, 50.0, "mm", "memory",
-                             "width of the still-wetted strip behind the peel front when the vat tilts")
-    force_area_n_mm2: float = _f(0.02, 0.0, 10.0, "N/mm2", "memory",
-                                 "adhesion force per mm2 of cured layer area, added to the squeeze-film "
-                                 "law. Linear in area: Kovalenko et al., MATEC Web of Conferences 40, 02005 "
-                                 "(2016). The value (2 N/cm2) is from memory (measured peaks of a few N to "
-                                 "tens of N for cm2-scale layers): no published absolute value was found; "
-                                 "fit it with `supportgen calibrate`")
-    ambient_pressure_pa: float = _f(101325.0, 1000.0, 200000.0, "Pa", "pub",
-                                    "ambient pressure over the vat: the most suction a liquid film can hold "
-                                    "before it cavitates is this minus the resin's vapour pressure "
-                                    "(ISO 2533 standard atmosphere, 101,325 Pa at sea level)")
-    layer_cycle_s: float = _f(9.0, 0.5, 600.0, "s", "practice",
-                              "time per layer: exposure (2-3 s) plus lift, peel and return (5-8 s)")
+    film_gap_mm: float = _f(
+        0.05,
+        0.001,
+        1.0,
+        "mm",
+        "practice",
+        "liquid gap between cured layer and film as it starts to separate (5-50 um "
+        "oxygen-inhibited layer on a silicone window is common practice)",
+    )
+    force_calibration: float = _f(
+        0.02,
+        1e-6,
+        10.0,
+        "",
+        "memory",
+        "factor on the rigid-gap squeeze-film law: flexible films pull off far "
+        "below it. No published absolute force-area data were found to fit it "
+        "(benchmarks/force_data.csv); fit it from your own measurements with "
+        "`supportgen calibrate`",
+    )
+    slide_calibration: float = _f(
+        1.0,
+        1e-6,
+        10.0,
+        "",
+        "practice",
+        "factor on the shear law when the film slides: a film sliding in its own "
+        "plane gets no relief from flexing (an assumption), so 1; sliding then "
+        "needs about a hundredth of the pull, as practice reports",
+    )
+    peel_band_mm: float = _f(
+        2.0, 0.1, 50.0, "mm", "memory", "width of the still-wetted strip behind the peel front when the vat tilts"
+    )
+    force_area_n_mm2: float = _f(
+        0.02,
+        0.0,
+        10.0,
+        "N/mm2",
+        "memory",
+        "adhesion force per mm2 of cured layer area, added to the squeeze-film "
+        "law. Linear in area: Kovalenko et al., MATEC Web of Conferences 40, 02005 "
+        "(2016). The value (2 N/cm2) is from memory (measured peaks of a few N to "
+        "tens of N for cm2-scale layers): no published absolute value was found; "
+        "fit it with `supportgen calibrate`",
+    )
+    ambient_pressure_pa: float = _f(
+        101325.0,
+        1000.0,
+        200000.0,
+        "Pa",
+        "pub",
+        "ambient pressure over the vat: the most suction a liquid film can hold "
+        "before it cavitates is this minus the resin's vapour pressure "
+        "(ISO 2533 standard atmosphere, 101,325 Pa at sea level)",
+    )
+    layer_cycle_s: float = _f(
+        9.0, 0.5, 600.0, "s", "practice", "time per layer: exposure (2-3 s) plus lift, peel and return (5-8 s)"
+    )
     rated_force_n: float = _f(80.0, 0.1, 5000.0, "N", "memory", "largest separation force the machine is meant to take")
 
 
@@ -113,16 +152,30 @@ class Printer:
 class Resin:
     """The liquid and its green (as-printed, before post-cure) strength."""
 
-    viscosity_pa_s: float = _f(0.5, 0.01, 20.0, "Pa s", "pub",
-                               "0.1-1.5 Pa s at 25-30 C for bottom-up resins (Simunovic et al., Polymers 17:2706, 2025)")
-    green_tensile_mpa: float = _f(20.0, 0.5, 200.0, "MPa", "memory",
-                                  "tensile strength as printed; about half to two-thirds of cured 30-70 MPa")
-    green_modulus_mpa: float = _f(1200.0, 10.0, 10000.0, "MPa", "memory",
-                                  "Young's modulus as printed; cured standard resins 1.3-2.9 GPa")
-    vapour_pressure_pa: float = _f(0.0, 0.0, 50000.0, "Pa", "memory",
-                                   "vapour pressure of the liquid resin; acrylate monomers are of the order "
-                                   "of pascals, negligible against the ambient pressure, so 0 (the highest, "
-                                   "safe, cavitation ceiling)")
+    viscosity_pa_s: float = _f(
+        0.5,
+        0.01,
+        20.0,
+        "Pa s",
+        "pub",
+        "0.1-1.5 Pa s at 25-30 C for bottom-up resins (Simunovic et al., Polymers 17:2706, 2025)",
+    )
+    green_tensile_mpa: float = _f(
+        20.0, 0.5, 200.0, "MPa", "memory", "tensile strength as printed; about half to two-thirds of cured 30-70 MPa"
+    )
+    green_modulus_mpa: float = _f(
+        1200.0, 10.0, 10000.0, "MPa", "memory", "Young's modulus as printed; cured standard resins 1.3-2.9 GPa"
+    )
+    vapour_pressure_pa: float = _f(
+        0.0,
+        0.0,
+        50000.0,
+        "Pa",
+        "memory",
+        "vapour pressure of the liquid resin; acrylate monomers are of the order "
+        "of pascals, negligible against the ambient pressure, so 0 (the highest, "
+        "safe, cavitation ceiling)",
+    )
     density_g_cm3: float = _f(1.10, 0.5, 3.0, "g/cm3", "memory", "liquid density, 1.05-1.20 typical")
     price_per_l: float = _f(40.0, 0.0, 10000.0, "currency/L", "memory", "price of a litre, for cost estimates")
 
@@ -131,31 +184,61 @@ class Resin:
 class SupportRules:
     """How supports are placed, shaped and sized."""
 
-    overhang_angle_deg: float = _f(35.0, 0.0, 89.0, "deg", "practice",
-                                   "a down-facing surface tilted less than this from horizontal needs "
-                                   "support (30-45 deg is common practice)")
-    contact_spacing_mm: float = _f(2.0, 0.3, 20.0, "mm", "practice",
-                                   "least distance between contacts on a horizontal overhang (1.5-5 mm); "
-                                   "1.5x this at the critical angle")
-    reach_limit_mm: float = _f(2.0, 0.05, 3.0, "mm", "practice",
-                             "largest distance a newly cured pixel may lie from material in the layer "
-                             "below (flat overhangs deform beyond spans of about 1.5-3 mm)")
+    overhang_angle_deg: float = _f(
+        35.0,
+        0.0,
+        89.0,
+        "deg",
+        "practice",
+        "a down-facing surface tilted less than this from horizontal needs support (30-45 deg is common practice)",
+    )
+    contact_spacing_mm: float = _f(
+        2.0,
+        0.3,
+        20.0,
+        "mm",
+        "practice",
+        "least distance between contacts on a horizontal overhang (1.5-5 mm); 1.5x this at the critical angle",
+    )
+    reach_limit_mm: float = _f(
+        2.0,
+        0.05,
+        3.0,
+        "mm",
+        "practice",
+        "largest distance a newly cured pixel may lie from material in the layer "
+        "below (flat overhangs deform beyond spans of about 1.5-3 mm)",
+    )
     tip_diameter_mm: float = _f(0.4, 0.05, 3.0, "mm", "practice", "contact diameter before sizing (0.2-0.6 mm)")
-    tip_min_mm: float = _f(0.15, 0.05, 3.0, "mm", "practice", "smallest tip: 2-3 pixels is the smallest reliable feature")
+    tip_min_mm: float = _f(
+        0.15, 0.05, 3.0, "mm", "practice", "smallest tip: 2-3 pixels is the smallest reliable feature"
+    )
     tip_max_mm: float = _f(0.7, 0.05, 5.0, "mm", "practice", "largest tip, the largest scar you accept")
     tip_depth_mm: float = _f(0.2, 0.0, 2.0, "mm", "practice", "how far a tip sinks into the part (0.1-0.3 mm)")
     tip_length_mm: float = _f(1.5, 0.2, 10.0, "mm", "practice", "length of the cone from tip to post")
     post_diameter_mm: float = _f(1.0, 0.2, 10.0, "mm", "practice", "post diameter before sizing")
-    elevation_mm: float = _f(5.0, 0.0, 50.0, "mm", "practice",
-                             "height of the part's lowest point above the plate (3-10 mm); not the plate's "
-                             "motion between layers (formerly 'lift_mm')")
+    elevation_mm: float = _f(
+        5.0,
+        0.0,
+        50.0,
+        "mm",
+        "practice",
+        "height of the part's lowest point above the plate (3-10 mm); not the plate's "
+        "motion between layers (formerly 'lift_mm')",
+    )
     base: str = _f("raft", None, None, "", "practice", "raft (one slab) or pads (one per post)", choices=BASE_KINDS)
     base_thickness_mm: float = _f(1.0, 0.2, 5.0, "mm", "practice", "raft or pad thickness (0.5-1.5 mm)")
     base_margin_mm: float = _f(1.5, 0.0, 20.0, "mm", "practice", "how far the base reaches past the outer posts")
     clearance_mm: float = _f(1.0, 0.1, 20.0, "mm", "practice", "least distance between a branch and the part")
-    branch_angle_deg: float = _f(40.0, 0.0, 60.0, "deg", "practice",
-                                 "largest tilt of a branch from vertical (a branch is itself printed "
-                                 "layer by layer and must not become an overhang)")
+    branch_angle_deg: float = _f(
+        40.0,
+        0.0,
+        60.0,
+        "deg",
+        "practice",
+        "largest tilt of a branch from vertical (a branch is itself printed "
+        "layer by layer and must not become an overhang)",
+    )
     safety_factor: float = _f(2.0, 1.0, 20.0, "", "practice", "load factor applied when sizing tips and posts")
     seed: int = _f(0, 0, 2**31 - 1, "", "practice", "seed of every random choice, for repeatable output")
 
@@ -164,15 +247,27 @@ class SupportRules:
 class Limits:
     """Caps on what one input may cost, checked before its file is parsed or its layers computed."""
 
-    max_faces: int = _f(3_000_000, 1, 2**31 - 1, "faces", "practice",
-                        "most triangles accepted in one input, counted after 3MF instancing (scans for "
-                        "dental and jewellery work are 0.1-2 million)")
-    max_unpacked_mb: float = _f(512.0, 1.0, 1e6, "MB", "practice",
-                                "largest decompressed size of a 3MF archive (its XML takes about 100 bytes "
-                                "a triangle, so the default holds the face limit with room to spare)")
-    memory_mb: float = _f(0.0, 0.0, 1e7, "MB", "practice",
-                          "memory one run may use; 0 means what the machine has available when it starts")
-
+    max_faces: int = _f(
+        3_000_000,
+        1,
+        2**31 - 1,
+        "faces",
+        "practice",
+        "most triangles accepted in one input, counted after 3MF instancing (scans for "
+        "dental and jewellery work are 0.1-2 million)",
+    )
+    max_unpacked_mb: float = _f(
+        512.0,
+        1.0,
+        1e6,
+        "MB",
+        "practice",
+        "largest decompressed size of a 3MF archive (its XML takes about 100 bytes "
+        "a triangle, so the default holds the face limit with room to spare)",
+    )
+    memory_mb: float = _f(
+        0.0, 0.0, 1e7, "MB", "practice", "memory one run may use; 0 means what the machine has available when it starts"
+    )
 
 
 @dataclass(frozen=True)
@@ -184,31 +279,59 @@ class OrientRules:
     off); the reasoning behind each default is in its doc.
     """
 
-    orient_directions: int = _f(500, 20, 20000, "", "practice",
-                                "up-directions tried, spread evenly over the sphere (Fibonacci lattice), "
-                                "before the best are refined")
-    orient_pixel_mm: float = _f(0.3, 0.05, 5.0, "mm", "practice",
-                                "pixel and layer of the coarse grid the scorer slices on (raised for large "
-                                "parts to keep the grid under a few million cells)")
-    weight_force: float = _f(3.0, 0.0, 100.0, "", "practice",
-                             "peak layer separation force: it tears parts off their supports and is what "
-                             "this tool sizes supports from, so it weighs most")
-    weight_near_peak: float = _f(0.5, 0.0, 100.0, "", "practice",
-                                 "layers within orient_near_fraction of the peak force: many near-peak layers "
-                                 "load the same tips again and again (fatigue), a lesser concern")
-    weight_cup: float = _f(3.0, 0.0, 100.0, "", "practice",
-                           "largest sealed cavity area facing the film (suction cup): it multiplies the force "
-                           "and traps resin, a common cause of failed prints")
-    weight_overhang: float = _f(1.0, 0.0, 100.0, "", "practice",
-                                "overhang area: contacts needed, so scars on the surface")
-    weight_minima: float = _f(0.5, 0.0, 100.0, "", "practice",
-                              "local minima: each needs a contact of its own")
-    weight_volume: float = _f(1.0, 0.0, 100.0, "", "practice",
-                              "support volume estimate: resin used and removal work")
-    weight_height: float = _f(1.0, 0.0, 100.0, "", "practice",
-                              "print height: layers, so print time")
-    orient_near_fraction: float = _f(0.9, 0.1, 1.0, "", "practice",
-                                     "a layer is near the peak when its force is at least this fraction of it")
+    orient_directions: int = _f(
+        500,
+        20,
+        20000,
+        "",
+        "practice",
+        "up-directions tried, spread evenly over the sphere (Fibonacci lattice), before the best are refined",
+    )
+    orient_pixel_mm: float = _f(
+        0.3,
+        0.05,
+        5.0,
+        "mm",
+        "practice",
+        "pixel and layer of the coarse grid the scorer slices on (raised for large "
+        "parts to keep the grid under a few million cells)",
+    )
+    weight_force: float = _f(
+        3.0,
+        0.0,
+        100.0,
+        "",
+        "practice",
+        "peak layer separation force: it tears parts off their supports and is what "
+        "this tool sizes supports from, so it weighs most",
+    )
+    weight_near_peak: float = _f(
+        0.5,
+        0.0,
+        100.0,
+        "",
+        "practice",
+        "layers within orient_near_fraction of the peak force: many near-peak layers "
+        "load the same tips again and again (fatigue), a lesser concern",
+    )
+    weight_cup: float = _f(
+        3.0,
+        0.0,
+        100.0,
+        "",
+        "practice",
+        "largest sealed cavity area facing the film (suction cup): it multiplies the force "
+        "and traps resin, a common cause of failed prints",
+    )
+    weight_overhang: float = _f(
+        1.0, 0.0, 100.0, "", "practice", "overhang area: contacts needed, so scars on the surface"
+    )
+    weight_minima: float = _f(0.5, 0.0, 100.0, "", "practice", "local minima: each needs a contact of its own")
+    weight_volume: float = _f(1.0, 0.0, 100.0, "", "practice", "support volume estimate: resin used and removal work")
+    weight_height: float = _f(1.0, 0.0, 100.0, "", "practice", "print height: layers, so print time")
+    orient_near_fraction: float = _f(
+        0.9, 0.1, 1.0, "", "practice", "a layer is near the peak when its force is at least this fraction of it"
+    )
 
 
 _GROUPS = {"printer": Printer, "resin": Resin, "rules": SupportRules, "limits": Limits, "orient": OrientRules}
@@ -224,8 +347,11 @@ def _renamed(key: str) -> str:
     new = RENAMED.get(key)
     if new is None:
         return key
-    warnings.warn(f"setting name '{key}' is now '{new}'; the old name will stop working in the next release",
-                  FutureWarning, stacklevel=4)
+    warnings.warn(
+        f"setting name '{key}' is now '{new}'; the old name will stop working in the next release",
+        FutureWarning,
+        stacklevel=4,
+    )
     return new
 
 
@@ -279,11 +405,14 @@ class Settings:
                 _check_value(f.name, f, getattr(obj, f.name))
         s = self.rules
         if s.tip_min_mm > s.tip_max_mm:
-            raise SettingsError(f"setting 'tip_min_mm' ({s.tip_min_mm}) exceeds 'tip_max_mm' ({s.tip_max_mm}); make the smallest tip no larger than the largest")
+            raise SettingsError(
+                f"setting 'tip_min_mm' ({s.tip_min_mm}) exceeds 'tip_max_mm' ({s.tip_max_mm}); make the smallest tip no larger than the largest"
+            )
         if s.tip_min_mm < 2 * self.printer.pixel_mm:
             raise SettingsError(
                 f"setting 'tip_min_mm' ({s.tip_min_mm} mm) is under 2 pixels of {self.printer.pixel_mm} mm; "
-                "raise it or use a finer printer")
+                "raise it or use a finer printer"
+            )
 
     def override(self, values: Mapping[str, Any] | None = None, /, **kwargs) -> Settings:
         """Return a copy with the given values replaced.
@@ -299,8 +428,9 @@ class Settings:
             name = _renamed(key.split(".", 1)[1] if "." in key else key)
             group = _renamed(key.split(".", 1)[0]) if "." in key else None
             if name not in index or (group is not None and index[name][0] != group):
-                raise SettingsError(f"unknown setting '{key}'{_did_you_mean(name, index)}; "
-                                    f"valid names: {', '.join(sorted(index))}")
+                raise SettingsError(
+                    f"unknown setting '{key}'{_did_you_mean(name, index)}; valid names: {', '.join(sorted(index))}"
+                )
             g, f = index[name]
             changes[g][name] = _check_value(name, f, value)
         return Settings(**{g: dataclasses.replace(getattr(self, g), **changes[g]) for g in _GROUPS})
@@ -323,10 +453,22 @@ class Settings:
 # Built-in profiles: named for what they are, values documented in the fields.
 PROFILES: dict[str, dict[str, Any]] = {
     "desk-50": {},
-    "desk-35-fine": {"pixel_mm": 0.035, "layer_mm": 0.03, "build_x_mm": 120.0, "build_y_mm": 68.0,
-                     "tip_min_mm": 0.1, "contact_spacing_mm": 1.6},
-    "wide-slide": {"pixel_mm": 0.075, "build_x_mm": 300.0, "build_y_mm": 170.0, "build_z_mm": 400.0,
-                   "mechanism": "slide", "tip_min_mm": 0.2},
+    "desk-35-fine": {
+        "pixel_mm": 0.035,
+        "layer_mm": 0.03,
+        "build_x_mm": 120.0,
+        "build_y_mm": 68.0,
+        "tip_min_mm": 0.1,
+        "contact_spacing_mm": 1.6,
+    },
+    "wide-slide": {
+        "pixel_mm": 0.075,
+        "build_x_mm": 300.0,
+        "build_y_mm": 170.0,
+        "build_z_mm": 400.0,
+        "mechanism": "slide",
+        "tip_min_mm": 0.2,
+    },
     "tilt-vat": {"mechanism": "tilt"},
 }
 
@@ -369,18 +511,20 @@ def load_settings(source: str | Path | Mapping[str, Any] | None = None, **overri
         path = Path(source)
         if not path.is_file():
             raise SettingsError(
-                f"{path}: no such profile file or built-in profile; built-in profiles: {', '.join(PROFILES)}")
+                f"{path}: no such profile file or built-in profile; built-in profiles: {', '.join(PROFILES)}"
+            )
         try:
             data = tomllib.loads(path.read_text(encoding="utf-8"))
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
             raise SettingsError(f"{path}: not a valid TOML file ({exc}); fix the syntax") from None
         except OSError as exc:
-            raise SettingsError(f"{path}: cannot read the profile ({exc.strerror or exc}); "
-                                "check its permissions") from None
+            raise SettingsError(
+                f"{path}: cannot read the profile ({exc.strerror or exc}); check its permissions"
+            ) from None
     flat: dict[str, Any] = {}
     for key, value in data.items():
         if key == "protect":
-            continue   # protected surfaces, read by supportgen.supports.protect.selectors_from_toml
+            continue  # protected surfaces, read by supportgen.supports.protect.selectors_from_toml
         if isinstance(value, Mapping):
             key = _renamed(key)
             if key not in _GROUPS:
@@ -397,7 +541,15 @@ def describe() -> list[dict[str, Any]]:
     for group, cls in _GROUPS.items():
         for f in fields(cls):
             m = f.metadata
-            rows.append({"group": group, "name": f.name, "default": f.default, "unit": m["unit"],
-                         "range": list(m["choices"]) if m["choices"] else [m["lo"], m["hi"]],
-                         "source": m["source"], "doc": m["doc"]})
+            rows.append(
+                {
+                    "group": group,
+                    "name": f.name,
+                    "default": f.default,
+                    "unit": m["unit"],
+                    "range": list(m["choices"]) if m["choices"] else [m["lo"], m["hi"]],
+                    "source": m["source"],
+                    "doc": m["doc"],
+                }
+            )
     return rows

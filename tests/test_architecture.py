@@ -24,9 +24,19 @@ PACKAGE = Path(supportgen.__file__).parent
 
 #: Stage order; a module may import from its own rank or a lower one.
 RANKS = {
-    "errors": 0, "constants": 0, "settings": 0,
-    "io": 1, "analysis": 2, "physics": 3, "supports": 4, "report": 5,
-    "pipeline": 6, "runs": 7, "cli": 8, "__main__": 9, "__init__": 9,
+    "errors": 0,
+    "constants": 0,
+    "settings": 0,
+    "io": 1,
+    "analysis": 2,
+    "physics": 3,
+    "supports": 4,
+    "report": 5,
+    "pipeline": 6,
+    "runs": 7,
+    "cli": 8,
+    "__main__": 9,
+    "__init__": 9,
 }
 
 
@@ -66,8 +76,13 @@ def _imports(path: Path, module: str):
                 if _is_module(f"{target}.{a.name}"):
                     aliases[a.asname or a.name] = f"{target}.{a.name}"
     for node in ast.walk(tree):
-        if (isinstance(node, ast.Attribute) and isinstance(node.value, ast.Name)
-                and node.value.id in aliases and node.attr.startswith("_") and not node.attr.startswith("__")):
+        if (
+            isinstance(node, ast.Attribute)
+            and isinstance(node.value, ast.Name)
+            and node.value.id in aliases
+            and node.attr.startswith("_")
+            and not node.attr.startswith("__")
+        ):
             yield aliases[node.value.id], [node.attr], node.lineno
     for node in ast.walk(tree):
         if isinstance(node, ast.ImportFrom):
@@ -113,16 +128,22 @@ def test_every_module_has_a_stage():
 
 def test_imports_point_one_way():
     _, found = _graph()
-    bad = [f"{where}: {module} (stage {_stage(module)}) imports {target} (stage {_stage(target)})"
-           for module, target, _, where in found
-           if target != "supportgen" and RANKS[_stage(target)] > RANKS[_stage(module)]]
+    bad = [
+        f"{where}: {module} (stage {_stage(module)}) imports {target} (stage {_stage(target)})"
+        for module, target, _, where in found
+        if target != "supportgen" and RANKS[_stage(target)] > RANKS[_stage(module)]
+    ]
     assert not bad, "imports against the pipeline's direction:\n" + "\n".join(bad)
 
 
 def test_no_private_names_across_modules():
     _, found = _graph()
-    bad = [f"{where}: {module} imports {n} from {target}" for module, target, names, where in found
-           for n in names if n.startswith("_") and not n.startswith("__") and target != module]
+    bad = [
+        f"{where}: {module} imports {n} from {target}"
+        for module, target, names, where in found
+        for n in names
+        if n.startswith("_") and not n.startswith("__") and target != module
+    ]
     assert not bad, "private names imported across modules:\n" + "\n".join(bad)
 
 

@@ -49,9 +49,11 @@ def _coarse() -> Settings:
 
 def _write_good(folder: Path, names=GOOD) -> None:
     """Lifted solids about 10 mm across (trimesh.creation), one per name."""
-    makers = [lambda: trimesh.creation.box((10.0, 8.0, 4.0)),
-              lambda: trimesh.creation.icosphere(subdivisions=2, radius=5.0),
-              lambda: trimesh.creation.cylinder(radius=4.0, height=6.0, sections=24)]
+    makers = [
+        lambda: trimesh.creation.box((10.0, 8.0, 4.0)),
+        lambda: trimesh.creation.icosphere(subdivisions=2, radius=5.0),
+        lambda: trimesh.creation.cylinder(radius=4.0, height=6.0, sections=24),
+    ]
     for i, name in enumerate(names):
         mesh = makers[i % len(makers)]()
         mesh.apply_translation((0.0, 0.0, 5.0 - mesh.bounds[0, 2]))
@@ -100,13 +102,13 @@ def _same_outputs(a: Path, b: Path) -> None:
             ja, jb = json.loads(fa[name]), json.loads(fb[name])
             ja.pop("timing_s"), jb.pop("timing_s")
             ja["provenance"].pop("created"), jb["provenance"].pop("created")
-            for doc in (ja, jb):     # the page embeds the report's times: compare its name only
+            for doc in (ja, jb):  # the page embeds the report's times: compare its name only
                 doc["outputs"]["files"] = [o if o["role"] != "page" else o["file"] for o in doc["outputs"]["files"]]
             assert ja == jb, name
         elif name.endswith(".batch.json"):
             ja, jb = json.loads(fa[name]), json.loads(fb[name])
             ja.pop("seconds"), jb.pop("seconds")
-            for doc in (ja, jb):     # the report and page carry timings and times: compare their names only
+            for doc in (ja, jb):  # the report and page carry timings and times: compare their names only
                 doc["outputs"] = [o if o["role"] not in ("report", "page") else o["file"] for o in doc["outputs"]]
             assert ja == jb, name
         elif name.endswith(".report.html"):
@@ -122,15 +124,21 @@ def test_discover_pattern_and_exclude(tmp_path):
         (tmp_path / name).parent.mkdir(parents=True, exist_ok=True)
         (tmp_path / name).write_bytes(b"x")
     (tmp_path / "out" / "sub").mkdir(parents=True)
-    (tmp_path / "out" / "sub" / "lid.supported.stl").write_bytes(b"x")       # an earlier run's output
+    (tmp_path / "out" / "sub" / "lid.supported.stl").write_bytes(b"x")  # an earlier run's output
     # Expected lists from os.walk and the suffix rule, independently of discover().
-    walked = sorted(Path(d, f).relative_to(tmp_path).as_posix() for d, _, fs in os.walk(tmp_path) for f in fs
-                    if os.path.splitext(f)[1].lower() in (".stl", ".obj", ".ply", ".3mf"))
+    walked = sorted(
+        Path(d, f).relative_to(tmp_path).as_posix()
+        for d, _, fs in os.walk(tmp_path)
+        for f in fs
+        if os.path.splitext(f)[1].lower() in (".stl", ".obj", ".ply", ".3mf")
+    )
     assert [p.as_posix() for p in discover(tmp_path)] == walked
     got = [p.as_posix() for p in discover(tmp_path, exclude=tmp_path / "out")]
     assert got == [w for w in walked if not w.startswith("out/")] == sorted(names[:6])
-    assert [p.as_posix() for p in discover(tmp_path, "*lid*", exclude=tmp_path / "out")] == ["sub/deep/lid2.OBJ",
-                                                                                            "sub/lid.stl"]
+    assert [p.as_posix() for p in discover(tmp_path, "*lid*", exclude=tmp_path / "out")] == [
+        "sub/deep/lid2.OBJ",
+        "sub/lid.stl",
+    ]
     assert [p.as_posix() for p in discover(tmp_path, "sub/*.stl", exclude=tmp_path / "out")] == ["sub/lid.stl"]
 
 
@@ -139,7 +147,7 @@ def test_folder_good_bad_nested(folder, runs):
     # Discovery against the filesystem: every mesh suffix in any case, nothing else.
     assert sorted(p.as_posix() for p in discover(folder)) == sorted([*GOOD, *BAD])
     by_file = {r.file: r for r in summary.results}
-    assert sorted(by_file) == sorted([*GOOD, *BAD])            # summary complete
+    assert sorted(by_file) == sorted([*GOOD, *BAD])  # summary complete
     for name in GOOD:
         row = by_file[name]
         assert (row.status, row.passed) == ("ok", True), row
@@ -173,10 +181,10 @@ def test_same_outputs_with_one_or_two_workers(folder, runs):
 def test_dask_local_cluster_matches_local_pool(folder, runs):
     distributed = pytest.importorskip("distributed", reason="Dask distributed not installed (extra 'cluster')")
     out = folder.parent / "out"
-    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, host="127.0.0.1", protocol="tcp://",
-                                  dashboard_address=":0") as cluster:
-        summary = run_batch(folder, out, _coarse(), cluster=cluster.scheduler_address, pattern="*good*",
-                            progress=False)
+    with distributed.LocalCluster(
+        n_workers=1, threads_per_worker=1, processes=False, host="127.0.0.1", protocol="tcp://", dashboard_address=":0"
+    ) as cluster:
+        summary = run_batch(folder, out, _coarse(), cluster=cluster.scheduler_address, pattern="*good*", progress=False)
     assert [r.status for r in summary.results] == ["ok"] * len(GOOD)
     # Same output path as the 1-worker local run, so even the paths inside report.json agree.
     _same_outputs(out, folder.parent / "w1")
@@ -210,8 +218,12 @@ def test_ctrl_c_then_resume(tmp_path):
     script = tmp_path / "child.py"
     script.write_text(CHILD)
     # Ctrl-C as a terminal sends it: SIGINT to the whole process group, once the first file is saved.
-    child = subprocess.Popen([sys.executable, str(script), str(tmp_path / "in"), str(out)], start_new_session=True,
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    child = subprocess.Popen(
+        [sys.executable, str(script), str(tmp_path / "in"), str(out)],
+        start_new_session=True,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
     manifest = out / "a_first.batch.json"
     deadline = time.monotonic() + 120
     while not manifest.exists() and child.poll() is None and time.monotonic() < deadline:
@@ -232,7 +244,7 @@ def test_ctrl_c_then_resume(tmp_path):
     second = run_batch(tmp_path / "in", out, _coarse(), workers=1, resume=True, progress=False)
     statuses = {r.file: r.status for r in second.results}
     assert statuses["a_first.stl"] == "skipped" and set(statuses) == set(names)
-    assert all(statuses[f["file"]] == "skipped" for f in doc["files"])          # nothing finished is redone
+    assert all(statuses[f["file"]] == "skipped" for f in doc["files"])  # nothing finished is redone
     assert all(statuses[n] == "ok" for n in names if n not in {f["file"] for f in doc["files"]})
     assert manifest.stat().st_mtime_ns == stamp
     assert second.exit_code == 0 and not list(out.rglob("*.tmp"))
@@ -249,7 +261,7 @@ def test_crashed_worker_is_recorded(tmp_path):
     big.export(src / "a_slow.stl")
     (src / "b_empty.stl").write_bytes(b"")
 
-    def kill_workers(row):               # b_empty fails at once, while a_slow is still running
+    def kill_workers(row):  # b_empty fails at once, while a_slow is still running
         for proc in multiprocessing.active_children():
             os.kill(proc.pid, signal.SIGKILL)
 
@@ -263,7 +275,7 @@ def test_crashed_worker_is_recorded(tmp_path):
 def test_timeout_and_memory_refusal(tmp_path):
     src = tmp_path / "in"
     src.mkdir()
-    slow = trimesh.creation.icosphere(subdivisions=5, radius=20.0)   # seconds of work, far over 0.2 s
+    slow = trimesh.creation.icosphere(subdivisions=5, radius=20.0)  # seconds of work, far over 0.2 s
     slow.apply_translation((0.0, 0.0, 25.0))
     slow.export(src / "slow_sphere.stl")
     plate = trimesh.creation.box((120.0, 70.0, 1.0))
@@ -272,26 +284,30 @@ def test_timeout_and_memory_refusal(tmp_path):
     settings = _coarse()
     small = estimate_peak_mb(*mesh_footprint(src / "slow_sphere.stl"), settings)
     big = estimate_peak_mb(*mesh_footprint(src / "wide_plate.stl"), settings)
-    assert big > small              # 120 x 70 mm against 10 x 10 mm of layer grid
-    summary = run_batch(src, tmp_path / "out", settings, workers=1, progress=False, timeout_s=0.2,
-                        memory_limit_mb=(small + big) / 2)
+    assert big > small  # 120 x 70 mm against 10 x 10 mm of layer grid
+    summary = run_batch(
+        src, tmp_path / "out", settings, workers=1, progress=False, timeout_s=0.2, memory_limit_mb=(small + big) / 2
+    )
     rows = {r.file: r for r in summary.results}
     assert rows["wide_plate.stl"].status == "refused" and "MB" in rows["wide_plate.stl"].reason
     assert rows["slow_sphere.stl"].status == "timeout" and "0.2 s" in rows["slow_sphere.stl"].reason
     assert summary.exit_code == 1
-    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["batch-summary.csv", "batch-summary.json",
-                                                                     "index.html"]
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == [
+        "batch-summary.csv",
+        "batch-summary.json",
+        "index.html",
+    ]
 
 
 def test_command_line(folder, runs, tmp_path, capsys):
     from supportgen.cli.main import build_parser
 
-    parser = build_parser()                                # the installed command's own parser
+    parser = build_parser()  # the installed command's own parser
     out = tmp_path / "out"
     shutil.copytree(folder.parent / "w2", out)
     sets = [a for kv in ("pixel_mm=0.2", "layer_mm=0.2", "tip_min_mm=0.4", "tip_max_mm=1.0") for a in ("--set", kv)]
     args = parser.parse_args(["batch", str(folder), "-o", str(out), "--resume", "--pattern", "*good*", *sets])
-    assert args.func(args) == 0                                  # all up to date: nothing redone
+    assert args.func(args) == 0  # all up to date: nothing redone
     assert {r["status"] for r in json.loads((out / "batch-summary.json").read_text())["files"]} == {"skipped"}
     assert "3 skipped" in capsys.readouterr().out
     with pytest.raises(SystemExit):
@@ -300,4 +316,4 @@ def test_command_line(folder, runs, tmp_path, capsys):
     args = parser.parse_args(["batch", str(folder), "-o", str(out), "--pattern", "empty*", "--quiet", *sets])
     assert args.func(args) == 1
     assert "failed: empty.stl:" in capsys.readouterr().err
-    assert os.path.exists(out / "good_box.supported.stl")       # other files' outputs untouched
+    assert os.path.exists(out / "good_box.supported.stl")  # other files' outputs untouched

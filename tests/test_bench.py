@@ -87,7 +87,8 @@ def test_table_has_every_model_with_every_strategy(bench):
     with open(out / "bench.csv", newline="", encoding="utf-8") as fh:
         rows = list(csv.DictReader(fh))
     assert sorted((r["model"], r["strategy"]) for r in rows) == sorted(
-        (m, s) for m in models for s in ("straight", "tree"))
+        (m, s) for m in models for s in ("straight", "tree")
+    )
     assert all(r["status"] == "ok" and r["error"] == "" for r in rows)
     # Every column the issue asks for is present and filled.
     needed = [*FIGURES, *(f"{s}_s" for s in STAGES), "total_s"]
@@ -96,7 +97,7 @@ def test_table_has_every_model_with_every_strategy(bench):
     # The Markdown table: header, rule and one line per run, same order as the CSV.
     md = (out / "bench.md").read_text(encoding="utf-8").splitlines()
     start = md.index(next(line for line in md if line.startswith("| model | strategy | status")))
-    body = md[start + 2:start + 2 + len(rows)]
+    body = md[start + 2 : start + 2 + len(rows)]
     assert [line.split(" | ")[:2] for line in body] == [[f"| {r['model']}", r["strategy"]] for r in rows]
 
 
@@ -123,18 +124,23 @@ def test_table_figures_equal_the_reports(bench):
 
 def test_ratios_against_the_baseline_are_the_reports_ratios(bench):
     table, out, models = bench
-    reports = {(m, s): json.loads((out / s / f"{m}.report.json").read_text(encoding="utf-8"))
-               for m in models for s in ("straight", "tree")}
+    reports = {
+        (m, s): json.loads((out / s / f"{m}.report.json").read_text(encoding="utf-8"))
+        for m in models
+        for s in ("straight", "tree")
+    }
     with open(out / "summary.csv", newline="", encoding="utf-8") as fh:
         summary = {r["model"]: r for r in csv.DictReader(fh)}
     vol = {k: r["supports"]["volume_mm3"] for k, r in reports.items()}
     secs = {k: r["timing_s"]["total"] for k, r in reports.items()}
     for m in models:
         assert summary[m]["strategy"] == "tree"
-        assert float(summary[m]["support_volume_ratio"]) == pytest.approx(vol[m, "tree"] / vol[m, "straight"],
-                                                                          rel=1e-12)
+        assert float(summary[m]["support_volume_ratio"]) == pytest.approx(
+            vol[m, "tree"] / vol[m, "straight"], rel=1e-12
+        )
         assert float(summary[m]["contacts_ratio"]) == pytest.approx(
-            reports[m, "tree"]["supports"]["contacts"] / reports[m, "straight"]["supports"]["contacts"], rel=1e-12)
+            reports[m, "tree"]["supports"]["contacts"] / reports[m, "straight"]["supports"]["contacts"], rel=1e-12
+        )
         assert float(summary[m]["time_ratio"]) == pytest.approx(secs[m, "tree"] / secs[m, "straight"], rel=1e-12)
     # Both small parts pass verification, so the overall rows count both.
     assert all(r["verification"]["passed"] for r in reports.values())
@@ -184,8 +190,20 @@ def test_cli_scales_records_a_broken_file_and_exits_1(tmp_path, capsys):
     write_mesh(trimesh.creation.box((10.0, 8.0, 6.0)), corpus / "box.stl")
     (corpus / "broken.stl").write_bytes(b"solid nothing here\n")
     sets = [f"--set={k}={v}" for k, v in COARSE.items()]
-    code = _cli(["bench", str(corpus), "-o", str(tmp_path / "out"), "--strategies", "straight", "--scale", "12",
-                 "--quiet", *sets])
+    code = _cli(
+        [
+            "bench",
+            str(corpus),
+            "-o",
+            str(tmp_path / "out"),
+            "--strategies",
+            "straight",
+            "--scale",
+            "12",
+            "--quiet",
+            *sets,
+        ]
+    )
     assert code == 1
     assert "broken / straight" in capsys.readouterr().err
     with open(tmp_path / "out" / "bench.csv", newline="", encoding="utf-8") as fh:

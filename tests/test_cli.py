@@ -13,8 +13,17 @@ import trimesh
 from supportgen.cli.main import main
 from supportgen.physics.pressure import torsion_constant
 
-COARSE = ["--set", "pixel_mm=0.2", "--set", "layer_mm=0.2", "--set", "tip_min_mm=0.4", "--set", "tip_max_mm=1.0",
-          "--quiet"]
+COARSE = [
+    "--set",
+    "pixel_mm=0.2",
+    "--set",
+    "layer_mm=0.2",
+    "--set",
+    "tip_min_mm=0.4",
+    "--set",
+    "tip_max_mm=1.0",
+    "--quiet",
+]
 
 
 def _box_stl(path, lift=6.0, size=(8, 8, 3)):
@@ -30,7 +39,7 @@ def _bad_files(folder):
     good = trimesh.creation.box((5, 5, 5)).export(file_type="stl")
     declared = struct.unpack("<I", good[80:84])[0]
     assert declared == 12
-    (folder / "truncated.stl").write_bytes(good[: 84 + 50 * 5])   # header says 12 triangles, 5 present
+    (folder / "truncated.stl").write_bytes(good[: 84 + 50 * 5])  # header says 12 triangles, 5 present
     return ["empty", "garbage", "truncated"]
 
 
@@ -40,8 +49,16 @@ def test_generate_goes_on_past_bad_files_and_leaves_no_partial_output(tmp_path, 
     good = _box_stl(src / "good.stl")
     bad = _bad_files(src)
     out = tmp_path / "out"
-    code = main(["generate", str(good), *(str(src / f) for f in ("empty.stl", "garbage.ply", "truncated.stl")),
-                 "-o", str(out), *COARSE])
+    code = main(
+        [
+            "generate",
+            str(good),
+            *(str(src / f) for f in ("empty.stl", "garbage.ply", "truncated.stl")),
+            "-o",
+            str(out),
+            *COARSE,
+        ]
+    )
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 1
     # One line per bad file, naming it; no traceback.
@@ -88,7 +105,7 @@ def test_profiles_lists_every_setting_with_its_source(capsys):
 def test_calibrate_recovers_a_known_factor(tmp_path, capsys):
     # Synthetic measurements made from a known factor with the squeeze-film law
     # F = c 3 mu v J / h^3 (Stefan 1874; Reynolds) on discs, J = pi R^4 / 2 (exact).
-    mu, v, h, c = 0.5e-6, 1.0, 0.05, 0.013   # N s/mm^2, mm/s, mm
+    mu, v, h, c = 0.5e-6, 1.0, 0.05, 0.013  # N s/mm^2, mm/s, mm
     rows = ["area_mm2,torsion_mm4,peak_force_n"]
     for R in (2.0, 4.0, 6.0, 9.0):
         J = np.pi * R**4 / 2
@@ -123,7 +140,7 @@ def test_installed_command_and_demo(tmp_path):
     assert len(solids) == len(DEMO_PARTS)
     for path in solids:
         mesh = trimesh.load(path)
-        assert mesh.is_watertight   # trimesh (reference library)
+        assert mesh.is_watertight  # trimesh (reference library)
 
 
 def test_a_part_drawn_in_metres_is_refused_with_the_unit_and_scaled_on_request(tmp_path, capsys):

@@ -14,7 +14,9 @@ from supportgen.supports.contacts import RSA_DENSITY, contacts_at, expected_coun
 def _contacts(mesh, settings):
     rules = settings.rules
     oh = find_overhangs(mesh, rules.overhang_angle_deg, floor_z=0.0)
-    return sample_overhangs(mesh, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed)
+    return sample_overhangs(
+        mesh, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed
+    )
 
 
 def test_jamming_density_constant():

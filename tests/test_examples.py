@@ -13,8 +13,9 @@ def test_slicing_script_supports_a_folder(tmp_path):
     from supportgen.runs.demo import write_demo_inputs
 
     write_demo_inputs(tmp_path / "in")
-    rows = script["support_folder"](tmp_path / "in", tmp_path / "out", pixel_mm=0.2, layer_mm=0.2,
-                                    tip_min_mm=0.4, tip_max_mm=1.0)
+    rows = script["support_folder"](
+        tmp_path / "in", tmp_path / "out", pixel_mm=0.2, layer_mm=0.2, tip_min_mm=0.4, tip_max_mm=1.0
+    )
     assert [r["part"] for r in rows] == ["canister_lid", "hook", "jar_lid", "trivet"]
     for r in rows:
         assert r["contacts"] > 0 and r["supports_mm3"] > 0 and r["passed"]

@@ -85,7 +85,7 @@ def test_resave_failing_at_every_file_leaves_the_old_set_byte_identical(two_resu
     _reuse_plots(monkeypatch, drawn)
     n_files = len(before)
     real_fsync = os.fsync
-    for k in range(n_files):                       # the disk fills up while file k of the new set is written
+    for k in range(n_files):  # the disk fills up while file k of the new set is written
         calls = []
 
         def fsync(fd, k=k, calls=calls):
@@ -106,10 +106,11 @@ def test_resave_failing_at_every_file_leaves_the_old_set_byte_identical(two_resu
     report = json.loads(paths["report"].read_text())
     # The report names the files of its own set with sizes and SHA-256 (hashlib, recomputed here).
     import hashlib
+
     for entry in report["outputs"]["files"]:
         data = (tmp_path / entry["file"]).read_bytes()
         assert entry["bytes"] == len(data) and entry["sha256"] == hashlib.sha256(data).hexdigest()
-    assert report["outputs"]["combined"].endswith("part.supported.stl")     # README contract keys kept
+    assert report["outputs"]["combined"].endswith("part.supported.stl")  # README contract keys kept
     assert {e["role"] for e in report["outputs"]["files"]} == set(paths) - {"report"}
 
 
@@ -164,22 +165,27 @@ def test_real_sigterm_during_a_resave(two_results, tmp_path, stage):
     script = tmp_path / "child.py"
     script.write_text(SAVE_CHILD)
     (tmp_path / "new.pickle").write_bytes(pickle.dumps(new))
-    child = subprocess.Popen([sys.executable, str(script), str(src), str(out), stage, str(tmp_path / "new.pickle")],
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    child = subprocess.Popen(
+        [sys.executable, str(script), str(src), str(out), stage, str(tmp_path / "new.pickle")],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
     line = child.stdout.readline()
     assert line.strip() == stage, child.stderr.read()
-    child.send_signal(signal.SIGTERM)               # what a job scheduler sends
+    child.send_signal(signal.SIGTERM)  # what a job scheduler sends
     _, err = child.communicate(timeout=60)
     assert child.returncode == 130 and "Traceback" not in err, err
     assert _temps(out) == [] and not (out / LOCK_NAME).exists()
     after = _snapshot(out)
     assert set(after) == set(before)
     if stage == "staged":
-        assert after == before                      # the signal came before any rename: old set untouched
+        assert after == before  # the signal came before any rename: old set untouched
     else:
         # The signal was held back until the last rename (pthread_sigmask): the new set is whole, and
         # every file matches the hashes its own report lists.
         import hashlib
+
         files = json.loads(after["part.report.json"])["outputs"]["files"]
         assert all(hashlib.sha256(after[e["file"]]).hexdigest() == e["sha256"] for e in files)
         assert after["part.supported.stl"] != before["part.supported.stl"]
@@ -211,7 +217,7 @@ def _hold(tmp_path, folder, how):
 
 
 def test_second_run_on_a_folder_refuses_or_waits(tmp_path, capsys, monkeypatch, two_results):
-    monkeypatch.setattr(supportgen, "generate", lambda *a, **k: two_results[0])   # the run itself is not the point
+    monkeypatch.setattr(supportgen, "generate", lambda *a, **k: two_results[0])  # the run itself is not the point
     out = tmp_path / "out"
     out.mkdir()
     src = tmp_path / "part.stl"
@@ -246,7 +252,7 @@ def test_two_batches_on_one_folder_one_refuses(tmp_path):
     _box().export(tmp_path / "in" / "part.stl")
     out = tmp_path / "out"
     out.mkdir()
-    with FolderLock(out):          # another run holds it
+    with FolderLock(out):  # another run holds it
         with pytest.raises(OutputError, match="in use by"):
             run_batch(tmp_path / "in", out, _coarse(), workers=1, progress=False)
     assert sorted(p.name for p in out.iterdir()) == []
@@ -274,7 +280,7 @@ def test_colliding_names_get_distinct_outputs_or_a_refusal(tmp_path, capsys, mon
         _box().export(tmp_path / d / name)
     out = tmp_path / "out"
     args = [str(tmp_path / "a" / "part.stl"), str(tmp_path / "b" / "PART.stl")]
-    assert assign_names(["part", "PART"]) == ["part", "PART-2"]   # case-folded: one file on macOS/Windows
+    assert assign_names(["part", "PART"]) == ["part", "PART-2"]  # case-folded: one file on macOS/Windows
     saved = []
     monkeypatch.setattr(supportgen.pipeline.Result, "save", lambda self, d: saved.append(self.name))
     assert main(["generate", *args, "-o", str(out), "--quiet", *COARSE]) == 0
@@ -304,7 +310,7 @@ def test_unreadable_profile_is_a_usage_error(tmp_path, capsys, monkeypatch):
             raise PermissionError(errno.EACCES, "Permission denied", str(self))
         return real(self, *a, **k)
 
-    monkeypatch.setattr(Path, "read_text", deny)      # root reads any file: inject the EACCES
+    monkeypatch.setattr(Path, "read_text", deny)  # root reads any file: inject the EACCES
     assert main(["generate", str(profile), "--profile", str(profile), "--quiet"]) == 2
     assert "cannot read the profile (Permission denied)" in capsys.readouterr().err
 
@@ -335,22 +341,27 @@ def test_sigterm_to_a_batch_stops_workers_and_writes_the_summary(tmp_path):
     src = tmp_path / "in"
     src.mkdir()
     _box().export(src / "a_small.stl")
-    for name in ("b_big.stl", "c_big.stl"):         # seconds each: the signal lands while they run
+    for name in ("b_big.stl", "c_big.stl"):  # seconds each: the signal lands while they run
         big = trimesh.creation.icosphere(subdivisions=5, radius=20.0)
         big.apply_translation((0.0, 0.0, 25.0))
         big.export(src / name)
     out = tmp_path / "out"
     script = tmp_path / "child.py"
     script.write_text(BATCH_CHILD)
-    child = subprocess.Popen([sys.executable, str(script), str(src), str(out)], start_new_session=True,
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    child = subprocess.Popen(
+        [sys.executable, str(script), str(src), str(out)],
+        start_new_session=True,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
     deadline = time.monotonic() + 120
     while not (out / "a_small.batch.json").exists() and child.poll() is None and time.monotonic() < deadline:
         time.sleep(0.05)
-    os.killpg(child.pid, signal.SIGTERM)             # a scheduler signals the whole job
+    os.killpg(child.pid, signal.SIGTERM)  # a scheduler signals the whole job
     _, err = child.communicate(timeout=60)
     assert child.returncode == 130 and "Traceback" not in err and "BrokenPipe" not in err, err
-    gone = time.monotonic() + 10                     # no worker of the batch is left running
+    gone = time.monotonic() + 10  # no worker of the batch is left running
     while time.monotonic() < gone:
         try:
             os.killpg(child.pid, 0)
@@ -374,12 +385,12 @@ def test_resume_checks_recorded_size_and_hash(tmp_path):
     _box((6.0, 6.0, 3.0)).export(src / "q.stl")
     out = tmp_path / "out"
     run_batch(src, out, _coarse(), workers=1, progress=False)
-    (out / "p.supports.stl").write_bytes(b"")                   # truncated to 0 bytes
+    (out / "p.supports.stl").write_bytes(b"")  # truncated to 0 bytes
     data = bytearray((out / "q.report.md").read_bytes())
-    data[-2] ^= 1                                               # same size, one bit changed
+    data[-2] ^= 1  # same size, one bit changed
     (out / "q.report.md").write_bytes(bytes(data))
     again = run_batch(src, out, _coarse(), workers=1, resume=True, progress=False)
-    assert {r.file: r.status for r in again.results} == {"p.stl": "ok", "q.stl": "ok"}    # both redone
+    assert {r.file: r.status for r in again.results} == {"p.stl": "ok", "q.stl": "ok"}  # both redone
     assert (out / "p.supports.stl").stat().st_size > 0
 
 
@@ -406,7 +417,7 @@ def test_a_3mf_bomb_is_refused_before_it_is_unpacked(tmp_path):
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
-    assert peak < 300 * 2**20 and "\n" not in str(e.value)      # the bound: under 300 MB
+    assert peak < 300 * 2**20 and "\n" not in str(e.value)  # the bound: under 300 MB
 
 
 def _instanced_3mf(path: Path, copies: int, components: bool) -> int:
@@ -421,9 +432,11 @@ def _instanced_3mf(path: Path, copies: int, components: bool) -> int:
         build = '<item objectid="2"/>'
     else:
         resources, build = obj, "".join(f'<item objectid="1" {t}/>' for t in place)
-    model = ('<?xml version="1.0" encoding="UTF-8"?><model unit="millimeter" '
-             'xmlns="http://schemas.microsoft.com/3dmanufacturing/core/2015/02">'
-             f"<resources>{resources}</resources><build>{build}</build></model>")
+    model = (
+        '<?xml version="1.0" encoding="UTF-8"?><model unit="millimeter" '
+        'xmlns="http://schemas.microsoft.com/3dmanufacturing/core/2015/02">'
+        f"<resources>{resources}</resources><build>{build}</build></model>"
+    )
     with zipfile.ZipFile(path, "w", zipfile.ZIP_DEFLATED) as z:
         z.writestr("3D/3dmodel.model", model)
     return len(mesh.faces) * copies
@@ -442,7 +455,7 @@ def test_instancing_bomb_is_refused_before_parsing(tmp_path, monkeypatch, compon
 def test_generate_refuses_a_job_that_would_not_fit_in_memory(tmp_path, monkeypatch):
     import supportgen.io.budget as budget
 
-    monkeypatch.setattr(budget, "available_memory_mb", lambda: 400.0)     # a small machine
+    monkeypatch.setattr(budget, "available_memory_mb", lambda: 400.0)  # a small machine
     plate = trimesh.creation.box((120.0, 70.0, 1.0))
     plate.apply_translation((0.0, 0.0, 5.0))
     path = tmp_path / "plate.stl"
@@ -485,13 +498,14 @@ def _ascii_stl(name: bytes, bom: bool = False) -> bytes:
     return (b"\xef\xbb\xbf" if bom else b"") + body
 
 
-@pytest.mark.parametrize("name,bom", [("Teil-Würfel".encode(), False), ("pièce".encode("latin-1"), False),
-                                      (b"plain", True)])
+@pytest.mark.parametrize(
+    "name,bom", [("Teil-Würfel".encode(), False), ("pièce".encode("latin-1"), False), (b"plain", True)]
+)
 def test_ascii_stl_with_non_ascii_name_or_bom_loads(tmp_path, name, bom):
     path = tmp_path / "part.stl"
     path.write_bytes(_ascii_stl(name, bom))
     part = load_mesh(path)
-    assert part.mesh.volume == pytest.approx(8 * 8 * 3, rel=1e-6)        # exact geometry
+    assert part.mesh.volume == pytest.approx(8 * 8 * 3, rel=1e-6)  # exact geometry
 
 
 def test_obj_with_latin1_comment_loads_without_optional_packages(tmp_path, monkeypatch):
@@ -499,7 +513,7 @@ def test_obj_with_latin1_comment_loads_without_optional_packages(tmp_path, monke
     path = tmp_path / "part.obj"
     path.write_bytes("# pièce d'essai\n".encode("latin-1") + text.encode("ascii"))
     for optional in ("charset_normalizer", "chardet"):
-        monkeypatch.setitem(sys.modules, optional, None)      # importing it now fails
+        monkeypatch.setitem(sys.modules, optional, None)  # importing it now fails
     assert load_mesh(path).mesh.volume == pytest.approx(8 * 8 * 3, rel=1e-6)
 
 
@@ -519,8 +533,7 @@ def _small_fs(folder: Path, size_kb: int):
     if os.geteuid() != 0:
         return None
     folder.mkdir(parents=True, exist_ok=True)
-    r = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size_kb}k", "tmpfs", str(folder)],
-                       capture_output=True)
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size_kb}k", "tmpfs", str(folder)], capture_output=True)
     if r.returncode != 0:
         return None
     return lambda: subprocess.run(["umount", str(folder)], capture_output=True)
@@ -547,7 +560,7 @@ def test_full_disk_gives_one_line_and_the_next_input_goes_on(tmp_path, capsys, m
     out = tmp_path / "small-disk"
     unmount = _small_fs(out, int(1.3 * sizes["part"] / 1024) + 64)
     real_stage = supportgen.io.outputs._stage
-    if unmount is None:        # no small file system here: inject ENOSPC for the big part's files
+    if unmount is None:  # no small file system here: inject ENOSPC for the big part's files
 
         def stage(target, data):
             if target.name.startswith("big."):
@@ -563,7 +576,7 @@ def test_full_disk_gives_one_line_and_the_next_input_goes_on(tmp_path, capsys, m
         if unmount is not None:
             unmount()
     assert code == 1 and len(err) == 1 and "No space left on device" in err[0] and "big." in err[0]
-    assert left == sorted(f"part{s}" for s in supportgen.pipeline.OUTPUTS.values())   # the next input is whole
+    assert left == sorted(f"part{s}" for s in supportgen.pipeline.OUTPUTS.values())  # the next input is whole
 
 
 # --------------------------------------------------------------------------- 9. Dask time limits
@@ -576,10 +589,10 @@ def test_a_late_task_saves_nothing(tmp_path):
     _box().export(src)
     out = tmp_path / "out"
     out.mkdir()
-    job = Job(str(src), "p.stl", str(out), "p", _coarse(), "straight", timeout_s=1e-6)   # counted from its start
+    job = Job(str(src), "p.stl", str(out), "p", _coarse(), "straight", timeout_s=1e-6)  # counted from its start
     row = run_job(job)
     assert row.status == "timeout" and "nothing saved" in row.reason
-    assert list(out.iterdir()) == []                                  # the whole set discarded, no temp file
+    assert list(out.iterdir()) == []  # the whole set discarded, no temp file
 
 
 @dataclasses.dataclass(frozen=True)
@@ -602,10 +615,19 @@ def test_dask_limit_starts_when_the_task_starts(monkeypatch):
 
     monkeypatch.setattr(workers, "DASK_GRACE_S", 0.2)
     rows = []
-    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as c, \
-            distributed.Client(c, set_as_default=False) as client:
+    with (
+        distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as c,
+        distributed.Client(c, set_as_default=False) as client,
+    ):
         # One thread: the slow task overruns and keeps the thread; the quick one must not inherit its clock.
         jobs = [_SleepJob("slow", 3.0, 1.0), _SleepJob("quick", 0.5, 1.0)]
-        workers.run_dask(jobs, client, 1.0, rows.append, run=_sleep_run, discard=lambda job: None,
-                         lost=lambda job, status, reason, s: (job.rel, status))
+        workers.run_dask(
+            jobs,
+            client,
+            1.0,
+            rows.append,
+            run=_sleep_run,
+            discard=lambda job: None,
+            lost=lambda job, status, reason, s: (job.rel, status),
+        )
     assert dict(rows) == {"slow": "timeout", "quick": "ok"}

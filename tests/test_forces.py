@@ -42,8 +42,9 @@ def disc(r_px: float, half: int):
 def shape_of(mask, settings=None):
     lab, n = ndimage.label(mask, EIGHT)
     sol = pz.solve_components(lab, range(1, n + 1), PX)
-    return laws.LayerShape(lab, PX, np.array([sol[i][1] for i in range(1, n + 1)]),
-                         np.array([sol[i][0] for i in range(1, n + 1)]))
+    return laws.LayerShape(
+        lab, PX, np.array([sol[i][1] for i in range(1, n + 1)]), np.array([sol[i][0] for i in range(1, n + 1)])
+    )
 
 
 def beta_series(ratio: float) -> float:
@@ -53,6 +54,7 @@ def beta_series(ratio: float) -> float:
 
 
 # --- torsion constant against exact and handbook values --------------------------
+
 
 def test_disc_torsion_and_stefan_law():
     # J = pi R^4 / 2 (Timoshenko & Goodier 1970); F = 3 pi mu R^4 v / (2 h^3) (Stefan 1874).
@@ -83,8 +85,7 @@ def test_bound_binds_at_ambient_pressure_times_area():
     # ceiling * (area of the pixel squares) exactly; a vapour pressure lowers the ceiling.
     mask = disc(60, 64)
     lab, _ = ndimage.label(mask, EIGHT)
-    j, a, _, w, da, _ = pz.solve_runs(*mask_runs(mask),
-                                      pz._edges(mask), PX, (0.0, 0.0), factor=1)
+    j, a, _, w, da, _ = pz.solve_runs(*mask_runs(mask), pz._edges(mask), PX, (0.0, 0.0), factor=1)
     big = s.override(force_calibration=10.0, film_gap_mm=0.005, vapour_pressure_pa=1325.0)
     field = laws.LayerShape(lab, PX, np.array([a]), np.array([j]), samples=((w, da),))
     assert a == pytest.approx(mask.sum() * PX**2)
@@ -144,13 +145,14 @@ def test_stepped_outline_converges_at_first_order():
     sizes = np.array([8, 16, 32, 64])
     rms = []
     for n in sizes:
-        yy, xx = np.mgrid[-n - 2:n + 2, -n - 2:n + 2] + 0.5
-        e = [pz.torsion_constant((xx - ox) ** 2 + (yy - oy) ** 2 < n**2, 1.0 / n) / (math.pi / 2) - 1
-             for ox, oy in offs]
+        yy, xx = np.mgrid[-n - 2 : n + 2, -n - 2 : n + 2] + 0.5
+        e = [
+            pz.torsion_constant((xx - ox) ** 2 + (yy - oy) ** 2 < n**2, 1.0 / n) / (math.pi / 2) - 1 for ox, oy in offs
+        ]
         rms.append(math.sqrt(np.mean(np.square(e))))
     order = -np.polyfit(np.log(sizes), np.log(rms), 1)[0]
     assert 0.8 < order < 1.3, order
-    assert rms[2] < 0.007                      # "0.5 % RMS at R = 32 pixels"
+    assert rms[2] < 0.007  # "0.5 % RMS at R = 32 pixels"
 
 
 def test_coarse_grid_within_stated_bound():
@@ -167,6 +169,7 @@ def test_coarse_grid_within_stated_bound():
 
 
 # --- shape effects -------------------------------------------------------------------
+
 
 def test_disc_has_largest_torsion_for_equal_area():
     # Polya & Szego (1951): among plane regions of equal area the disc maximises J.
@@ -193,7 +196,7 @@ def test_strip_against_disc_follows_beta_table():
     ratio = laws.pull_force(shape_of(strip), RAW).sum() / laws.pull_force(shape_of(dmask), RAW).sum()
     expect = 0.312 * 10 * b * b**3 / (math.pi * r**4 / 2)
     assert ratio == pytest.approx(expect, rel=0.02)
-    assert ratio < 0.3   # a long thin layer lets go far more easily
+    assert ratio < 0.3  # a long thin layer lets go far more easily
 
 
 def test_slide_against_pull_for_disc():
@@ -219,8 +222,8 @@ def test_slide_about_a_hundredth_of_pull_with_defaults():
 def test_tilt_band_of_a_long_bar():
     # Our peel-line model: a bar lying along y, wider (x) than the band, peels one band
     # at a time, J = L w^3 / 3 of the band (thin-strip limit of Roark's beta -> 1/3).
-    bar = np.ones((400, 120), bool)                  # 20 mm along y, 6 mm along x
-    s = Settings().override(force_calibration=1.0, force_area_n_mm2=0.0)   # band phi <= w^2/8: under the ceiling
+    bar = np.ones((400, 120), bool)  # 20 mm along y, 6 mm along x
+    s = Settings().override(force_calibration=1.0, force_area_n_mm2=0.0)  # band phi <= w^2/8: under the ceiling
     L, w = 400 * PX, 2.0
     expect = 1e-6 * s.resin.viscosity_pa_s * s.printer.lift_speed_mm_s * 3 * (L * w**3 / 3) / s.printer.film_gap_mm**3
     shape = shape_of(bar)
@@ -235,7 +238,9 @@ def test_unknown_mechanism_lists_valid_names():
 
 # --- sealed cavities and the load path ------------------------------------------
 
-def run(masks, contacts=np.zeros((0, 3)), settings=None, check=None):
+
+def run(masks, contacts=None, settings=None, check=None):
+    contacts = np.zeros((0, 3)) if contacts is None else contacts
     settings = settings or Settings()
     ny, nx = masks[0].shape
     grid = Grid(-(nx // 2 - 0.5) * PX, -(ny // 2 - 0.5) * PX, PX, ny, nx)
@@ -342,7 +347,7 @@ def test_statics_nearly_collinear_supports_stay_bounded():
     r = statics_shares([[0.0, 0.0], [10.0, 0.0], [5.0, 0.01]], [1, 1, 1], P, P * 5.0, P * 3.0)
     assert r.sum() == pytest.approx(P, rel=1e-12)
     assert np.all((r >= -1e-9) & (r <= P))
-    assert r == pytest.approx([P / 3, P / 3, P / 3], abs=1e-3)      # load above the centre line
+    assert r == pytest.approx([P / 3, P / 3, P / 3], abs=1e-3)  # load above the centre line
 
 
 def test_tracker_shares_an_offset_layer_by_statics():
@@ -351,7 +356,7 @@ def test_tracker_shares_an_offset_layer_by_statics():
     # gives P/3 - P/4, P/3, P/3 + P/4 (REFERENCE.md s.3). Equal shares (P/3 each) or
     # nearest-contact shares would fail this.
     yy, xx = centred(120)
-    m = (xx - 20) ** 2 + yy**2 < 60**2            # 3 mm radius at x = +1 mm (0.05 mm pixels)
+    m = (xx - 20) ** 2 + yy**2 < 60**2  # 3 mm radius at x = +1 mm (0.05 mm pixels)
     pts = np.array([[-2.0, 0.0, 0.0], [0.0, 0.0, 0.0], [2.0, 0.0, 0.0]])
     prof = run([m], pts)
     P = prof.force_n[0]
@@ -367,8 +372,15 @@ def test_tilt_never_exceeds_pull_on_small_features():
     # where the strip model alone would exceed the pull: discs, squares, a ring, thin bars.
     yy, xx = centred(60)
     r2 = xx**2 + yy**2
-    feats = [r2 < 6**2, r2 < 15**2, r2 < 30**2, (np.abs(xx) < 10) & (np.abs(yy) < 10),
-             (r2 < 25**2) & (r2 > 15**2), (np.abs(xx) < 2) & (np.abs(yy) < 40), (np.abs(yy) < 2) & (np.abs(xx) < 40)]
+    feats = [
+        r2 < 6**2,
+        r2 < 15**2,
+        r2 < 30**2,
+        (np.abs(xx) < 10) & (np.abs(yy) < 10),
+        (r2 < 25**2) & (r2 > 15**2),
+        (np.abs(xx) < 2) & (np.abs(yy) < 40),
+        (np.abs(yy) < 2) & (np.abs(xx) < 40),
+    ]
     for s in (Settings(), Settings().override(force_area_n_mm2=0.0, force_calibration=1.0)):
         for f in feats:
             shape = shape_of(f)
@@ -392,7 +404,7 @@ def test_tilt_sweep_keeps_each_contacts_peak():
     assert tilt.force_n[0] < pull.force_n[0]
     assert tilt.contact_loads.sum() > 1.2 * tilt.force_n[0]
     assert min(tilt.contact_loads[0], tilt.contact_loads[-1]) > 2.0 * tilt.contact_loads[4]
-    assert tilt.contact_squeeze_loads == pytest.approx(pull.contact_loads, rel=1e-9)   # the return squeeze: pull
+    assert tilt.contact_squeeze_loads == pytest.approx(pull.contact_loads, rel=1e-9)  # the return squeeze: pull
 
 
 def test_slide_shear_is_a_side_load_shared_by_tip_area():
@@ -423,6 +435,7 @@ def test_rated_force_warning():
 
 # --- calibration -------------------------------------------------------------------
 
+
 def synthetic(tmp_path, c, b, seed=0):
     rng = np.random.default_rng(seed)
     r = rng.uniform(2, 12, 12)
@@ -440,7 +453,7 @@ def test_calibration_round_trip_factor_only(tmp_path):
     fit = fit_calibration(read_measurements(synthetic(tmp_path, 0.004, 0.0)), Settings())
     assert fit.factor == pytest.approx(0.004, rel=0.02) and not fit.uses_area
     assert calibrated_settings(fit, Settings()).printer.force_calibration == pytest.approx(fit.factor)
-    assert calibrated_settings(fit, Settings()).printer.force_area_n_mm2 == 0.0   # fitted without one
+    assert calibrated_settings(fit, Settings()).printer.force_area_n_mm2 == 0.0  # fitted without one
     assert "rms residual" in fit.to_text()
 
 
@@ -468,6 +481,7 @@ def test_bad_measurement_row_is_named(tmp_path):
 
 # --- run-length tracker and kept factorisations against the uncached solve ---------
 
+
 def reference_layers(masks):
     """Second method: per-layer J from full-image labelling (scipy.ndimage) and fresh solves."""
     out, below, below_sealed = [], None, None
@@ -476,8 +490,14 @@ def reference_layers(masks):
         flab, n = ndimage.label(m | sealed, EIGHT)
         sol = pz.solve_components(flab, range(1, n + 1), PX, cavities=sealed)
         cured = np.bincount(flab[m], minlength=n + 1)[1:] * PX**2
-        out.append((flab, np.array([sol[i][0] for i in range(1, n + 1)]),
-                    np.array([sol[i][1] for i in range(1, n + 1)]), cured))
+        out.append(
+            (
+                flab,
+                np.array([sol[i][0] for i in range(1, n + 1)]),
+                np.array([sol[i][1] for i in range(1, n + 1)]),
+                cured,
+            )
+        )
         below, below_sealed = m, sealed
     return out
 
@@ -490,16 +510,16 @@ def cup_sequence():
     base = r2 < 80**2
     masks = [base, base]
     for k in range(14):
-        ro = 80 + k // 3                                       # growing rim: coarse mask mostly kept
+        ro = 80 + k // 3  # growing rim: coarse mask mostly kept
         ring = (r2 < ro**2) & (r2 > 50**2)
         if 4 <= k < 7:
-            ring |= r2 < 12**2                                 # an island inside the sealed cavity
+            ring |= r2 < 12**2  # an island inside the sealed cavity
         if 7 <= k < 9:
-            ring &= ~((np.abs(yy) < 3) & (xx > 0))             # a slot vents the cavity
+            ring &= ~((np.abs(yy) < 3) & (xx > 0))  # a slot vents the cavity
         if k >= 9:
-            ring |= (np.abs(xx + 70) < 10) & (np.abs(yy - 70) < 10)   # a second part in a corner
+            ring |= (np.abs(xx + 70) < 10) & (np.abs(yy - 70) < 10)  # a second part in a corner
         masks.append(ring)
-    return masks + [masks[-1]] * 3 + [np.zeros_like(base), base]   # an empty layer, then a new part
+    return masks + [masks[-1]] * 3 + [np.zeros_like(base), base]  # an empty layer, then a new part
 
 
 @pytest.mark.parametrize("mechanism", ["pull", "tilt"])
@@ -523,8 +543,9 @@ def test_tracker_matches_uncached_full_image_solve(mechanism):
     run(masks, settings=s, check=check)
     assert seen == list(range(len(masks)))
     # the sequence exercises sealing, venting and several suction components
-    assert any(r[1].size > 1 for r in ref) and any(pz.sealed_cavities(m, b, None).any()
-                                                  for m, b in zip(masks[1:], masks[:-1]))
+    assert any(r[1].size > 1 for r in ref) and any(
+        pz.sealed_cavities(m, b, None).any() for m, b in zip(masks[1:], masks[:-1])
+    )
 
 
 def test_tracker_matches_uncached_solve_on_random_masks():
@@ -543,7 +564,7 @@ def test_tracker_matches_uncached_solve_on_random_masks():
             base = m if rng.random() < 0.7 else base
         ref = reference_layers(masks)
 
-        def check(tr, k):
+        def check(tr, k, ref=ref):
             assert np.sort(tr.last_torsion_mm4) == pytest.approx(np.sort(ref[k][1]), rel=1e-8, abs=1e-15)
 
         run(masks, check=check)
@@ -564,7 +585,7 @@ def test_tracker_kept_factorisations_match_fresh_solves(monkeypatch):
     masks = []
     for k in range(10):
         m = np.zeros((260, 260), bool)
-        m[30:230, 30:230 + k] = True
+        m[30:230, 30 : 230 + k] = True
         masks.append(m)
     ref = reference_layers(masks)
 
@@ -581,16 +602,16 @@ def test_kept_factorisation_gives_the_fresh_solve():
     # same phi without solving.
     yy, xx = centred(16)
     frac1 = np.clip(13.4 - np.hypot(xx, yy), 0, 1)
-    part = (frac1 > 0) & (frac1 < 1)                              # move the boundary, keep the coarse mask
+    part = (frac1 > 0) & (frac1 < 1)  # move the boundary, keep the coarse mask
     frac2 = np.where(part & (frac1 < 0.5), 0.9 * frac1, np.where(part, 0.5 + 0.9 * (frac1 - 0.5), frac1))
     assert np.array_equal(frac1 >= 0.5, frac2 >= 0.5) and not np.array_equal(frac1, frac2)
     _, kept = pz._factor_solve(frac1, 0.4)
     phi, state = pz._factor_solve(frac2, 0.4, kept)
-    assert state[2] is kept[2]                                   # LU kept
+    assert state[2] is kept[2]  # LU kept
     assert phi == pytest.approx(pz._factor_solve(frac2, 0.4)[0], rel=1e-9, abs=1e-15)
     again, same = pz._factor_solve(frac2, 0.4, state)
     assert again is phi and same is state
-    frac3 = np.clip(14.6 - np.hypot(xx, yy), 0, 1)               # coarse mask grew: factorised afresh
+    frac3 = np.clip(14.6 - np.hypot(xx, yy), 0, 1)  # coarse mask grew: factorised afresh
     phi3, state3 = pz._factor_solve(frac3, 0.4, state)
     assert state3[2] is not state[2]
     assert phi3 == pytest.approx(pz._factor_solve(frac3, 0.4)[0], rel=1e-12, abs=1e-15)

@@ -79,8 +79,13 @@ def test_tree_gives_every_contact_a_way_down():
     s = Settings()
     part = place(demo_part("jar_lid"), s).mesh
     rules = s.rules
-    c = sample(part, find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0), rules.contact_spacing_mm,
-               rules.overhang_angle_deg, rules.tip_diameter_mm)
+    c = sample(
+        part,
+        find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0),
+        rules.contact_spacing_mm,
+        rules.overhang_angle_deg,
+        rules.tip_diameter_mm,
+    )
     plan = get_strategy("tree")(part, c, s)
     assert set(plan.tip_contact[plan.tip_contact >= 0]) == set(range(len(c)))
     assert plan.landings > 0
@@ -101,11 +106,20 @@ def test_runs_split_at_nodes_and_feet_union_without_pinch_points():
     from supportgen.supports.plan import SupportPlan
 
     s = Settings()
-    nodes = np.array([[0.0, 0.0, 9.0], [1.2, 0.0, 7.0], [2.4, 0.0, 5.0], [2.4, 0.0, 1.0],
-                      [8.0, 3.0, 9.0], [8.0, 3.0, 1.0]])
-    plan = SupportPlan("straight", nodes, np.array([[0, 1], [1, 2], [2, 3], [4, 5]]), np.full(4, 0.25),
-                       np.array([[0.0, 0.0, 10.5], [8.0, 3.0, 10.5]]), np.array([0, 4]), np.array([0.3, 0.3]),
-                       np.array([0, 1]), np.array([3, 5]))
+    nodes = np.array(
+        [[0.0, 0.0, 9.0], [1.2, 0.0, 7.0], [2.4, 0.0, 5.0], [2.4, 0.0, 1.0], [8.0, 3.0, 9.0], [8.0, 3.0, 1.0]]
+    )
+    plan = SupportPlan(
+        "straight",
+        nodes,
+        np.array([[0, 1], [1, 2], [2, 3], [4, 5]]),
+        np.full(4, 0.25),
+        np.array([[0.0, 0.0, 10.5], [8.0, 3.0, 10.5]]),
+        np.array([0, 4]),
+        np.array([0.3, 0.3]),
+        np.array([0, 1]),
+        np.array([3, 5]),
+    )
     parts, base = build_supports(plan, s, 0.0)
     solid = m3d.Manifold.batch_boolean(parts + base, m3d.OpType.Add)
     assert solid.status() == m3d.Error.NoError

@@ -86,7 +86,7 @@ def test_cone_areas_are_those_of_its_polygons():
     exact = n / 2 * r * r * np.sin(2 * np.pi / n)
     bound = _steiner(2 * n * r * np.sin(np.pi / n), pixel)
     assert np.all(np.abs(stack.area_mm2 - exact) <= bound)
-    assert stack.islands == ()                       # stands on the plate, narrows upwards
+    assert stack.islands == ()  # stands on the plate, narrows upwards
     assert stack.max_unsupported_reach_mm == 0.0
 
 
@@ -109,7 +109,7 @@ def test_torus_areas_are_those_of_its_annuli():
             assert area == 0
             continue
         r_in, r_out = cut.bounds[0], cut.bounds[2]
-        exact = n / 2 * np.sin(2 * np.pi / n) * (r_out ** 2 - r_in ** 2)
+        exact = n / 2 * np.sin(2 * np.pi / n) * (r_out**2 - r_in**2)
         bound = _steiner(2 * n * r_out * np.sin(np.pi / n), pixel) + _steiner(2 * n * r_in * np.sin(np.pi / n), pixel)
         assert abs(area - exact) <= bound
         checked += 1
@@ -123,7 +123,7 @@ def test_overlapping_shells_print_as_their_union():
     a = ((1.0625, 1.0625, 0.0), (5.0625, 3.0625, 2.0))
     b = ((3.0625, 2.0625, 1.0), (6.0625, 6.0625, 3.0))
     boxes = [trimesh.creation.box(bounds=np.array(x)) for x in (a, b)]
-    mesh = trimesh.util.concatenate(boxes)              # two intersecting shells, not unioned
+    mesh = trimesh.util.concatenate(boxes)  # two intersecting shells, not unioned
     grid = Grid(0.0, 0.0, p, 60, 60)
     stack = analyse_layers(mesh, p, h, 2.0, grid=grid)
     for z, area, ncomp in zip(stack.z_mm, stack.area_mm2, stack.n_components):
@@ -149,7 +149,7 @@ def test_cavities_and_inside_out_shells():
     assert stack.inverted_pixels == 0
     alone = analyse_layers(inner, p, h, 2.0, grid=grid)
     assert alone.area_mm2.max() == 0
-    assert alone.inverted_pixels == 16 * 16 * 2         # 2 mm x 2 mm of pixels, 2 layers inside
+    assert alone.inverted_pixels == 16 * 16 * 2  # 2 mm x 2 mm of pixels, 2 layers inside
 
 
 def test_components_match_scipy_label():
@@ -181,7 +181,7 @@ def _corpus(name):
 
     mesh = load_mesh(path).mesh
     assert mesh.is_watertight
-    mesh.apply_scale(50.0 / mesh.extents.max())           # 50 mm on the longest side
+    mesh.apply_scale(50.0 / mesh.extents.max())  # 50 mm on the longest side
     mesh.apply_translation(-mesh.bounds[0])
     return mesh
 
@@ -211,7 +211,7 @@ def test_lifted_ball_is_one_island_at_its_lowest_layer():
     stack = analyse_layers(mesh, p, h, 2.0)
     assert len(stack.islands) == 1
     isl = stack.islands[0]
-    k_low = int(np.floor(mesh.bounds[0, 2] / h))          # the layer holding the lowest point
+    k_low = int(np.floor(mesh.bounds[0, 2] / h))  # the layer holding the lowest point
     assert isl.layer in (k_low, k_low + 1)
     assert isl.layer == int(np.flatnonzero(stack.area_mm2)[0])
     assert np.hypot(*(np.array(isl.centroid_xy) - (1.23, -0.77))) <= 2 * p
@@ -257,7 +257,7 @@ def test_mushroom_on_the_plate_reaches_by_its_overhang():
     stack = analyse_layers(mesh, p, h, 1.5)
     assert stack.islands == ()
     assert abs(stack.max_unsupported_reach_mm - 4.0) <= 2 * p
-    assert stack.max_unsupported_reach_layer == int(np.floor(5.0 / h - 0.5)) + 1   # first layer sampled in the cap
+    assert stack.max_unsupported_reach_layer == int(np.floor(5.0 / h - 0.5)) + 1  # first layer sampled in the cap
     assert len(stack.overreach) == 1 and stack.overreach[0].layer == stack.max_unsupported_reach_layer
     xy = np.array(stack.reach_xy[stack.max_unsupported_reach_layer])
     assert abs(np.hypot(*(xy - (0.31, 0.17))) - 6.0) <= 2 * p
@@ -279,7 +279,7 @@ def test_island_points_cover_a_flat_island():
     assert np.hypot(*(pts[0] - isl.centroid_xy)) <= p
     gaps = np.sqrt(((pts[:, None] - pts[None]) ** 2).sum(-1)) + np.eye(len(pts)) * 1e9
     assert gaps.min() >= spacing / np.sqrt(2) - 1e-9
-    assert 60.0 / spacing ** 2 / 2 <= len(pts) <= 60.0 / spacing ** 2 * 2
+    assert 60.0 / spacing**2 / 2 <= len(pts) <= 60.0 / spacing**2 * 2
 
 
 @hsettings(max_examples=8, deadline=None)

@@ -122,8 +122,7 @@ def _nan_obj(path):
 
 
 def _inf_stl(path):
-    tetra = trimesh.Trimesh([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]],
-                            [[0, 2, 1], [0, 1, 3], [0, 3, 2], [1, 2, 3]])
+    tetra = trimesh.Trimesh([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]], [[0, 2, 1], [0, 1, 3], [0, 3, 2], [1, 2, 3]])
     text = trimesh.exchange.stl.export_stl_ascii(tetra)
     assert "vertex 1.0 0.0 0.0" in text  # the corner that becomes infinite
     path.write_text(text.replace("vertex 1.0 0.0 0.0", "vertex inf 0.0 0.0", 1))
@@ -255,13 +254,11 @@ def test_cavity_is_kept_and_inverted_hollow_part_is_fixed():
 
 def test_merges_and_drops_are_recorded():
     box = _box()
-    soup = trimesh.Trimesh(box.triangles.reshape(-1, 3), np.arange(36).reshape(-1, 3),
-                           process=False)
+    soup = trimesh.Trimesh(box.triangles.reshape(-1, 3), np.arange(36).reshape(-1, 3), process=False)
     faces = np.vstack([soup.faces, soup.faces[:2], [[0, 0, 1]]])  # 2 duplicates, 1 degenerate
     part = prepare_mesh(trimesh.Trimesh(soup.vertices, faces, process=False), "soup")
     # 36 corners collapse onto the box's 8 vertices.
-    assert part.repairs == ("merged 28 coincident vertices", "dropped 1 degenerate face",
-                            "dropped 2 duplicate faces")
+    assert part.repairs == ("merged 28 coincident vertices", "dropped 1 degenerate face", "dropped 2 duplicate faces")
     assert part.mesh.volume == pytest.approx(box.volume, rel=1e-12)
 
 
@@ -349,9 +346,10 @@ def test_corpus_bunny_is_repaired_or_refused_clearly():
 
 
 @settings(max_examples=25, deadline=None)
-@given(q=st.lists(st.floats(-1, 1), min_size=4, max_size=4).filter(
-           lambda q: np.linalg.norm(q) > 0.1),
-       shift=st.lists(st.floats(-500, 500), min_size=3, max_size=3))
+@given(
+    q=st.lists(st.floats(-1, 1), min_size=4, max_size=4).filter(lambda q: np.linalg.norm(q) > 0.1),
+    shift=st.lists(st.floats(-500, 500), min_size=3, max_size=3),
+)
 def test_rigid_transform_keeps_volume(q, shift):
     # trimesh invariance idea: volume is invariant under rotation and translation.
     transform = trimesh.transformations.quaternion_matrix(np.asarray(q) / np.linalg.norm(q))
@@ -380,7 +378,7 @@ def test_winding_number_of_a_closed_mesh_is_the_inside_test():
     pts = np.random.default_rng(7).uniform(-9, 9, (2000, 3))
     w = winding_number(mesh.vertices, mesh.faces, pts)
     inside = mesh.contains(pts)
-    far = np.abs(trimesh.proximity.signed_distance(mesh, pts)) > 0.05   # not on the surface itself
+    far = np.abs(trimesh.proximity.signed_distance(mesh, pts)) > 0.05  # not on the surface itself
     assert np.all((w[far] > 0.5) == inside[far])
     assert np.allclose(w[far], inside[far].astype(float), atol=0.01)
 
@@ -393,7 +391,7 @@ def test_open_hemisphere_gives_one_half_on_its_rim_plane():
     s = _sphere(radius=20, subdivisions=5)
     cap = trimesh.Trimesh(s.vertices, s.faces[s.triangles_center[:, 2] > 0])
     r = np.linspace(0, 0.7, 8)
-    pts = np.column_stack([r * 20, np.zeros_like(r), np.zeros_like(r)])   # _sphere has radius 20 mm
+    pts = np.column_stack([r * 20, np.zeros_like(r), np.zeros_like(r)])  # _sphere has radius 20 mm
     assert np.allclose(winding_number(cap.vertices, cap.faces, pts), 0.5, atol=0.01)
 
 
@@ -405,7 +403,7 @@ def test_a_hole_too_large_to_fill_still_gives_the_solid(tmp_path):
     hole = s.triangles_center[:, 2] > 0.985 * 20
     path = tmp_path / "holed.ply"
     path.write_bytes(trimesh.Trimesh(s.vertices, s.faces[~hole]).export(file_type="ply"))
-    part = load_mesh(path, hole_fraction=0.0)     # no fan filling: the winding route alone
+    part = load_mesh(path, hole_fraction=0.0)  # no fan filling: the winding route alone
     assert part.mesh.is_watertight and part.mesh.is_winding_consistent
     assert part.mesh.volume == pytest.approx(s.volume, rel=0.02)
     assert any("generalised winding number" in r and "before" in r for r in part.repairs)

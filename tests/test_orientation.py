@@ -39,7 +39,7 @@ def test_cube_sections_face_and_corner():
     assert np.all(np.abs(flat.area_mm2 - a * a) <= bound)
     assert len(flat.area_mm2) == round(a / p)
     corner = O.layer_profile(cube, O.rotation_to_up(np.array([1.0, 1.0, 1.0])), p, s)
-    hexagon = 3 * np.sqrt(3) / 4 * a * a          # exact geometry: the central section is a regular hexagon
+    hexagon = 3 * np.sqrt(3) / 4 * a * a  # exact geometry: the central section is a regular hexagon
     hex_bound = O.area_error_bound(6 * a / np.sqrt(2), p)
     mid = int(np.argmin(np.abs(corner.z_mm - a * np.sqrt(3) / 2)))
     assert abs(corner.area_mm2[mid] - hexagon) <= hex_bound
@@ -59,7 +59,7 @@ def test_sphere_scores_alike_in_every_direction():
     t = O.score_directions(sphere, dirs, s, p)
     # Symmetry: the peak layer is the equator, pi r^2, within the stated bound (outline within half a pixel).
     area_rel = O.area_error_bound(2 * np.pi * r, p) / (np.pi * r * r)
-    assert np.all(np.abs(t["peak_area_mm2"] / (np.pi * r * r) - 1) <= area_rel + 0.01)   # +1 %: facets of the icosphere
+    assert np.all(np.abs(t["peak_area_mm2"] / (np.pi * r * r) - 1) <= area_rel + 0.01)  # +1 %: facets of the icosphere
     # Force ~ J ~ A^2: twice the area bound, plus the 2 % of the coarse pressure solve (module notes).
     f = t["peak_force_n"]
     assert (f.max() - f.min()) / f.mean() <= 2 * (2 * area_rel + 0.02)
@@ -73,10 +73,10 @@ def test_same_physical_orientation_after_a_random_turn():
     rng = np.random.default_rng(7)
     q = rng.normal(size=4)
     q /= np.linalg.norm(q)
-    r0 = trimesh.transformations.quaternion_matrix(q)[:3, :3]          # a random rotation (trimesh)
+    r0 = trimesh.transformations.quaternion_matrix(q)[:3, :3]  # a random rotation (trimesh)
     first = O.orient(hook, s, n_directions=40, pixel_mm=0.8)
     second = O.orient(O.turn(hook, r0), s, n_directions=40, pixel_mm=0.8)
-    back = r0.T @ second.directions[second.chosen]                     # the second choice in the first frame
+    back = r0.T @ second.directions[second.chosen]  # the second choice in the first frame
     again = O.score_directions(hook, back[None, :], s, 0.8)
     total = sum(first.weights[k] * again[k][0] / first.scales[k] for k in O.TERMS)
     # Invariance within the search resolution: equally good under one scorer (a few % of the score).
@@ -89,7 +89,7 @@ def _open_box(outer=(20.0, 20.0, 15.0), wall=2.0) -> trimesh.Trimesh:
     x, y, z = outer
     box = m3d.Manifold.cube(outer).translate((-x / 2, -y / 2, 0.0))
     hollow = m3d.Manifold.cube((x - 2 * wall, y - 2 * wall, z)).translate((-x / 2 + wall, -y / 2 + wall, wall))
-    return to_trimesh(box - hollow)                                     # opening toward +z
+    return to_trimesh(box - hollow)  # opening toward +z
 
 
 def test_open_box_is_never_stood_as_a_sealed_cup():
@@ -99,7 +99,7 @@ def test_open_box_is_never_stood_as_a_sealed_cup():
     # Given orientation: opening toward the film, the sealed cavity is the inner 16 x 16 mm (exact geometry).
     assert abs(o.terms["cup_area_mm2"][o.keep] - 16 * 16) <= O.area_error_bound(4 * 16, 0.5)
     opening = o.rotation @ [0.0, 0.0, 1.0]
-    assert opening[2] < 0.5, opening            # never within 60 degrees of facing the film
+    assert opening[2] < 0.5, opening  # never within 60 degrees of facing the film
     assert o.terms["cup_area_mm2"][o.chosen] < 0.05 * 16 * 16
 
 
@@ -117,7 +117,7 @@ def test_rotation_helpers_against_trimesh():
     # rotation_from_angles is Rz Ry Rx about fixed axes, as trimesh.transformations.euler_matrix 'sxyz'.
     ref = trimesh.transformations.euler_matrix(*np.radians([30.0, -20.0, 75.0]), axes="sxyz")[:3, :3]
     assert np.allclose(O.rotation_from_angles(30.0, -20.0, 75.0), ref)
-    for d in (O.fibonacci_sphere(7)):
+    for d in O.fibonacci_sphere(7):
         assert np.allclose(O.rotation_to_up(d) @ d, [0, 0, 1])
         assert np.allclose(np.linalg.det(O.rotation_to_up(d)), 1.0)
     # Pareto: a dominated row is left out (definition).
@@ -128,14 +128,25 @@ def test_oriented_output_feeds_generate_and_passes_the_check(tmp_path, coarse):
     src = tmp_path / "cup.stl"
     part = _open_box((12.0, 12.0, 8.0), 2.0)
     part.export(src)
-    status = main(["orient", str(src), "-o", str(tmp_path / "out"), "--directions", "30", "--quiet",
-                   "--set", "orient_pixel_mm=0.4"])
+    status = main(
+        [
+            "orient",
+            str(src),
+            "-o",
+            str(tmp_path / "out"),
+            "--directions",
+            "30",
+            "--quiet",
+            "--set",
+            "orient_pixel_mm=0.4",
+        ]
+    )
     assert status == 0
     paths = {role: tmp_path / "out" / f"cup{suffix}" for role, suffix in ORIENT_OUTPUTS.items()}
     assert all(p.is_file() for p in paths.values())
     data = json.loads(paths["json"].read_text())
     assert len(data["candidates"]) >= 31 and data["pareto"]
-    assert paths["map"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"                  # PNG signature
+    assert paths["map"].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature
     oriented = trimesh.load(paths["mesh"])
     # trimesh: the turned part is the same closed solid, standing elevation_mm above the plate.
     assert oriented.is_watertight and abs(oriented.volume - part.volume) < 1e-3 * part.volume
@@ -151,7 +162,7 @@ def test_generate_rotate_is_recorded_and_bad_values_are_refused(coarse):
     rec = r.report["orientation"]
     assert rec["chosen_by"] == "rotate"
     assert np.allclose(rec["rotation"], O.rotation_from_angles(90, 0, 0))
-    assert np.allclose(r.part.extents, [12.0, 4.0, 8.0], atol=1e-6)       # the 8 mm side now stands up
+    assert np.allclose(r.part.extents, [12.0, 4.0, 8.0], atol=1e-6)  # the 8 mm side now stands up
     with pytest.raises(supportgen.SettingsError, match="orient"):
         supportgen.generate(box, coarse, orient="sideways")
     with pytest.raises(supportgen.SettingsError, match="rotate"):

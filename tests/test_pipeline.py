@@ -43,8 +43,8 @@ def demo_results():
 def test_demo_parts_are_closed_solids_that_pass_the_check(demo_results):
     results, s = demo_results
     for name, r in results.items():
-        assert r.combined.is_watertight and r.combined.is_volume, name          # trimesh
-        assert len(r.combined.split(only_watertight=False)) == 1, name          # one body
+        assert r.combined.is_watertight and r.combined.is_volume, name  # trimesh
+        assert len(r.combined.split(only_watertight=False)) == 1, name  # one body
         assert r.report["verification"]["passed"], (name, r.report["verification"]["failures"])
         assert r.report["verification"]["islands"] == 0
         assert r.report["verification"]["max_unsupported_reach_mm"] <= s.rules.reach_limit_mm
@@ -84,7 +84,8 @@ def test_report_has_the_contract_keys(demo_results, tmp_path):
     assert supports.volume == pytest.approx(data["supports"]["volume_mm3"], rel=1e-4)
     # The report's resin estimate is part plus supports, in ml.
     assert data["estimates"]["resin_ml"] == pytest.approx(
-        (data["input"]["volume_mm3"] + data["supports"]["volume_mm3"]) / 1000, rel=1e-3)
+        (data["input"]["volume_mm3"] + data["supports"]["volume_mm3"]) / 1000, rel=1e-3
+    )
 
 
 def test_same_input_gives_the_same_bytes(tmp_path):
@@ -117,7 +118,7 @@ def test_corpus_models_run_through_generate(name, corpus, tmp_path):
     # The file written checks out too: re-read (single precision, as any slicer reads
     # it) it is still one closed solid without islands.
     paths = r.save(tmp_path)
-    assert trimesh.load(paths["combined"]).is_watertight          # trimesh (reference library)
+    assert trimesh.load(paths["combined"]).is_watertight  # trimesh (reference library)
     again = supportgen.check(paths["combined"], s)
     assert again.passed and again.n_islands == 0, again.failures
 

@@ -84,7 +84,7 @@ def test_a_part_that_cures_no_more_than_a_speck_is_refused():
     px2 = s.printer.pixel_mm**2
     with pytest.raises(PlacementError, match="needle: no layer cures more than 4 pixel"):
         check_cures(np.array([0.0, 4 * px2, 2 * px2]), s, "needle")
-    check_cures(np.array([0.0, 5 * px2]), s, "ok")   # five pixels is a printable feature
+    check_cures(np.array([0.0, 5 * px2]), s, "ok")  # five pixels is a printable feature
 
 
 def test_check_fails_a_solid_that_cures_nothing():

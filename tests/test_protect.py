@@ -69,7 +69,7 @@ def test_normal_and_height_selectors_match_face_geometry():
     box = trimesh.creation.box((2, 3, 4))
     down = protect_mask(box, "normal:0,0,-1,10")
     assert np.array_equal(down, box.face_normals[:, 2] < -0.99)
-    band = protect_mask(box, "height:1.9,2.1")   # the top face at z = 2
+    band = protect_mask(box, "height:1.9,2.1")  # the top face at z = 2
     assert np.array_equal(band, box.face_normals[:, 2] > 0.99)
 
 
@@ -155,8 +155,10 @@ def test_slab_with_protected_underside_is_held_from_its_sides_and_passes():
     ver = r.report["verification"]
     s = r.report["settings"]
     if not ver["passed"]:
-        assert all(i["z_mm"] < float(r.part.bounds[0, 2]) + r.guard.keep_off_mm + s["printer"]["layer_mm"]
-                   for i in ver["first_islands"]), ver["failures"]
+        assert all(
+            i["z_mm"] < float(r.part.bounds[0, 2]) + r.guard.keep_off_mm + s["printer"]["layer_mm"]
+            for i in ver["first_islands"]
+        ), ver["failures"]
         assert all("island" in f for f in ver["failures"]), ver["failures"]
     lh, z0 = s["printer"]["layer_mm"], float(r.part.bounds[0, 2])
     floating = _floating(r.combined, lh, s["rules"]["base_thickness_mm"])

@@ -33,16 +33,16 @@ def box(extents, centre):
 def down_contacts(xy, z):
     xy = np.asarray(xy, float).reshape(-1, 2)
     n = len(xy)
-    return Contacts(np.column_stack([xy, np.full(n, z)]), np.tile([0.0, 0.0, -1.0], (n, 1)),
-                    np.full(n, "overhang"), np.full(n, 0.4))
+    return Contacts(
+        np.column_stack([xy, np.full(n, z)]), np.tile([0.0, 0.0, -1.0], (n, 1)), np.full(n, "overhang"), np.full(n, 0.4)
+    )
 
 
 def segment_samples(plan, per_mm=8):
     """Points along every post segment (tips excluded), dense enough for a reference check."""
     a, b = plan.nodes[plan.edges[:, 0]], plan.nodes[plan.edges[:, 1]]
     count = np.ceil(np.linalg.norm(b - a, axis=1) * per_mm).astype(int) + 2
-    return np.concatenate([a[i] + np.linspace(0, 1, count[i])[:, None] * (b[i] - a[i])
-                           for i in range(len(a))])
+    return np.concatenate([a[i] + np.linspace(0, 1, count[i])[:, None] * (b[i] - a[i]) for i in range(len(a))])
 
 
 def assert_clear(mesh, plan, clearance):
@@ -69,7 +69,7 @@ def assert_reaches(plan, n_contacts, base_top):
     for node in plan.tip_nodes[plan.tip_contact >= 0]:
         assert ({int(node)} | nx.descendants(g, int(node))) & ends
     np.testing.assert_allclose(plan.nodes[plan.feet, 2], base_top)
-    assert set(plan.feet.tolist()).isdisjoint(plan.edges[:, 0].tolist())   # feet carry, never pass load on
+    assert set(plan.feet.tolist()).isdisjoint(plan.edges[:, 0].tolist())  # feet carry, never pass load on
 
 
 def open_plate(n_side=6):
@@ -91,7 +91,7 @@ def test_open_ground_between_steiner_bound_and_straight_posts():
     assert plan.landings == 0
     starts = plan.nodes[plan.tip_nodes]
     heights = starts[:, 2] - s.base_thickness_mm
-    straight = heights.sum()                    # N straight posts from the same first nodes
+    straight = heights.sum()  # N straight posts from the same first nodes
     length = plan.segment_length()
     assert length < straight
     # Lower bound: any support tree connects every first node to the base plane, so it
@@ -142,7 +142,7 @@ def test_free_space_graph_nodes_and_edges_keep_the_rules():
     g = free_space_graph(part, settings, field, np.array([[-10, -10, 0], [10, 10, 20]]), step_mm=2.0)
     ids = [n for n in g if isinstance(n, int)]
     pos = np.array([g.nodes[n]["pos"] for n in ids])
-    _, dist, _ = trimesh.proximity.closest_point(part, pos)          # reference distances
+    _, dist, _ = trimesh.proximity.closest_point(part, pos)  # reference distances
     assert dist.min() >= s.clearance_mm and pos[:, 2].min() >= s.base_thickness_mm
     e = np.array([(g.nodes[u]["pos"], g.nodes[v]["pos"]) for u, v in g.edges if isinstance(v, int)])
     v = e[:, 0] - e[:, 1]
@@ -150,7 +150,7 @@ def test_free_space_graph_nodes_and_edges_keep_the_rules():
     assert np.degrees(np.arctan2(np.linalg.norm(v[:, :2], axis=1), v[:, 2])).max() <= s.branch_angle_deg
     area = math.pi * (s.post_diameter_mm / 2) ** 2
     w = np.array([g.edges[u, v]["weight"] for u, v in g.edges if isinstance(v, int)])
-    np.testing.assert_allclose(w, area * np.linalg.norm(v, axis=1))   # material = length x pi r^2
+    np.testing.assert_allclose(w, area * np.linalg.norm(v, axis=1))  # material = length x pi r^2
     # landings only on the part's top face (z = 14), straight below the node
     hits = np.array([g.edges[u, "land"]["hit"] for u in g.predecessors("land")])
     np.testing.assert_allclose(hits[:, 2], 14.0)
@@ -176,14 +176,14 @@ def test_blocked_contact_goes_around_a_narrow_obstacle():
     settings = Settings().override(elevation_mm=8.0)
     s = settings.rules
     top = box((40, 40, 2), (0, 0, 31))
-    bar = box((2, 40, 2), (0, 0, 9))                 # a rod straight under the contacts
+    bar = box((2, 40, 2), (0, 0, 9))  # a rod straight under the contacts
     part = trimesh.util.concatenate([bar, top])
     contacts = down_contacts([[0, -5], [0, 5]], 30.0)
     plan = plan_tree(part, contacts, settings)
     assert_clear(part, plan, s.clearance_mm)
     assert_printable(plan, s.branch_angle_deg)
     assert_reaches(plan, 2, s.base_thickness_mm)
-    assert plan.landings == 0                            # the base is reachable, so no scar
+    assert plan.landings == 0  # the base is reachable, so no scar
     feet = plan.nodes[plan.feet]
     assert np.all(np.abs(feet[:, 0]) > 1 + s.clearance_mm)  # the trunks stand beside the rod
 
@@ -192,7 +192,7 @@ def test_walled_in_contact_lands_on_the_part_below():
     settings = Settings().override(elevation_mm=8.0)
     s = settings.rules
     top = box((30, 30, 2), (0, 0, 21))
-    shelf = box((80, 80, 2), (0, 0, 9))              # too wide to go around at 40 degrees
+    shelf = box((80, 80, 2), (0, 0, 9))  # too wide to go around at 40 degrees
     part = trimesh.util.concatenate([shelf, top])
     contacts = down_contacts([[0, 0], [3, 3]], 20.0)
     plan = plan_tree(part, contacts, settings)
@@ -201,11 +201,11 @@ def test_walled_in_contact_lands_on_the_part_below():
     assert_reaches(plan, 2, s.base_thickness_mm)
     assert plan.landings >= 1 and len(plan.feet) == 0
     land = plan.tip_points[plan.tip_contact < 0]
-    _, dist, _ = trimesh.proximity.closest_point(part, land)   # on the surface (reference)
+    _, dist, _ = trimesh.proximity.closest_point(part, land)  # on the surface (reference)
     np.testing.assert_allclose(dist, 0.0, atol=1e-9)
-    np.testing.assert_allclose(land[:, 2], 10.0)                # the shelf's upper face
+    np.testing.assert_allclose(land[:, 2], 10.0)  # the shelf's upper face
     below = plan.nodes[plan.tip_nodes[plan.tip_contact < 0]]
-    np.testing.assert_allclose(below[:, :2], land[:, :2])       # straight above the landing point
+    np.testing.assert_allclose(below[:, :2], land[:, :2])  # straight above the landing point
     assert np.all(below[:, 2] - land[:, 2] >= s.clearance_mm)
 
 
@@ -221,7 +221,7 @@ def test_corpus_part_is_routed_within_the_rules():
     settings = Settings()
     s = settings.rules
     part = trimesh.load(path, force="mesh")
-    part.apply_scale(50.0 / part.extents.max())       # scaled to 50 mm on its longest side
+    part.apply_scale(50.0 / part.extents.max())  # scaled to 50 mm on its longest side
     part.apply_translation(-part.bounds[0] + [0, 0, s.elevation_mm])
     rng = np.random.default_rng(1)
     down = np.flatnonzero(part.face_normals[:, 2] < -math.cos(math.radians(55)))
@@ -235,7 +235,7 @@ def test_corpus_part_is_routed_within_the_rules():
     assert_clear(part, plan, s.clearance_mm)
     assert_printable(plan, s.branch_angle_deg)
     served = plan.tip_contact[plan.tip_contact >= 0]
-    assert len(served) >= 36                          # a few contacts may sit in crevices
+    assert len(served) >= 36  # a few contacts may sit in crevices
     ends = plan.nodes[plan.feet]
     np.testing.assert_allclose(ends[:, 2], s.base_thickness_mm)
     # tips leave the part going down, within the branch angle

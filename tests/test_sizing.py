@@ -33,9 +33,9 @@ from supportgen.supports.sizing import (
     required_post_diameter,
     required_tip_diameter,
     size_plan,
+    support_layer_forces,
     tip_capacity,
     tip_diameter,
-    support_layer_forces,
     tip_shear_stress,
 )
 
@@ -47,9 +47,18 @@ def make_plan(nodes, edges, tips, feet, braces=()):
     """tips: (node, contact) pairs; contact -1 makes a landing tip at that node."""
     nodes = np.asarray(nodes, float)
     tips = np.asarray(tips, int).reshape(-1, 2)
-    return SupportPlan("test", nodes, np.asarray(edges, int).reshape(-1, 2), np.full(len(edges), 0.5),
-                       nodes[tips[:, 0]] + [0, 0, 1.5], tips[:, 0], np.full(len(tips), 0.4), tips[:, 1],
-                       np.asarray(feet, int), np.asarray(braces, int).reshape(-1, 2))
+    return SupportPlan(
+        "test",
+        nodes,
+        np.asarray(edges, int).reshape(-1, 2),
+        np.full(len(edges), 0.5),
+        nodes[tips[:, 0]] + [0, 0, 1.5],
+        tips[:, 0],
+        np.full(len(tips), 0.4),
+        tips[:, 1],
+        np.asarray(feet, int),
+        np.asarray(braces, int).reshape(-1, 2),
+    )
 
 
 def merge_plan():
@@ -66,6 +75,7 @@ def grid_plan(height=40.0, pitch=4.0):
 
 
 # --- Euler, effective length, Johnson --------------------------------------------------------
+
 
 @pytest.mark.parametrize("K, expected", [(2.0, 1.57), (1.0, 6.28), (0.7, 12.81), (0.5, 25.12)])
 def test_euler_worked_values(K, expected):
@@ -86,7 +96,7 @@ def test_unbraced_run_buckles_as_fixed_free_column():
     assert sized.edge_k == pytest.approx(np.full(4, 2.1))
     assert sized.edge_unbraced_length_mm == pytest.approx(np.full(4, L))
     lam = 4 * 2.1 * L / d
-    assert np.all(lam >= math.sqrt(2 * math.pi**2 * E / S.resin.green_tensile_mpa))   # Euler branch (Shigley)
+    assert np.all(lam >= math.sqrt(2 * math.pi**2 * E / S.resin.green_tensile_mpa))  # Euler branch (Shigley)
     euler = math.pi**2 * E * (math.pi * d**4 / 64) / (2.1 * L) ** 2
     assert sized.edge_buckling_load_n == pytest.approx(euler, rel=1e-12)
     theory = math.pi**2 * E * (math.pi * d**4 / 64) / (2.0 * L) ** 2
@@ -133,7 +143,7 @@ def test_side_load_bends_the_post_and_shears_the_tip():
     sized = size_plan(plan, [0.0], S, compression_loads=[0.0], side_loads=[side], max_brace_rounds=0)
     assert sized.edge_lever_mm == pytest.approx([11.5])
     d_bend = (32 * side * 11.5 * sf / (math.pi * sigma)) ** (1 / 3)
-    assert d_bend > 0.5 * S.rules.post_diameter_mm                 # bending governs the post
+    assert d_bend > 0.5 * S.rules.post_diameter_mm  # bending governs the post
     assert 2 * sized.plan.edge_radius == pytest.approx([d_bend], rel=1e-9)
     assert sized.edge_side_safety_factor == pytest.approx([sf], rel=1e-9)
     d_tip = math.sqrt(4 * sf * math.sqrt(16 / 3) * side / (math.pi * sigma))
@@ -144,8 +154,16 @@ def test_side_load_bends_the_post_and_shears_the_tip():
     # Issue 14's figure: a 1 mm post 5 mm long bends at 8 L / d = 40 times its axial stress
     assert float(bending_stress(1.0, 5.0, 1.0) / (4 / math.pi)) == pytest.approx(40.0, rel=1e-12)
     out = sized.to_dict()
-    for key in ("min_tip_safety_factor", "min_post_safety_factor", "min_side_load_safety_factor",
-                "min_brace_safety_factor", "tip_diameter_mm", "tips", "post_diameter_mm", "braces"):
+    for key in (
+        "min_tip_safety_factor",
+        "min_post_safety_factor",
+        "min_side_load_safety_factor",
+        "min_brace_safety_factor",
+        "tip_diameter_mm",
+        "tips",
+        "post_diameter_mm",
+        "braces",
+    ):
         assert key in out
     assert out["min_side_load_safety_factor"] == pytest.approx(sf, rel=1e-6)
     json.dumps(out, allow_nan=False)
@@ -158,15 +176,20 @@ def test_johnson_below_euler_and_tangent(d, L, E, sigma):
     euler = float(euler_critical_load(E, d, L, 1.0))
     johnson = float(johnson_critical_load(E, sigma, d, L, 1.0))
     assert johnson <= euler * (1 + 1e-9)
-    lam_c = math.sqrt(2 * math.pi**2 * E / sigma)     # Shigley: tangent slenderness
-    L_c = lam_c * d / 4                                # r = d/4 for a round section
+    lam_c = math.sqrt(2 * math.pi**2 * E / sigma)  # Shigley: tangent slenderness
+    L_c = lam_c * d / 4  # r = d/4 for a round section
     area = math.pi * d**2 / 4
     assert float(johnson_critical_load(E, sigma, d, L_c, 1.0)) == pytest.approx(area * sigma / 2, rel=1e-9)
     assert float(euler_critical_load(E, d, L_c, 1.0)) == pytest.approx(area * sigma / 2, rel=1e-9)
 
 
 @FAST
-@given(st.one_of(st.just(0.0), st.floats(1e-6, 50.0)), st.floats(0.5, 80.0), st.sampled_from([0.65, 0.8, 1.0, 2.1]), st.floats(1.0, 5.0))
+@given(
+    st.one_of(st.just(0.0), st.floats(1e-6, 50.0)),
+    st.floats(0.5, 80.0),
+    st.sampled_from([0.65, 0.8, 1.0, 2.1]),
+    st.floats(1.0, 5.0),
+)
 def test_post_diameter_inverts_column_load(load, L, K, sf):
     # round trip: the sized diameter fails at exactly SF times the load (Euler or Johnson branch)
     d = float(required_post_diameter(load, S.resin.green_modulus_mpa, S.resin.green_tensile_mpa, L, K, sf))
@@ -178,6 +201,7 @@ def test_post_diameter_inverts_column_load(load, L, K, sf):
 
 
 # --- tips ---------------------------------------------------------------------------------------
+
 
 def test_tip_capacity_formula():
     # sigma * pi * d^2 / 4: 20 MPa on a 0.5 mm disc = 20 * 0.19635 mm^2 = 3.92699 N (hand computed)
@@ -225,12 +249,13 @@ def test_stronger_resin_never_thicker_tip(loads, a, b):
 
 # --- load flow and posts ------------------------------------------------------------------------
 
+
 def test_merge_trunk_carries_sum():
     plan, loads = merge_plan(), np.array([0.4, 0.9])
     sized = size_plan(plan, loads, S)
     # statics: a joint with no other way down passes on the sum of what reaches it
     assert sized.edge_tension_n == pytest.approx([0.4, 0.9, 1.3])
-    assert sized.edge_compression_n == pytest.approx([0.4, 0.9, 1.3])   # default: squeeze = pull
+    assert sized.edge_compression_n == pytest.approx([0.4, 0.9, 1.3])  # default: squeeze = pull
     r = sized.plan.edge_radius
     assert r[2] >= max(r[0], r[1])
     assert sized.plan.tip_diameters == pytest.approx(tip_diameter(loads, S))
@@ -245,7 +270,7 @@ def test_split_equally_and_landing_tip():
     plan = make_plan(nodes, [(0, 1), (0, 2)], [(0, 0), (2, -1)], [1])
     node_n, edge_n, tip_n = flow_loads(plan, [3.0])
     assert edge_n == pytest.approx([1.5, 1.5])
-    assert tip_n == pytest.approx([3.0, 1.5])          # the landing tip takes the post's load into the part
+    assert tip_n == pytest.approx([3.0, 1.5])  # the landing tip takes the post's load into the part
     assert node_n == pytest.approx([3.0, 1.5, 1.5])
 
 
@@ -264,7 +289,7 @@ def test_tension_governs_without_squeeze():
     sized = size_plan(merge_plan(), loads, S, compression_loads=[0.0, 0.0])
     tension = np.array([2.0, 3.0, 5.0])
     d = np.sqrt(4 * S.rules.safety_factor * tension / (math.pi * S.resin.green_tensile_mpa))
-    assert np.all(d > 0.5 * S.rules.post_diameter_mm)          # above the floor, so the formula governs
+    assert np.all(d > 0.5 * S.rules.post_diameter_mm)  # above the floor, so the formula governs
     assert 2 * sized.plan.edge_radius == pytest.approx(d, rel=1e-12)
     assert sized.edge_safety_factor == pytest.approx(np.full(3, S.rules.safety_factor))  # exactly SF
 
@@ -315,23 +340,23 @@ def test_slender_post_gets_braced():
     assert sized.braces_added == len(p.braces) >= 6
     lo, hi = p.nodes[p.braces[:, 0]], p.nodes[p.braces[:, 1]]
     rise = np.degrees(np.arctan2(hi[:, 2] - lo[:, 2], np.linalg.norm(hi[:, :2] - lo[:, :2], axis=1)))
-    assert np.all(rise >= 45.0)                                  # printable brace (common practice)
+    assert np.all(rise >= 45.0)  # printable brace (common practice)
     E, sigma, sf = s.resin.green_modulus_mpa, s.resin.green_tensile_mpa, s.rules.safety_factor
     feet_edges = np.flatnonzero(np.isin(p.edges[:, 1], p.feet))
     held = feet_edges[sized.edge_k[feet_edges] == 0.8]
-    assert len(held) >= 3                                        # braced at their tops
+    assert len(held) >= 3  # braced at their tops
     for e in held:
         L = float(sized.edge_unbraced_length_mm[e])
         edge_len = float(np.linalg.norm(p.nodes[p.edges[e, 0]] - p.nodes[p.edges[e, 1]]))
-        assert edge_len - 1e-9 <= L <= 40.0 + 1e-9              # held at its top: fixed-pinned over its run
+        assert edge_len - 1e-9 <= L <= 40.0 + 1e-9  # held at its top: fixed-pinned over its run
         d = 2 * p.edge_radius[e]
         lam = 4 * 0.8 * L / d
-        assert lam >= math.sqrt(2 * math.pi**2 * E / sigma)      # slender: Euler applies (Shigley)
-        p_cr = math.pi**2 * E * (math.pi * d**4 / 64) / (0.8 * L) ** 2   # Timoshenko & Gere, K = 0.8 (AISC)
+        assert lam >= math.sqrt(2 * math.pi**2 * E / sigma)  # slender: Euler applies (Shigley)
+        p_cr = math.pi**2 * E * (math.pi * d**4 / 64) / (0.8 * L) ** 2  # Timoshenko & Gere, K = 0.8 (AISC)
         assert p_cr >= sf * sized.edge_compression_n[e] * (1 - 1e-9)
         assert lam <= MAX_SLENDERNESS
     assert np.all(sized.edge_buckling_load_n >= sf * sized.edge_compression_n * (1 - 1e-9))
-    assert p.edge_radius[held].max() < bare.plan.edge_radius.min()   # bracing let those posts be thinner
+    assert p.edge_radius[held].max() < bare.plan.edge_radius.min()  # bracing let those posts be thinner
     assert sized.min_safety_factor >= sf * (1 - 1e-9)
     assert np.all(sized.brace_safety_factor >= sf)
 
@@ -368,15 +393,17 @@ def test_raft_and_post_layers_in_the_force_record():
     # post layers have the post's cross-section pi r^2 (exact).
     plan = make_plan([(0, 0, 11.0), (0, 0, 1.0)], [(0, 1)], [(0, 0)], [1])
     from supportgen.physics.separation import LayerShape, pull_force
+
     s = S
     force, area = support_layer_forces(plan, s, 300)
     lh, R = s.printer.layer_mm, 0.5 + s.rules.base_margin_mm
     k_raft = int(round(s.rules.base_thickness_mm / lh))
-    disc_f = pull_force(LayerShape(np.zeros((0, 0), int), 0.05, np.array([math.pi * R**2]),
-                                   np.array([math.pi * R**4 / 2])), s)[0]
+    disc_f = pull_force(
+        LayerShape(np.zeros((0, 0), int), 0.05, np.array([math.pi * R**2]), np.array([math.pi * R**4 / 2])), s
+    )[0]
     assert force[:k_raft] == pytest.approx(np.full(k_raft, disc_f), rel=0.02)
     assert area[:k_raft] == pytest.approx(np.full(k_raft, math.pi * R**2), rel=0.02)
-    mid = int(5.0 / lh)                                          # z = 5 mm: inside the post
+    mid = int(5.0 / lh)  # z = 5 mm: inside the post
     assert area[mid] == pytest.approx(math.pi * 0.5**2, rel=1e-12)
     assert area[int(12.0 / lh)] == 0.0 and len(force) == 300
 
@@ -392,13 +419,14 @@ def test_bad_plans_rejected():
 
 # --- densify ------------------------------------------------------------------------------------
 
+
 def _one(point, normal):
     return Contacts([point], [normal], ["overhang"], [0.4], loads=[50.0])
 
 
 def test_densify_ring_on_flat_underside():
     box = trimesh.creation.box((10, 10, 4))
-    box.apply_translation((0, 0, 7))                      # underside at z = 5
+    box.apply_translation((0, 0, 7))  # underside at z = 5
     out = densify_points(_one((0, 0, 5), (0, 0, -1)), [True], box, S)
     new = out.points[1:]
     r = 0.5 * S.rules.contact_spacing_mm

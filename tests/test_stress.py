@@ -29,9 +29,9 @@ CASES = sc.ci_cases(30)
 #: Known failures today: case id -> failure class (see benchmarks/STRESS_FINDINGS.md).
 KNOWN = {
     "messy-selfx-lattice-00": "check: islands of 7 pixels left on a self-intersecting lattice rebuilt from its "
-                              "winding number (the grid's bumps on thin struts; verify fails too)",
+    "winding number (the grid's bumps on thin struts; verify fails too)",
     "messy-hole-lattice-01": "check: an island the project's verify counts as held by a pixel within its near "
-                             "reach (analysis/layers.py anchoring), which the independent re-slice does not",
+    "reach (analysis/layers.py anchoring), which the independent re-slice does not",
 }
 
 
@@ -48,8 +48,7 @@ def outcomes(tmp_path_factory):
     The per-case limit only guards against a hang: it is far above any case's time even on a
     loaded machine, so no pass or fail here depends on speed (times are in benchmarks/stress.py).
     """
-    rows = stress.run_cases(CASES, tmp_path_factory.mktemp("stress"), workers=2, timeout=1200.0,
-                            echo=lambda line: None)
+    rows = stress.run_cases(CASES, tmp_path_factory.mktemp("stress"), workers=2, timeout=1200.0, echo=lambda line: None)
     return {r["id"]: r for r in rows}
 
 
@@ -82,6 +81,7 @@ def test_stress_case(outcomes, case_id):
 
 
 # -- the check itself can fail: exact geometry it must catch ------------------------------------------
+
 
 def _write(tmp_path, mesh, name="m.stl"):
     path = tmp_path / name
@@ -121,9 +121,13 @@ def test_check_finds_an_open_mesh_and_a_speck_is_no_island(tmp_path):
 def test_check_layers_match_trimesh_polygons_full(tmp_path):
     # Second method: the ring-joined sections against trimesh's own section_multiplane +
     # polygons_full on a part with holes and nested walls (a cup around a pin).
-    cup = trimesh.boolean.difference([trimesh.creation.cylinder(radius=6, height=8),
-                                      trimesh.creation.cylinder(radius=4, height=8).apply_translation((0, 0, 1))],
-                                     engine="manifold")
+    cup = trimesh.boolean.difference(
+        [
+            trimesh.creation.cylinder(radius=6, height=8),
+            trimesh.creation.cylinder(radius=4, height=8).apply_translation((0, 0, 1)),
+        ],
+        engine="manifold",
+    )
     pin = trimesh.creation.cylinder(radius=1, height=6)
     part = trimesh.util.concatenate([cup, pin])
     part.apply_translation((0, 0, -part.bounds[0, 2]))

@@ -30,12 +30,36 @@ from supportgen.runs.demo import DEMO_PARTS, demo_part
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 needs_chromium = pytest.mark.skipif(
-    CHROMIUM is None, reason="chromium not installed (CI installs it in .ci/run: apt-get install chromium)")
+    CHROMIUM is None, reason="chromium not installed (CI installs it in .ci/run: apt-get install chromium)"
+)
 
-PART_IDS = ("title", "verdict", "view3d", "view3d-canvas", "btn-iso", "btn-below", "btn-side", "btn-top",
-            "tog-part", "tog-supports", "tog-contacts", "tog-xray", "legend", "figures", "layer-plot", "readout",
-            "sf-hist", "post-hist", "warnings", "provenance", "settings", "timing", "cautions", "scene-data",
-            "plot-data")
+PART_IDS = (
+    "title",
+    "verdict",
+    "view3d",
+    "view3d-canvas",
+    "btn-iso",
+    "btn-below",
+    "btn-side",
+    "btn-top",
+    "tog-part",
+    "tog-supports",
+    "tog-contacts",
+    "tog-xray",
+    "legend",
+    "figures",
+    "layer-plot",
+    "readout",
+    "sf-hist",
+    "post-hist",
+    "warnings",
+    "provenance",
+    "settings",
+    "timing",
+    "cautions",
+    "scene-data",
+    "plot-data",
+)
 INDEX_IDS = ("title", "batch-table", "batch-summary", "cautions")
 
 # Chromium messages that are about the software GPU, not the page.
@@ -43,6 +67,7 @@ _GPU_NOISE = ("GL Driver Message", "GPU stall due to ReadPixels")
 
 
 # --------------------------------------------------------------------------- harness
+
 
 def _settings():
     # Coarser pixel and layer than the defaults so the end-to-end run stays quick on 2 cores.
@@ -70,10 +95,25 @@ def _out_dir(tmp_path: Path) -> Path:
 def _chromium(url: str, tmp: Path, *extra: str) -> subprocess.CompletedProcess:
     profile = tmp / "chromium-profile"
     return subprocess.run(
-        [CHROMIUM, "--headless", "--no-sandbox", "--use-angle=swiftshader", "--enable-unsafe-swiftshader",
-         "--enable-logging=stderr", "--v=0", "--window-size=1280,900", "--virtual-time-budget=5000",
-         "--hide-scrollbars", f"--user-data-dir={profile}", *extra, url],
-        capture_output=True, text=True, timeout=180)
+        [
+            CHROMIUM,
+            "--headless",
+            "--no-sandbox",
+            "--use-angle=swiftshader",
+            "--enable-unsafe-swiftshader",
+            "--enable-logging=stderr",
+            "--v=0",
+            "--window-size=1280,900",
+            "--virtual-time-budget=5000",
+            "--hide-scrollbars",
+            f"--user-data-dir={profile}",
+            *extra,
+            url,
+        ],
+        capture_output=True,
+        text=True,
+        timeout=180,
+    )
 
 
 def console_lines(stderr: str) -> list[str]:
@@ -129,14 +169,15 @@ def canvas_colours(png: Path, rect: str) -> tuple[int, np.ndarray]:
 
     left, top, width, height = (int(v) for v in rect.split(","))
     img = np.asarray(Image.open(png).convert("RGB"))
-    crop = img[top + 2: top + height - 2, left + 2: left + width - 2]
+    crop = img[top + 2 : top + height - 2, left + 2 : left + width - 2]
     assert crop.size, f"canvas rectangle {rect} lies outside the {img.shape[1]}x{img.shape[0]} screenshot"
     flat = crop.reshape(-1, 3)
     return len(np.unique(flat, axis=0)), flat
 
 
-def check_page(path: Path, tmp: Path, ids: tuple[str, ...], png: Path | None = None, fragment: str = "",
-               min_colours: int = 0) -> tuple[_Ids, np.ndarray | None]:
+def check_page(
+    path: Path, tmp: Path, ids: tuple[str, ...], png: Path | None = None, fragment: str = "", min_colours: int = 0
+) -> tuple[_Ids, np.ndarray | None]:
     """Every check of a page in one place: no console message, status ready, every id, canvas not blank."""
     dom, console = dom_of(path, tmp, fragment)
     assert not console, f"{path.name}: JavaScript console messages: {console}"
@@ -157,6 +198,7 @@ def check_page(path: Path, tmp: Path, ids: tuple[str, ...], png: Path | None = N
 
 # --------------------------------------------------------------------------- page content without a browser
 
+
 def test_contact_safety_factors_match_the_sized_tips(hook):
     """The page's contact factor is the sizing rule, capacity = green tensile x pi d^2 / 4 over the peak
     load (tension on a circular section, exact formula); its lowest equals the report's lowest tip factor
@@ -165,7 +207,7 @@ def test_contact_safety_factors_match_the_sized_tips(hook):
     sigma = hook.report["settings"]["resin"]["green_tensile_mpa"]
     d, f = hook.contacts.diameters, hook.contacts.loads
     expected = np.where(f > 0, sigma * np.pi * d**2 / 4 / np.where(f > 0, f, 1), np.inf)
-    held = c["loads"] > 0       # a load under 0.5 uN rounds to 0 in the records: that contact is shown as infinite
+    held = c["loads"] > 0  # a load under 0.5 uN rounds to 0 in the records: that contact is shown as infinite
     assert np.all(np.isinf(c["sf"][~held])) and np.all(f[~held] < 1e-6)
     np.testing.assert_allclose(c["sf"][held], expected[held], rtol=web.SF_ROUNDING_REL)
     tips = np.array(hook.report["supports"]["tips"]["safety_factor"], float)
@@ -188,7 +230,7 @@ def test_mesh_buffers_round_trip_exactly_or_within_one_quantum(hook):
             q = np.frombuffer(raw, "<u2").reshape(-1, 3)
             v = np.asarray(m["lo"]) + q * np.asarray(m["step"])
             assert np.all(np.abs(v - mesh.vertices) <= np.asarray(m["step"]) / 2 + 1e-12)
-        assert m["faces"] == len(mesh.faces) and m["vertices"] == len(mesh.vertices)   # nothing decimated
+        assert m["faces"] == len(mesh.faces) and m["vertices"] == len(mesh.vertices)  # nothing decimated
 
 
 def test_colour_scale_is_lightness_ordered_and_classes_are_distinct():
@@ -231,8 +273,11 @@ def test_page_is_self_contained_and_lists_what_the_report_holds(hook):
 def test_missing_keys_show_na_and_never_crash():
     empty = trimesh.Trimesh()
     box = trimesh.creation.box((10, 10, 10))
-    for report in ({}, {"forces": None, "supports": {"tips": {"safety_factor": [None, "x", 3.0]}}},
-                   {"verification": {"passed": False, "failures": ["f"], "first_islands": [{"xy_mm": None}]}}):
+    for report in (
+        {},
+        {"forces": None, "supports": {"tips": {"safety_factor": [None, "x", 3.0]}}},
+        {"verification": {"passed": False, "failures": ["f"], "first_islands": [{"xy_mm": None}]}},
+    ):
         html = part_page(report, empty, empty, box, [{"point": [0, 0, 1]}, {"junk": 1}, "not a dict"])
         assert "n/a" in html and "<html" in html
     html = batch_index([{"name": "a"}, {}, "junk", {"status": "ok", "peak_force_n": "fast"}])
@@ -244,11 +289,19 @@ def test_failed_checks_are_located():
     Verification.to_dict writes today (and the reach keys' earlier names)."""
     from supportgen.analysis.verify import Verification
 
-    ver = Verification(passed=False, watertight=True, n_islands=1,
-                       first_islands=({"layer": 9, "z_mm": 0.5, "xy_mm": [1, 2]},),
-                       specks=({"layer": 19, "xy_mm": [3, 4]},),
-                       max_unsupported_reach_mm=3.0, max_unsupported_reach_layer=39,
-                       max_unsupported_reach_xy=(5.0, 6.0), reach_limit_mm=2.0, tips_over_capacity=0, failures=("x",))
+    ver = Verification(
+        passed=False,
+        watertight=True,
+        n_islands=1,
+        first_islands=({"layer": 9, "z_mm": 0.5, "xy_mm": [1, 2]},),
+        specks=({"layer": 19, "xy_mm": [3, 4]},),
+        max_unsupported_reach_mm=3.0,
+        max_unsupported_reach_layer=39,
+        max_unsupported_reach_xy=(5.0, 6.0),
+        reach_limit_mm=2.0,
+        tips_over_capacity=0,
+        failures=("x",),
+    )
     report = {"settings": {"printer": {"layer_mm": 0.05}}, "verification": ver.to_dict()}
     # A layer k's top is (k + 1) x layer height (exact: the layers stack from the plate).
     expected = [("island", [1, 2, 0.5]), ("speck", [3, 4, 1.0]), ("reach", [5, 6, 2.0])]
@@ -259,6 +312,7 @@ def test_failed_checks_are_located():
 
 
 # --------------------------------------------------------------------------- in the browser
+
 
 @needs_chromium
 def test_part_page_loads_draws_and_has_every_element(hook, tmp_path):
@@ -299,7 +353,7 @@ def test_failed_check_is_marked_in_the_view(hook, tmp_path, monkeypatch):
     html = page.read_text()
     assert "does not pass the print check" in html and "starting in mid-air" in html
     _, pixels = check_page(page, tmp_path, PART_IDS, out / "hook_unsupported.report.png", min_colours=50)
-    red = np.array([int(web.FAIL_COLOUR[i:i + 2], 16) for i in (1, 3, 5)])
+    red = np.array([int(web.FAIL_COLOUR[i : i + 2], 16) for i in (1, 3, 5)])
     assert np.count_nonzero(np.abs(pixels.astype(int) - red).max(axis=1) <= 12) > 20, "no failure ring drawn"
 
 
@@ -307,12 +361,23 @@ def test_failed_check_is_marked_in_the_view(hook, tmp_path, monkeypatch):
 def test_batch_index_loads_with_two_rows_and_links(hook, tmp_path):
     out = _out_dir(tmp_path)
     r = hook.report
-    rows = [{"name": "hook", "page": "hook.report.html", "status": "ok",
-             "peak_force_n": r["forces"]["peak_layer_force_n"],
-             "contacts": r["supports"]["contacts"], "volume_mm3": r["supports"]["volume_mm3"],
-             "time_s": r["timing_s"]["total"]},
-            {"name": "hook_unsupported", "page": "hook_unsupported.report.html", "status": "failed-check",
-             "reason": "islands start in mid-air"}]
+    rows = [
+        {
+            "name": "hook",
+            "page": "hook.report.html",
+            "status": "ok",
+            "peak_force_n": r["forces"]["peak_layer_force_n"],
+            "contacts": r["supports"]["contacts"],
+            "volume_mm3": r["supports"]["volume_mm3"],
+            "time_s": r["timing_s"]["total"],
+        },
+        {
+            "name": "hook_unsupported",
+            "page": "hook_unsupported.report.html",
+            "status": "failed-check",
+            "reason": "islands start in mid-air",
+        },
+    ]
     page = out / "index.html"
     page.write_text(batch_index(rows, "web test batch"), encoding="utf-8")
     dom, _ = check_page(page, tmp_path, INDEX_IDS, out / "index.png")
@@ -348,8 +413,10 @@ def test_harness_catches_a_broken_page(hook, tmp_path):
 
 
 @needs_chromium
-@pytest.mark.skipif(not os.environ.get("SUPPORTGEN_SCREENSHOTS"), reason="set SUPPORTGEN_SCREENSHOTS=DIR to "
-                    "render every demo part's page and the demo index (a few minutes)")
+@pytest.mark.skipif(
+    not os.environ.get("SUPPORTGEN_SCREENSHOTS"),
+    reason="set SUPPORTGEN_SCREENSHOTS=DIR to render every demo part's page and the demo index (a few minutes)",
+)
 def test_demo_pages_for_the_closing_note(tmp_path):
     out = _out_dir(tmp_path)
     rows = []
@@ -360,9 +427,17 @@ def test_demo_pages_for_the_closing_note(tmp_path):
         check_page(page, tmp_path, PART_IDS, out / f"{name}.report.png", min_colours=200)
         check_page(page, tmp_path, PART_IDS, out / f"{name}.report.below.png", fragment="#below", min_colours=200)
         r = res.report
-        rows.append({"name": name, "page": page.name, "status": "ok" if r["verification"]["passed"] else "failed-check",
-                     "peak_force_n": r["forces"]["peak_layer_force_n"], "contacts": r["supports"]["contacts"],
-                     "volume_mm3": r["supports"]["volume_mm3"], "time_s": r["timing_s"]["total"]})
+        rows.append(
+            {
+                "name": name,
+                "page": page.name,
+                "status": "ok" if r["verification"]["passed"] else "failed-check",
+                "peak_force_n": r["forces"]["peak_layer_force_n"],
+                "contacts": r["supports"]["contacts"],
+                "volume_mm3": r["supports"]["volume_mm3"],
+                "time_s": r["timing_s"]["total"],
+            }
+        )
     index = out / "demo_index.html"
     index.write_text(batch_index(rows, "demo batch"), encoding="utf-8")
     check_page(index, tmp_path, INDEX_IDS, out / "demo_index.png")

@@ -32,10 +32,9 @@ from ..errors import MeshError, SettingsError
 from .raster import layer_count, winding_masks
 from .runlength import edge_components, mask_runs, paint_runs, run_overlaps
 
-__all__ = ["Grid", "Layer", "Island", "Overreach", "LayerStack", "iter_layers", "analyse_layers",
-           "component_stats"]
+__all__ = ["Grid", "Layer", "Island", "Overreach", "LayerStack", "iter_layers", "analyse_layers", "component_stats"]
 
-_MARGIN = 5                          # empty border of a layer window; near reach searched within 4 pixels
+_MARGIN = 5  # empty border of a layer window; near reach searched within 4 pixels
 
 
 @dataclass(frozen=True)
@@ -67,8 +66,7 @@ class Grid:
 
     def xy(self, rows, cols) -> np.ndarray:
         """Pixel centres (k, 2) of the given row and column indices."""
-        return np.column_stack([self.x0 + np.asarray(cols) * self.pixel_mm,
-                                self.y0 + np.asarray(rows) * self.pixel_mm])
+        return np.column_stack([self.x0 + np.asarray(cols) * self.pixel_mm, self.y0 + np.asarray(rows) * self.pixel_mm])
 
     def index(self, xy) -> tuple[np.ndarray, np.ndarray]:
         """Nearest (rows, cols) of points (k, 2); may fall outside the grid."""
@@ -199,13 +197,26 @@ class LayerStack:
         """Summary for the JSON report: counts, worst reach and the per-layer areas."""
         k = self.max_unsupported_reach_layer
         return {
-            "layers": int(len(self.z_mm)), "layer_mm": self.layer_mm, "pixel_mm": self.grid.pixel_mm,
+            "layers": int(len(self.z_mm)),
+            "layer_mm": self.layer_mm,
+            "pixel_mm": self.grid.pixel_mm,
             "islands": len(self.islands),
-            "island_list": [{"layer": i.layer, "z_mm": round(i.z_mm, 4), "area_mm2": round(i.area_mm2, 4),
-                             "xy_mm": [round(v, 4) for v in i.centroid_xy]} for i in self.islands],
-            "max_unsupported_reach_mm": round(float(self.max_unsupported_reach_mm), 4), "max_unsupported_reach_layer": int(k),
-            "max_reach_xy": ([round(float(v), 4) for v in self.reach_xy[k]]
-                             if k >= 0 and np.isfinite(self.reach_xy[k]).all() else None),
+            "island_list": [
+                {
+                    "layer": i.layer,
+                    "z_mm": round(i.z_mm, 4),
+                    "area_mm2": round(i.area_mm2, 4),
+                    "xy_mm": [round(v, 4) for v in i.centroid_xy],
+                }
+                for i in self.islands
+            ],
+            "max_unsupported_reach_mm": round(float(self.max_unsupported_reach_mm), 4),
+            "max_unsupported_reach_layer": int(k),
+            "max_reach_xy": (
+                [round(float(v), 4) for v in self.reach_xy[k]]
+                if k >= 0 and np.isfinite(self.reach_xy[k]).all()
+                else None
+            ),
             "overreach_regions": len(self.overreach),
             "inverted_pixels": int(self.inverted_pixels),
             "max_area_mm2": round(float(self.area_mm2.max(initial=0.0)), 4),
@@ -220,8 +231,9 @@ def _check(mesh, layer_mm: float) -> None:
         raise SettingsError(f"layers: layer_mm={layer_mm!r} must be a positive number of mm")
 
 
-def iter_layers(mesh: trimesh.Trimesh, grid: Grid, layer_mm: float, first: int = 0,
-                last: int | None = None) -> Iterator[Layer]:
+def iter_layers(
+    mesh: trimesh.Trimesh, grid: Grid, layer_mm: float, first: int = 0, last: int | None = None
+) -> Iterator[Layer]:
     """The layers of a mesh, streamed in print order.
 
     Parameters
@@ -282,7 +294,7 @@ def component_stats(labels: np.ndarray, n_labels: int, grid: Grid) -> tuple[np.n
     cnt = np.bincount(lab, minlength=n_labels).astype(float)
     with np.errstate(invalid="ignore", divide="ignore"):
         rc = np.column_stack([np.bincount(lab, r, n_labels), np.bincount(lab, c, n_labels)]) / cnt[:, None]
-    return cnt * grid.pixel_mm ** 2, grid.xy(rc[:, 0], rc[:, 1])
+    return cnt * grid.pixel_mm**2, grid.xy(rc[:, 0], rc[:, 1])
 
 
 def _window(a: np.ndarray, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
@@ -291,17 +303,18 @@ def _window(a: np.ndarray, r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
         return a[r0:r1, c0:c1]
     out = np.zeros((r1 - r0, c1 - c0), a.dtype)
     rs, cs = slice(max(r0, 0), min(r1, a.shape[0])), slice(max(c0, 0), min(c1, a.shape[1]))
-    out[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0] = a[rs, cs]
+    out[rs.start - r0 : rs.stop - r0, cs.start - c0 : cs.stop - c0] = a[rs, cs]
     return out
 
 
 def _near_rings(radius: int) -> tuple[tuple[float, tuple[tuple[int, int], ...]], ...]:
     """Pixel offsets within ``radius``, grouped by distance, nearest first."""
-    dr, dc = np.mgrid[-radius:radius + 1, -radius:radius + 1].reshape(2, -1)
+    dr, dc = np.mgrid[-radius : radius + 1, -radius : radius + 1].reshape(2, -1)
     d = np.hypot(dr, dc)
     keep = (d > 0) & (d <= radius)
-    return tuple((float(v), tuple(zip(dr[keep & (d == v)].tolist(), dc[keep & (d == v)].tolist())))
-                 for v in np.unique(d[keep]))
+    return tuple(
+        (float(v), tuple(zip(dr[keep & (d == v)].tolist(), dc[keep & (d == v)].tolist()))) for v in np.unique(d[keep])
+    )
 
 
 _RINGS = _near_rings(_MARGIN - 1)
@@ -315,7 +328,7 @@ def _run_components(r, s, e, pixel_mm):
     counted from run lengths and the overlaps of runs in adjacent rows.
     """
     n = r.size
-    a, b, _ = run_overlaps((r + 1, s, e), (r, s, e), shift=1)   # run a touches run b of the next row
+    a, b, _ = run_overlaps((r + 1, s, e), (r, s, e), shift=1)  # run a touches run b of the next row
     area = int((e - s).sum())
     ov = [int(np.maximum(np.minimum(e[a] + t, e[b]) - np.maximum(s[a] + t, s[b]), 0).sum()) for t in (0, 1, -1)]
     transitions = 2 * n + 2 * (area - ov[0]) + (4 * area - 2 * ov[1] - 2 * ov[2]) / np.sqrt(2)
@@ -371,9 +384,16 @@ def _new_pixels(m: np.ndarray, pw: np.ndarray, new: np.ndarray):
     return anchor, d
 
 
-def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reach_limit_mm: float, *,
-                   grid: Grid | None = None, observers: Iterable[Callable] = (),
-                   progress: bool | str = False) -> LayerStack:
+def analyse_layers(
+    mesh: trimesh.Trimesh,
+    pixel_mm: float,
+    layer_mm: float,
+    reach_limit_mm: float,
+    *,
+    grid: Grid | None = None,
+    observers: Iterable[Callable] = (),
+    progress: bool | str = False,
+) -> LayerStack:
     """Area, perimeter, components, islands and unsupported reach of every layer, in one pass.
 
     Parameters
@@ -438,17 +458,20 @@ def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reac
     _check(mesh, layer_mm)
     grid = Grid.covering(mesh.bounds, pixel_mm) if grid is None else grid
     if not np.isclose(grid.pixel_mm, pixel_mm, rtol=EPS_ZERO, atol=0):
-        raise SettingsError(f"layers: grid pitch {grid.pixel_mm} mm differs from pixel_mm={pixel_mm}; "
-                            "pass a grid of the same pitch or none")
+        raise SettingsError(
+            f"layers: grid pitch {grid.pixel_mm} mm differs from pixel_mm={pixel_mm}; "
+            "pass a grid of the same pitch or none"
+        )
     observers, p = tuple(observers), grid.pixel_mm
     n_layers = layer_count(float(mesh.bounds[1, 2]), layer_mm)
-    rows_out = np.zeros((n_layers, 4))              # area, perimeter, components, reach (pixels)
+    rows_out = np.zeros((n_layers, 4))  # area, perimeter, components, reach (pixels)
     reach_xy = np.full((n_layers, 2), np.nan)
     islands, over, inverted = [], [], 0
     prev = np.zeros(grid.shape, bool)
     layers = iter_layers(mesh, grid, layer_mm)
     if progress:
         from tqdm import tqdm
+
         label = progress if isinstance(progress, str) else "layers"
         layers = tqdm(layers, total=n_layers, desc=label, unit="layer", leave=False)
     for layer in layers:
@@ -488,15 +511,29 @@ def analyse_layers(mesh: trimesh.Trimesh, pixel_mm: float, layer_mm: float, reac
         if observers:
             full = np.zeros(grid.shape, np.int32)
             rs, cs = slice(max(r0, 0), min(r1, grid.ny)), slice(max(c0, 0), min(c1, grid.nx))
-            full[rs, cs] = paint_runs(*runs, comp + 1, m.shape)[rs.start - r0:rs.stop - r0, cs.start - c0:cs.stop - c0]
+            full[rs, cs] = paint_runs(*runs, comp + 1, m.shape)[
+                rs.start - r0 : rs.stop - r0, cs.start - c0 : cs.stop - c0
+            ]
             for ob in observers:
                 ob(layer, full, n)
         prev = mask
     reach = rows_out[:, 3] * p
     worst = int(np.argmax(reach)) if n_layers and reach.max() > 0 else -1
-    return LayerStack(grid, float(layer_mm), (np.arange(n_layers) + 0.5) * layer_mm, rows_out[:, 0],
-                      rows_out[:, 1], rows_out[:, 2].astype(int), tuple(islands), reach, reach_xy,
-                      tuple(over), float(reach.max(initial=0.0)), worst, int(inverted))
+    return LayerStack(
+        grid,
+        float(layer_mm),
+        (np.arange(n_layers) + 0.5) * layer_mm,
+        rows_out[:, 0],
+        rows_out[:, 1],
+        rows_out[:, 2].astype(int),
+        tuple(islands),
+        reach,
+        reach_xy,
+        tuple(over),
+        float(reach.max(initial=0.0)),
+        worst,
+        int(inverted),
+    )
 
 
 def _islands(pix, pl, k, z, grid, r0, c0, w):
@@ -509,8 +546,18 @@ def _islands(pix, pl, k, z, grid, r0, c0, w):
         mask = np.zeros((r.max() - r.min() + 1, c.max() - c.min() + 1), bool)
         mask[r - r.min(), c - c.min()] = True
         xy = grid.xy(r.mean() + r0, c.mean() + c0)[0]
-        out.append(Island(k, float(z), float(group.size * grid.pixel_mm ** 2), (float(xy[0]), float(xy[1])),
-                          mask, int(r.min() + r0), int(c.min() + c0), grid))
+        out.append(
+            Island(
+                k,
+                float(z),
+                float(group.size * grid.pixel_mm**2),
+                (float(xy[0]), float(xy[1])),
+                mask,
+                int(r.min() + r0),
+                int(c.min() + c0),
+                grid,
+            )
+        )
     return out
 
 

@@ -109,7 +109,7 @@ def local_minima(mesh: trimesh.Trimesh, floor_z: float | None = None, tol: float
     _, plateau = connected_components(graph, directed=False)
     # A plateau fails if any non-level edge leaving it goes down.
     lower = np.zeros(plateau.max() + 1 if n else 0, bool)
-    down_from_0 = (~level) & (dz < 0)   # edge goes down from vertex 0 to vertex 1
+    down_from_0 = (~level) & (dz < 0)  # edge goes down from vertex 0 to vertex 1
     down_from_1 = (~level) & (dz > 0)
     lower[plateau[e[down_from_0, 0]]] = True
     lower[plateau[e[down_from_1, 1]]] = True
@@ -128,7 +128,7 @@ def local_minima(mesh: trimesh.Trimesh, floor_z: float | None = None, tol: float
     # Snap each plateau to its vertex nearest the centroid, so the point lies on the surface.
     d = np.linalg.norm(v - centroid[plateau], axis=1)
     order = np.lexsort((d, plateau))
-    first = order[np.r_[True, plateau[order][1:] != plateau[order][:-1]]]   # nearest vertex per plateau
+    first = order[np.r_[True, plateau[order][1:] != plateau[order][:-1]]]  # nearest vertex per plateau
     nearest = np.full(len(lower), -1)
     nearest[plateau[first]] = first
     return v[nearest[cand]].reshape(-1, 3)

@@ -43,6 +43,7 @@ MIN_PART_MM = 2.0
 #: A part that cures no more pixels than this in any layer is refused (a speck).
 MIN_CURED_PIXELS = 4
 
+
 @dataclass(frozen=True)
 class Placement:
     """A placed part and the translation that put it there.
@@ -62,8 +63,14 @@ class Placement:
     warnings: tuple[str, ...] = ()
 
 
-def place(mesh: trimesh.Trimesh, settings: Settings, *, position: str = "auto", name: str = "part",
-          group_bounds: np.ndarray | None = None) -> Placement:
+def place(
+    mesh: trimesh.Trimesh,
+    settings: Settings,
+    *,
+    position: str = "auto",
+    name: str = "part",
+    group_bounds: np.ndarray | None = None,
+) -> Placement:
     """Lift ``mesh`` to ``rules.elevation_mm`` above the plate and check it fits.
 
     Parameters
@@ -107,24 +114,30 @@ def place(mesh: trimesh.Trimesh, settings: Settings, *, position: str = "auto", 
     lo, hi = mesh.bounds
     size = hi - lo
     if not np.all(np.isfinite(size)) or size.max() < MIN_PART_MM:
-        raise PlacementError(f"{name}: the part is only {size.max():.3g} mm across, too small to be in millimetres; "
-                             + unit_hint(float(size.max())))
+        raise PlacementError(
+            f"{name}: the part is only {size.max():.3g} mm across, too small to be in millimetres; "
+            + unit_hint(float(size.max()))
+        )
     margin = 2 * rules.base_margin_mm
     if size[0] + margin > pr.build_x_mm or size[1] + margin > pr.build_y_mm:
         raise PlacementError(
             f"{name}: footprint {size[0]:.1f} x {size[1]:.1f} mm (plus {margin:.1f} mm of base) does not fit the "
             f"{pr.build_x_mm:g} x {pr.build_y_mm:g} mm build area; scale it down, split it or use a larger printer "
-            "profile")
+            "profile"
+        )
     if size[2] + rules.elevation_mm > pr.build_z_mm:
         raise PlacementError(
             f"{name}: height {size[2]:.1f} mm plus {rules.elevation_mm:g} mm elevation exceeds the "
-            f"{pr.build_z_mm:g} mm build height; reorient it, scale it down or lower the elevation")
+            f"{pr.build_z_mm:g} mm build height; reorient it, scale it down or lower the elevation"
+        )
     glo, ghi = (lo, hi) if group_bounds is None else np.asarray(group_bounds, float)
     half = np.array([pr.build_x_mm, pr.build_y_mm]) / 2 - rules.base_margin_mm
     on_plate = bool(np.all(glo[:2] >= -half) and np.all(ghi[:2] <= half))
     whole = "the parts together" if group_bounds is not None else "it"
-    where = (f"x {glo[0]:.1f}..{ghi[0]:.1f}, y {glo[1]:.1f}..{ghi[1]:.1f} mm; the plate spans "
-             f"+/-{pr.build_x_mm / 2:g} x +/-{pr.build_y_mm / 2:g} mm less {rules.base_margin_mm:g} mm of base margin")
+    where = (
+        f"x {glo[0]:.1f}..{ghi[0]:.1f}, y {glo[1]:.1f}..{ghi[1]:.1f} mm; the plate spans "
+        f"+/-{pr.build_x_mm / 2:g} x +/-{pr.build_y_mm / 2:g} mm less {rules.base_margin_mm:g} mm of base margin"
+    )
     warnings: list[str] = []
     offset = np.array([0.0, 0.0, rules.elevation_mm - lo[2]])
     if position == "centre" or (position == "auto" and not on_plate):
@@ -132,14 +145,17 @@ def place(mesh: trimesh.Trimesh, settings: Settings, *, position: str = "auto", 
         if position == "auto":
             warnings.append(f"{name}: lies off the plate ({where}); {whole} moved to the plate centre")
     elif not on_plate:
-        raise PlacementError(f"{name}: lies off the plate ({where}); move it, or let supportgen place it "
-                             "(position auto or centre)")
+        raise PlacementError(
+            f"{name}: lies off the plate ({where}); move it, or let supportgen place it (position auto or centre)"
+        )
     placed = mesh.copy()
     placed.apply_translation(offset)
     new_lo, new_hi = placed.bounds[0, :2], placed.bounds[1, :2]
     if np.any(new_lo < -half - EPS_REL) or np.any(new_hi > half + EPS_REL):
-        raise PlacementError(f"{name}: the parts together do not fit the plate ({where}); place them in separate "
-                             "runs or move them closer")
+        raise PlacementError(
+            f"{name}: the parts together do not fit the plate ({where}); place them in separate "
+            "runs or move them closer"
+        )
     return Placement(placed, offset, tuple(warnings))
 
 
@@ -158,6 +174,8 @@ def check_cures(area_mm2: np.ndarray, settings: Settings, name: str = "part") ->
     px = settings.printer.pixel_mm
     most = float(np.max(area_mm2, initial=0.0)) / px**2
     if most <= MIN_CURED_PIXELS:
-        raise PlacementError(f"{name}: no layer cures more than {most:.0f} pixel(s) at {px:g} mm pixels: the part is "
-                             "smaller than the printer resolves; if it was drawn in other units, scale it "
-                             "(--units m|cm|in or --scale FACTOR)")
+        raise PlacementError(
+            f"{name}: no layer cures more than {most:.0f} pixel(s) at {px:g} mm pixels: the part is "
+            "smaller than the printer resolves; if it was drawn in other units, scale it "
+            "(--units m|cm|in or --scale FACTOR)"
+        )

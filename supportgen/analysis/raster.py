@@ -33,7 +33,7 @@ import trimesh
 
 __all__ = ["layer_count", "ray_crossings", "winding_masks"]
 
-_CHUNK = 1 << 20                     # candidate pixel-triangle pairs per rasteriser chunk
+_CHUNK = 1 << 20  # candidate pixel-triangle pairs per rasteriser chunk
 
 
 def layer_count(top_mm: float, layer_mm: float) -> int:
@@ -97,10 +97,10 @@ def ray_crossings(mesh: trimesh.Trimesh, grid) -> tuple[np.ndarray, np.ndarray, 
     v = (tri[..., 1] - grid.y0) / grid.pixel_mm
     z = tri[..., 2]
     area2 = (u[:, 1] - u[:, 0]) * (v[:, 2] - v[:, 0]) - (v[:, 1] - v[:, 0]) * (u[:, 2] - u[:, 0])
-    keep = area2 != 0.0                                   # vertical faces cross no vertical ray
+    keep = area2 != 0.0  # vertical faces cross no vertical ray
     u, v, z, area2 = u[keep], v[keep], z[keep], area2[keep]
-    sign = np.where(area2 > 0, -1, 1).astype(np.int8)    # normal up: the ray leaves the solid
-    cw = area2 < 0                                        # make every projection counter-clockwise
+    sign = np.where(area2 > 0, -1, 1).astype(np.int8)  # normal up: the ray leaves the solid
+    cw = area2 < 0  # make every projection counter-clockwise
     for a in (u, v, z):
         a[cw, 1], a[cw, 2] = a[cw, 2].copy(), a[cw, 1].copy()
     c0 = np.clip(np.ceil(u.min(1)), 0, grid.nx).astype(np.int64)
@@ -109,12 +109,12 @@ def ray_crossings(mesh: trimesh.Trimesh, grid) -> tuple[np.ndarray, np.ndarray, 
     r1 = np.clip(np.floor(v.max(1)), -1, grid.ny - 1).astype(np.int64)
     nc = np.maximum(c1 - c0 + 1, 0)
     n = nc * np.maximum(r1 - r0 + 1, 0)
-    edges = []                                             # e(p) = a * v_p - b * u_p + c, signed
+    edges = []  # e(p) = a * v_p - b * u_p + c, signed
     for i, j in ((0, 1), (1, 2), (2, 0)):
         du, dv = u[:, j] - u[:, i], v[:, j] - v[:, i]
         swap = (u[:, i] > u[:, j]) | ((u[:, i] == u[:, j]) & (v[:, i] > v[:, j]))
         pu, pv = np.where(swap, u[:, j], u[:, i]), np.where(swap, v[:, j], v[:, i])
-        cu, cv = np.where(swap, -du, du), np.where(swap, -dv, dv)   # canonical direction
+        cu, cv = np.where(swap, -du, du), np.where(swap, -dv, dv)  # canonical direction
         s = np.where(swap, -1.0, 1.0)
         edges.append((s * cu, s * cv, s * (cv * pu - cu * pv), (dv < 0) | ((dv == 0) & (du > 0))))
     cum = np.concatenate([[0], np.cumsum(n)])
@@ -145,8 +145,9 @@ def ray_crossings(mesh: trimesh.Trimesh, grid) -> tuple[np.ndarray, np.ndarray, 
     return np.concatenate(out_i), np.concatenate(out_z), np.concatenate(out_s)
 
 
-def winding_masks(mesh: trimesh.Trimesh, grid, layer_mm: float, first: int = 0,
-                  last: int | None = None) -> Iterator[tuple[int, np.ndarray, int]]:
+def winding_masks(
+    mesh: trimesh.Trimesh, grid, layer_mm: float, first: int = 0, last: int | None = None
+) -> Iterator[tuple[int, np.ndarray, int]]:
     """Cured masks of layers ``first..last``, streamed in print order.
 
     Parameters
@@ -193,7 +194,7 @@ def winding_masks(mesh: trimesh.Trimesh, grid, layer_mm: float, first: int = 0,
     top = layer_count(float(mesh.bounds[1, 2]), layer_mm)
     last = top - 1 if last is None else int(last)
     idx, zc, sg = ray_crossings(mesh, grid)
-    k = np.floor(zc / layer_mm - 0.5).astype(np.int64) + 1   # first layer sampled above the crossing
+    k = np.floor(zc / layer_mm - 0.5).astype(np.int64) + 1  # first layer sampled above the crossing
     del zc
     np.maximum(k, first, out=k)
     sel = k <= last

@@ -55,7 +55,7 @@ def box_runs(mask: np.ndarray):
         return (np.zeros(0, np.int64),) * 3
     r0, r1 = int(rr[0]), int(rr[-1]) + 1
     cc = np.flatnonzero(mask[r0:r1].any(axis=0))
-    return mask_runs(mask[r0:r1, int(cc[0]): int(cc[-1]) + 1], r0, int(cc[0]))
+    return mask_runs(mask[r0:r1, int(cc[0]) : int(cc[-1]) + 1], r0, int(cc[0]))
 
 
 def run_overlaps(a, b, shift: int = 0):
@@ -83,8 +83,8 @@ def run_overlaps(a, b, shift: int = 0):
     rb, sb, eb = b[:3]
     sa, ea = sa - shift, ea + shift
     width = int(max(ea.max(initial=0), eb.max(initial=0))) + 2
-    lo = np.searchsorted(rb * width + eb, ra * width + sa, "right")    # first b ending after a starts
-    hi = np.searchsorted(rb * width + sb, ra * width + ea, "left")     # b starting before a ends
+    lo = np.searchsorted(rb * width + eb, ra * width + sa, "right")  # first b ending after a starts
+    hi = np.searchsorted(rb * width + sb, ra * width + ea, "left")  # b starting before a ends
     cnt = np.maximum(hi - lo, 0)
     ia = np.repeat(np.arange(ra.size), cnt)
     ib = np.arange(int(cnt.sum())) - np.repeat(np.cumsum(cnt) - cnt - lo, cnt)

@@ -65,16 +65,23 @@ class Verification:
             "first_specks": list(self.specks[:10]),
             "max_unsupported_reach_mm": round(self.max_unsupported_reach_mm, 4),
             "max_unsupported_reach_layer": self.max_unsupported_reach_layer,
-            "max_unsupported_reach_xy_mm": (None if self.max_unsupported_reach_xy is None
-                                            else [round(v, 3) for v in self.max_unsupported_reach_xy]),
+            "max_unsupported_reach_xy_mm": (
+                None if self.max_unsupported_reach_xy is None else [round(v, 3) for v in self.max_unsupported_reach_xy]
+            ),
             "reach_limit_mm": self.reach_limit_mm,
             "tips_over_capacity": self.tips_over_capacity,
             "failures": list(self.failures),
         }
 
 
-def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray | None = None,
-           progress: bool | str = False, name: str = "mesh") -> Verification:
+def verify(
+    mesh: trimesh.Trimesh,
+    settings: Settings,
+    *,
+    tip_safety: np.ndarray | None = None,
+    progress: bool | str = False,
+    name: str = "mesh",
+) -> Verification:
     """Slice ``mesh`` as the printer will and check it prints.
 
     Parameters
@@ -112,22 +119,32 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
     specks = [i for i in stack.islands if i.area_mm2 < speck_mm2]
 
     def record(i):
-        return {"layer": int(i.layer), "z_mm": round(float(i.z_mm), 3),
-                "xy_mm": [round(float(v), 3) for v in i.centroid_xy], "area_mm2": round(float(i.area_mm2), 4)}
+        return {
+            "layer": int(i.layer),
+            "z_mm": round(float(i.z_mm), 3),
+            "xy_mm": [round(float(v), 3) for v in i.centroid_xy],
+            "area_mm2": round(float(i.area_mm2), 4),
+        }
 
     first = tuple(record(i) for i in islands[:10])
     if islands:
         i = islands[0]
-        failures.append(f"{name}: {len(islands)} island(s) start in mid-air; the first at layer {i.layer} "
-                        f"(z {i.z_mm:.2f} mm) near x {i.centroid_xy[0]:.2f}, y {i.centroid_xy[1]:.2f} mm")
+        failures.append(
+            f"{name}: {len(islands)} island(s) start in mid-air; the first at layer {i.layer} "
+            f"(z {i.z_mm:.2f} mm) near x {i.centroid_xy[0]:.2f}, y {i.centroid_xy[1]:.2f} mm"
+        )
     reach = float(stack.max_unsupported_reach_mm)
     worst_xy = None
-    if stack.max_unsupported_reach_layer >= 0 and np.all(np.isfinite(stack.reach_xy[stack.max_unsupported_reach_layer])):
+    if stack.max_unsupported_reach_layer >= 0 and np.all(
+        np.isfinite(stack.reach_xy[stack.max_unsupported_reach_layer])
+    ):
         worst_xy = tuple(float(v) for v in stack.reach_xy[stack.max_unsupported_reach_layer])
     if reach > rules.reach_limit_mm:
         where = "" if worst_xy is None else f" near x {worst_xy[0]:.2f}, y {worst_xy[1]:.2f} mm"
-        failures.append(f"{name}: layer {stack.max_unsupported_reach_layer} reaches {reach:.2f} mm past the layer below"
-                        f"{where} (limit {rules.reach_limit_mm:g} mm)")
+        failures.append(
+            f"{name}: layer {stack.max_unsupported_reach_layer} reaches {reach:.2f} mm past the layer below"
+            f"{where} (limit {rules.reach_limit_mm:g} mm)"
+        )
     over = None
     if tip_safety is not None:
         # Sizing makes capacity exactly SF x load; allow for rounding in that product.
@@ -135,9 +152,16 @@ def verify(mesh: trimesh.Trimesh, settings: Settings, *, tip_safety: np.ndarray 
         if over:
             failures.append(f"{name}: {over} tip(s) would tear off at the set safety factor")
     return Verification(
-        passed=not failures, watertight=watertight, n_islands=len(islands), first_islands=first,
+        passed=not failures,
+        watertight=watertight,
+        n_islands=len(islands),
+        first_islands=first,
         specks=tuple(record(i) for i in specks),
-        max_unsupported_reach_mm=reach, max_unsupported_reach_layer=int(stack.max_unsupported_reach_layer),
+        max_unsupported_reach_mm=reach,
+        max_unsupported_reach_layer=int(stack.max_unsupported_reach_layer),
         max_unsupported_reach_xy=worst_xy,
-        reach_limit_mm=rules.reach_limit_mm, tips_over_capacity=over, failures=tuple(failures), layers=stack,
+        reach_limit_mm=rules.reach_limit_mm,
+        tips_over_capacity=over,
+        failures=tuple(failures),
+        layers=stack,
     )

@@ -24,29 +24,65 @@ __all__ = ["add_parser", "cmd_batch"]
 def add_parser(subparsers, parents) -> None:
     """Register ``batch`` on ``subparsers``; ``parents`` carry the common options and --strategy."""
     p = subparsers.add_parser(
-        "batch", parents=list(parents), help="support every mesh in a folder tree, in parallel",
+        "batch",
+        parents=list(parents),
+        help="support every mesh in a folder tree, in parallel",
         description="Support every STL/OBJ/PLY/3MF file under DIR (recursively) into a mirrored tree under OUT, "
-                    "then write OUT/batch-summary.csv and .json.")
+        "then write OUT/batch-summary.csv and .json.",
+    )
     p.add_argument("input", metavar="DIR", help="folder searched recursively for .stl .obj .ply .3mf files")
     p.add_argument("-o", "--output", required=True, metavar="OUT", help="output folder (mirrors DIR)")
-    p.add_argument("--workers", type=positive(int, "a worker count of 1 or more"), metavar="N", help="worker processes (default: all cores)")
-    p.add_argument("--resume", action="store_true",
-                   help="skip files whose outputs exist for the same input bytes, settings and strategy")
-    p.add_argument("--cluster", metavar="ADDRESS",
-                   help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (pip install 'supportgen[cluster]'); "
-                        "workers must see DIR and OUT at the same paths")
+    p.add_argument(
+        "--workers",
+        type=positive(int, "a worker count of 1 or more"),
+        metavar="N",
+        help="worker processes (default: all cores)",
+    )
+    p.add_argument(
+        "--resume",
+        action="store_true",
+        help="skip files whose outputs exist for the same input bytes, settings and strategy",
+    )
+    p.add_argument(
+        "--cluster",
+        metavar="ADDRESS",
+        help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (pip install 'supportgen[cluster]'); "
+        "workers must see DIR and OUT at the same paths",
+    )
     p.add_argument("--pattern", metavar="GLOB", help="only files whose relative path or name matches, e.g. '*lid*'")
-    p.add_argument("--timeout", type=positive(float, "a time in seconds above 0"), metavar="S", help="stop any one file after S seconds")
-    p.add_argument("--memory-limit", type=positive(float, "a memory size in MB above 0"), metavar="MB",
-                   help="refuse files whose estimated peak memory per worker exceeds MB")
-    p.add_argument("--name-clash", choices=("rename", "refuse"), default="rename",
-                   help="files of one folder whose output names collide: name the later ones NAME-2 ... "
-                        "(default) or record them as failed")
-    p.add_argument("--wait", type=nonnegative_seconds, default=0.0, metavar="SECONDS",
-                   help="if another run is writing to OUT, wait up to SECONDS for it (default: refuse at once)")
-    p.add_argument("--protect", action="append", metavar="SELECTOR",
-                   help="faces of every part that must get no tip or landing (repeatable; see generate --help); "
-                        "a file NAME.protect.toml next to a part adds its own")
+    p.add_argument(
+        "--timeout",
+        type=positive(float, "a time in seconds above 0"),
+        metavar="S",
+        help="stop any one file after S seconds",
+    )
+    p.add_argument(
+        "--memory-limit",
+        type=positive(float, "a memory size in MB above 0"),
+        metavar="MB",
+        help="refuse files whose estimated peak memory per worker exceeds MB",
+    )
+    p.add_argument(
+        "--name-clash",
+        choices=("rename", "refuse"),
+        default="rename",
+        help="files of one folder whose output names collide: name the later ones NAME-2 ... "
+        "(default) or record them as failed",
+    )
+    p.add_argument(
+        "--wait",
+        type=nonnegative_seconds,
+        default=0.0,
+        metavar="SECONDS",
+        help="if another run is writing to OUT, wait up to SECONDS for it (default: refuse at once)",
+    )
+    p.add_argument(
+        "--protect",
+        action="append",
+        metavar="SELECTOR",
+        help="faces of every part that must get no tip or landing (repeatable; see generate --help); "
+        "a file NAME.protect.toml next to a part adds its own",
+    )
     p.set_defaults(func=cmd_batch)
 
 
@@ -54,21 +90,36 @@ def cmd_batch(args) -> int:
     """Run the batch described by parsed ``args``; return the exit status."""
     from supportgen.runs.batch import run_batch
 
-    summary = run_batch(Path(args.input), Path(args.output), settings_from(args), strategy=args.strategy,
-                        workers=args.workers, cluster=args.cluster, resume=args.resume, pattern=args.pattern,
-                        timeout_s=args.timeout, memory_limit_mb=args.memory_limit, progress=not args.quiet,
-                        name_clash=args.name_clash, wait_s=args.wait,
-                        protect=args.protect or ())
+    summary = run_batch(
+        Path(args.input),
+        Path(args.output),
+        settings_from(args),
+        strategy=args.strategy,
+        workers=args.workers,
+        cluster=args.cluster,
+        resume=args.resume,
+        pattern=args.pattern,
+        timeout_s=args.timeout,
+        memory_limit_mb=args.memory_limit,
+        progress=not args.quiet,
+        name_clash=args.name_clash,
+        wait_s=args.wait,
+        protect=args.protect or (),
+    )
     for row in summary.results:
         if row.status in ("failed", "timeout", "crashed", "refused"):
             err(f"{row.status}: {row.file}: {row.reason}")
         elif row.passed is False:
             err(f"check failed: {row.file}: {row.reason}")
     if summary.interrupted:
-        err(f"interrupted: {len(summary.results)} file(s) finished, {summary.pending} not done; "
-             "run again with --resume to finish")
+        err(
+            f"interrupted: {len(summary.results)} file(s) finished, {summary.pending} not done; "
+            "run again with --resume to finish"
+        )
     if not args.quiet:
         counts = ", ".join(f"{n} {s}" for s, n in summary.counts.items() if n)
-        print(f"batch: {len(summary.results)} file(s): {counts or 'none found'}; summary: {summary.csv_path}",
-              file=sys.stdout)
+        print(
+            f"batch: {len(summary.results)} file(s): {counts or 'none found'}; summary: {summary.csv_path}",
+            file=sys.stdout,
+        )
     return summary.exit_code

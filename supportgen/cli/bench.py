@@ -45,19 +45,38 @@ def parse_strategies(text: str) -> list[str]:
 def add_parser(subparsers, parents) -> argparse.ArgumentParser:
     """Register ``bench`` on ``subparsers`` with the common options ``parents``; return its parser."""
     p = subparsers.add_parser(
-        "bench", parents=list(parents), help="compare support strategies over a folder of models",
+        "bench",
+        parents=list(parents),
+        help="compare support strategies over a folder of models",
         description="Support every model in CORPUS_DIR with every strategy; write bench.csv, bench.md, "
-                    "summary.csv (ratios against the baseline), plots, and each run's files in OUT/<strategy>/.")
+        "summary.csv (ratios against the baseline), plots, and each run's files in OUT/<strategy>/.",
+    )
     p.add_argument("corpus", metavar="CORPUS_DIR", help="folder of STL, OBJ, PLY or 3MF files")
     p.add_argument("-o", "--output", required=True, metavar="OUT", help="output folder")
-    p.add_argument("--strategies", type=parse_strategies, default=["straight", "tree"], metavar="A,B,...",
-                   help="strategies to run, comma-separated (default: straight,tree)")
-    p.add_argument("--baseline", metavar="NAME",
-                   help="strategy the others are compared with (default: straight if run, else the first)")
-    p.add_argument("--scale", type=positive(float, "the longest side in mm as a positive number, e.g. 50"), metavar="MM",
-                   help="scale each model so its longest side is MM and centre it (for unitless meshes)")
-    p.add_argument("--memory", choices=("rss", "tracemalloc"), default="rss",
-                   help="peak memory by resident-set growth (default) or traced allocations (slows the run)")
+    p.add_argument(
+        "--strategies",
+        type=parse_strategies,
+        default=["straight", "tree"],
+        metavar="A,B,...",
+        help="strategies to run, comma-separated (default: straight,tree)",
+    )
+    p.add_argument(
+        "--baseline",
+        metavar="NAME",
+        help="strategy the others are compared with (default: straight if run, else the first)",
+    )
+    p.add_argument(
+        "--scale",
+        type=positive(float, "the longest side in mm as a positive number, e.g. 50"),
+        metavar="MM",
+        help="scale each model so its longest side is MM and centre it (for unitless meshes)",
+    )
+    p.add_argument(
+        "--memory",
+        choices=("rss", "tracemalloc"),
+        default="rss",
+        help="peak memory by resident-set growth (default) or traced allocations (slows the run)",
+    )
     p.set_defaults(func=cmd_bench)
     return p
 
@@ -66,19 +85,29 @@ def cmd_bench(args) -> int:
     """Run the bench; exit 0 when every run succeeded and passed verification, else 1."""
     from supportgen.runs.bench import run_bench
 
-
     strategies = args.strategies
     baseline = args.baseline or ("straight" if "straight" in strategies else strategies[0])
-    table = run_bench(Path(args.corpus), Path(args.output), settings_from(args), strategies, baseline=baseline,
-                      scale_mm=args.scale, memory=args.memory, progress=not args.quiet)
+    table = run_bench(
+        Path(args.corpus),
+        Path(args.output),
+        settings_from(args),
+        strategies,
+        baseline=baseline,
+        scale_mm=args.scale,
+        memory=args.memory,
+        progress=not args.quiet,
+    )
     status = EXIT_OK
     for r in table.rows:
         if r["status"] != "ok":
             print(f"supportgen: error: {r['model']} / {r['strategy']}: {r['error']}", file=sys.stderr)
             status = EXIT_FAILED
         elif not r["passed"]:
-            print(f"supportgen: check failed: {r['model']} / {r['strategy']}: "
-                  f"{r['islands']} island(s), largest reach {r['max_reach_mm']} mm", file=sys.stderr)
+            print(
+                f"supportgen: check failed: {r['model']} / {r['strategy']}: "
+                f"{r['islands']} island(s), largest reach {r['max_reach_mm']} mm",
+                file=sys.stderr,
+            )
             status = EXIT_FAILED
     if not args.quiet:
         for row in table.summary:

@@ -22,9 +22,11 @@ def _summary_line(result, seconds: float) -> str:
     r = result.report
     s, v = r["supports"], r["verification"]
     verdict = "passes" if v["passed"] else "FAILS check"
-    return (f"{result.name}: {s['contacts']} contacts, supports {s['volume_mm3']:.0f} mm3 "
-            f"(base {s['base_volume_mm3']:.0f}), peak force {r['forces']['peak_layer_force_n']:.2f} N, "
-            f"{verdict}, {seconds:.1f} s")
+    return (
+        f"{result.name}: {s['contacts']} contacts, supports {s['volume_mm3']:.0f} mm3 "
+        f"(base {s['base_volume_mm3']:.0f}), peak force {r['forces']['peak_layer_force_n']:.2f} N, "
+        f"{verdict}, {seconds:.1f} s"
+    )
 
 
 def _each(inputs, work, args) -> int:
@@ -66,7 +68,7 @@ def _plan_outputs(inputs, outdir: Path, args) -> list[str]:
 
     names = assign_names([part_name(p) for p in inputs], args.name_clash, [str(p) for p in inputs])
     for path, name in zip(inputs, names):
-        if name != part_name(path):        # said even with --quiet: the user must find the files
+        if name != part_name(path):  # said even with --quiet: the user must find the files
             err(f"note: {path}: outputs named {name}.* ({part_name(path)}.* is another input's)")
     refuse_overwrites([outdir / f"{n}{s}" for n in names for s in OUTPUTS.values()], inputs)
     prepare_folder(outdir)
@@ -90,18 +92,28 @@ def _run_generate(inputs, outdir: Path, args) -> int:
     together = group_bounds(inputs, factor) if position == "auto" and not turned else None
 
     protect = list(getattr(args, "protect", None) or [])
-    if args.profile and Path(args.profile).is_file():   # a profile's [protect] table
+    if args.profile and Path(args.profile).is_file():  # a profile's [protect] table
         from supportgen.supports.protect import selectors_from_toml
 
         protect += selectors_from_toml(args.profile)
 
     def work(path):
         t0 = time.perf_counter()
-        result = supportgen.generate(path, settings, strategy=args.strategy, position=position, units=args.units,
-                                     scale=args.scale, group_bounds=together, progress=not args.quiet,
-                                     name=names[str(path)], orient=getattr(args, "orient", "keep"),
-                                     rotate=getattr(args, "rotate", None), protect=protect or None,
-                                     contacts=getattr(args, "contacts", None))
+        result = supportgen.generate(
+            path,
+            settings,
+            strategy=args.strategy,
+            position=position,
+            units=args.units,
+            scale=args.scale,
+            group_bounds=together,
+            progress=not args.quiet,
+            name=names[str(path)],
+            orient=getattr(args, "orient", "keep"),
+            rotate=getattr(args, "rotate", None),
+            protect=protect or None,
+            contacts=getattr(args, "contacts", None),
+        )
         result.save(outdir)
         saved.append(str(path))
         if not args.quiet:
@@ -114,9 +126,11 @@ def _run_generate(inputs, outdir: Path, args) -> int:
             with stop_on_signals():
                 return _each(inputs, work, args)
         except KeyboardInterrupt:
-            err(f"interrupted: {len(saved)} of {len(inputs)} input(s) done"
+            err(
+                f"interrupted: {len(saved)} of {len(inputs)} input(s) done"
                 f"{' (' + ', '.join(saved) + ')' if saved else ''}; every other input has its previous outputs "
-                "or a complete new set, never a mix; no partial file left")
+                "or a complete new set, never a mix; no partial file left"
+            )
             return 130
 
 
@@ -150,8 +164,10 @@ def cmd_check(args) -> int:
         if args.json:
             print(json.dumps({"mesh": str(path), **ver.to_dict()}, sort_keys=True))
         elif ver.passed:
-            print(f"{path}: passes: no islands, largest reach {ver.max_unsupported_reach_mm:.2f} mm "
-                  f"(limit {ver.reach_limit_mm:g}), closed solid")
+            print(
+                f"{path}: passes: no islands, largest reach {ver.max_unsupported_reach_mm:.2f} mm "
+                f"(limit {ver.reach_limit_mm:g}), closed solid"
+            )
         return list(ver.failures)
 
     return _each(args.meshes, work, args)
@@ -190,43 +206,84 @@ def cmd_calibrate(args) -> int:
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="supportgen",
-        description="Support structures for bottom-up resin printing, sized from the separation force of every layer.")
+        description="Support structures for bottom-up resin printing, sized from the separation force of every layer.",
+    )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
     common, strategy = common_options(), strategy_option()
     gen_opts = argparse.ArgumentParser(add_help=False, parents=[strategy])
-    gen_opts.add_argument("--elevation", type=float, metavar="MM",
-                          help="height of the part's lowest point above the plate (setting elevation_mm)")
-    gen_opts.add_argument("--position", choices=("auto", "keep", "centre"), default="auto",
-                          help="x/y on the plate: auto keeps the parts where they lie on the plate and moves them "
-                               "(together, with a warning) where they do not; keep refuses parts off the plate; "
-                               "centre always centres (default: auto)")
+    gen_opts.add_argument(
+        "--elevation",
+        type=float,
+        metavar="MM",
+        help="height of the part's lowest point above the plate (setting elevation_mm)",
+    )
+    gen_opts.add_argument(
+        "--position",
+        choices=("auto", "keep", "centre"),
+        default="auto",
+        help="x/y on the plate: auto keeps the parts where they lie on the plate and moves them "
+        "(together, with a warning) where they do not; keep refuses parts off the plate; "
+        "centre always centres (default: auto)",
+    )
     gen_opts.add_argument("--centre", action="store_true", help="same as --position centre")
-    gen_opts.add_argument("--units", choices=("mm", "cm", "m", "in"), default="mm",
-                          help="length unit the files were drawn in; parts are scaled to millimetres (default: mm)")
-    gen_opts.add_argument("--scale", type=float, default=1.0, metavar="FACTOR",
-                          help="a further scale factor applied with --units (default: 1)")
-    gen_opts.add_argument("--name-clash", choices=("rename", "refuse"), default="rename",
-                          help="inputs whose output names collide: name the later ones NAME-2 ... (default) "
-                               "or refuse them")
-    gen_opts.add_argument("--wait", type=nonnegative_seconds, default=0.0, metavar="SECONDS",
-                          help="if another run is writing to the output folder, wait up to SECONDS for it "
-                               "(default: refuse at once)")
-    gen_opts.add_argument("--orient", choices=("keep", "auto"), default="keep",
-                          help="keep the given orientation (default) or choose one from the physics (auto)")
-    gen_opts.add_argument("--rotate", type=float, nargs=3, metavar=("X", "Y", "Z"),
-                          help="turn each part by these degrees about x, then y, then z first")
-    gen_opts.add_argument("--protect", action="append", metavar="SELECTOR",
-                          help="faces that must get no tip or landing (repeatable), in the part's own "
-                               "coordinates: box:X0,Y0,Z0,X1,Y1,Z1 | normal:DX,DY,DZ,DEG | height:Z0,Z1 | "
-                               "mesh:PATH[,TOL] | colour:R,G,B; a file NAME.protect.toml next to a part adds its list")
+    gen_opts.add_argument(
+        "--units",
+        choices=("mm", "cm", "m", "in"),
+        default="mm",
+        help="length unit the files were drawn in; parts are scaled to millimetres (default: mm)",
+    )
+    gen_opts.add_argument(
+        "--scale",
+        type=float,
+        default=1.0,
+        metavar="FACTOR",
+        help="a further scale factor applied with --units (default: 1)",
+    )
+    gen_opts.add_argument(
+        "--name-clash",
+        choices=("rename", "refuse"),
+        default="rename",
+        help="inputs whose output names collide: name the later ones NAME-2 ... (default) or refuse them",
+    )
+    gen_opts.add_argument(
+        "--wait",
+        type=nonnegative_seconds,
+        default=0.0,
+        metavar="SECONDS",
+        help="if another run is writing to the output folder, wait up to SECONDS for it (default: refuse at once)",
+    )
+    gen_opts.add_argument(
+        "--orient",
+        choices=("keep", "auto"),
+        default="keep",
+        help="keep the given orientation (default) or choose one from the physics (auto)",
+    )
+    gen_opts.add_argument(
+        "--rotate",
+        type=float,
+        nargs=3,
+        metavar=("X", "Y", "Z"),
+        help="turn each part by these degrees about x, then y, then z first",
+    )
+    gen_opts.add_argument(
+        "--protect",
+        action="append",
+        metavar="SELECTOR",
+        help="faces that must get no tip or landing (repeatable), in the part's own "
+        "coordinates: box:X0,Y0,Z0,X1,Y1,Z1 | normal:DX,DY,DZ,DEG | height:Z0,Z1 | "
+        "mesh:PATH[,TOL] | colour:R,G,B; a file NAME.protect.toml next to a part adds its list",
+    )
 
     p = sub.add_parser("generate", parents=[common, gen_opts], help="support mesh files")
     p.add_argument("inputs", nargs="+", metavar="INPUT", help="STL, OBJ, PLY or 3MF files")
     p.add_argument("-o", "--output", default=".", metavar="OUTDIR", help="output folder (default: here)")
-    p.add_argument("--contacts", metavar="FILE",
-                   help="use the contacts in FILE (a NAME.contacts.csv, edited) instead of placing them; "
-                        "routing, sizing and the check are recomputed")
+    p.add_argument(
+        "--contacts",
+        metavar="FILE",
+        help="use the contacts in FILE (a NAME.contacts.csv, edited) instead of placing them; "
+        "routing, sizing and the check are recomputed",
+    )
     p.set_defaults(func=cmd_generate)
 
     p = sub.add_parser("demo", parents=[common, gen_opts], help="run the built-in example batch end to end")

@@ -13,8 +13,12 @@ def common_options() -> argparse.ArgumentParser:
     """--profile, --set, --quiet and --debug, as a parent parser."""
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--profile", metavar="FILE", help="built-in profile name or TOML profile file")
-    common.add_argument("--set", action="append", metavar="NAME=VALUE",
-                        help="override one setting (repeatable), e.g. --set contact_spacing_mm=1.8")
+    common.add_argument(
+        "--set",
+        action="append",
+        metavar="NAME=VALUE",
+        help="override one setting (repeatable), e.g. --set contact_spacing_mm=1.8",
+    )
     common.add_argument("--quiet", action="store_true", help="no progress bars or summaries")
     common.add_argument("--debug", action="store_true", help="show tracebacks")
     return common
@@ -26,8 +30,12 @@ def strategy_option() -> argparse.ArgumentParser:
     from supportgen.supports.strategies import STRATEGIES
 
     parent = argparse.ArgumentParser(add_help=False)
-    parent.add_argument("--strategy", default=DEFAULT_STRATEGY, choices=sorted(STRATEGIES),
-                        help=f"support strategy (default: {DEFAULT_STRATEGY})")
+    parent.add_argument(
+        "--strategy",
+        default=DEFAULT_STRATEGY,
+        choices=sorted(STRATEGIES),
+        help=f"support strategy (default: {DEFAULT_STRATEGY})",
+    )
     return parent
 
 
@@ -43,6 +51,7 @@ def positive(cast, what: str = "a positive number"):
     ...
     argparse.ArgumentTypeError: '0': give a worker count
     """
+
     def parse(text: str):
         try:
             value = cast(text)

@@ -20,18 +20,31 @@ EXIT_OK, EXIT_FAILED = 0, 1
 def add_parser(subparsers, parents) -> None:
     """Register ``orient`` on ``subparsers``; ``parents`` carry the common options."""
     p = subparsers.add_parser(
-        "orient", parents=list(parents), help="choose how each part stands on the plate",
+        "orient",
+        parents=list(parents),
+        help="choose how each part stands on the plate",
         description="Score up-directions over the whole sphere (peak layer force, suction cups, overhangs, "
-                    "minima, support volume, height) and write NAME.oriented.stl, NAME.orient.json, "
-                    "NAME.orient.md and NAME.orient.png.")
+        "minima, support volume, height) and write NAME.oriented.stl, NAME.orient.json, "
+        "NAME.orient.md and NAME.orient.png.",
+    )
     p.add_argument("inputs", nargs="+", metavar="PART", help="STL, OBJ, PLY or 3MF files")
     p.add_argument("-o", "--output", default=".", metavar="OUTDIR", help="output folder (default: here)")
-    p.add_argument("--directions", type=positive(int, "a number of directions"), default=None, metavar="N",
-                   help="directions spread over the sphere (setting orient_directions)")
-    p.add_argument("--units", choices=("mm", "cm", "m", "in"), default="mm",
-                   help="length unit of the files (default mm)")
-    p.add_argument("--scale", type=positive(float, "the longest side in mm as a positive number, e.g. 50"),
-                   metavar="MM", help="scale each part so its longest side is MM (for unitless meshes)")
+    p.add_argument(
+        "--directions",
+        type=positive(int, "a number of directions"),
+        default=None,
+        metavar="N",
+        help="directions spread over the sphere (setting orient_directions)",
+    )
+    p.add_argument(
+        "--units", choices=("mm", "cm", "m", "in"), default="mm", help="length unit of the files (default mm)"
+    )
+    p.add_argument(
+        "--scale",
+        type=positive(float, "the longest side in mm as a positive number, e.g. 50"),
+        metavar="MM",
+        help="scale each part so its longest side is MM (for unitless meshes)",
+    )
     p.set_defaults(func=cmd_orient)
 
 
@@ -43,8 +56,14 @@ def cmd_orient(args) -> int:
     status = EXIT_OK
     for path in args.inputs:
         try:
-            res, paths = orient_file(Path(path), Path(args.output), settings, n_directions=args.directions,
-                                     longest_mm=args.scale, units=args.units)
+            res, paths = orient_file(
+                Path(path),
+                Path(args.output),
+                settings,
+                n_directions=args.directions,
+                longest_mm=args.scale,
+                units=args.units,
+            )
         except supportgen.SupportGenError as exc:
             if args.debug:
                 raise
@@ -54,8 +73,10 @@ def cmd_orient(args) -> int:
         if not args.quiet:
             o = res.orientation
             c, g = o.candidate(o.chosen), o.candidate(o.keep)
-            print(f"{res.name}: up-direction {tuple(round(x, 3) for x in c['direction'])}, peak force "
-                  f"{g['terms']['peak_force_n']:.2f} -> {c['terms']['peak_force_n']:.2f} N, overhang "
-                  f"{g['terms']['overhang_area_mm2']:.0f} -> {c['terms']['overhang_area_mm2']:.0f} mm2, height "
-                  f"{g['terms']['height_mm']:.1f} -> {c['terms']['height_mm']:.1f} mm; {paths['mesh']}")
+            print(
+                f"{res.name}: up-direction {tuple(round(x, 3) for x in c['direction'])}, peak force "
+                f"{g['terms']['peak_force_n']:.2f} -> {c['terms']['peak_force_n']:.2f} N, overhang "
+                f"{g['terms']['overhang_area_mm2']:.0f} -> {c['terms']['overhang_area_mm2']:.0f} mm2, height "
+                f"{g['terms']['height_mm']:.1f} -> {c['terms']['height_mm']:.1f} mm; {paths['mesh']}"
+            )
     return status

@@ -14,8 +14,15 @@ import numpy as np
 from supportgen.errors import SupportGenError
 from supportgen.settings import Settings
 
-__all__ = ["MEMORY_BASE_MB", "MEMORY_MASK_FACTOR", "MEMORY_FACE_BYTES", "estimate_peak_mb", "mesh_footprint",
-           "available_memory_mb", "check_memory"]
+__all__ = [
+    "MEMORY_BASE_MB",
+    "MEMORY_MASK_FACTOR",
+    "MEMORY_FACE_BYTES",
+    "estimate_peak_mb",
+    "mesh_footprint",
+    "available_memory_mb",
+    "check_memory",
+]
 
 # Peak resident memory of one worker (MB) ~ BASE + FACTOR * mask bytes / 2**20 + FACE_BYTES * faces / 2**20,
 # mask = one uint8 layer mask over the part's x/y bounds.  Measured with resource.getrusage(RUSAGE_SELF).ru_maxrss
@@ -24,9 +31,9 @@ __all__ = ["MEMORY_BASE_MB", "MEMORY_MASK_FACTOR", "MEMORY_FACE_BYTES", "estimat
 # 240 MB + 331 B/px + 1,400 B/face.  The constants below are raised so that no measured run exceeds its
 # estimate (estimate / measured from 1.10 for the lattice trivet to 1.93 for the largest flat plate).
 # The stages are still changing: rerun the calibration when they settle.
-MEMORY_BASE_MB = 250.0        # the imported libraries plus a small part
-MEMORY_MASK_FACTOR = 700.0    # bytes per pixel of the layer grid (masks, crossings, pressure solve)
-MEMORY_FACE_BYTES = 2500.0    # per input face
+MEMORY_BASE_MB = 250.0  # the imported libraries plus a small part
+MEMORY_MASK_FACTOR = 700.0  # bytes per pixel of the layer grid (masks, crossings, pressure solve)
+MEMORY_FACE_BYTES = 2500.0  # per input face
 
 
 def estimate_peak_mb(faces: int, bounds, settings: Settings) -> float:
@@ -133,5 +140,7 @@ def check_memory(faces: int, bounds, settings: Settings, label: str) -> None:
         b = np.asarray(bounds, float)
         what += f", {np.ptp(b[:, 0]):.1f} x {np.ptp(b[:, 1]):.1f} mm at {settings.printer.pixel_mm} mm pixels"
     source = "the memory_mb limit" if settings.limits.memory_mb else "this machine's available memory"
-    raise SupportGenError(f"{label}: needs about {need:,.0f} MB ({what}), over the {budget:,.0f} MB of {source}; "
-                          "use coarser pixels (--set pixel_mm=...), a smaller part, or a machine with more memory")
+    raise SupportGenError(
+        f"{label}: needs about {need:,.0f} MB ({what}), over the {budget:,.0f} MB of {source}; "
+        "use coarser pixels (--set pixel_mm=...), a smaller part, or a machine with more memory"
+    )

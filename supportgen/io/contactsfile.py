@@ -40,8 +40,7 @@ from ..errors import SettingsError
 
 __all__ = ["COLUMNS", "ContactRows", "format_contacts", "parse_contacts", "read_contacts"]
 
-COLUMNS = ("id", "x_mm", "y_mm", "z_mm", "kind", "diameter_mm", "load_n", "safety_factor", "locked",
-           "nx", "ny", "nz")
+COLUMNS = ("id", "x_mm", "y_mm", "z_mm", "kind", "diameter_mm", "load_n", "safety_factor", "locked", "nx", "ny", "nz")
 _REQUIRED = ("x_mm", "y_mm", "z_mm")
 
 
@@ -89,8 +88,18 @@ def format_contacts(points, normals, kinds, diameters, loads, safety_factors, lo
     w = csv.writer(out, lineterminator="\n")
     w.writerow(COLUMNS)
     for i in range(n):
-        w.writerow([i, *map(_num, points[i]), str(kinds[i]), _num(diameters[i]), _num(loads[i]),
-                    _num(safety_factors[i]), int(bool(locked[i])), *map(_num, normals[i])])
+        w.writerow(
+            [
+                i,
+                *map(_num, points[i]),
+                str(kinds[i]),
+                _num(diameters[i]),
+                _num(loads[i]),
+                _num(safety_factors[i]),
+                int(bool(locked[i])),
+                *map(_num, normals[i]),
+            ]
+        )
     return out.getvalue()
 
 
@@ -110,11 +119,13 @@ def parse_contacts(text: str, label: str = "contacts") -> ContactRows:
     reader.fieldnames = header
     missing = [c for c in _REQUIRED if c not in header]
     if missing:
-        raise SettingsError(f"{label}: missing column(s) {', '.join(missing)}; the header must include "
-                            f"{','.join(COLUMNS)}")
+        raise SettingsError(
+            f"{label}: missing column(s) {', '.join(missing)}; the header must include {','.join(COLUMNS)}"
+        )
     ids, pts, kinds, diam, nrm, locked = [], [], [], [], [], []
     seen = set()
     for k, row in enumerate(reader, start=2):
+
         def number(col, blank=math.nan, row=row, k=k):
             raw = (row.get(col) or "").strip()
             if not raw:
@@ -124,21 +135,26 @@ def parse_contacts(text: str, label: str = "contacts") -> ContactRows:
             try:
                 v = float(raw)
             except ValueError:
-                raise SettingsError(f"{label}: line {k}: {col} {raw!r} is not a number; "
-                                    "fix or delete the row") from None
+                raise SettingsError(
+                    f"{label}: line {k}: {col} {raw!r} is not a number; fix or delete the row"
+                ) from None
             if not math.isfinite(v):
                 raise SettingsError(f"{label}: line {k}: {col} {raw!r} is not finite; fix or delete the row")
             return v
+
         raw_id = (row.get("id") or "").strip()
         if raw_id:
             try:
                 cid = int(raw_id)
             except ValueError:
-                raise SettingsError(f"{label}: line {k}: id {raw_id!r} is not a whole number; "
-                                    "leave it empty for a new contact") from None
+                raise SettingsError(
+                    f"{label}: line {k}: id {raw_id!r} is not a whole number; leave it empty for a new contact"
+                ) from None
             if cid < 0 or cid in seen:
-                raise SettingsError(f"{label}: line {k}: id {cid} is {'negative' if cid < 0 else 'repeated'}; "
-                                    "give each kept row its own id, leave it empty for a new contact")
+                raise SettingsError(
+                    f"{label}: line {k}: id {cid} is {'negative' if cid < 0 else 'repeated'}; "
+                    "give each kept row its own id, leave it empty for a new contact"
+                )
             seen.add(cid)
         else:
             cid = -1
@@ -155,11 +171,20 @@ def parse_contacts(text: str, label: str = "contacts") -> ContactRows:
     length = np.linalg.norm(normals, axis=1)
     bad = np.isfinite(length) & (length == 0)
     if bad.any():
-        raise SettingsError(f"{label}: row {int(np.flatnonzero(bad)[0]) + 1}: the normal is zero; "
-                            "leave nx, ny, nz empty to take the part's")
+        raise SettingsError(
+            f"{label}: row {int(np.flatnonzero(bad)[0]) + 1}: the normal is zero; "
+            "leave nx, ny, nz empty to take the part's"
+        )
     normals = normals / np.where(np.isfinite(length), length, 1.0)[:, None]
-    return ContactRows(np.array(ids, int), np.array(pts, float).reshape(-1, 3), np.array(kinds, str),
-                       np.array(diam, float), normals, np.array(locked, bool), label)
+    return ContactRows(
+        np.array(ids, int),
+        np.array(pts, float).reshape(-1, 3),
+        np.array(kinds, str),
+        np.array(diam, float),
+        normals,
+        np.array(locked, bool),
+        label,
+    )
 
 
 def read_contacts(path: str | Path) -> ContactRows:

@@ -26,7 +26,7 @@ from supportgen.errors import OutputError
 
 try:
     import fcntl
-except ImportError:          # Windows: pid-and-host check only
+except ImportError:  # Windows: pid-and-host check only
     fcntl = None
 
 __all__ = ["LOCK_NAME", "FolderLock"]
@@ -46,7 +46,7 @@ def _alive(pid: int) -> bool:
     except ProcessLookupError:
         return False
     except PermissionError:
-        return True           # exists, belongs to someone else
+        return True  # exists, belongs to someone else
     except OSError:
         return True
     return True
@@ -118,7 +118,7 @@ class FolderLock:
             same = os.fstat(fd).st_ino == os.stat(self.path).st_ino
         except FileNotFoundError:
             same = False
-        if not same:               # the holder removed the file as we opened it: try again
+        if not same:  # the holder removed the file as we opened it: try again
             os.close(fd)
             return False, {"retry": True}
         previous = _holder(os.pread(fd, 4096, 0).decode("utf-8", "replace"))
@@ -140,8 +140,12 @@ class FolderLock:
         return True, {}
 
     def _write_holder(self) -> None:
-        doc = {"pid": os.getpid(), "host": socket.gethostname(),
-               "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"), "tool": "supportgen"}
+        doc = {
+            "pid": os.getpid(),
+            "host": socket.gethostname(),
+            "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+            "tool": "supportgen",
+        }
         data = (json.dumps(doc) + "\n").encode()
         os.ftruncate(self.fd, 0)
         os.pwrite(self.fd, data, 0)
@@ -160,25 +164,31 @@ class FolderLock:
                     except OSError as exc:
                         if isinstance(exc, (PermissionError, FileNotFoundError, IsADirectoryError)):
                             raise
-                        use_flock = False       # e.g. ENOLCK on a network file system
+                        use_flock = False  # e.g. ENOLCK on a network file system
                         continue
                 else:
                     ok, previous = self._try_exclusive()
             except OSError as exc:
-                raise OutputError(f"{self.path}: cannot create the folder's lock file ({exc.strerror or exc}); "
-                                  "check the output folder's permissions") from exc
+                raise OutputError(
+                    f"{self.path}: cannot create the folder's lock file ({exc.strerror or exc}); "
+                    "check the output folder's permissions"
+                ) from exc
             if ok:
                 if previous.get("pid") not in (None, os.getpid()):
-                    self.warn(f"{self.folder}: took over the lock left by {_describe(previous)}, which is no "
-                              "longer running; its unfinished temporary files are removed")
+                    self.warn(
+                        f"{self.folder}: took over the lock left by {_describe(previous)}, which is no "
+                        "longer running; its unfinished temporary files are removed"
+                    )
                 self._write_holder()
                 return self
             if previous.get("retry"):
                 continue
             waited = time.monotonic() - start
             if self.wait_s is not None and waited >= self.wait_s:
-                raise OutputError(f"{self.folder}: output folder in use by {_describe(previous)}; wait for it to "
-                                  "finish, give another -o folder, or pass --wait SECONDS")
+                raise OutputError(
+                    f"{self.folder}: output folder in use by {_describe(previous)}; wait for it to "
+                    "finish, give another -o folder, or pass --wait SECONDS"
+                )
             time.sleep(POLL_S if self.wait_s is None else min(POLL_S, max(0.0, self.wait_s - waited)))
 
     def release(self) -> None:

@@ -65,6 +65,8 @@ def part_name(path) -> str:
     """
     p = Path(path)
     return p.name[: -len(p.suffix)] if p.suffix.lower() in READ_FORMATS else p.name
+
+
 WRITE_FORMATS = (".stl", ".3mf", ".ply")
 # HOLE_FRACTION (what "small hole" means) is defined in supportgen.io.repair and re-exported here.
 
@@ -80,8 +82,15 @@ class LoadedMesh:
     source: str
 
 
-def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION, max_faces: int = Limits.max_faces,
-              max_unpacked_mb: float = Limits.max_unpacked_mb, budget=None) -> LoadedMesh:
+def load_mesh(
+    path,
+    *,
+    name=None,
+    hole_fraction: float = HOLE_FRACTION,
+    max_faces: int = Limits.max_faces,
+    max_unpacked_mb: float = Limits.max_unpacked_mb,
+    budget=None,
+) -> LoadedMesh:
     """Read a mesh file, validate it and repair what can be repaired safely.
 
     Parameters
@@ -144,15 +153,16 @@ def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION, max_face
     p = Path(path)
     ext = p.suffix.lower()
     if ext not in READ_FORMATS:
-        raise MeshError(f"{label}: unknown file type {ext or '(no extension)'!r}; "
-                        f"export the model as one of {', '.join(READ_FORMATS)}")
+        raise MeshError(
+            f"{label}: unknown file type {ext or '(no extension)'!r}; "
+            f"export the model as one of {', '.join(READ_FORMATS)}"
+        )
     if not p.is_file():
         raise MeshError(f"{label}: file not found; check the path")
     try:
         data = p.read_bytes()
     except OSError as exc:
-        raise MeshError(f"{label}: cannot read the file ({exc.strerror}); "
-                        "check its permissions") from exc
+        raise MeshError(f"{label}: cannot read the file ({exc.strerror}); check its permissions") from exc
     if not data.strip():
         raise MeshError(f"{label}: the file is empty; export the model again")
     repairs = []
@@ -167,15 +177,16 @@ def load_mesh(path, *, name=None, hole_fraction: float = HOLE_FRACTION, max_face
             data = _check_stl_size(data, label, repairs)
         vertices, faces = _parse(data, ext, label)
     _cap_faces(len(faces), max_faces, label)
-    mesh, fixed = repair_arrays(vertices, faces, label, merge_is_repair=ext != ".stl",
-                                hole_fraction=hole_fraction)
+    mesh, fixed = repair_arrays(vertices, faces, label, merge_is_repair=ext != ".stl", hole_fraction=hole_fraction)
     return LoadedMesh(mesh=mesh, repairs=tuple(repairs) + fixed, source=str(path))
 
 
 def _cap_faces(n: int, cap: int, label: str) -> None:
     if n > cap:
-        raise MeshError(f"{label}: {n:,} triangles (after instancing) is over the limit of {cap:,}; "
-                        f"simplify the model, or raise the limit with --set max_faces={n}")
+        raise MeshError(
+            f"{label}: {n:,} triangles (after instancing) is over the limit of {cap:,}; "
+            f"simplify the model, or raise the limit with --set max_faces={n}"
+        )
 
 
 def _parse(data: bytes, ext: str, label: str):
@@ -191,9 +202,11 @@ def _parse(data: bytes, ext: str, label: str):
             loaded = trimesh.load_mesh(stream, file_type=ext[1:], process=False)
         return np.asarray(loaded.vertices), np.asarray(loaded.faces)
     except Exception as exc:  # parsers of untrusted files raise many types; report them all
-        raise MeshError(f"{label}: unreadable {ext[1:].upper()} file ({type(exc).__name__}: "
-                        f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); "
-                        "export the model again") from exc
+        raise MeshError(
+            f"{label}: unreadable {ext[1:].upper()} file ({type(exc).__name__}: "
+            f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); "
+            "export the model again"
+        ) from exc
 
 
 def decode_text(data: bytes) -> str:
@@ -243,10 +256,14 @@ def prepare_mesh(mesh, name, *, hole_fraction: float = HOLE_FRACTION) -> LoadedM
     if isinstance(mesh, trimesh.Scene):
         mesh = mesh.to_mesh()
     if not isinstance(mesh, trimesh.Trimesh):
-        raise MeshError(f"{name}: expected a trimesh.Trimesh, got {type(mesh).__name__}; "
-                        "pass a mesh or a file path")
-    fixed, repairs = repair_arrays(np.array(mesh.vertices, dtype=float), np.array(mesh.faces, dtype=np.int64),
-                                   str(name), merge_is_repair=True, hole_fraction=hole_fraction)
+        raise MeshError(f"{name}: expected a trimesh.Trimesh, got {type(mesh).__name__}; pass a mesh or a file path")
+    fixed, repairs = repair_arrays(
+        np.array(mesh.vertices, dtype=float),
+        np.array(mesh.faces, dtype=np.int64),
+        str(name),
+        merge_is_repair=True,
+        hole_fraction=hole_fraction,
+    )
     return LoadedMesh(mesh=fixed, repairs=repairs, source=str(name))
 
 
@@ -274,8 +291,9 @@ def write_mesh(mesh, path) -> None:
         data = mesh_bytes(mesh, Path(path).suffix.lower(), path)
         atomic_write(path, data)
     except OSError as exc:
-        raise MeshError(f"{path}: cannot write ({exc.strerror or exc}); "
-                        "check that the folder exists and is writable") from exc
+        raise MeshError(
+            f"{path}: cannot write ({exc.strerror or exc}); check that the folder exists and is writable"
+        ) from exc
 
 
 def mesh_bytes(mesh, ext: str, label="mesh") -> bytes:
@@ -287,8 +305,9 @@ def mesh_bytes(mesh, ext: str, label="mesh") -> bytes:
         Unknown extension or empty mesh; the message names ``label``.
     """
     if ext not in WRITE_FORMATS:
-        raise MeshError(f"{label}: cannot write file type {ext or '(no extension)'!r}; "
-                        f"use one of {', '.join(WRITE_FORMATS)}")
+        raise MeshError(
+            f"{label}: cannot write file type {ext or '(no extension)'!r}; use one of {', '.join(WRITE_FORMATS)}"
+        )
     if not isinstance(mesh, trimesh.Trimesh) or len(mesh.faces) == 0:
         raise MeshError(f"{label}: nothing to write (no triangles); check the model")
     if ext == ".3mf":
@@ -362,13 +381,16 @@ def atomic_write_text(path, text: str) -> None:
 def _check_stl_size(data: bytes, label: str, repairs: list) -> bytes:
     """Refuse a truncated binary STL before the parser sees it; trim trailing bytes."""
     if len(data) < 84:
-        raise MeshError(f"{label}: binary STL too short ({len(data)} bytes, the header "
-                        "alone is 84); export the model again")
+        raise MeshError(
+            f"{label}: binary STL too short ({len(data)} bytes, the header alone is 84); export the model again"
+        )
     count = int.from_bytes(data[80:84], "little")
     expected = 84 + 50 * count
     if len(data) < expected:
-        raise MeshError(f"{label}: truncated binary STL (header promises {count} triangles "
-                        f"= {expected} bytes, file has {len(data)}); export or copy it again")
+        raise MeshError(
+            f"{label}: truncated binary STL (header promises {count} triangles "
+            f"= {expected} bytes, file has {len(data)}); export or copy it again"
+        )
     if len(data) > expected:
         repairs.append(f"ignored {len(data) - expected} bytes after the last triangle")
     return data[:expected]
@@ -396,15 +418,18 @@ def _read_ascii_stl(data: bytes, label: str):
     (3D Systems, *StereoLithography Interface Specification*, 1989: names and comments are free text)."""
     coords = _VERTEX.findall(data)
     if not coords:
-        return np.zeros((0, 3)), np.zeros((0, 3), np.int64)   # "contains no triangles" from the checks
+        return np.zeros((0, 3)), np.zeros((0, 3), np.int64)  # "contains no triangles" from the checks
     if len(coords) % 3:
-        raise MeshError(f"{label}: unreadable ASCII STL ({len(coords)} vertex lines, not three per facet); "
-                        "export the model again")
+        raise MeshError(
+            f"{label}: unreadable ASCII STL ({len(coords)} vertex lines, not three per facet); export the model again"
+        )
     try:
         v = np.array(coords, dtype=float)
     except ValueError as exc:
-        raise MeshError(f"{label}: unreadable ASCII STL (a vertex coordinate is not a number: "
-                        f"{str(exc)[:60]}); export the model again") from exc
+        raise MeshError(
+            f"{label}: unreadable ASCII STL (a vertex coordinate is not a number: "
+            f"{str(exc)[:60]}); export the model again"
+        ) from exc
     return v, np.arange(len(v), dtype=np.int64).reshape(-1, 3)
 
 
@@ -445,13 +470,15 @@ def _threemf_faces(data: bytes, label: str, max_unpacked_mb: float) -> int:
         archive = zipfile.ZipFile(io.BytesIO(data))
         infos = archive.infolist()
     except (zipfile.BadZipFile, ValueError, OSError):
-        return 0                 # not a ZIP: the parser reports it
+        return 0  # not a ZIP: the parser reports it
     unpacked = sum(i.file_size for i in infos)
     cap = int(max_unpacked_mb * 2**20)
     if unpacked > cap:
-        raise MeshError(f"{label}: the 3MF archive would unpack to {unpacked / 2**20:,.0f} MB, over the limit of "
-                        f"{max_unpacked_mb:g} MB; check the file's origin, or raise the limit with "
-                        f"--set max_unpacked_mb={int(unpacked / 2**20) + 1}")
+        raise MeshError(
+            f"{label}: the 3MF archive would unpack to {unpacked / 2**20:,.0f} MB, over the limit of "
+            f"{max_unpacked_mb:g} MB; check the file's origin, or raise the limit with "
+            f"--set max_unpacked_mb={int(unpacked / 2**20) + 1}"
+        )
     objects: dict[tuple[str, str], tuple[int, list]] = {}
     items: list[tuple[str, str]] = []
     for info in infos:
@@ -514,24 +541,29 @@ def _threemf_bytes(v, f) -> bytes:
     core = "http://schemas.microsoft.com/3dmanufacturing/core/2015/02"
     verts = "".join(f'<vertex x="{x!r}" y="{y!r}" z="{z!r}"/>' for x, y, z in v.tolist())
     tris = "".join(f'<triangle v1="{a}" v2="{b}" v3="{c}"/>' for a, b, c in f.tolist())
-    model = (f'<?xml version="1.0" encoding="UTF-8"?>\n<model unit="millimeter" '
-             f'xml:lang="en-US" xmlns={quoteattr(core)}><resources><object id="1" '
-             f'type="model"><mesh><vertices>{verts}</vertices><triangles>{tris}</triangles>'
-             '</mesh></object></resources><build><item objectid="1"/></build></model>')
-    types = ('<?xml version="1.0" encoding="UTF-8"?>\n<Types xmlns="http://schemas.'
-             'openxmlformats.org/package/2006/content-types"><Default Extension="rels" '
-             'ContentType="application/vnd.openxmlformats-package.relationships+xml"/>'
-             '<Default Extension="model" '
-             'ContentType="application/vnd.ms-package.3dmanufacturing-3dmodel+xml"/></Types>')
-    rels = ('<?xml version="1.0" encoding="UTF-8"?>\n<Relationships xmlns="http://schemas.'
-            'openxmlformats.org/package/2006/relationships"><Relationship '
-            'Target="/3D/3dmodel.model" Id="rel0" '
-            'Type="http://schemas.microsoft.com/3dmanufacturing/2013/01/3dmodel"/>'
-            '</Relationships>')
+    model = (
+        f'<?xml version="1.0" encoding="UTF-8"?>\n<model unit="millimeter" '
+        f'xml:lang="en-US" xmlns={quoteattr(core)}><resources><object id="1" '
+        f'type="model"><mesh><vertices>{verts}</vertices><triangles>{tris}</triangles>'
+        '</mesh></object></resources><build><item objectid="1"/></build></model>'
+    )
+    types = (
+        '<?xml version="1.0" encoding="UTF-8"?>\n<Types xmlns="http://schemas.'
+        'openxmlformats.org/package/2006/content-types"><Default Extension="rels" '
+        'ContentType="application/vnd.openxmlformats-package.relationships+xml"/>'
+        '<Default Extension="model" '
+        'ContentType="application/vnd.ms-package.3dmanufacturing-3dmodel+xml"/></Types>'
+    )
+    rels = (
+        '<?xml version="1.0" encoding="UTF-8"?>\n<Relationships xmlns="http://schemas.'
+        'openxmlformats.org/package/2006/relationships"><Relationship '
+        'Target="/3D/3dmodel.model" Id="rel0" '
+        'Type="http://schemas.microsoft.com/3dmanufacturing/2013/01/3dmodel"/>'
+        "</Relationships>"
+    )
     buffer = io.BytesIO()
     with zipfile.ZipFile(buffer, "w", zipfile.ZIP_DEFLATED) as archive:
-        for name, text in (("[Content_Types].xml", types), ("_rels/.rels", rels),
-                           ("3D/3dmodel.model", model)):
+        for name, text in (("[Content_Types].xml", types), ("_rels/.rels", rels), ("3D/3dmodel.model", model)):
             info = zipfile.ZipInfo(name, date_time=(1980, 1, 1, 0, 0, 0))
             info.compress_type = zipfile.ZIP_DEFLATED
             info.external_attr = 0o644 << 16

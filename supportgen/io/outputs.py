@@ -29,9 +29,21 @@ from pathlib import Path
 
 from supportgen.errors import OutputError
 
-__all__ = ["TEMP_PREFIX", "TEMP_SUFFIX", "CLASH_MODES", "OutputFile", "commit_set", "write_file",
-           "clean_temps", "remove_temps", "assign_names", "refuse_overwrites", "prepare_folder",
-           "sha256_of", "os_error_line"]
+__all__ = [
+    "TEMP_PREFIX",
+    "TEMP_SUFFIX",
+    "CLASH_MODES",
+    "OutputFile",
+    "commit_set",
+    "write_file",
+    "clean_temps",
+    "remove_temps",
+    "assign_names",
+    "refuse_overwrites",
+    "prepare_folder",
+    "sha256_of",
+    "os_error_line",
+]
 
 #: Temporary files of this tool start and end so; nothing else in a folder is ever removed by pattern.
 TEMP_PREFIX = ".supportgen-"
@@ -75,9 +87,9 @@ def os_error_line(path, exc: OSError, doing: str = "write") -> str:
     'out/a.stl: cannot write (No space left on device); free some disk space and run again'
     """
     cause = exc.strerror or str(exc) or type(exc).__name__
-    if exc.errno in (28, 122):            # ENOSPC, EDQUOT
+    if exc.errno in (28, 122):  # ENOSPC, EDQUOT
         todo = "free some disk space and run again"
-    elif exc.errno in (1, 13, 30):        # EPERM, EACCES, EROFS
+    elif exc.errno in (1, 13, 30):  # EPERM, EACCES, EROFS
         todo = "check the folder's permissions or choose another output folder"
     else:
         todo = "check the output folder and run again"
@@ -116,7 +128,7 @@ class _SignalsHeld:
         if self.mask is not None:
             signal.pthread_sigmask(signal.SIG_SETMASK, self.mask)
         for s in dict.fromkeys(self.caught):
-            signal.raise_signal(s)          # now, to its own handler (or its default action)
+            signal.raise_signal(s)  # now, to its own handler (or its default action)
         return False
 
 
@@ -125,11 +137,11 @@ def _fsync_folder(folder: Path) -> None:
     try:
         fd = os.open(folder, os.O_RDONLY)
     except OSError:
-        return            # platforms that cannot open a folder (Windows) have no directory fsync
+        return  # platforms that cannot open a folder (Windows) have no directory fsync
     try:
         os.fsync(fd)
     except OSError:
-        pass              # some file systems refuse fsync on a directory; the rename itself stands
+        pass  # some file systems refuse fsync on a directory; the rename itself stands
     finally:
         os.close(fd)
 
@@ -149,8 +161,9 @@ def _stage(target: Path, data: bytes) -> Path:
     return Path(tmp)
 
 
-def commit_set(folder: str | Path, files: Mapping[str, tuple[str, Producer]], *,
-               before_commit: Callable[[], None] | None = None) -> dict[str, OutputFile]:
+def commit_set(
+    folder: str | Path, files: Mapping[str, tuple[str, Producer]], *, before_commit: Callable[[], None] | None = None
+) -> dict[str, OutputFile]:
     """Write a set of files into ``folder`` so that it replaces the previous set whole or not at all.
 
     Parameters
@@ -241,7 +254,7 @@ def clean_temps(root: str | Path, recursive: bool = False) -> int:
                     (Path(where) / name).unlink()
                     n += 1
                 except OSError:
-                    pass      # gone already, or not ours to remove: leave it
+                    pass  # gone already, or not ours to remove: leave it
     return n
 
 
@@ -283,9 +296,11 @@ def assign_names(stems: Sequence[str], clash: str = "rename", labels: Sequence[s
         name = stem
         if name.casefold() in taken:
             if clash == "refuse":
-                raise OutputError(f"{labels[i]}: its outputs ({stem}.*) would overwrite those of "
-                                  f"{labels[taken[stem.casefold()]]}; rename one of them, or let supportgen "
-                                  "rename the outputs (--name-clash rename)")
+                raise OutputError(
+                    f"{labels[i]}: its outputs ({stem}.*) would overwrite those of "
+                    f"{labels[taken[stem.casefold()]]}; rename one of them, or let supportgen "
+                    "rename the outputs (--name-clash rename)"
+                )
             k = 2
             while f"{stem}-{k}".casefold() in taken or f"{stem}-{k}".casefold() in {s.casefold() for s in stems}:
                 k += 1
@@ -319,8 +334,10 @@ def refuse_overwrites(outputs: Iterable[Path], inputs: Iterable[Path]) -> None:
     for out in outputs:
         for p in by_name.get(Path(out).name.casefold(), ()):
             if _same(Path(out), p):
-                raise OutputError(f"{out}: this output would replace the input {p}; choose another output "
-                                  "folder (-o) or move the input")
+                raise OutputError(
+                    f"{out}: this output would replace the input {p}; choose another output "
+                    "folder (-o) or move the input"
+                )
 
 
 def prepare_folder(folder: str | Path) -> Path:

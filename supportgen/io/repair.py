@@ -72,8 +72,9 @@ _FLAT = 1e-6  # a part thinner than this fraction of its largest extent is flat
 _TINY = 1e-12  # face area (x diag^2) / volume (x diag^3) below this is zero to precision
 
 
-def repair_arrays(vertices, faces, label: str, *, merge_is_repair: bool = True,
-                  hole_fraction: float = HOLE_FRACTION) -> tuple[trimesh.Trimesh, tuple[str, ...]]:
+def repair_arrays(
+    vertices, faces, label: str, *, merge_is_repair: bool = True, hole_fraction: float = HOLE_FRACTION
+) -> tuple[trimesh.Trimesh, tuple[str, ...]]:
     """Validate a triangle mesh given as arrays and repair what can be repaired safely.
 
     Parameters
@@ -126,15 +127,15 @@ def repair_arrays(vertices, faces, label: str, *, merge_is_repair: bool = True,
     (('closed 1 hole (1 face)',), 1.0)
     """
     repairs = []
-    mesh = _repair(vertices, faces, label, merge_is_repair=merge_is_repair, repairs=repairs,
-                   hole_fraction=hole_fraction)
+    mesh = _repair(
+        vertices, faces, label, merge_is_repair=merge_is_repair, repairs=repairs, hole_fraction=hole_fraction
+    )
     return mesh, tuple(repairs)
 
 
 def _count(n: int, word: str) -> str:
     """``"1 face"``, ``"2 faces"``."""
     return f"{n} {word}{'s' * (n != 1)}"
-
 
 
 def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
@@ -148,18 +149,21 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
     used = np.unique(f)
     bad = ~np.isfinite(v[used]).all(axis=1)
     if bad.any():
-        raise MeshError(f"{label}: {int(bad.sum())} vertex/vertices with NaN or infinite "
-                        "coordinates; fix them or export the model again")
+        raise MeshError(
+            f"{label}: {int(bad.sum())} vertex/vertices with NaN or infinite "
+            "coordinates; fix them or export the model again"
+        )
     extent = np.ptp(v[used], axis=0)
     diag = float(np.linalg.norm(extent))
     if extent.min() <= _FLAT * extent.max() or diag == 0:
-        raise MeshError(f"{label}: flat part ({extent.min():.3g} thick across "
-                        f"{extent.max():.3g}), it encloses no volume; give it thickness")
+        raise MeshError(
+            f"{label}: flat part ({extent.min():.3g} thick across "
+            f"{extent.max():.3g}), it encloses no volume; give it thickness"
+        )
     source = np.arange(len(f))
     v, f, merged = _merge_best(v, f, diag)
     if merged and merge_is_repair:
-        repairs.append(f"merged {merged} coincident vertices" if merged > 1
-                       else "merged 1 coincident vertex")
+        repairs.append(f"merged {merged} coincident vertices" if merged > 1 else "merged 1 coincident vertex")
     kept = _drop_faces(v, f, diag, repairs)
     f, source = f[kept], source[kept]
     if len(f) == 0:
@@ -168,7 +172,7 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
     try:
         return _clean_surface(v, f, source, label, repairs, hole_fraction, diag)
     except MeshError as exc:
-        del repairs[done:]      # the surface route's partial repairs are not what was done
+        del repairs[done:]  # the surface route's partial repairs are not what was done
         # Open, non-manifold or non-orientable: the printer still cures whatever the
         # surface encloses, so build that solid (or say why there is none).
         try:
@@ -185,20 +189,20 @@ def _clean_surface(v, f, source, label, repairs, hole_fraction, diag):
     """Steps 3-6 of the module notes on a merged, degenerate-free soup; MeshError where they cannot finish."""
     edges = _edges(f, len(v))
     if edges["nonmanifold"]:
-        raise MeshError(f"{label}: {_count(edges['nonmanifold'], 'edge')} shared by more than two "
-                        "faces (non-manifold); separate or join the bodies and export again")
+        raise MeshError(
+            f"{label}: {_count(edges['nonmanifold'], 'edge')} shared by more than two "
+            "faces (non-manifold); separate or join the bodies and export again"
+        )
     f = _orient(f, edges, label, repairs)
     v, f = _fill_holes(v, f, _edges(f, len(v)), label, hole_fraction, repairs)
     f = _orient_shells(v, f, _edges(f, len(v)), repairs)
     volume = float(_signed_volumes(v, f, np.zeros(len(f), int), 1)[0])
     if volume <= _TINY * diag**3:
-        raise MeshError(f"{label}: encloses no volume ({volume:.3g}); "
-                        "check the model is a solid, not a surface")
+        raise MeshError(f"{label}: encloses no volume ({volume:.3g}); check the model is a solid, not a surface")
     mesh = trimesh.Trimesh(v, f, process=False)
     mesh.metadata["source_face"] = np.concatenate([source, np.full(len(f) - len(source), -1)])
     if not (mesh.is_watertight and mesh.is_winding_consistent):
-        raise MeshError(f"{label}: repair could not close the surface; "
-                        "close it in a modeller and export again")
+        raise MeshError(f"{label}: repair could not close the surface; close it in a modeller and export again")
     return mesh
 
 
@@ -245,8 +249,9 @@ def _merge(v, f, diag, fraction=MERGE_FRACTION):
     uniq = pts[first]
     pairs = cKDTree(uniq).query_pairs(fraction * diag, output_type="ndarray")
     if len(pairs):
-        n, label = connected_components(coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])),
-                                                   shape=(len(uniq), len(uniq))), directed=False)
+        n, label = connected_components(
+            coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(len(uniq), len(uniq))), directed=False
+        )
         rep = np.full(n, len(uniq))
         np.minimum.at(rep, label, np.arange(len(uniq)))
         keep, relabel = np.unique(rep[label], return_inverse=True)
@@ -297,11 +302,17 @@ def _edges(f, nv):
     one = order[starts[counts == 1]]
     pairs = np.column_stack([owner[e1], owner[e2]])
     shells = connected_components(
-        coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(len(f),) * 2),
-        directed=False)
-    return {"pairs": pairs, "same": d[e1, 0] == d[e2, 0], "boundary": d[one],
-            "boundary_face": owner[one], "nonmanifold": int((counts > 2).sum()),
-            "n_shells": shells[0], "shell": shells[1]}
+        coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(len(f),) * 2), directed=False
+    )
+    return {
+        "pairs": pairs,
+        "same": d[e1, 0] == d[e2, 0],
+        "boundary": d[one],
+        "boundary_face": owner[one],
+        "nonmanifold": int((counts > 2).sum()),
+        "n_shells": shells[0],
+        "shell": shells[1],
+    }
 
 
 def _orient(f, edges, label, repairs):
@@ -323,8 +334,10 @@ def _orient(f, edges, label, repairs):
         parity[node] = parity[parent] ^ wt
     flip = np.array(parity[:m], dtype=bool)
     if (same ^ flip[pairs[:, 0]] ^ flip[pairs[:, 1]]).any():
-        raise MeshError(f"{label}: the surface is not orientable (it has no inside and "
-                        "outside, like a Moebius strip); rebuild it as a closed solid")
+        raise MeshError(
+            f"{label}: the surface is not orientable (it has no inside and "
+            "outside, like a Moebius strip); rebuild it as a closed solid"
+        )
     flipped = np.bincount(shell, weights=flip, minlength=k)
     flip ^= (2 * flipped > np.bincount(shell, minlength=k))[shell]
     n = int(flip.sum())
@@ -341,7 +354,8 @@ def _fill_holes(v, f, edges, label, hole_fraction, repairs):
         return v, f
     nv = len(v)
     n_loops, vlabel = connected_components(
-        coo_matrix((np.ones(len(bd)), (bd[:, 0], bd[:, 1])), shape=(nv, nv)), directed=False)
+        coo_matrix((np.ones(len(bd)), (bd[:, 0], bd[:, 1])), shape=(nv, nv)), directed=False
+    )
     loop = vlabel[bd[:, 0]]
     loops, loop = np.unique(loop, return_inverse=True)
     n_loops = len(loops)
@@ -362,12 +376,17 @@ def _fill_holes(v, f, edges, label, hole_fraction, repairs):
     ok = ~pinched & (fan <= hole_fraction * loop_shell_area)
     if not ok.all():
         worst = float((fan[~ok] / np.maximum(loop_shell_area[~ok], EPS_FLOOR)).max())
-        why = (" whose edges touch" if pinched[~ok].any() else
-               f", the largest would cover {100 * worst:.0f}% of its shell's surface "
-               f"(limit {100 * hole_fraction:.0f}%)")
+        why = (
+            " whose edges touch"
+            if pinched[~ok].any()
+            else f", the largest would cover {100 * worst:.0f}% of its shell's surface "
+            f"(limit {100 * hole_fraction:.0f}%)"
+        )
         holes = _count(int((~ok).sum()), "hole")
-        raise MeshError(f"{label}: open surface with {holes} that cannot be closed "
-                        f"safely{why}; close it in a modeller and export again")
+        raise MeshError(
+            f"{label}: open surface with {holes} that cannot be closed "
+            f"safely{why}; close it in a modeller and export again"
+        )
     three = size == 3
     fan_loop = np.flatnonzero(~three)
     centre_index = np.full(n_loops, -1)
@@ -398,8 +417,12 @@ def _winding_number(points, tri):
         a, b, c = (tri[:, j] - p for j in range(3))
         la, lb, lc = (np.linalg.norm(x, axis=1) for x in (a, b, c))
         num = np.einsum("ij,ij->i", a, np.cross(b, c))
-        den = (la * lb * lc + np.einsum("ij,ij->i", a, b) * lc
-               + np.einsum("ij,ij->i", a, c) * lb + np.einsum("ij,ij->i", b, c) * la)
+        den = (
+            la * lb * lc
+            + np.einsum("ij,ij->i", a, b) * lc
+            + np.einsum("ij,ij->i", a, c) * lb
+            + np.einsum("ij,ij->i", b, c) * la
+        )
         out[i] = np.arctan2(num, den).sum() / (2 * np.pi)
     return out
 
@@ -428,7 +451,7 @@ def _orient_shells(v, f, edges, repairs, samples=16):
     parity = np.zeros(k, bool)
     for i in order:
         outer = containers[i][rank[containers[i]] < rank[i]]
-        parent = int(outer[np.argmax(rank[outer])]) if len(outer) else -1   # the innermost container
+        parent = int(outer[np.argmax(rank[outer])]) if len(outer) else -1  # the innermost container
         w0, p0 = (wind[parent], parity[parent]) if parent >= 0 else (0, False)
         s = int(np.sign(vol[i])) * (-1 if p0 else 1)
         parity[i] = p0 ^ (w0 + s < 0)
@@ -456,7 +479,7 @@ def _shell_containers(v, f, shell, k, samples, tries=3):
     starts = np.searchsorted(shell[by_shell], np.arange(k + 1))
     all_faces = np.argsort(shell, kind="stable")
     scale = np.abs(yz).max() + 1.0
-    weights = np.array([0.2113248654, 0.3166247904, 0.4720503442])   # no simple ratios: off every edge
+    weights = np.array([0.2113248654, 0.3166247904, 0.4720503442])  # no simple ratios: off every edge
     count = np.diff(starts)
     found: list = [None] * k
     pending = np.arange(k)
@@ -478,8 +501,9 @@ def _shell_containers(v, f, shell, k, samples, tries=3):
         wc = (e1[:, 0] * q[:, 1] - e1[:, 1] * q[:, 0]) / d
         bary = np.column_stack([1 - wb - wc, wb, wc])
         x = (bary * tri[ids, :, 0]).sum(axis=1)
-        near = ((np.abs(bary) < 1e-9).any(axis=1) | (np.abs(x - p[owner, 0]) < 1e-9 * scale)) \
-            & (bary > -1e-9).all(axis=1)
+        near = ((np.abs(bary) < 1e-9).any(axis=1) | (np.abs(x - p[owner, 0]) < 1e-9 * scale)) & (bary > -1e-9).all(
+            axis=1
+        )
         grazed = np.bincount(owner[near], minlength=len(pending)) > 0
         hit = (bary >= 0).all(axis=1) & (x > p[owner, 0]) & ~grazed[owner]
         # Winding number of each ray's start for each shell it crosses: signed crossings.
@@ -492,13 +516,19 @@ def _shell_containers(v, f, shell, k, samples, tries=3):
             found[pending[o]] = inside[lo:hi] % k
         pending = pending[grazed]
     for i in range(k):
-        faces_i = all_faces[starts[i]:starts[i + 1]]
+        faces_i = all_faces[starts[i] : starts[i + 1]]
         if found[i] is not None:
             continue
         # Every ray grazed an edge: the generalised winding number of sampled vertices decides.
         corners = np.unique(f[faces_i])
         pts = v[corners[np.linspace(0, len(corners) - 1, samples).astype(int)]]
         others = [j for j in range(k) if j != i]
-        found[i] = np.array([j for j in others if (np.abs(_winding_number(
-            pts, tri[all_faces[starts[j]:starts[j + 1]]])) > 0.5).all()], int)
+        found[i] = np.array(
+            [
+                j
+                for j in others
+                if (np.abs(_winding_number(pts, tri[all_faces[starts[j] : starts[j + 1]]])) > 0.5).all()
+            ],
+            int,
+        )
     return found

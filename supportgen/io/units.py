@@ -18,7 +18,7 @@ from .meshio import LoadedMesh
 __all__ = ["UNITS", "unit_factor", "unit_hint", "scale_loaded", "group_bounds"]
 
 #: Millimetres per unit.
-UNITS = {"mm": 1.0, "cm": 10.0, "m": 1000.0, "in": 25.4}   # the inch is 25.4 mm exactly (1959 agreement)
+UNITS = {"mm": 1.0, "cm": 10.0, "m": 1000.0, "in": 25.4}  # the inch is 25.4 mm exactly (1959 agreement)
 _NAMES = {"cm": "centimetres", "m": "metres", "in": "inches"}
 
 
@@ -49,8 +49,10 @@ def unit_hint(size_mm: float) -> str:
     size_mm = max(float(size_mm), 1e-30)
     best = min((u for u in UNITS if u != "mm"), key=lambda u: abs(math.log(size_mm * UNITS[u] / 40.0)))
     f = UNITS[best]
-    return (f"it was probably drawn in {_NAMES[best]}: {size_mm:g} {best} is {size_mm * f:.4g} mm; "
-            f"scale it with --units {best} (or --scale {f:g})")
+    return (
+        f"it was probably drawn in {_NAMES[best]}: {size_mm:g} {best} is {size_mm * f:.4g} mm; "
+        f"scale it with --units {best} (or --scale {f:g})"
+    )
 
 
 def scale_loaded(loaded: LoadedMesh, factor: float) -> LoadedMesh:
@@ -63,7 +65,6 @@ def scale_loaded(loaded: LoadedMesh, factor: float) -> LoadedMesh:
     mesh = loaded.mesh.copy()
     mesh.apply_scale(factor)
     return dataclasses.replace(loaded, mesh=mesh, repairs=(*loaded.repairs, f"scaled by {factor:g} to millimetres"))
-
 
 
 def group_bounds(paths, factor: float = 1.0):

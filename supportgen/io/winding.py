@@ -39,13 +39,13 @@ __all__ = ["GRID_CELLS", "BAND_BUDGET", "winding_number", "solid_from_winding"]
 #: 1.4 % low, the cap the hole cut off), the grid (4e6 cells for a cube) stays
 #: within a few hundred MB, and a messy 50 mm scan is rebuilt in a few seconds.
 GRID_CELLS = 160
-_COARSE = 4          # coarse grid stride, in cells
+_COARSE = 4  # coarse grid stride, in cells
 #: Exact evaluations the band around the surface may take (about 3 nodes deep per
 #: h^2 of surface): a part of large surface for its size (a lattice) gets a coarser
 #: grid rather than minutes of evaluation.  About 5-10 s at libigl's speed here.
 BAND_BUDGET = 600_000
-_BAND = 1            # cells around the surface evaluated exactly
-_AMBIGUOUS = 0.3     # coarse values within this of 1/2 are evaluated exactly
+_BAND = 1  # cells around the surface evaluated exactly
+_AMBIGUOUS = 0.3  # coarse values within this of 1/2 are evaluated exactly
 #: Grid offsets (in cells) tried in turn: where solids only touch (along an edge, at
 #: a point), nodes exactly on the contact give a pinched level set; a grid in
 #: general position does not.
@@ -100,8 +100,8 @@ def _surface_points(tri: np.ndarray, step: float) -> np.ndarray:
     out = []
     for k in np.unique(k_all):
         i, j = np.nonzero(np.add.outer(np.arange(k + 1), np.arange(k + 1)) <= k)
-        bary = np.column_stack([i, j, k - i - j]) / k                     # (p, 3)
-        group = tri[k_all == k]                                             # (g, 3, 3)
+        bary = np.column_stack([i, j, k - i - j]) / k  # (p, 3)
+        group = tri[k_all == k]  # (g, 3, 3)
         for chunk in np.array_split(group, max(1, len(group) * len(bary) // 2_000_000)):
             out.append(np.einsum("pc,gcx->gpx", bary, chunk).reshape(-1, 3))
     return np.concatenate(out)
@@ -147,7 +147,7 @@ def _winding_grid(v, f, lo_v, hi_v, h, shift):
     exact |= np.abs(w - 0.5) < _AMBIGUOUS
     idx = np.nonzero(exact)
     w[idx] = winding_number(v, f, lo + h * np.column_stack(idx))
-    w[[0, -1], :, :] = 0.0     # the margin is outside by construction
+    w[[0, -1], :, :] = 0.0  # the margin is outside by construction
     w[:, [0, -1], :] = 0.0
     w[:, :, [0, -1]] = 0.0
     return w, lo
@@ -161,13 +161,15 @@ def _simplified(mesh: trimesh.Trimesh, h: float) -> trimesh.Trimesh:
     """
     import manifold3d as m3d
 
-    solid = m3d.Manifold(m3d.Mesh(vert_properties=np.asarray(mesh.vertices, np.float32),
-                                  tri_verts=np.asarray(mesh.faces, np.uint32)))
+    solid = m3d.Manifold(
+        m3d.Mesh(vert_properties=np.asarray(mesh.vertices, np.float32), tri_verts=np.asarray(mesh.faces, np.uint32))
+    )
     if solid.status() != m3d.Error.NoError:
         return mesh
     out = solid.simplify(h / 8).to_mesh()
-    return trimesh.Trimesh(np.asarray(out.vert_properties)[:, :3].astype(float),
-                           np.asarray(out.tri_verts, dtype=np.int64), process=False)
+    return trimesh.Trimesh(
+        np.asarray(out.vert_properties)[:, :3].astype(float), np.asarray(out.tri_verts, dtype=np.int64), process=False
+    )
 
 
 def solid_from_winding(vertices, faces, label: str, *, cells: int = GRID_CELLS) -> tuple[trimesh.Trimesh, str]:
@@ -225,8 +227,10 @@ def solid_from_winding(vertices, faces, label: str, *, cells: int = GRID_CELLS) 
     for shift in _SHIFTS:
         w, lo = _winding_grid(v, f, lo_v, hi_v, h, np.asarray(shift) * h)
         if not (w >= 0.5).any():
-            raise MeshError(f"{label}: the surface encloses nothing (its winding number never reaches 1/2): a "
-                            "sheet or a few loose faces has no inside to print; export the solid again")
+            raise MeshError(
+                f"{label}: the surface encloses nothing (its winding number never reaches 1/2): a "
+                "sheet or a few loose faces has no inside to print; export the solid again"
+            )
         verts, tris, _, _ = marching_cubes(w, level=0.5, spacing=(h, h, h), method="lewiner", allow_degenerate=False)
         # Marching cubes shares vertices between its cells already; merging by position
         # (process=True) would join vertices of two solids that only touch and pinch them.
@@ -236,15 +240,20 @@ def solid_from_winding(vertices, faces, label: str, *, cells: int = GRID_CELLS) 
         if mesh.is_watertight and mesh.is_winding_consistent and mesh.volume > 0:
             break
     else:
-        raise MeshError(f"{label}: could not build a closed solid from the surface; close it in a modeller "
-                        "and export again")
+        raise MeshError(
+            f"{label}: could not build a closed solid from the surface; close it in a modeller and export again"
+        )
     # An open sheet has w -> 1/2 on both sides of it, so a sliver of {w >= 1/2} can cling to
     # it; a solid is thicker than a cell on average (mean thickness 2V/A of a slab).
     thickness = 2 * float(mesh.volume) / float(mesh.area)
     if thickness < h:
-        raise MeshError(f"{label}: the surface encloses nothing thicker than {h:.3g} (a sheet, not a solid): "
-                        "there is no inside to print; give it thickness or export the solid again")
+        raise MeshError(
+            f"{label}: the surface encloses nothing thicker than {h:.3g} (a sheet, not a solid): "
+            "there is no inside to print; give it thickness or export the solid again"
+        )
     before = abs(float(trimesh.Trimesh(v, f, process=False).volume))
-    line = (f"surface is open or not a clean solid: rebuilt as the solid inside its generalised winding number "
-            f"on a {h:.3g}-unit grid (volume {before:.4g} before, {float(mesh.volume):.4g} after)")
+    line = (
+        f"surface is open or not a clean solid: rebuilt as the solid inside its generalised winding number "
+        f"on a {h:.3g}-unit grid (volume {before:.4g} before, {float(mesh.volume):.4g} after)"
+    )
     return mesh, line

@@ -54,8 +54,10 @@ def read_measurements(path) -> np.ndarray:
     head = [h.strip() for h in (reader.fieldnames or [])]
     missing = [c for c in _REQUIRED if c not in head]
     if missing:
-        raise SettingsError(f"{path}: missing column(s) {', '.join(missing)}; the header must name "
-                            f"{', '.join(_REQUIRED)} (optional: {', '.join(COLUMNS[3:])})")
+        raise SettingsError(
+            f"{path}: missing column(s) {', '.join(missing)}; the header must name "
+            f"{', '.join(_REQUIRED)} (optional: {', '.join(COLUMNS[3:])})"
+        )
     rows = []
     for line, row in enumerate(reader, start=2):
         row = {k.strip(): (v or "").strip() for k, v in row.items() if k is not None}
@@ -70,7 +72,9 @@ def read_measurements(path) -> np.ndarray:
             except ValueError:
                 v = math.nan
             if not (math.isfinite(v) and v > 0):
-                raise SettingsError(f"{path}: row {line}: {c} = {raw!r} is not a positive number; fix or delete the row")
+                raise SettingsError(
+                    f"{path}: row {line}: {c} = {raw!r} is not a positive number; fix or delete the row"
+                )
             vals.append(v)
         rows.append(vals)
     if len(rows) < 2:
@@ -111,10 +115,12 @@ class CalibrationFit:
 
     def to_text(self) -> str:
         """The fit and its residuals, for the terminal."""
-        lines = [f"force_calibration = {self.factor:.6g}",
-                 f"area term = {self.area_n_mm2:.6g} N/mm^2 ({'kept' if self.uses_area else 'not kept'}: "
-                 f"AICc {self.aicc[0]:.2f} one term, {self.aicc[1]:.2f} with area)",
-                 "row  measured_n  predicted_n  residual_n"]
+        lines = [
+            f"force_calibration = {self.factor:.6g}",
+            f"area term = {self.area_n_mm2:.6g} N/mm^2 ({'kept' if self.uses_area else 'not kept'}: "
+            f"AICc {self.aicc[0]:.2f} one term, {self.aicc[1]:.2f} with area)",
+            "row  measured_n  predicted_n  residual_n",
+        ]
         for i, (m, p, r) in enumerate(zip(self.measured, self.predicted, self.residuals), start=1):
             lines.append(f"{i:3d}  {m:10.4g}  {p:11.4g}  {r:+10.3g}")
         rms = float(np.sqrt(np.mean(self.residuals**2)))
@@ -158,7 +164,7 @@ def fit_calibration(measurements: np.ndarray, settings) -> CalibrationFit:
     x, area = _predictors(meas, settings)
     f = meas[:, 2]
     n = f.size
-    xr, ar = x / f, area / f                     # relative errors: each row weighs 1/F
+    xr, ar = x / f, area / f  # relative errors: each row weighs 1/F
     c1 = float(xr.sum() / (xr @ xr))
     rss1 = float(((1 - c1 * xr) ** 2).sum())
     coef2, *_ = np.linalg.lstsq(np.column_stack([xr, ar]), np.ones(n), rcond=None)

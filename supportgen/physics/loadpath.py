@@ -195,9 +195,16 @@ class ForceProfile:
         warns = tuple(w for w in self.warnings if w[0] != "force-over-rated")
         rated = self.rated_force_n
         over = _over_rated(force, rated) if rated is not None else ()
-        return dataclasses.replace(self, force_n=force, area_mm2=area, unheld_force_n=unheld, peak_layer_index=peak,
-                                   peak_force_n=float(force[peak]) if n else 0.0, warnings=over + warns,
-                                   support_force_n=support)
+        return dataclasses.replace(
+            self,
+            force_n=force,
+            area_mm2=area,
+            unheld_force_n=unheld,
+            peak_layer_index=peak,
+            peak_force_n=float(force[peak]) if n else 0.0,
+            warnings=over + warns,
+            support_force_n=support,
+        )
 
     def to_dict(self) -> dict:
         """Plain dict for the JSON report (``forces.peak_layer_force_n`` etc.)."""
@@ -227,10 +234,14 @@ def _over_rated(force, rated) -> tuple:
     if not over.size:
         return ()
     worst = int(np.argmax(force))
-    return (("force-over-rated",
-             f"{over.size} layer(s) exceed the rated separation force of {rated:g} N: the worst is layer "
-             f"{worst} at {force[worst]:.1f} N, the first layer {int(over[0])} at {force[over[0]]:.1f} N; "
-             "reorient the part, slow the lift or add a slower mode"),)
+    return (
+        (
+            "force-over-rated",
+            f"{over.size} layer(s) exceed the rated separation force of {rated:g} N: the worst is layer "
+            f"{worst} at {force[worst]:.1f} N, the first layer {int(over[0])} at {force[over[0]]:.1f} N; "
+            "reorient the part, slow the lift or add a slower mode",
+        ),
+    )
 
 
 #: Unheld force below which no warning is given (N): a thousandth of the smallest
@@ -269,22 +280,22 @@ class ForceTracker:
     def __init__(self, grid, layer_mm: float, contact_points, settings):
         self.grid, self.layer_mm, self.settings = grid, float(layer_mm), settings
         self.mechanism = settings.printer.mechanism
-        separation(self.mechanism)                 # SettingsError on an unknown name
+        separation(self.mechanism)  # SettingsError on an unknown name
         pts = np.asarray(contact_points, float).reshape(-1, 3)
         self.points = pts
         # spring of each load path: E A / L with equal tips before sizing, L its height above the plate
         self._stiff = 1.0 / np.maximum(pts[:, 2], self.layer_mm) if len(pts) else np.zeros(0)
         r = max(settings.rules.tip_diameter_mm / 2.0, grid.pixel_mm / 2.0)
         k = int(np.ceil(r / grid.pixel_mm))
-        dr, dc = np.mgrid[-k: k + 1, -k: k + 1]
+        dr, dc = np.mgrid[-k : k + 1, -k : k + 1]
         keep = (dr**2 + dc**2) * grid.pixel_mm**2 <= r * r + EPS_ZERO
         order = np.argsort((dr**2 + dc**2)[keep], kind="stable")  # nearest first
         self._off = (dr[keep][order], dc[keep][order])
         self._rc = np.column_stack(grid.index(pts[:, :2])) if len(pts) else np.zeros((0, 2), int)
-        self._node = np.full(len(pts), -1)        # union-find node each contact holds
+        self._node = np.full(len(pts), -1)  # union-find node each contact holds
         self._parent: list[int] = []
-        self._held: dict[int, list[int]] = {}     # root -> contacts
-        self._prev = None                          # the layer below: runs, labels, nodes, solves
+        self._held: dict[int, list[int]] = {}  # root -> contacts
+        self._prev = None  # the layer below: runs, labels, nodes, solves
         self._force, self._area, self._unheld = {}, {}, {}
         self._peak = np.zeros(len(pts))
         self._peak_layer = np.full(len(pts), -1)
@@ -315,7 +326,7 @@ class ForceTracker:
         lab = labels[runs[0], runs[1]].astype(np.int64)
         node0 = len(self._parent)
         self._parent.extend(range(node0, node0 + n_labels))
-        if prev is not None and runs[0].size and prev["runs"][0].size:   # 3-D connectivity with the layer below
+        if prev is not None and runs[0].size and prev["runs"][0].size:  # 3-D connectivity with the layer below
             ia, ib, _ = run_overlaps(runs, prev["runs"])
             base = int(prev["lab"].max()) + 1
             for code in np.unique(lab[ia] * base + prev["lab"][ib]).tolist():
@@ -356,12 +367,16 @@ class ForceTracker:
                 unheld += comp_force[i - 1]
                 continue
             pts, da = geo[i][2], geo[i][4]
-            spread = float(np.sqrt((da @ ((pts - da @ pts / da.sum()) ** 2).sum(axis=1)) / da.sum())) if da.sum() > 0 else 0.0
+            spread = (
+                float(np.sqrt((da @ ((pts - da @ pts / da.sum()) ** 2).sum(axis=1)) / da.sum()))
+                if da.sum() > 0
+                else 0.0
+            )
             g = statics_matrix(self.points[hold, :2], self._stiff[hold], spread)
             r_pull = g @ pull[:, i - 1]
             squeeze_load[hold] += r_pull
             if self.mechanism == "tilt" and force.shape[1]:
-                r = g @ np.vstack([force[i - 1], fx[i - 1], fy[i - 1]])          # (n_hold, M): every front position
+                r = g @ np.vstack([force[i - 1], fx[i - 1], fy[i - 1]])  # (n_hold, M): every front position
                 load[hold] += r[:, worst]
                 up = np.maximum(r.max(axis=1), 0.0)
                 push = np.maximum(-r.min(axis=1), 0.0)
@@ -370,7 +385,7 @@ class ForceTracker:
                 self._peak[np.array(hold)[better]] = up[better]
                 self._peak_layer[np.array(hold)[better]] = k
             elif self.mechanism in SIDE_LOAD:
-                share = comp_force[i - 1] / len(hold)          # equal tips: shear shared by tip area
+                share = comp_force[i - 1] / len(hold)  # equal tips: shear shared by tip area
                 side[hold] += share
             else:
                 load[hold] += r_pull
@@ -420,9 +435,17 @@ class ForceTracker:
         cut = np.searchsorted(comp[order], np.arange(1, nf + 2))
         geo, cache = {}, {}
         for i in range(1, nf + 1):
-            o = order[cut[i - 1]: cut[i]]
-            *out, (key, state) = solve_runs(rows[o], starts[o], ends[o], int(edges[i - 1]), g.pixel_mm,
-                                               (g.x0, g.y0), kept, cavity=cav[o] if cav[o].any() else None)
+            o = order[cut[i - 1] : cut[i]]
+            *out, (key, state) = solve_runs(
+                rows[o],
+                starts[o],
+                ends[o],
+                int(edges[i - 1]),
+                g.pixel_mm,
+                (g.x0, g.y0),
+                kept,
+                cavity=cav[o] if cav[o].any() else None,
+            )
             geo[i] = tuple(out)
             cache[key] = state
         return geo, cache
@@ -439,23 +462,42 @@ class ForceTracker:
         warns = list(_over_rated(force, rated))
         never = np.nonzero(self._node < 0)[0]
         if never.size:
-            warns.append(("contact-unattached",
-                          f"{never.size} contact(s) never touched a cured pixel within the tip radius "
-                          f"(first: #{never[0]}); check the contact points against the part"))
+            warns.append(
+                (
+                    "contact-unattached",
+                    f"{never.size} contact(s) never touched a cured pixel within the tip radius "
+                    f"(first: #{never[0]}); check the contact points against the part",
+                )
+            )
         # Slivers of a pixel or two the rasteriser splits off an edge pull with
         # micro-newtons: only a share that matters to a tip is worth a warning.
         significant = unheld > np.maximum(UNHELD_TOLERANCE_N, 1e-3 * force)
         if len(self.points) and significant.any():
             first = int(np.nonzero(significant)[0][0])
-            warns.append(("force-unheld",
-                          f"{int(significant.sum())} layer(s) pull on parts no contact holds yet (first: layer "
-                          f"{first}, {unheld[first]:.3g} N); add contacts under them"))
+            warns.append(
+                (
+                    "force-unheld",
+                    f"{int(significant.sum())} layer(s) pull on parts no contact holds yet (first: layer "
+                    f"{first}, {unheld[first]:.3g} N); add contacts under them",
+                )
+            )
         side = self.mechanism in SIDE_LOAD
         tension = np.zeros(len(self.points)) if side else self._peak.copy()
-        return ForceProfile(force, area, unheld, peak, peak_f, tension,
-                            np.where(self._peak > 0, self._peak_layer, -1), tuple(warns),
-                            contact_side_loads=self._side.copy(), contact_squeeze_loads=self._squeeze.copy(),
-                            mechanism=self.mechanism, support_force_n=np.zeros(n), rated_force_n=rated)
+        return ForceProfile(
+            force,
+            area,
+            unheld,
+            peak,
+            peak_f,
+            tension,
+            np.where(self._peak > 0, self._peak_layer, -1),
+            tuple(warns),
+            contact_side_loads=self._side.copy(),
+            contact_squeeze_loads=self._squeeze.copy(),
+            mechanism=self.mechanism,
+            support_force_n=np.zeros(n),
+            rated_force_n=rated,
+        )
 
 
 class _Areas:
@@ -484,7 +526,7 @@ def _suction(runs, lab, n_labels: int, below):
     """
     r, s, e = runs
     fmap, nf, sealed = np.arange(n_labels + 1), n_labels, np.zeros(0, np.int64)
-    gi = np.flatnonzero(r[1:] == r[:-1])                   # gap between run i and run i + 1
+    gi = np.flatnonzero(r[1:] == r[:-1])  # gap between run i and run i + 1
     if below is not None and gi.size:
         gaps = (r[gi], e[gi], s[gi + 1])
         first, last = np.r_[True, r[1:] != r[:-1]], np.r_[r[1:] != r[:-1], True]
@@ -497,17 +539,24 @@ def _suction(runs, lab, n_labels: int, below):
             vent |= (gaps[1] < span_s[j]) | (gaps[2] > span_e[j])
         ja, jb, ln = run_overlaps(gaps, below)
         vent |= np.bincount(ja, ln, gi.size) < gaps[2] - gaps[1]
-        if not vent.any():                                 # every gap sealed: no need to join them
+        if not vent.any():  # every gap sealed: no need to join them
             sealed = gi
         elif not vent.all():
             nc, cl = edge_components(gi.size, *run_overlaps(gaps, (gaps[0] - 1, gaps[1], gaps[2]))[:2])
             sealed = gi[~(np.bincount(cl, vent, nc) > 0)[cl]]
     if sealed.size:
-        nf, cl = edge_components(n_labels, lab[sealed] - 1, lab[sealed + 1] - 1) if n_labels > 1 else (1, np.zeros(1, int))
+        nf, cl = (
+            edge_components(n_labels, lab[sealed] - 1, lab[sealed + 1] - 1) if n_labels > 1 else (1, np.zeros(1, int))
+        )
         fmap = np.r_[0, cl + 1]
     comp = fmap[lab]
-    suc = [np.r_[r, r[sealed]], np.r_[s, e[sealed]], np.r_[e, s[sealed + 1]], np.r_[comp, comp[sealed]],
-           np.r_[np.zeros(r.size, bool), np.ones(sealed.size, bool)]]
+    suc = [
+        np.r_[r, r[sealed]],
+        np.r_[s, e[sealed]],
+        np.r_[e, s[sealed + 1]],
+        np.r_[comp, comp[sealed]],
+        np.r_[np.zeros(r.size, bool), np.ones(sealed.size, bool)],
+    ]
     order = np.lexsort((suc[1], suc[0]))
     suc = tuple(x[order] for x in suc)
     ia, _, ln = run_overlaps(suc, (suc[0] - 1, suc[1], suc[2]))  # cured length shared with the next row

@@ -81,16 +81,45 @@ from ..errors import MeshError, SettingsError
 from .pressure import solve_components
 from .separation import READS_LABELS, LayerShape, separation
 
-__all__ = ["TERMS", "WEIGHTS", "MAX_CELLS", "EXACT_LAYERS", "Orientation", "LayerProfile", "fibonacci_sphere",
-           "rotation_to_up", "rotation_from_angles", "scoring_pixel", "area_error_bound", "surface_terms",
-           "layer_profile", "score_directions", "pareto_front", "orient", "turn"]
+__all__ = [
+    "TERMS",
+    "WEIGHTS",
+    "MAX_CELLS",
+    "EXACT_LAYERS",
+    "Orientation",
+    "LayerProfile",
+    "fibonacci_sphere",
+    "rotation_to_up",
+    "rotation_from_angles",
+    "scoring_pixel",
+    "area_error_bound",
+    "surface_terms",
+    "layer_profile",
+    "score_directions",
+    "pareto_front",
+    "orient",
+    "turn",
+]
 
 #: Score terms, in physical units, and the weight setting of each.
-TERMS = ("peak_force_n", "near_peak_layers", "cup_area_mm2", "overhang_area_mm2", "minima",
-         "support_volume_mm3", "height_mm")
-WEIGHTS = {"peak_force_n": "weight_force", "near_peak_layers": "weight_near_peak", "cup_area_mm2": "weight_cup",
-           "overhang_area_mm2": "weight_overhang", "minima": "weight_minima",
-           "support_volume_mm3": "weight_volume", "height_mm": "weight_height"}
+TERMS = (
+    "peak_force_n",
+    "near_peak_layers",
+    "cup_area_mm2",
+    "overhang_area_mm2",
+    "minima",
+    "support_volume_mm3",
+    "height_mm",
+)
+WEIGHTS = {
+    "peak_force_n": "weight_force",
+    "near_peak_layers": "weight_near_peak",
+    "cup_area_mm2": "weight_cup",
+    "overhang_area_mm2": "weight_overhang",
+    "minima": "weight_minima",
+    "support_volume_mm3": "weight_volume",
+    "height_mm": "weight_height",
+}
 #: Cells (layers x rows x columns over the part's bounding sphere) the scoring grid may have:
 #: a few million keeps one candidate to tens of milliseconds (benchmarks/bench_orient.py).
 MAX_CELLS = 1_500_000
@@ -100,7 +129,7 @@ EXACT_LAYERS = 2
 REFINE_BEST, REFINE_EACH = 3, 30
 #: Smallest scale of a term, as a fraction of its largest value over the candidates (see :func:`orient`).
 SCALE_FLOOR = 1e-3
-_DIR_CHUNK = 16                     # directions per vectorised block of the surface terms
+_DIR_CHUNK = 16  # directions per vectorised block of the surface terms
 
 
 def fibonacci_sphere(n: int) -> np.ndarray:
@@ -125,7 +154,7 @@ def rotation_to_up(d) -> np.ndarray:
     c = float(d[2])
     if c < -1.0 + EPS_ZERO:
         return np.diag([1.0, -1.0, -1.0])
-    v = np.array([d[1], -d[0], 0.0])                   # d x z
+    v = np.array([d[1], -d[0], 0.0])  # d x z
     vx = np.array([[0.0, -v[2], v[1]], [v[2], 0.0, -v[0]], [-v[1], v[0], 0.0]])
     return np.eye(3) + vx + vx @ vx / (1.0 + c)
 
@@ -194,7 +223,7 @@ def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings) -> dict[str
     elev = settings.rules.elevation_mm
     out = {k: np.zeros(len(dirs)) for k in ("height_mm", "overhang_area_mm2", "minima", "support_volume_mm3")}
     for lo in range(0, len(dirs), _DIR_CHUNK):
-        d = np.asarray(dirs[lo: lo + _DIR_CHUNK], float)            # (k, 3): rows are directions
+        d = np.asarray(dirs[lo : lo + _DIR_CHUNK], float)  # (k, 3): rows are directions
         sl = slice(lo, lo + len(d))
         h = d @ vt
         hmin = h.min(axis=1)
@@ -218,7 +247,7 @@ class LayerProfile:
     area_mm2: np.ndarray
     sealed_mm2: np.ndarray
     force_n: np.ndarray
-    exact: np.ndarray            # layers whose force used the solved torsion constant
+    exact: np.ndarray  # layers whose force used the solved torsion constant
 
     @property
     def peak_force_n(self) -> float:
@@ -275,7 +304,7 @@ def _sealed(occ: np.ndarray) -> np.ndarray:
     holes = ~outside[lab]
     for k in np.flatnonzero(holes.any(axis=(1, 2))):
         if k == 0:
-            continue                                     # nothing below the first layer: vented
+            continue  # nothing below the first layer: vented
         vent_below = ~occ[k - 1] & ~sealed[k - 1]
         hk = holes[k]
         vented = outside.copy()
@@ -300,10 +329,10 @@ def _layer_forces(suction, pixel_mm, settings):
     p2 = pixel_mm * pixel_mm
     ip = p2 * p2 * ((srr - sr * sr / cnt) + (scc - sc * sc / cnt) + cnt / 6.0)
     area = cnt * p2
-    j_est = area ** 4 / (4.0 * np.pi ** 2 * ip)
+    j_est = area**4 / (4.0 * np.pi**2 * ip)
     comp_layer = np.zeros(n, np.int64)
     comp_layer[li] = kk
-    first = np.searchsorted(comp_layer, np.arange(nl + 1))   # labels run in scan order, layer by layer
+    first = np.searchsorted(comp_layer, np.arange(nl + 1))  # labels run in scan order, layer by layer
     if settings.printer.mechanism in READS_LABELS:
         for k in np.flatnonzero(first[1:] > first[:-1]):
             a, b = first[k], first[k + 1]
@@ -341,12 +370,19 @@ def layer_profile(mesh, rotation, pixel_mm: float, settings) -> LayerProfile:
         force[k] = law(LayerShape(sub, pixel_mm, aa, jj), settings).sum()
         exact[k] = True
     nl = occ.shape[0]
-    return LayerProfile(pixel_mm, (np.arange(nl) + 0.5) * pixel_mm, occ.sum(axis=(1, 2)) * p2,
-                        sealed.sum(axis=(1, 2)) * p2, force, exact)
+    return LayerProfile(
+        pixel_mm,
+        (np.arange(nl) + 0.5) * pixel_mm,
+        occ.sum(axis=(1, 2)) * p2,
+        sealed.sum(axis=(1, 2)) * p2,
+        force,
+        exact,
+    )
 
 
-def score_directions(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, pixel_mm: float | None = None
-                     ) -> dict[str, np.ndarray]:
+def score_directions(
+    mesh: trimesh.Trimesh, dirs: np.ndarray, settings, pixel_mm: float | None = None
+) -> dict[str, np.ndarray]:
     """Every term of :data:`TERMS` for each up-direction of ``dirs`` (K, 3), in physical units."""
     _check_mesh(mesh)
     dirs = np.atleast_2d(np.asarray(dirs, float))
@@ -372,7 +408,7 @@ def pareto_front(values: np.ndarray) -> np.ndarray:
     [0, 1, 3]
     """
     v = np.asarray(values, float)
-    le = (v[:, None, :] <= v[None, :, :]).all(axis=2)       # le[j, i]: row j at least as good as row i
+    le = (v[:, None, :] <= v[None, :, :]).all(axis=2)  # le[j, i]: row j at least as good as row i
     lt = (v[:, None, :] < v[None, :, :]).any(axis=2)
     dominated = (le & lt).any(axis=0)
     return np.flatnonzero(~dominated)
@@ -406,28 +442,39 @@ class Orientation:
 
     def candidate(self, i: int) -> dict:
         """One candidate as plain values."""
-        return {"index": int(i), "direction": [round(float(x), 6) for x in self.directions[i]],
-                "rotation": [[round(float(x), 9) for x in row] for row in self.rotations[i]],
-                "refined": bool(self.refined[i]),
-                "terms": {k: float(self.terms[k][i]) for k in (*TERMS, "peak_area_mm2")},
-                "total": float(self.total[i])}
+        return {
+            "index": int(i),
+            "direction": [round(float(x), 6) for x in self.directions[i]],
+            "rotation": [[round(float(x), 9) for x in row] for row in self.rotations[i]],
+            "refined": bool(self.refined[i]),
+            "terms": {k: float(self.terms[k][i]) for k in (*TERMS, "peak_area_mm2")},
+            "total": float(self.total[i]),
+        }
 
     def to_dict(self) -> dict:
-        return {"chosen": self.candidate(self.chosen), "given": self.candidate(self.keep),
-                "pareto": [int(i) for i in self.pareto], "weights": dict(self.weights),
-                "scales": {k: float(v) for k, v in self.scales.items()},
-                "grid": {"pixel_mm": self.pixel_mm, "layer_mm": self.pixel_mm,
-                         "error": "each layer's outline within half a pixel of the exact section (area within "
-                                  "perimeter x pixel / 2); force within about twice that, relative, plus 2 %"},
-                "candidates": [self.candidate(i) for i in range(len(self.total))]}
+        return {
+            "chosen": self.candidate(self.chosen),
+            "given": self.candidate(self.keep),
+            "pareto": [int(i) for i in self.pareto],
+            "weights": dict(self.weights),
+            "scales": {k: float(v) for k, v in self.scales.items()},
+            "grid": {
+                "pixel_mm": self.pixel_mm,
+                "layer_mm": self.pixel_mm,
+                "error": "each layer's outline within half a pixel of the exact section (area within "
+                "perimeter x pixel / 2); force within about twice that, relative, plus 2 %",
+            },
+            "candidates": [self.candidate(i) for i in range(len(self.total))],
+        }
 
 
 def _totals(terms, weights, scales):
     return sum(weights[k] * terms[k] / scales[k] for k in TERMS)
 
 
-def orient(mesh: trimesh.Trimesh, settings=None, *, n_directions: int | None = None,
-           pixel_mm: float | None = None) -> Orientation:
+def orient(
+    mesh: trimesh.Trimesh, settings=None, *, n_directions: int | None = None, pixel_mm: float | None = None
+) -> Orientation:
     """Score up-directions over the whole sphere and choose the best (lowest weighted total).
 
     Parameters
@@ -464,8 +511,7 @@ def orient(mesh: trimesh.Trimesh, settings=None, *, n_directions: int | None = N
     terms = score_directions(mesh, dirs, settings, pixel_mm)
     weights = {k: float(getattr(o, WEIGHTS[k])) for k in TERMS}
     # A term zero for most directions (minima of a convex part) is scaled by a thousandth of its largest value.
-    scales = {k: max(float(np.median(terms[k])), float(np.abs(terms[k]).max()) * SCALE_FLOOR, EPS_SMALL)
-              for k in TERMS}
+    scales = {k: max(float(np.median(terms[k])), float(np.abs(terms[k]).max()) * SCALE_FLOOR, EPS_SMALL) for k in TERMS}
     # A cup is measured against a layer's area: most directions have none, so its own median would be 0.
     scales["cup_area_mm2"] = max(float(np.median(terms["peak_area_mm2"])), EPS_SMALL)
     total = _totals(terms, weights, scales)
@@ -474,7 +520,7 @@ def orient(mesh: trimesh.Trimesh, settings=None, *, n_directions: int | None = N
     rng = np.random.default_rng(settings.rules.seed)
     extra = []
     for b in best:
-        r = rotation_to_up(dirs[b]).T                       # takes +z to dirs[b]
+        r = rotation_to_up(dirs[b]).T  # takes +z to dirs[b]
         t = spacing * np.sqrt(rng.random(REFINE_EACH))
         ph = rng.random(REFINE_EACH) * 2 * np.pi
         local = np.column_stack([np.sin(t) * np.cos(ph), np.sin(t) * np.sin(ph), np.cos(t)])
@@ -488,5 +534,6 @@ def orient(mesh: trimesh.Trimesh, settings=None, *, n_directions: int | None = N
     active = [k for k in TERMS if weights[k] > 0]
     pareto = pareto_front(np.column_stack([terms[k] for k in active]))
     rotations = np.stack([rotation_to_up(d) for d in dirs])
-    return Orientation(dirs, rotations, terms, total, int(np.argmin(total)), 0, pareto, refined, pixel_mm,
-                       weights, scales)
+    return Orientation(
+        dirs, rotations, terms, total, int(np.argmin(total)), 0, pareto, refined, pixel_mm, weights, scales
+    )

@@ -69,7 +69,7 @@ __all__ = [
 
 #: Coarse cells across the half-width ``2A/P`` the coarse grid keeps (see Notes above).
 CELLS_ACROSS = 12
-_STEPS = ((-1, 0), (0, -1), (0, 1), (1, 0))          # up, left, right, down: index order
+_STEPS = ((-1, 0), (0, -1), (0, 1), (1, 0))  # up, left, right, down: index order
 
 
 def _system(frac: np.ndarray):
@@ -134,7 +134,7 @@ def _lump(inside: np.ndarray, cav: np.ndarray | None):
     if cav is None or not (cav & inside).any():
         return None
     lab, m = ndimage.label(cav & inside)
-    cells = lab[inside]                       # 0 for film cells, 1..m for cavity cells
+    cells = lab[inside]  # 0 for film cells, 1..m for cavity cells
     n = cells.size
     film = cells == 0
     col = np.empty(n, np.int64)
@@ -160,10 +160,18 @@ def _factor_solve(frac: np.ndarray, cell_mm: float, kept=None, cav: np.ndarray |
     film law.  For a ring of radii ``Ro > Ri`` over a sealed cavity this gives
     ``J = (pi/2)(Ro^4 - Ri^4)``, not the full disc's ``pi Ro^4 / 2``.
     """
-    same_cav = lambda a, b: (a is None and b is None) or (a is not None and b is not None  # noqa: E731
-                                                          and a.shape == b.shape and np.array_equal(a, b))
-    if (kept is not None and kept[0].shape == frac.shape and np.array_equal(kept[0], frac)
-            and same_cav(kept[4] if len(kept) > 4 else None, cav)):
+
+    def same_cav(a, b):
+        return (a is None and b is None) or (
+            a is not None and b is not None and a.shape == b.shape and np.array_equal(a, b)
+        )
+
+    if (
+        kept is not None
+        and kept[0].shape == frac.shape
+        and np.array_equal(kept[0], frac)
+        and same_cav(kept[4] if len(kept) > 4 else None, cav)
+    ):
         return kept[3], kept
     phi = np.zeros(frac.shape)
     inside, a = _system(frac)
@@ -176,8 +184,7 @@ def _factor_solve(frac: np.ndarray, cell_mm: float, kept=None, cav: np.ndarray |
         a = (lump.T @ a @ lump).tocsc()
         b = lump.T @ b
     kept_cav = kept[4] if kept is not None and len(kept) > 4 else None
-    if (kept is not None and kept[2] is not None and np.array_equal(kept[1], inside)
-            and same_cav(kept_cav, cav)):
+    if kept is not None and kept[2] is not None and np.array_equal(kept[1], inside) and same_cav(kept_cav, cav):
         x = _pcg(a, b, kept[2])
         if x is not None:
             phi[inside] = x if lump is None else lump @ x
@@ -220,7 +227,7 @@ def solve_runs(rows, starts, ends, edges: int, pixel_mm: float, origin, kept=Non
     area = int((ends - starts).sum())
     has_cav = cavity is not None and bool(np.any(cavity))
     film_area, film_edges = area, edges
-    if has_cav:           # the film is the rim: its width sets the grid, the cavity's edge counts too
+    if has_cav:  # the film is the rim: its width sets the grid, the cavity's edge counts too
         c = np.asarray(cavity, bool)
         cav_runs = (rows[c], starts[c], ends[c])
         cav_area = int((cav_runs[2] - cav_runs[1]).sum())
@@ -238,8 +245,9 @@ def solve_runs(rows, starts, ends, edges: int, pixel_mm: float, origin, kept=Non
     da = frac * cell * cell
     w = phi * da
     r, c = np.nonzero(w > 0)
-    pts = np.column_stack([origin[0] + ((j0 + c) * s + (s - 1) / 2) * pixel_mm,
-                           origin[1] + ((i0 + r) * s + (s - 1) / 2) * pixel_mm])
+    pts = np.column_stack(
+        [origin[0] + ((j0 + c) * s + (s - 1) / 2) * pixel_mm, origin[1] + ((i0 + r) * s + (s - 1) / 2) * pixel_mm]
+    )
     return 4.0 * float(w.sum()), area * pixel_mm**2, pts, w[r, c], da[r, c], ((s, i0, j0), state)
 
 
@@ -306,7 +314,7 @@ def pressure_shape(mask: np.ndarray, pixel_mm: float, factor: int = 1) -> np.nda
     phi = _solve_fraction(_block_fraction(mask, s), s * pixel_mm)
     if s > 1:
         py, px = _pads(mask, s)
-        phi = np.repeat(np.repeat(phi, s, 0), s, 1)[py: py + mask.shape[0], px: px + mask.shape[1]] * mask
+        phi = np.repeat(np.repeat(phi, s, 0), s, 1)[py : py + mask.shape[0], px : px + mask.shape[1]] * mask
     return phi
 
 
@@ -358,8 +366,15 @@ def _edges(crop: np.ndarray) -> int:
     return int((p[1:, :] != p[:-1, :]).sum() + (p[:, 1:] != p[:, :-1]).sum())
 
 
-def solve_components(labels: np.ndarray, ids, pixel_mm: float, origin=(0.0, 0.0), objects=None,
-                     factor: int | None = None, cavities: np.ndarray | None = None):
+def solve_components(
+    labels: np.ndarray,
+    ids,
+    pixel_mm: float,
+    origin=(0.0, 0.0),
+    objects=None,
+    factor: int | None = None,
+    cavities: np.ndarray | None = None,
+):
     """Torsion constant and pressure samples of chosen labelled components.
 
     Parameters
@@ -414,8 +429,9 @@ def solve_components(labels: np.ndarray, ids, pixel_mm: float, origin=(0.0, 0.0)
     return out
 
 
-def sealed_cavities(mask: np.ndarray, below_mask: np.ndarray | None = None,
-                    below_sealed: np.ndarray | None = None) -> np.ndarray:
+def sealed_cavities(
+    mask: np.ndarray, below_mask: np.ndarray | None = None, below_sealed: np.ndarray | None = None
+) -> np.ndarray:
     """Holes of a layer that no resin can reach: they pull like cured area.
 
     Parameters

@@ -46,9 +46,21 @@ from ..analysis.runlength import mask_runs
 from ..errors import SettingsError
 from ..settings import MECHANISMS
 
-__all__ = ["LayerShape", "pull_force", "slide_force", "tilt_force", "SEPARATION", "READS_LABELS",
-           "separation", "force_unit_n", "squeeze_force_n", "film_constants", "capped_sample_forces",
-           "peel_sweep", "SIDE_LOAD"]
+__all__ = [
+    "LayerShape",
+    "pull_force",
+    "slide_force",
+    "tilt_force",
+    "SEPARATION",
+    "READS_LABELS",
+    "separation",
+    "force_unit_n",
+    "squeeze_force_n",
+    "film_constants",
+    "capped_sample_forces",
+    "peel_sweep",
+    "SIDE_LOAD",
+]
 
 
 @dataclass(frozen=True)
@@ -107,7 +119,9 @@ def squeeze_force_n(torsion_mm4, viscosity_pa_s, speed_mm_s, gap_mm):
     >>> round(float(squeeze_force_n(np.pi * 10.0**4 / 2, 1.0, 1.0, 0.05)), 1)   # about 380 N
     377.0
     """
-    return 1e-6 * np.asarray(viscosity_pa_s) * speed_mm_s * 3.0 * np.asarray(torsion_mm4, float) / np.asarray(gap_mm) ** 3
+    return (
+        1e-6 * np.asarray(viscosity_pa_s) * speed_mm_s * 3.0 * np.asarray(torsion_mm4, float) / np.asarray(gap_mm) ** 3
+    )
 
 
 def capped_sample_forces(phi_da, da, settings) -> np.ndarray:
@@ -144,8 +158,9 @@ def pull_force(shape: LayerShape, settings) -> np.ndarray:
     if shape.samples is not None:
         squeeze = np.array([capped_sample_forces(w, da, settings).sum() for w, da in shape.samples])
     else:
-        raw = p.force_calibration * squeeze_force_n(shape.torsion_mm4, settings.resin.viscosity_pa_s,
-                                                    p.lift_speed_mm_s, p.film_gap_mm)
+        raw = p.force_calibration * squeeze_force_n(
+            shape.torsion_mm4, settings.resin.viscosity_pa_s, p.lift_speed_mm_s, p.film_gap_mm
+        )
         squeeze = np.minimum(raw, ceiling * area)
     return squeeze.reshape(area.shape) + b * cured
 
@@ -186,8 +201,7 @@ def _strip_integral(w, kp, ceiling):
     return np.where(u2 > 0, capped, full)
 
 
-def peel_sweep(rows, starts, ends, comp, n: int, pixel_mm: float, origin, settings,
-               band_mm: float | None = None):
+def peel_sweep(rows, starts, ends, comp, n: int, pixel_mm: float, origin, settings, band_mm: float | None = None):
     """Force and first moments of every component at each position of the peel front.
 
     Model (ours; assumptions): the film peels from the layer's low-x side, the
@@ -229,8 +243,8 @@ def peel_sweep(rows, starts, ends, comp, n: int, pixel_mm: float, origin, settin
         return np.zeros((n, 0)), np.zeros((n, 0)), np.zeros((n, 0))
     first = int(starts.min()) - nb + 1
     m_count = (int(ends.max()) - 1 - first) // step + 1
-    lo = -((first - (starts - nb + 1)) // step)                         # first position meeting the run
-    hi = np.minimum(m_count - 1, (ends - 1 - first) // step)           # last position meeting it
+    lo = -((first - (starts - nb + 1)) // step)  # first position meeting the run
+    hi = np.minimum(m_count - 1, (ends - 1 - first) // step)  # last position meeting it
     cnt = np.maximum(hi - lo + 1, 0)
     run = np.repeat(np.arange(rows.size), cnt)
     pos = lo[run] + (np.arange(run.size) - np.repeat(np.cumsum(cnt) - cnt, cnt))
@@ -303,5 +317,4 @@ def separation(name: str):
     try:
         return SEPARATION[name]
     except KeyError:
-        raise SettingsError(
-            f"unknown separation mechanism {name!r}; valid names: {', '.join(SEPARATION)}") from None
+        raise SettingsError(f"unknown separation mechanism {name!r}; valid names: {', '.join(SEPARATION)}") from None

@@ -15,8 +15,17 @@ import numpy as np
 
 __all__ = ["CAUTIONS", "REPORT_KEYS", "to_json", "markdown"]
 
-REPORT_KEYS = ("input", "settings", "outputs", "supports", "forces", "verification", "estimates",
-               "timing_s", "warnings")
+REPORT_KEYS = (
+    "input",
+    "settings",
+    "outputs",
+    "supports",
+    "forces",
+    "verification",
+    "estimates",
+    "timing_s",
+    "warnings",
+)
 
 CAUTIONS = """\
 Handle resin and prints with care:

@@ -19,10 +19,15 @@ from .document import to_json
 
 __all__ = ["orientation_json", "orientation_markdown", "plot_orientation"]
 
-_LABELS = {"peak_force_n": "peak layer force (N)", "near_peak_layers": "layers near the peak",
-           "cup_area_mm2": "sealed cup area facing the film (mm²)", "overhang_area_mm2": "overhang area (mm²)",
-           "minima": "local minima", "support_volume_mm3": "support volume estimate (mm³)",
-           "height_mm": "print height (mm)"}
+_LABELS = {
+    "peak_force_n": "peak layer force (N)",
+    "near_peak_layers": "layers near the peak",
+    "cup_area_mm2": "sealed cup area facing the film (mm²)",
+    "overhang_area_mm2": "overhang area (mm²)",
+    "minima": "local minima",
+    "support_volume_mm3": "support volume estimate (mm³)",
+    "height_mm": "print height (mm)",
+}
 
 
 def orientation_json(o: Orientation, name: str, extra: dict | None = None) -> str:
@@ -33,21 +38,30 @@ def orientation_json(o: Orientation, name: str, extra: dict | None = None) -> st
 def orientation_markdown(o: Orientation, name: str, image: str | None = None, max_pareto: int = 12) -> str:
     """A short human summary: chosen against given, the weights, and the best Pareto alternatives."""
     c, g = o.candidate(o.chosen), o.candidate(o.keep)
-    lines = [f"# Orientation: {name}", "",
-             f"Chosen up-direction (input frame) {tuple(round(x, 3) for x in c['direction'])}, "
-             f"score {c['total']:.3f} (given orientation: {g['total']:.3f}; lower is better).", "",
-             "| term | given | chosen | weight |", "|---|---|---|---|"]
+    lines = [
+        f"# Orientation: {name}",
+        "",
+        f"Chosen up-direction (input frame) {tuple(round(x, 3) for x in c['direction'])}, "
+        f"score {c['total']:.3f} (given orientation: {g['total']:.3f}; lower is better).",
+        "",
+        "| term | given | chosen | weight |",
+        "|---|---|---|---|",
+    ]
     for k in TERMS:
         lines.append(f"| {_LABELS[k]} | {g['terms'][k]:.4g} | {c['terms'][k]:.4g} | {o.weights[k]:g} |")
-    lines += ["", f"Scoring grid: {o.pixel_mm:.3g} mm pixels and layers; each layer's outline is within half a "
-              "pixel of the exact section. `generate` recomputes every figure at the printer's resolution.", "",
-              f"## Pareto-optimal candidates ({len(o.pareto)}; best {min(max_pareto, len(o.pareto))} by score)", "",
-              "| # | direction | score | " + " | ".join(_LABELS[k] for k in TERMS) + " |",
-              "|---|---|---|" + "---|" * len(TERMS)]
+    lines += [
+        "",
+        f"Scoring grid: {o.pixel_mm:.3g} mm pixels and layers; each layer's outline is within half a "
+        "pixel of the exact section. `generate` recomputes every figure at the printer's resolution.",
+        "",
+        f"## Pareto-optimal candidates ({len(o.pareto)}; best {min(max_pareto, len(o.pareto))} by score)",
+        "",
+        "| # | direction | score | " + " | ".join(_LABELS[k] for k in TERMS) + " |",
+        "|---|---|---|" + "---|" * len(TERMS),
+    ]
     for i in sorted(o.pareto, key=lambda i: o.total[i])[:max_pareto]:
         d = ", ".join(f"{x:.3f}" for x in o.directions[i])
-        lines.append(f"| {i} | ({d}) | {o.total[i]:.3f} | "
-                     + " | ".join(f"{o.terms[k][i]:.4g}" for k in TERMS) + " |")
+        lines.append(f"| {i} | ({d}) | {o.total[i]:.3f} | " + " | ".join(f"{o.terms[k][i]:.4g}" for k in TERMS) + " |")
     if image:
         lines += ["", f"![sphere of directions and the part as chosen]({image})"]
     return "\n".join(lines) + "\n"
@@ -56,7 +70,7 @@ def orientation_markdown(o: Orientation, name: str, image: str | None = None, ma
 def _lambert(d: np.ndarray) -> np.ndarray:
     """Equal-area (Lambert azimuthal) map of unit vectors of one hemisphere about +z: the unit disc."""
     z = np.abs(d[:, 2])
-    r = np.sqrt(np.clip(1.0 - z, 0.0, None))          # radius sqrt(2) sin(theta/2), scaled to 1 at the equator
+    r = np.sqrt(np.clip(1.0 - z, 0.0, None))  # radius sqrt(2) sin(theta/2), scaled to 1 at the equator
     xy = d[:, :2]
     n = np.linalg.norm(xy, axis=1)
     n[n == 0] = 1.0
@@ -74,8 +88,10 @@ def plot_orientation(o: Orientation, part, title: str) -> bytes:
     lo, hi = np.percentile(o.total, [2, 98])
     up = o.directions[:, 2] >= 0
     sc = None
-    for ax, half, label in ((axes[0], up, "up-directions with z >= 0 (input frame)"),
-                            (axes[1], ~up, "up-directions with z < 0")):
+    for ax, half, label in (
+        (axes[0], up, "up-directions with z >= 0 (input frame)"),
+        (axes[1], ~up, "up-directions with z < 0"),
+    ):
         p = _lambert(o.directions[half])
         sc = ax.scatter(p[:, 0], p[:, 1], c=o.total[half], cmap="viridis_r", vmin=lo, vmax=hi, s=14)
         ids = np.flatnonzero(half)
@@ -83,7 +99,7 @@ def plot_orientation(o: Orientation, part, title: str) -> bytes:
         ax.scatter(p[par, 0], p[par, 1], facecolors="none", edgecolors="k", s=40, lw=0.7, label="Pareto-optimal")
         for idx, marker, colour, text in ((o.chosen, "*", "#d62728", "chosen"), (o.keep, "s", "#ff7f0e", "given")):
             if half[idx]:
-                q = _lambert(o.directions[idx: idx + 1])
+                q = _lambert(o.directions[idx : idx + 1])
                 ax.scatter(q[:, 0], q[:, 1], marker=marker, s=160, c=colour, edgecolors="k", label=text, zorder=5)
         ax.add_patch(Circle((0, 0), 1.0, fill=False, lw=0.6))
         ax.set_aspect("equal")

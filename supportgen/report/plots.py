@@ -32,8 +32,9 @@ def _png(fig) -> bytes:
     return buf.getvalue()
 
 
-def plot_layers(z_mm: np.ndarray, area_mm2: np.ndarray, force_n: np.ndarray | None, title: str,
-                rated_force_n: float | None = None) -> bytes:
+def plot_layers(
+    z_mm: np.ndarray, area_mm2: np.ndarray, force_n: np.ndarray | None, title: str, rated_force_n: float | None = None
+) -> bytes:
     """PNG bytes: cured area and separation force per layer, side by side against height."""
     ncols = 2 if force_n is not None else 1
     fig = _figure(figsize=(4.2 * ncols, 4.2))
@@ -49,8 +50,11 @@ def plot_layers(z_mm: np.ndarray, area_mm2: np.ndarray, force_n: np.ndarray | No
         if rated_force_n and np.nanmax(force_n, initial=0.0) >= 0.3 * rated_force_n:
             ax.axvline(rated_force_n, color="k", ls="--", lw=0.8, label="printer's rated force")
             ax.legend(loc="lower right", fontsize=8)
-        ax.set_xlabel("separation force per layer (N)" if not rated_force_n else
-                      f"separation force per layer (N; printer rated {rated_force_n:g} N)")
+        ax.set_xlabel(
+            "separation force per layer (N)"
+            if not rated_force_n
+            else f"separation force per layer (N; printer rated {rated_force_n:g} N)"
+        )
         ax.grid(alpha=0.3)
     fig.suptitle(title, fontsize=10)
     return _png(fig)
@@ -127,8 +131,9 @@ def plot_preview(part, supports, title: str) -> bytes:
             tris.append(triangles)
             colours.append(np.column_stack([np.outer(shade, rgb), np.ones(len(shade))]))
         # One collection, so faces of part and supports are depth-sorted together.
-        ax.add_collection3d(Poly3DCollection(np.concatenate(tris), facecolors=np.concatenate(colours),
-                                             linewidths=0, antialiased=False))
+        ax.add_collection3d(
+            Poly3DCollection(np.concatenate(tris), facecolors=np.concatenate(colours), linewidths=0, antialiased=False)
+        )
         ax.set_xlim(mid[0] - span, mid[0] + span)
         ax.set_ylim(mid[1] - span, mid[1] + span)
         ax.set_zlim(mid[2] - span, mid[2] + span)

@@ -56,8 +56,9 @@ def _split(guard: Guard, points: np.ndarray, diam: np.ndarray):
     return on, np.where(on, region, -1)
 
 
-def protection_section(guard: Guard, holder: Holder | None, contacts: Contacts, plan: SupportPlan,
-                       file_info: dict | None = None) -> dict:
+def protection_section(
+    guard: Guard, holder: Holder | None, contacts: Contacts, plan: SupportPlan, file_info: dict | None = None
+) -> dict:
     """The ``protection`` section (see the module notes); coordinates are input coordinates."""
     diam = _tip_diameters(contacts, plan)
     area = np.pi * diam**2 / 4
@@ -70,19 +71,28 @@ def protection_section(guard: Guard, holder: Holder | None, contacts: Contacts, 
         faces = np.flatnonzero(guard.region == r)
         fa = np.asarray(part.area_faces)[faces]
         centre = (np.asarray(part.triangles_center)[faces] * fa[:, None]).sum(0) / max(fa.sum(), 1e-300) - guard.offset
-        regions.append({"region": r, "faces": int(len(faces)), "area_mm2": float(fa.sum()),
-                        "centre_mm": [round(float(v), 3) for v in centre],
-                        "contacts": int(np.count_nonzero(region == r)),
-                        "tip_area_mm2": float(area[region == r].sum()),
-                        "landings": int(np.count_nonzero(l_region == r))})
+        regions.append(
+            {
+                "region": r,
+                "faces": int(len(faces)),
+                "area_mm2": float(fa.sum()),
+                "centre_mm": [round(float(v), 3) for v in centre],
+                "contacts": int(np.count_nonzero(region == r)),
+                "tip_area_mm2": float(area[region == r].sum()),
+                "landings": int(np.count_nonzero(l_region == r)),
+            }
+        )
     return {
         "selectors": list(guard.described),
         "protected_faces": int(guard.faces.sum()),
         "protected_area_mm2": float(np.asarray(part.area_faces)[guard.faces].sum()),
         "keep_off_mm": guard.keep_off_mm,
         "regions": regions,
-        "rest": {"contacts": int(np.count_nonzero(~on)), "tip_area_mm2": float(area[~on].sum()),
-                 "landings": int(np.count_nonzero(~l_on))},
+        "rest": {
+            "contacts": int(np.count_nonzero(~on)),
+            "tip_area_mm2": float(area[~on].sum()),
+            "landings": int(np.count_nonzero(~l_on)),
+        },
         "contacts_on_protected": int(np.count_nonzero(on)),
         "landings_on_protected": int(np.count_nonzero(l_on)),
         "contacts_moved": holder.moved if holder else 0,
@@ -96,21 +106,34 @@ def add_protection(report: dict, section: dict, name: str) -> dict:
     """A new report with ``protection`` and its warnings added."""
     warnings = list(report.get("warnings") or [])
     if section["contacts_on_protected"] or section["landings_on_protected"]:
-        warnings.append({"code": "protected-scar", "message": (
-            f"{name}: {section['contacts_on_protected']} contact(s) and {section['landings_on_protected']} "
-            "landing(s) touch a protected surface (locked rows of the contacts file); unlock or move them")})
+        warnings.append(
+            {
+                "code": "protected-scar",
+                "message": (
+                    f"{name}: {section['contacts_on_protected']} contact(s) and {section['landings_on_protected']} "
+                    "landing(s) touch a protected surface (locked rows of the contacts file); unlock or move them"
+                ),
+            }
+        )
     for u in section["unholdable"]:
         warnings.append({"code": "protected-unholdable", "message": f"{name}: {u['message']}"})
     info = section.get("contacts_file")
     if info and info.get("added_by_check"):
-        warnings.append({"code": "contacts-added", "message": (
-            f"{name}: the check needed {info['added_by_check']} contact(s) that {info['path']} does not have; "
-            "they were added (see NAME.contacts.csv)")})
+        warnings.append(
+            {
+                "code": "contacts-added",
+                "message": (
+                    f"{name}: the check needed {info['added_by_check']} contact(s) that {info['path']} does not have; "
+                    "they were added (see NAME.contacts.csv)"
+                ),
+            }
+        )
     return {**report, "protection": section, "warnings": warnings}
 
 
-def plot_underside(part: trimesh.Trimesh, protected: np.ndarray | None, contacts: Contacts, plan: SupportPlan,
-                   title: str) -> bytes:
+def plot_underside(
+    part: trimesh.Trimesh, protected: np.ndarray | None, contacts: Contacts, plan: SupportPlan, title: str
+) -> bytes:
     """PNG bytes: the part seen from below (x mirrored), protected faces shaded red,
     contacts marked (crosses on a protected face), landings as triangles."""
     from matplotlib.collections import PolyCollection
@@ -122,8 +145,9 @@ def plot_underside(part: trimesh.Trimesh, protected: np.ndarray | None, contacts
     order = np.argsort(-tri[:, :, 2].min(axis=1), kind="stable")
     shade = 0.55 + 0.4 * np.clip(-nz, 0, 1)
     colours = np.column_stack([shade, shade, shade, np.ones(len(tri))])
-    colours[prot] = np.column_stack([0.85 * np.ones(prot.sum()), 0.3 * shade[prot], 0.3 * shade[prot],
-                                     np.ones(prot.sum())])
+    colours[prot] = np.column_stack(
+        [0.85 * np.ones(prot.sum()), 0.3 * shade[prot], 0.3 * shade[prot], np.ones(prot.sum())]
+    )
     fig = _figure(figsize=(5.6, 5.6))
     ax = fig.subplots()
     xy = tri[order][:, :, :2] * np.array([-1.0, 1.0])
@@ -160,7 +184,13 @@ def contacts_csv(contacts: Contacts, plan: SupportPlan, tip_safety, offset) -> s
     per = np.full(len(contacts), np.inf)
     served = plan.tip_contact >= 0
     if len(sf) == len(plan.tip_contact):
-        np.fmin.at(per, plan.tip_contact[served], sf[served])   # fmin: a missing factor (nan) is skipped
+        np.fmin.at(per, plan.tip_contact[served], sf[served])  # fmin: a missing factor (nan) is skipped
     per[~np.isfinite(per)] = np.nan
-    return format_contacts(contacts.points - np.asarray(offset, float), contacts.normals, contacts.kinds,
-                           _tip_diameters(contacts, plan), contacts.loads, per)
+    return format_contacts(
+        contacts.points - np.asarray(offset, float),
+        contacts.normals,
+        contacts.kinds,
+        _tip_diameters(contacts, plan),
+        contacts.loads,
+        per,
+    )

@@ -36,9 +36,20 @@ import numpy as np
 
 from .document import CAUTIONS
 
-__all__ = ["part_page", "batch_index", "sf_colours", "encode_mesh", "vendor_version", "contact_safety",
-           "failure_marks", "srgb_to_lab", "FAIL_COLOUR",
-           "SF_SCALE_MAX", "SF_ROUNDING_REL", "QUANTISE_ABOVE_BYTES"]
+__all__ = [
+    "part_page",
+    "batch_index",
+    "sf_colours",
+    "encode_mesh",
+    "vendor_version",
+    "contact_safety",
+    "failure_marks",
+    "srgb_to_lab",
+    "FAIL_COLOUR",
+    "SF_SCALE_MAX",
+    "SF_ROUNDING_REL",
+    "QUANTISE_ABOVE_BYTES",
+]
 
 #: Mesh buffers larger than this (bytes, positions plus indices, before base64)
 #: have their positions quantised to uint16 within the bounding box, which keeps
@@ -60,9 +71,9 @@ SF_SCALE_MAX = 50.0
 # far above it.  Anchors are interpolated in CIE L*a*b* so lightness falls
 # steadily from the target to SF_SCALE_MAX (L* about 89, 66, 45, 18).
 _SF_ANCHORS = ("#ffe066", "#3bb273", "#2b6cb0", "#2d1e5f")
-FAIL_COLOUR = "#e4002b"       # below 1: the tip tears off
-_UNDER_COLOUR = "#ff7f11"      # between 1 and the target
-_NA_COLOUR = "#9a9a9a"         # no factor known
+FAIL_COLOUR = "#e4002b"  # below 1: the tip tears off
+_UNDER_COLOUR = "#ff7f11"  # between 1 and the target
+_NA_COLOUR = "#9a9a9a"  # no factor known
 _PART_COLOUR = "#e6e1d6"
 _SUPPORT_COLOUR = "#8d9bab"
 
@@ -70,6 +81,7 @@ _VENDOR_FILES = ("three.core.min.js", "three.module.min.js", "OrbitControls.js")
 
 
 # --------------------------------------------------------------------------- helpers
+
 
 def _get(d: Any, *path, default=None):
     """``d[path[0]][path[1]]...`` or ``default`` where any step is missing or not a dict."""
@@ -138,8 +150,9 @@ def _tool_version() -> str:
 
 # --------------------------------------------------------------------------- colours
 
+
 def _hex_to_rgb(h: str) -> np.ndarray:
-    return np.array([int(h[i:i + 2], 16) for i in (1, 3, 5)], float) / 255.0
+    return np.array([int(h[i : i + 2], 16) for i in (1, 3, 5)], float) / 255.0
 
 
 def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
@@ -203,6 +216,7 @@ def _css(rgb) -> str:
 
 # --------------------------------------------------------------------------- meshes
 
+
 def _b64(a: np.ndarray) -> str:
     return base64.b64encode(np.ascontiguousarray(a).tobytes()).decode("ascii")
 
@@ -224,8 +238,12 @@ def encode_mesh(vertices, faces, *, quantise_above: int | None = None) -> dict:
     v = np.asarray(vertices, float).reshape(-1, 3)
     f = np.asarray(faces, np.int64).reshape(-1, 3)
     itype = np.uint16 if len(v) <= 65535 else np.uint32
-    out = {"vertices": int(len(v)), "faces": int(len(f)), "index_type": np.dtype(itype).name,
-           "index": _b64(f.astype(itype).astype(np.dtype(itype).newbyteorder("<")))}
+    out = {
+        "vertices": int(len(v)),
+        "faces": int(len(f)),
+        "index_type": np.dtype(itype).name,
+        "index": _b64(f.astype(itype).astype(np.dtype(itype).newbyteorder("<"))),
+    }
     raw = v.size * 4 + f.size * np.dtype(itype).itemsize
     if quantise_above is None:
         quantise_above = QUANTISE_ABOVE_BYTES
@@ -235,8 +253,7 @@ def encode_mesh(vertices, faces, *, quantise_above: int | None = None) -> dict:
         q = np.clip(np.round((v - lo) / step), 0, 65535).astype("<u2")
         out.update(positions_type="uint16", positions=_b64(q), lo=lo.tolist(), step=step.tolist())
     else:
-        out.update(positions_type="float32", positions=_b64(v.astype("<f4")), lo=[0.0, 0.0, 0.0],
-                   step=[1.0, 1.0, 1.0])
+        out.update(positions_type="float32", positions=_b64(v.astype("<f4")), lo=[0.0, 0.0, 0.0], step=[1.0, 1.0, 1.0])
     return out
 
 
@@ -247,6 +264,7 @@ def _mesh_parts(mesh) -> tuple[np.ndarray, np.ndarray]:
 
 
 # --------------------------------------------------------------------------- contacts and failures
+
 
 def contact_safety(records: Iterable[dict], report: dict) -> dict:
     """Points, diameters and safety factors of the contacts.
@@ -272,8 +290,12 @@ def contact_safety(records: Iterable[dict], report: dict) -> dict:
         dia.append(d if d is not None else np.nan)
         sf.append(s if s is not None else np.nan)
         load.append(f if f is not None else np.nan)
-    return {"points": np.array(pts, float).reshape(-1, 3), "diameters": np.array(dia, float),
-            "sf": np.array(sf, float), "loads": np.array(load, float)}
+    return {
+        "points": np.array(pts, float).reshape(-1, 3),
+        "diameters": np.array(dia, float),
+        "sf": np.array(sf, float),
+        "loads": np.array(load, float),
+    }
 
 
 def failure_marks(report: dict) -> list[dict]:
@@ -289,8 +311,13 @@ def failure_marks(report: dict) -> list[dict]:
             z = _num(_get(i, "z_mm"))
             if z is None and _num(_get(i, "layer")) is not None:
                 z = (_num(i["layer"]) + 1) * layer_mm
-            out.append({"kind": kind, "xyz": [_num(xy[0]), _num(xy[1]), z or 0.0],
-                        "text": f"{kind} starting in mid-air at layer {_get(i, 'layer', default='n/a')}"})
+            out.append(
+                {
+                    "kind": kind,
+                    "xyz": [_num(xy[0]), _num(xy[1]), z or 0.0],
+                    "text": f"{kind} starting in mid-air at layer {_get(i, 'layer', default='n/a')}",
+                }
+            )
     reach, limit = _num(_get(ver, "max_unsupported_reach_mm")), _num(_get(ver, "reach_limit_mm"))
     # Key names of the current report first, then those of reports written before the rename.
     xy = _get(ver, "max_unsupported_reach_xy_mm") or _get(ver, "worst_reach_xy_mm")
@@ -298,13 +325,19 @@ def failure_marks(report: dict) -> list[dict]:
     if reach is not None and limit is not None and reach > limit and isinstance(xy, (list, tuple)) and len(xy) >= 2:
         layer = _num(_get(ver, layer_key))
         z = (layer + 1) * layer_mm if layer is not None else 0.0
-        out.append({"kind": "reach", "xyz": [_num(xy[0]) or 0.0, _num(xy[1]) or 0.0, z],
-                    "text": f"layer {_get(ver, layer_key, default='n/a')} reaches {reach:.2f} mm "
-                            f"past the layer below (limit {limit:g} mm)"})
+        out.append(
+            {
+                "kind": "reach",
+                "xyz": [_num(xy[0]) or 0.0, _num(xy[1]) or 0.0, z],
+                "text": f"layer {_get(ver, layer_key, default='n/a')} reaches {reach:.2f} mm "
+                f"past the layer below (limit {limit:g} mm)",
+            }
+        )
     return out
 
 
 # --------------------------------------------------------------------------- SVG charts
+
 
 def _nice_ticks(lo: float, hi: float, n: int = 5) -> list[float]:
     """Round tick values covering [lo, hi] (steps of 1, 2 or 5 times a power of ten)."""
@@ -361,43 +394,61 @@ def _layer_plot(report: dict) -> tuple[str, dict]:
     if show_rated:
         ftop = max(ftop, rated * 1.08)
     elif rated:
-        note = (f"The printer's rated force, {rated:g} N, is off this scale: the peak is "
-                f"{100 * fmax / rated:.0f} % of it.")
+        note = (
+            f"The printer's rated force, {rated:g} N, is off this scale: the peak is {100 * fmax / rated:.0f} % of it."
+        )
     amax = float(np.nanmax(s["area"])) if np.isfinite(s["area"]).any() else 0.0
-    for k, (key, label, colour, top) in enumerate((("area", "cured area (mm²)", "#2f6690", amax * 1.12 or 1.0),
-                                                   ("force", "separation force (N)", "#c0392b", ftop))):
+    for k, (key, label, colour, top) in enumerate(
+        (
+            ("area", "cured area (mm²)", "#2f6690", amax * 1.12 or 1.0),
+            ("force", "separation force (N)", "#c0392b", ftop),
+        )
+    ):
         y0 = T + k * (ph + GAP)
         y = s[key]
         ok = np.isfinite(y)
         grid = []
         for t in _nice_ticks(0.0, top):
             yy = y0 + ph - t / top * ph
-            grid.append(f'<line class="grid" x1="{L}" x2="{W - R}" y1="{yy:.1f}" y2="{yy:.1f}"/>'
-                        f'<text class="tick" x="{L - 6}" y="{yy + 4:.1f}" text-anchor="end">{_tick_label(t)}</text>')
+            grid.append(
+                f'<line class="grid" x1="{L}" x2="{W - R}" y1="{yy:.1f}" y2="{yy:.1f}"/>'
+                f'<text class="tick" x="{L - 6}" y="{yy + 4:.1f}" text-anchor="end">{_tick_label(t)}</text>'
+            )
         pts = " ".join(f"{x_of(zz):.1f},{y0 + ph - yy / top * ph:.1f}" for zz, yy in zip(z[ok], y[ok]))
         line = f'<polyline class="series" fill="none" stroke="{colour}" stroke-width="1.5" points="{pts}"/>'
         extra = ""
         if key == "force" and show_rated:
             yy = y0 + ph - rated / top * ph
-            extra = (f'<line class="rated" x1="{L}" x2="{W - R}" y1="{yy:.1f}" y2="{yy:.1f}"/>'
-                     f'<text class="rated-label" x="{W - R - 4}" y="{yy - 5:.1f}" text-anchor="end">'
-                     f"printer's rated force {rated:g} N</text>")
+            extra = (
+                f'<line class="rated" x1="{L}" x2="{W - R}" y1="{yy:.1f}" y2="{yy:.1f}"/>'
+                f'<text class="rated-label" x="{W - R - 4}" y="{yy - 5:.1f}" text-anchor="end">'
+                f"printer's rated force {rated:g} N</text>"
+            )
         panels.append(
             f'<g class="panel" data-key="{key}" data-top="{top:.6g}" data-y0="{y0:.1f}" data-h="{ph:.1f}">'
             f'<rect class="frame" x="{L}" y="{y0:.1f}" width="{W - L - R}" height="{ph:.1f}"/>'
-            + "".join(grid) + line + extra +
-            f'<text class="axis-label" transform="translate(14 {y0 + ph / 2:.1f}) rotate(-90)" '
-            f'text-anchor="middle">{label}</text></g>')
-    xt = "".join(f'<text class="tick" x="{x_of(t):.1f}" y="{H - B + 16}" text-anchor="middle">{_tick_label(t)}</text>'
-                 for t in _nice_ticks(zlo, zhi, 8))
-    svg = (f'<svg id="layer-plot" viewBox="0 0 {W} {H}" role="img" aria-label="cured area and separation force '
-           f'per layer against height" data-left="{L}" data-right="{W - R}" data-zlo="{zlo}" data-zhi="{zhi:.6g}">'
-           + "".join(panels) + xt +
-           f'<text class="axis-label" x="{(L + W - R) / 2}" y="{H - 4}" text-anchor="middle">'
-           'height above the plate (mm)</text>'
-           f'<line id="hover-line" class="hover" x1="0" x2="0" y1="{T}" y2="{H - B}" visibility="hidden"/></svg>')
-    data = {k: [None if not np.isfinite(v) else round(float(v), 5) for v in s[k]]
-            for k in ("z", "area", "force", "unheld")}
+            + "".join(grid)
+            + line
+            + extra
+            + f'<text class="axis-label" transform="translate(14 {y0 + ph / 2:.1f}) rotate(-90)" '
+            f'text-anchor="middle">{label}</text></g>'
+        )
+    xt = "".join(
+        f'<text class="tick" x="{x_of(t):.1f}" y="{H - B + 16}" text-anchor="middle">{_tick_label(t)}</text>'
+        for t in _nice_ticks(zlo, zhi, 8)
+    )
+    svg = (
+        f'<svg id="layer-plot" viewBox="0 0 {W} {H}" role="img" aria-label="cured area and separation force '
+        f'per layer against height" data-left="{L}" data-right="{W - R}" data-zlo="{zlo}" data-zhi="{zhi:.6g}">'
+        + "".join(panels)
+        + xt
+        + f'<text class="axis-label" x="{(L + W - R) / 2}" y="{H - 4}" text-anchor="middle">'
+        "height above the plate (mm)</text>"
+        f'<line id="hover-line" class="hover" x1="0" x2="0" y1="{T}" y2="{H - B}" visibility="hidden"/></svg>'
+    )
+    data = {
+        k: [None if not np.isfinite(v) else round(float(v), 5) for v in s[k]] for k in ("z", "area", "force", "unheld")
+    }
     return svg + (f'<p class="note">{_e(note)}</p>' if note else ""), data
 
 
@@ -405,8 +456,9 @@ def _histogram(values: np.ndarray, target: float | None, title: str, element_id:
     """SVG histogram of safety factors on log-spaced bins; bars coloured on the page's scale."""
     v = values[~np.isnan(values)]
     if len(v) == 0:
-        return (f'<div class="hist" id="{element_id}"><h3>{_e(title)}</h3>'
-                '<p class="na">n/a: none in this report</p></div>')
+        return (
+            f'<div class="hist" id="{element_id}"><h3>{_e(title)}</h3><p class="na">n/a: none in this report</p></div>'
+        )
     edges = np.concatenate([[0.0], np.geomspace(1.0, 100.0, 21), [np.inf]])
     counts = np.histogram(np.minimum(v, 1e300), bins=edges)[0]
     W, H, L, R, T, B = 340, 190, 40, 10, 10, 40
@@ -418,32 +470,53 @@ def _histogram(values: np.ndarray, target: float | None, title: str, element_id:
     bars = []
     for k, c in enumerate(counts):
         h = c / top * (H - T - B)
-        lo_txt = ("below 1" if k == 0 else f"{edges[k]:.3g} and above" if k == n - 1
-                  else f"{edges[k]:.3g} to {edges[k + 1]:.3g}")
-        bars.append(f'<rect x="{L + k * bw + 0.5:.1f}" y="{H - B - h:.1f}" width="{bw - 1:.1f}" height="{h:.1f}" '
-                    f'fill="{_css(colours[k])}"><title>{c} with safety factor {lo_txt}</title></rect>')
+        lo_txt = (
+            "below 1"
+            if k == 0
+            else f"{edges[k]:.3g} and above"
+            if k == n - 1
+            else f"{edges[k]:.3g} to {edges[k + 1]:.3g}"
+        )
+        bars.append(
+            f'<rect x="{L + k * bw + 0.5:.1f}" y="{H - B - h:.1f}" width="{bw - 1:.1f}" height="{h:.1f}" '
+            f'fill="{_css(colours[k])}"><title>{c} with safety factor {lo_txt}</title></rect>'
+        )
 
     def x_of(sf):
         return L + bw + (math.log10(sf) / 2.0) * (bw * (n - 2))
 
-    ticks = "".join(f'<text class="tick" x="{x_of(t):.1f}" y="{H - B + 14}" text-anchor="middle">{t:g}</text>'
-                    for t in (2, 5, 10, 20, 50, 100))
+    ticks = "".join(
+        f'<text class="tick" x="{x_of(t):.1f}" y="{H - B + 14}" text-anchor="middle">{t:g}</text>'
+        for t in (2, 5, 10, 20, 50, 100)
+    )
     ticks += f'<text class="tick" x="{L + bw / 2:.1f}" y="{H - B + 14}" text-anchor="middle">&lt;1</text>'
     tline = ""
     if target and 1.0 <= target <= 100.0:
         tx = x_of(target)
-        tline = (f'<line class="rated" x1="{tx:.1f}" x2="{tx:.1f}" y1="{T}" y2="{H - B}"/>'
-                 f'<text class="rated-label" x="{tx + 4:.1f}" y="{T + 10}">target {target:g}</text>')
-    yt = "".join(f'<text class="tick" x="{L - 5}" y="{H - B - t / top * (H - T - B) + 4:.1f}" text-anchor="end">'
-                 f'{t:g}</text>' for t in _nice_ticks(0, top, 4) if t == int(t))
-    stats = (f"{len(v)} values; lowest {np.min(v):.3g}, median {np.median(v):.3g}; "
-             f"{int(np.sum(v < (target or 1.0) * (1 - SF_ROUNDING_REL)))} below the target")
-    return (f'<div class="hist" id="{element_id}"><h3>{_e(title)}</h3>'
-            f'<svg viewBox="0 0 {W} {H}" role="img" aria-label="{_e(title)}">'
-            f'<line class="axis" x1="{L}" x2="{W - R}" y1="{H - B}" y2="{H - B}"/>'
-            + "".join(bars) + ticks + yt + tline +
-            f'<text class="axis-label" x="{(L + W - R) / 2}" y="{H - 6}" text-anchor="middle">'
-            f"safety factor (capacity / peak load, log scale)</text></svg><p class=\"stats\">{_e(stats)}</p></div>")
+        tline = (
+            f'<line class="rated" x1="{tx:.1f}" x2="{tx:.1f}" y1="{T}" y2="{H - B}"/>'
+            f'<text class="rated-label" x="{tx + 4:.1f}" y="{T + 10}">target {target:g}</text>'
+        )
+    yt = "".join(
+        f'<text class="tick" x="{L - 5}" y="{H - B - t / top * (H - T - B) + 4:.1f}" text-anchor="end">{t:g}</text>'
+        for t in _nice_ticks(0, top, 4)
+        if t == int(t)
+    )
+    stats = (
+        f"{len(v)} values; lowest {np.min(v):.3g}, median {np.median(v):.3g}; "
+        f"{int(np.sum(v < (target or 1.0) * (1 - SF_ROUNDING_REL)))} below the target"
+    )
+    return (
+        f'<div class="hist" id="{element_id}"><h3>{_e(title)}</h3>'
+        f'<svg viewBox="0 0 {W} {H}" role="img" aria-label="{_e(title)}">'
+        f'<line class="axis" x1="{L}" x2="{W - R}" y1="{H - B}" y2="{H - B}"/>'
+        + "".join(bars)
+        + ticks
+        + yt
+        + tline
+        + f'<text class="axis-label" x="{(L + W - R) / 2}" y="{H - 6}" text-anchor="middle">'
+        f'safety factor (capacity / peak load, log scale)</text></svg><p class="stats">{_e(stats)}</p></div>'
+    )
 
 
 def _legend(target: float) -> str:
@@ -454,18 +527,21 @@ def _legend(target: float) -> str:
     ticks = [t for t in (lo, 5, 10, 20, hi) if lo <= t <= hi]
     ticks = sorted(set(ticks))
     marks = "".join(f'<span style="left:{100 * math.log(t / lo) / math.log(hi / lo):.1f}%">{t:g}</span>' for t in ticks)
-    return (f'<div id="legend" class="legend"><div class="legend-title">Contact safety factor</div>'
-            f'<div class="ramp" style="background: linear-gradient(to right, {grad})"></div>'
-            f'<div class="ramp-ticks">{marks}</div>'
-            f'<div class="swatches"><span><i style="background:{FAIL_COLOUR}"></i>below 1: fails</span>'
-            f'<span><i style="background:{_UNDER_COLOUR}"></i>1 to target {target:g}</span>'
-            f'<span><i style="background:{_NA_COLOUR}"></i>n/a</span></div>'
-            f'<div class="swatches"><span><i style="background:{_PART_COLOUR}"></i>part</span>'
-            f'<span><i style="background:{_SUPPORT_COLOUR}"></i>supports and base</span>'
-            f'<span><i class="ring"></i>failed check</span></div></div>')
+    return (
+        f'<div id="legend" class="legend"><div class="legend-title">Contact safety factor</div>'
+        f'<div class="ramp" style="background: linear-gradient(to right, {grad})"></div>'
+        f'<div class="ramp-ticks">{marks}</div>'
+        f'<div class="swatches"><span><i style="background:{FAIL_COLOUR}"></i>below 1: fails</span>'
+        f'<span><i style="background:{_UNDER_COLOUR}"></i>1 to target {target:g}</span>'
+        f'<span><i style="background:{_NA_COLOUR}"></i>n/a</span></div>'
+        f'<div class="swatches"><span><i style="background:{_PART_COLOUR}"></i>part</span>'
+        f'<span><i style="background:{_SUPPORT_COLOUR}"></i>supports and base</span>'
+        f'<span><i class="ring"></i>failed check</span></div></div>'
+    )
 
 
 # --------------------------------------------------------------------------- tables
+
 
 def _table(rows: list[tuple[str, str]], element_id: str | None = None, cls: str = "kv") -> str:
     attr = f' id="{element_id}"' if element_id else ""
@@ -495,15 +571,17 @@ def _cautions_html() -> str:
     lines = CAUTIONS.strip().splitlines()
     intro = lines[0] if lines and not lines[0].startswith("-") else ""
     items, cur = [], None
-    for line in lines[1 if intro else 0:]:
+    for line in lines[1 if intro else 0 :]:
         if line.startswith("- "):
             cur = [line[2:].strip()]
             items.append(cur)
         elif cur is not None and line.strip():
             cur.append(line.strip())
     lis = "".join(f"<li>{_e(' '.join(i))}</li>" for i in items)
-    return (f'<section id="cautions" class="card cautions"><h2>Handling cautions</h2><p>{_e(intro)}</p>'
-            f"<ul>{lis}</ul></section>")
+    return (
+        f'<section id="cautions" class="card cautions"><h2>Handling cautions</h2><p>{_e(intro)}</p>'
+        f"<ul>{lis}</ul></section>"
+    )
 
 
 def _verdict(report: dict) -> tuple[str, str]:
@@ -516,31 +594,36 @@ def _verdict(report: dict) -> tuple[str, str]:
 
 
 def _page(title: str, body: str, script: str, head_extra: str = "") -> str:
-    return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
-            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
-            f"<meta name=\"generator\" content=\"supportgen {_e(_tool_version())}\">"
-            f"<title>{_e(title)}</title><style>{_asset('page.css')}</style>"
-            # Status for headless checks: any uncaught error or console.error marks the page.
-            "<script>(function(){var b=function(){return document.body};"
-            "function fail(m){var d=b();if(d&&!(d.dataset.status||'').startsWith('error'))d.dataset.status='error: '+m;"
-            "window.__pageErrors=(window.__pageErrors||[]).concat([String(m)]);}"
-            "window.addEventListener('error',function(e){fail(e.message||"
-            "('failed to load '+((e.target&&e.target.src)||'a resource')))},true);"
-            "window.addEventListener('unhandledrejection',function(e){fail(e.reason&&e.reason.message||String(e.reason))});"
-            "var ce=console.error;console.error=function(){fail(Array.prototype.join.call(arguments,' '));"
-            "return ce.apply(console,arguments)};})();</script>"
-            f"{head_extra}</head><body data-status=\"loading\">{body}{script}</body></html>\n")
+    return (
+        '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">'
+        f'<meta name="generator" content="supportgen {_e(_tool_version())}">'
+        f"<title>{_e(title)}</title><style>{_asset('page.css')}</style>"
+        # Status for headless checks: any uncaught error or console.error marks the page.
+        "<script>(function(){var b=function(){return document.body};"
+        "function fail(m){var d=b();if(d&&!(d.dataset.status||'').startsWith('error'))d.dataset.status='error: '+m;"
+        "window.__pageErrors=(window.__pageErrors||[]).concat([String(m)]);}"
+        "window.addEventListener('error',function(e){fail(e.message||"
+        "('failed to load '+((e.target&&e.target.src)||'a resource')))},true);"
+        "window.addEventListener('unhandledrejection',function(e){fail(e.reason&&e.reason.message||String(e.reason))});"
+        "var ce=console.error;console.error=function(){fail(Array.prototype.join.call(arguments,' '));"
+        "return ce.apply(console,arguments)};})();</script>"
+        f'{head_extra}</head><body data-status="loading">{body}{script}</body></html>\n'
+    )
 
 
 # --------------------------------------------------------------------------- the part page
+
 
 def _importmap() -> str:
     """An import map of data: URLs for three.js and its orbit controls (works from file://)."""
     core = _vendor("three.core.min.js")
     module = _vendor("three.module.min.js")
     if 'from"./three.core.min.js"' not in module:
-        raise RuntimeError("supportgen/report/vendor/three.module.min.js does not import ./three.core.min.js as "
-                           "expected; run scripts/refresh_vendor.sh to restore the pinned version")
+        raise RuntimeError(
+            "supportgen/report/vendor/three.module.min.js does not import ./three.core.min.js as "
+            "expected; run scripts/refresh_vendor.sh to restore the pinned version"
+        )
     module = module.replace('from"./three.core.min.js"', 'from"three/core"')
     controls = _vendor("OrbitControls.js")
 
@@ -565,9 +648,12 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
     """
     report = report if isinstance(report, dict) else {}
     name = _get(report, "input", "name", default="part")
-    target = _num(_get(report, "forces", "target_safety_factor")) or \
-        _num(_get(report, "settings", "rules", "safety_factor")) or \
-        _num(_get(report, "settings", "supports", "safety_factor")) or 1.0
+    target = (
+        _num(_get(report, "forces", "target_safety_factor"))
+        or _num(_get(report, "settings", "rules", "safety_factor"))
+        or _num(_get(report, "settings", "supports", "safety_factor"))
+        or 1.0
+    )
     verdict, vclass = _verdict(report)
 
     # 3D scene data
@@ -583,11 +669,15 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
     colours = sf_colours(c["sf"], target)
     fails = failure_marks(report)
     scene = {
-        "part": encode_mesh(pv, pf), "supports": encode_mesh(sv, sf_),
+        "part": encode_mesh(pv, pf),
+        "supports": encode_mesh(sv, sf_),
         "bounds": [lo.tolist(), hi.tolist()],
-        "contacts": {"count": int(len(c["points"])), "points": _b64(c["points"].astype("<f4")),
-                     "diameters": _b64(np.nan_to_num(c["diameters"], nan=0.0).astype("<f4")),
-                     "colours": _b64(colours)},
+        "contacts": {
+            "count": int(len(c["points"])),
+            "points": _b64(c["points"].astype("<f4")),
+            "diameters": _b64(np.nan_to_num(c["diameters"], nan=0.0).astype("<f4")),
+            "colours": _b64(colours),
+        },
         "failures": fails,
         "colours": {"part": _PART_COLOUR, "supports": _SUPPORT_COLOUR, "fail": FAIL_COLOUR},
         "plate": [_num(_get(report, "settings", "printer", k)) for k in ("build_x_mm", "build_y_mm")],
@@ -606,20 +696,36 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
         min_tip = float(np.nanmin(tip_sf))
     c_sf = c["sf"][np.isfinite(c["sf"])]
     cards = [
-        ("contacts", _e(_get(sup, "contacts", default=len(c["points"]) or None)),
-         f"{_e(_get(sup, 'landings', default='n/a'))} posts land on the part"),
-        ("peak separation force", _e(_fmt(peak, 2, "N")),
-         f"{_fmt(100 * peak / rated, 0)} % of the rated {rated:g} N" if peak is not None and rated
-         else "rated force n/a"),
+        (
+            "contacts",
+            _e(_get(sup, "contacts", default=len(c["points"]) or None)),
+            f"{_e(_get(sup, 'landings', default='n/a'))} posts land on the part",
+        ),
+        (
+            "peak separation force",
+            _e(_fmt(peak, 2, "N")),
+            f"{_fmt(100 * peak / rated, 0)} % of the rated {rated:g} N"
+            if peak is not None and rated
+            else "rated force n/a",
+        ),
         ("lowest tip safety factor", _e(_fmt(min_tip, 2)), f"target {target:g}"),
         ("lowest post safety factor", _e(_fmt(_get(frc, "min_post_safety_factor"), 2)), f"target {target:g}"),
-        ("support volume", _e(_fmt(_get(sup, "volume_mm3"), 0, "mm³")),
-         f"base {_fmt(_get(sup, 'base_volume_mm3'), 0, 'mm³')}"),
-        ("print time, resin", _e(_fmt((_num(_get(est, "print_time_s")) or math.nan) / 3600, 2, "h")),
-         f"{_fmt(_get(est, 'resin_ml'), 1, 'ml')}, {_fmt(_get(est, 'layers'), 0)} layers"),
+        (
+            "support volume",
+            _e(_fmt(_get(sup, "volume_mm3"), 0, "mm³")),
+            f"base {_fmt(_get(sup, 'base_volume_mm3'), 0, 'mm³')}",
+        ),
+        (
+            "print time, resin",
+            _e(_fmt((_num(_get(est, "print_time_s")) or math.nan) / 3600, 2, "h")),
+            f"{_fmt(_get(est, 'resin_ml'), 1, 'ml')}, {_fmt(_get(est, 'layers'), 0)} layers",
+        ),
     ]
-    cards_html = "".join(f'<div class="fig"><div class="fig-label">{_e(k)}</div><div class="fig-value">{v}</div>'
-                         f'<div class="fig-sub">{_e(sub)}</div></div>' for k, v, sub in cards)
+    cards_html = "".join(
+        f'<div class="fig"><div class="fig-label">{_e(k)}</div><div class="fig-value">{v}</div>'
+        f'<div class="fig-sub">{_e(sub)}</div></div>'
+        for k, v, sub in cards
+    )
 
     # check failures and warnings
     items = []
@@ -627,29 +733,40 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
         items.append(f'<li class="failure"><span class="tag fail">check failed</span> {_e(f)}</li>')
     for k, f in enumerate(fails):
         x, y, z = f["xyz"]
-        items.append(f'<li class="failure"><span class="tag fail">{_e(f["kind"])}</span> {_e(f["text"])} at x {x:.2f}, '
-                     f'y {y:.2f}, z {z:.2f} mm <button class="link" data-focus="{k}">show in 3D</button></li>')
+        items.append(
+            f'<li class="failure"><span class="tag fail">{_e(f["kind"])}</span> {_e(f["text"])} at x {x:.2f}, '
+            f'y {y:.2f}, z {z:.2f} mm <button class="link" data-focus="{k}">show in 3D</button></li>'
+        )
     for w in _get(report, "warnings", default=[]) or []:
         code = _get(w, "code", default="note") if isinstance(w, dict) else "note"
         msg = _get(w, "message", default="n/a") if isinstance(w, dict) else w
         items.append(f'<li><span class="tag warn">{_e(code)}</span> {_e(msg)}</li>')
     n_contacts_fail = int(np.sum(c_sf < 1.0 - SF_ROUNDING_REL))
     if n_contacts_fail:
-        items.append(f'<li class="failure"><span class="tag fail">weak tips</span> {n_contacts_fail} contact(s) '
-                     "have a safety factor below 1 (red in the 3D view)</li>")
-    warnings_html = (f'<ul class="warnings">{"".join(items)}</ul>' if items
-                     else '<p class="ok-note">No warnings and no failed checks.</p>')
+        items.append(
+            f'<li class="failure"><span class="tag fail">weak tips</span> {n_contacts_fail} contact(s) '
+            "have a safety factor below 1 (red in the 3D view)</li>"
+        )
+    warnings_html = (
+        f'<ul class="warnings">{"".join(items)}</ul>'
+        if items
+        else '<p class="ok-note">No warnings and no failed checks.</p>'
+    )
 
     # distributions: tips always; posts and side loads where the report carries them
     hists = [_histogram(tip_sf, target, "Tip safety factors", "sf-hist")]
-    for label, path, hid in (("Post safety factors", ("supports", "posts", "safety_factor"), "post-hist"),
-                             ("Side-load safety factors", ("supports", "side_loads", "safety_factor"), "side-hist")):
+    for label, path, hid in (
+        ("Post safety factors", ("supports", "posts", "safety_factor"), "post-hist"),
+        ("Side-load safety factors", ("supports", "side_loads", "safety_factor"), "side-hist"),
+    ):
         vals = _floats(_get(report, *path))
         if len(vals):
             hists.append(_histogram(vals, target, label, hid))
     if len(hists) == 1:
-        hists.append(f'<div class="hist" id="post-hist"><h3>Post safety factors</h3><p class="na">Only the lowest is '
-                     f"recorded: {_e(_fmt(_get(frc, 'min_post_safety_factor'), 2))} (target {target:g}).</p></div>")
+        hists.append(
+            f'<div class="hist" id="post-hist"><h3>Post safety factors</h3><p class="na">Only the lowest is '
+            f"recorded: {_e(_fmt(_get(frc, 'min_post_safety_factor'), 2))} (target {target:g}).</p></div>"
+        )
 
     # provenance
     prov = _get(report, "provenance", default={}) or {}
@@ -674,10 +791,16 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
 
     timing_html = _table(timing_rows, "timing") if timing_rows else '<p class="na" id="timing">n/a</p>'
     settings = _get(report, "settings", default={})
-    settings_html = (_table(_flat(settings), "settings") if isinstance(settings, dict) and settings
-                     else '<p class="na" id="settings">n/a</p>')
-    contact_note = (f"{len(c_sf)} contacts with a known factor; lowest {np.min(c_sf):.3g}" if len(c_sf)
-                    else "contact safety factors: n/a")
+    settings_html = (
+        _table(_flat(settings), "settings")
+        if isinstance(settings, dict) and settings
+        else '<p class="na" id="settings">n/a</p>'
+    )
+    contact_note = (
+        f"{len(c_sf)} contacts with a known factor; lowest {np.min(c_sf):.3g}"
+        if len(c_sf)
+        else "contact safety factors: n/a"
+    )
     body = f"""
 <header class="top"><div><div class="kicker">supportgen report</div><h1 id="title">{_e(name)}</h1></div>
 <div id="verdict" class="verdict {vclass}">{_e(verdict)}</div></header>
@@ -723,8 +846,15 @@ they are estimates, not measurements.</footer>
 
 # --------------------------------------------------------------------------- the batch index
 
-_STATUS_CLASS = {"ok": "pass", "passes": "pass", "failed-check": "fail", "failed": "fail", "error": "fail",
-                 "refused": "warn", "timeout": "warn"}
+_STATUS_CLASS = {
+    "ok": "pass",
+    "passes": "pass",
+    "failed-check": "fail",
+    "failed": "fail",
+    "error": "fail",
+    "refused": "warn",
+    "timeout": "warn",
+}
 
 
 def batch_index(rows: list[dict], title: str = "Batch") -> str:
@@ -734,8 +864,14 @@ def batch_index(rows: list[dict], title: str = "Batch") -> str:
     ``reason``, ``peak_force_n``, ``contacts``, ``volume_mm3`` (support volume) and
     ``time_s``; anything missing shows "n/a".  Click a column heading to sort.
     """
-    cols = (("name", "part", None), ("status", "status", None), ("peak_force_n", "peak force (N)", 2),
-            ("contacts", "contacts", 0), ("volume_mm3", "support volume (mm³)", 0), ("time_s", "time (s)", 1))
+    cols = (
+        ("name", "part", None),
+        ("status", "status", None),
+        ("peak_force_n", "peak force (N)", 2),
+        ("contacts", "contacts", 0),
+        ("volume_mm3", "support volume (mm³)", 0),
+        ("time_s", "time (s)", 1),
+    )
     body_rows = []
     counts: dict[str, int] = {}
     for r in rows or []:
@@ -759,8 +895,11 @@ def batch_index(rows: list[dict], title: str = "Batch") -> str:
                 f = _num(v)
                 cells.append(f'<td class="num" data-sort="{"" if f is None else repr(f)}">{_e(_fmt(f, digits))}</td>')
         body_rows.append("<tr>" + "".join(cells) + "</tr>")
-    head = "".join(f'<th data-col="{k}" data-type="{"text" if d is None else "num"}" tabindex="0">{_e(lab)}'
-                   f'<span class="arrow"></span></th>' for k, (_, lab, d) in enumerate(cols))
+    head = "".join(
+        f'<th data-col="{k}" data-type="{"text" if d is None else "num"}" tabindex="0">{_e(lab)}'
+        f'<span class="arrow"></span></th>'
+        for k, (_, lab, d) in enumerate(cols)
+    )
     summary = ", ".join(f"{n} {_e(s)}" for s, n in sorted(counts.items())) or "no parts"
     body = f"""
 <header class="top"><div><div class="kicker">supportgen batch</div><h1 id="title">{_e(title)}</h1></div>

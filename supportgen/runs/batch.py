@@ -78,20 +78,48 @@ from .memory import peak_rss_mb
 from .signals import stop_on_signals
 from .workers import dask_client, run_dask, run_local
 
-__all__ = ["SUFFIXES", "STATUSES", "BAD_STATUSES", "SUMMARY_FIELDS", "OUTPUT_SUFFIXES", "MANIFEST_SUFFIX",
-           "MEMORY_BASE_MB", "MEMORY_MASK_FACTOR", "MEMORY_FACE_BYTES", "FileResult", "BatchSummary", "Job",
-           "discover", "settings_hash", "file_hash", "mesh_footprint", "estimate_peak_mb", "discard_outputs",
-           "run_job", "write_summary", "run_batch"]
+__all__ = [
+    "SUFFIXES",
+    "STATUSES",
+    "BAD_STATUSES",
+    "SUMMARY_FIELDS",
+    "OUTPUT_SUFFIXES",
+    "MANIFEST_SUFFIX",
+    "MEMORY_BASE_MB",
+    "MEMORY_MASK_FACTOR",
+    "MEMORY_FACE_BYTES",
+    "FileResult",
+    "BatchSummary",
+    "Job",
+    "discover",
+    "settings_hash",
+    "file_hash",
+    "mesh_footprint",
+    "estimate_peak_mb",
+    "discard_outputs",
+    "run_job",
+    "write_summary",
+    "run_batch",
+]
 
 SUFFIXES = READ_FORMATS
 STATUSES = ("ok", "failed", "timeout", "crashed", "skipped", "refused")
 BAD_STATUSES = frozenset({"failed", "timeout", "crashed", "refused"})
-SUMMARY_FIELDS = ("file", "status", "reason", "contacts", "support_volume_mm3", "passed", "seconds", "peak_mb",
-                  "peak_force_n")
+SUMMARY_FIELDS = (
+    "file",
+    "status",
+    "reason",
+    "contacts",
+    "support_volume_mm3",
+    "passed",
+    "seconds",
+    "peak_mb",
+    "peak_force_n",
+)
 #: What Result.save writes for one part (supportgen.pipeline.OUTPUTS), plus the manifest in the same set.
 OUTPUT_SUFFIXES = tuple(OUTPUTS.values())
 MANIFEST_SUFFIX = ".batch.json"
-file_hash = sha256_of        # sha256 (hex) of a file's bytes
+file_hash = sha256_of  # sha256 (hex) of a file's bytes
 
 
 @dataclass(frozen=True)
@@ -105,7 +133,7 @@ class FileResult:
     support_volume_mm3: float | None = None
     passed: bool | None = None
     seconds: float = 0.0
-    peak_mb: float | None = None      # the worker process's peak resident memory so far (an upper bound)
+    peak_mb: float | None = None  # the worker process's peak resident memory so far (an upper bound)
     peak_force_n: float | None = None
 
     @property
@@ -150,16 +178,16 @@ class BatchSummary:
 class Job:
     """Everything a worker needs for one file; picklable."""
 
-    source: str                 # input path
-    rel: str                    # input path relative to the input folder (posix)
-    outdir: str                 # output folder of this file
-    name: str                   # output name (NAME.supported.stl ...)
+    source: str  # input path
+    rel: str  # input path relative to the input folder (posix)
+    outdir: str  # output folder of this file
+    name: str  # output name (NAME.supported.stl ...)
     settings: Settings
     strategy: str
     memory_limit_mb: float | None = None
     timeout_s: float | None = None  # counted from the job's own start, in the worker (Dask): past it nothing is saved
-    note: str = ""              # said in the row (a renamed output)
-    protect: tuple = ()         # protect selectors for every file (side-car files add their own)
+    note: str = ""  # said in the row (a renamed output)
+    protect: tuple = ()  # protect selectors for every file (side-car files add their own)
 
     @property
     def files(self) -> list[str]:
@@ -236,9 +264,16 @@ def _row(job: Job, report: dict, status: str, seconds: float, reason: str = "") 
     ver = report["verification"]
     if not reason and not ver["passed"]:
         reason = "check failed: " + "; ".join(ver.get("failures", [])[:3])
-    return FileResult(job.rel, status, reason or job.note, int(report["supports"]["contacts"]),
-                      round(float(report["supports"]["volume_mm3"]), 3), bool(ver["passed"]), round(seconds, 3),
-                      peak_force_n=round(float(report["forces"]["peak_layer_force_n"]), 4))
+    return FileResult(
+        job.rel,
+        status,
+        reason or job.note,
+        int(report["supports"]["contacts"]),
+        round(float(report["supports"]["volume_mm3"]), 3),
+        bool(ver["passed"]),
+        round(seconds, 3),
+        peak_force_n=round(float(report["forces"]["peak_layer_force_n"]), 4),
+    )
 
 
 class _Late(Exception):
@@ -253,20 +288,31 @@ def _refusal(job: Job, t0: float) -> FileResult | None:
     need = estimate_peak_mb(faces, bounds, job.settings)
     if need <= job.memory_limit_mb:
         return None
-    return FileResult(job.rel, "refused", f"{job.rel}: needs about {need:.0f} MB ({faces} faces, "
-                      f"{np.ptp(bounds[:, 0]):.1f} x {np.ptp(bounds[:, 1]):.1f} mm at "
-                      f"{job.settings.printer.pixel_mm} mm pixels), over the {job.memory_limit_mb:g} MB "
-                      "limit; raise --memory-limit or use coarser pixels", seconds=round(time.perf_counter() - t0, 3))
+    return FileResult(
+        job.rel,
+        "refused",
+        f"{job.rel}: needs about {need:.0f} MB ({faces} faces, "
+        f"{np.ptp(bounds[:, 0]):.1f} x {np.ptp(bounds[:, 1]):.1f} mm at "
+        f"{job.settings.printer.pixel_mm} mm pixels), over the {job.memory_limit_mb:g} MB "
+        "limit; raise --memory-limit or use coarser pixels",
+        seconds=round(time.perf_counter() - t0, 3),
+    )
 
 
 def _manifest(job: Job, input_sha: str, row: FileResult):
     """The manifest's producer: a function of the staged files of the set (see ``commit_set``)."""
+
     def make(staged) -> bytes:
-        doc = {"input": job.rel, "input_sha256": input_sha,
-               "settings_sha256": settings_hash(job.settings, job.strategy), "strategy": job.strategy,
-               "outputs": [o.to_dict() for o in staged.values()],
-               **{k: row.to_dict()[k] for k in SUMMARY_FIELDS[3:7]}}
+        doc = {
+            "input": job.rel,
+            "input_sha256": input_sha,
+            "settings_sha256": settings_hash(job.settings, job.strategy),
+            "strategy": job.strategy,
+            "outputs": [o.to_dict() for o in staged.values()],
+            **{k: row.to_dict()[k] for k in SUMMARY_FIELDS[3:7]},
+        }
         return (json.dumps(doc, indent=1, sort_keys=True) + "\n").encode("utf-8")
+
     return make
 
 
@@ -298,16 +344,27 @@ def run_job(job: Job) -> FileResult:
         refused = _refusal(job, t0)
         if refused is not None:
             return refused
-        result = pipeline.generate(job.source, job.settings, strategy=job.strategy, name=job.name, progress=False,
-                                   protect=list(job.protect) or None)
+        result = pipeline.generate(
+            job.source,
+            job.settings,
+            strategy=job.strategy,
+            name=job.name,
+            progress=False,
+            protect=list(job.protect) or None,
+        )
         in_time()
         row = _row(job, result.report, "ok", time.perf_counter() - t0)
-        result.save(job.outdir, extra={"manifest": (job.manifest.name, _manifest(job, input_sha, row))},
-                    before_commit=in_time)
+        result.save(
+            job.outdir, extra={"manifest": (job.manifest.name, _manifest(job, input_sha, row))}, before_commit=in_time
+        )
         return dataclasses.replace(row, peak_mb=peak_rss_mb())
     except _Late:
-        return FileResult(job.rel, "timeout", f"took longer than {job.timeout_s:g} s; finished late, nothing saved",
-                          seconds=round(time.perf_counter() - t0, 3))
+        return FileResult(
+            job.rel,
+            "timeout",
+            f"took longer than {job.timeout_s:g} s; finished late, nothing saved",
+            seconds=round(time.perf_counter() - t0, 3),
+        )
     except SupportGenError as exc:
         reason = str(exc)
     except OSError as exc:
@@ -344,8 +401,9 @@ def _up_to_date(job: Job, settings_sha: str) -> dict | None:
     return m if m.get("input_sha256") == file_hash(job.source) else None
 
 
-def _skipped(job: Job, m: dict, reason: str = "outputs up to date (same input and settings)",
-             status: str = "skipped") -> FileResult:
+def _skipped(
+    job: Job, m: dict, reason: str = "outputs up to date (same input and settings)", status: str = "skipped"
+) -> FileResult:
     return FileResult(job.rel, status, reason, m.get("contacts"), m.get("support_volume_mm3"), m.get("passed"), 0.0)
 
 
@@ -361,12 +419,28 @@ def _plan_jobs(root: Path, out: Path, rels: list[Path], settings, strategy, memo
         for rel, stem, name in zip(group, stems, names):
             if name != stem and clash == "refuse":
                 first = group[[s.casefold() for s in stems].index(stem.casefold())].as_posix()
-                clashes.append(FileResult(rel.as_posix(), "failed", f"{rel.as_posix()}: its outputs ({stem}.*) would "
-                                          f"overwrite those of {first}; rename one of them or use --name-clash rename"))
+                clashes.append(
+                    FileResult(
+                        rel.as_posix(),
+                        "failed",
+                        f"{rel.as_posix()}: its outputs ({stem}.*) would "
+                        f"overwrite those of {first}; rename one of them or use --name-clash rename",
+                    )
+                )
                 continue
             note = f"outputs named {name}.* ({stem}.* is another input's)" if name != stem else ""
-            jobs.append(Job(str(root / rel), rel.as_posix(), str(out / rel.parent), name, settings, strategy,
-                            memory_limit_mb, note=note))
+            jobs.append(
+                Job(
+                    str(root / rel),
+                    rel.as_posix(),
+                    str(out / rel.parent),
+                    name,
+                    settings,
+                    strategy,
+                    memory_limit_mb,
+                    note=note,
+                )
+            )
     return sorted(jobs, key=lambda j: j.rel), clashes
 
 
@@ -378,14 +452,36 @@ def write_summary(summary: BatchSummary, meta: dict) -> None:
     writer.writeheader()
     writer.writerows({k: ("" if v is None else v) for k, v in row.items()} for row in rows)
     atomic_write_text(summary.csv_path, buf.getvalue())
-    doc = {**meta, "interrupted": summary.interrupted, "pending": summary.pending, "counts": summary.counts,
-           "exit_code": summary.exit_code, "files": rows}
+    doc = {
+        **meta,
+        "interrupted": summary.interrupted,
+        "pending": summary.pending,
+        "counts": summary.counts,
+        "exit_code": summary.exit_code,
+        "files": rows,
+    }
     atomic_write_text(summary.json_path, json.dumps(doc, indent=1) + "\n")
-    atomic_write_text(summary.output_dir / "index.html", batch_index(
-        [{"name": r["file"], "page": (Path(r["file"]).parent / f"{part_name(r['file'])}.report.html").as_posix()
-          if r["contacts"] is not None else None, "status": r["status"], "reason": r["reason"],
-          "peak_force_n": r["peak_force_n"], "contacts": r["contacts"], "volume_mm3": r["support_volume_mm3"],
-          "time_s": r["seconds"]} for r in rows], title=f"Batch: {summary.output_dir.name}"))
+    atomic_write_text(
+        summary.output_dir / "index.html",
+        batch_index(
+            [
+                {
+                    "name": r["file"],
+                    "page": (Path(r["file"]).parent / f"{part_name(r['file'])}.report.html").as_posix()
+                    if r["contacts"] is not None
+                    else None,
+                    "status": r["status"],
+                    "reason": r["reason"],
+                    "peak_force_n": r["peak_force_n"],
+                    "contacts": r["contacts"],
+                    "volume_mm3": r["support_volume_mm3"],
+                    "time_s": r["seconds"],
+                }
+                for r in rows
+            ],
+            title=f"Batch: {summary.output_dir.name}",
+        ),
+    )
 
 
 def _check_folders(root: Path, out: Path, workers, clash) -> bool:
@@ -395,8 +491,10 @@ def _check_folders(root: Path, out: Path, workers, clash) -> bool:
     if clash not in CLASH_MODES:
         raise SupportGenError(f"batch: name_clash={clash!r}; give one of {', '.join(CLASH_MODES)}")
     if root.resolve() == out.resolve():
-        raise SupportGenError(f"batch: output folder {out} is the input folder; outputs would be read back as "
-                              "inputs next time: give another -o folder")
+        raise SupportGenError(
+            f"batch: output folder {out} is the input folder; outputs would be read back as "
+            "inputs next time: give another -o folder"
+        )
     return out.resolve().is_relative_to(root.resolve())
 
 
@@ -406,8 +504,15 @@ def _execute(todo: list[Job], client, workers, timeout_s, record) -> tuple[bool,
         if client is not None:
             run_dask(todo, client, timeout_s, record, run=run_job, discard=discard_outputs, lost=_lost)
         else:
-            run_local(todo, workers or os.cpu_count() or 1, timeout_s, record, run=run_job,
-                      discard=discard_outputs, lost=_lost)
+            run_local(
+                todo,
+                workers or os.cpu_count() or 1,
+                timeout_s,
+                record,
+                run=run_job,
+                discard=discard_outputs,
+                lost=_lost,
+            )
     except KeyboardInterrupt:
         return True, None
     except Exception as exc:  # noqa: BLE001 - write the summary of what finished, then re-raise
@@ -432,12 +537,24 @@ def _progress(total: int, done: list, enabled: bool, on_result):
     return bar, record
 
 
-def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings | None = None, *,
-              strategy: str = DEFAULT_STRATEGY, workers: int | None = None, cluster=None, resume: bool = False,
-              pattern: str | None = None, timeout_s: float | None = None, memory_limit_mb: float | None = None,
-              progress: bool = True, on_result: Callable[[FileResult], None] | None = None,
-              name_clash: str = "rename", wait_s: float | None = 0.0,
-              protect=()) -> BatchSummary:
+def run_batch(
+    input_dir: str | Path,
+    output_dir: str | Path,
+    settings: Settings | None = None,
+    *,
+    strategy: str = DEFAULT_STRATEGY,
+    workers: int | None = None,
+    cluster=None,
+    resume: bool = False,
+    pattern: str | None = None,
+    timeout_s: float | None = None,
+    memory_limit_mb: float | None = None,
+    progress: bool = True,
+    on_result: Callable[[FileResult], None] | None = None,
+    name_clash: str = "rename",
+    wait_s: float | None = 0.0,
+    protect=(),
+) -> BatchSummary:
     """Support every mesh under ``input_dir`` into a mirrored tree under ``output_dir``.
 
     Parameters
@@ -510,9 +627,10 @@ def run_batch(input_dir: str | Path, output_dir: str | Path, settings: Settings 
     sha = settings_hash(settings, strategy)
     try:
         with FolderLock(out, wait_s=wait_s), stop_on_signals():
-            clean_temps(out, recursive=True)      # left by a killed run; the lock says none is running
-            summary, raised = _run_locked(jobs, results, client, sha, out, root, strategy, workers,
-                                          resume, timeout_s, progress, on_result)
+            clean_temps(out, recursive=True)  # left by a killed run; the lock says none is running
+            summary, raised = _run_locked(
+                jobs, results, client, sha, out, root, strategy, workers, resume, timeout_s, progress, on_result
+            )
     finally:
         if client is not None:
             client.close()
@@ -542,9 +660,18 @@ def _run_locked(jobs, results, client, sha, out, root, strategy, workers, resume
             if m:
                 results.append(_skipped(job, m, "outputs complete (saved as the batch was stopped)", "ok"))
         done = {r.file for r in results}
-    summary = BatchSummary(tuple(sorted(results, key=lambda r: r.file)), out, interrupted,
-                           sum(j.rel not in done for j in todo))
-    write_summary(summary, {"input_dir": str(root), "output_dir": str(out), "strategy": strategy,
-                            "settings_sha256": sha, "engine": "dask" if client is not None else "local",
-                            "workers": None if client is not None else (workers or os.cpu_count())})
+    summary = BatchSummary(
+        tuple(sorted(results, key=lambda r: r.file)), out, interrupted, sum(j.rel not in done for j in todo)
+    )
+    write_summary(
+        summary,
+        {
+            "input_dir": str(root),
+            "output_dir": str(out),
+            "strategy": strategy,
+            "settings_sha256": sha,
+            "engine": "dask" if client is not None else "local",
+            "workers": None if client is not None else (workers or os.cpu_count()),
+        },
+    )
     return summary, raised

@@ -44,12 +44,22 @@ from ..settings import Settings
 from ..supports.strategies import get_strategy
 from .memory import MEMORY_METHODS, measure_peak
 
-__all__ = ["BenchTable", "MEMORY_METHODS", "REPORT_COLUMNS", "STAGES", "find_models", "measure_peak",
-           "report_row", "baseline_ratios", "run_bench", "grid_settings", "machine_line"]
+__all__ = [
+    "BenchTable",
+    "MEMORY_METHODS",
+    "REPORT_COLUMNS",
+    "STAGES",
+    "find_models",
+    "measure_peak",
+    "report_row",
+    "baseline_ratios",
+    "run_bench",
+    "grid_settings",
+    "machine_line",
+]
 
 #: Pipeline stages in the order they run; a stage a report adds later goes after them.
-STAGES = ("load", "placement", "overhangs", "contacts", "layers", "forces", "routing", "sizing", "geometry",
-          "verify")
+STAGES = ("load", "placement", "overhangs", "contacts", "layers", "forces", "routing", "sizing", "geometry", "verify")
 #: Table column -> path of keys in the report JSON.
 REPORT_COLUMNS: dict[str, tuple[str, ...]] = {
     "faces": ("input", "faces"),
@@ -96,20 +106,36 @@ class BenchTable:
 
     def to_markdown(self) -> str:
         """The table, the ratios and links to the plots as one Markdown page."""
-        lines = ["# Strategy comparison", "",
-                 f"{len({r['model'] for r in self.rows})} models x {len({r['strategy'] for r in self.rows})} "
-                 f"strategies; baseline `{self.baseline}`; peak memory by `{self.memory_method}` "
-                 "(see supportgen.runs.bench); times in seconds.", ""]
+        lines = [
+            "# Strategy comparison",
+            "",
+            f"{len({r['model'] for r in self.rows})} models x {len({r['strategy'] for r in self.rows})} "
+            f"strategies; baseline `{self.baseline}`; peak memory by `{self.memory_method}` "
+            "(see supportgen.runs.bench); times in seconds.",
+            "",
+        ]
         lines += _md_table(self.columns, self.rows)
         errors = [r for r in self.rows if r["status"] != "ok"]
         if errors:
             lines += ["", "## Failed runs", ""] + [f"- {r['model']} / {r['strategy']}: {r['error']}" for r in errors]
-        lines += ["", f"## Ratios against `{self.baseline}`", "",
-                  "Per model, and over the models where both results passed verification (ratio of the totals; "
-                  "geometric mean of the ratios).", ""]
+        lines += [
+            "",
+            f"## Ratios against `{self.baseline}`",
+            "",
+            "Per model, and over the models where both results passed verification (ratio of the totals; "
+            "geometric mean of the ratios).",
+            "",
+        ]
         lines += _md_table(tuple(self.summary[0]) if self.summary else ("model",), self.summary)
-        lines += ["", "## Plots", "", "![support volume](support_volume.png)", "", "![stage times](stage_times.png)",
-                  ""]
+        lines += [
+            "",
+            "## Plots",
+            "",
+            "![support volume](support_volume.png)",
+            "",
+            "![stage times](stage_times.png)",
+            "",
+        ]
         return "\n".join(lines)
 
 
@@ -213,14 +239,20 @@ def baseline_ratios(rows: Sequence[dict], baseline: str) -> list[dict]:
             continue
         pairs = [(ok[m, strategy], ok[m, baseline]) for m in models if (m, strategy) in ok and (m, baseline) in ok]
         for a, b in pairs:
-            out.append({"model": a["model"], "strategy": strategy,
-                        **{f"{k}_ratio": _ratio(a[c], b[c]) for k, c in _RATIOS.items()}})
+            out.append(
+                {
+                    "model": a["model"],
+                    "strategy": strategy,
+                    **{f"{k}_ratio": _ratio(a[c], b[c]) for k, c in _RATIOS.items()},
+                }
+            )
         pairs = [(a, b) for a, b in pairs if a.get("passed") is True and b.get("passed") is True]
         totals = {"model": "all (ratio of totals)", "strategy": strategy}
         geo = {"model": "all (geometric mean)", "strategy": strategy}
         for k, c in _RATIOS.items():
-            totals[f"{k}_ratio"] = _ratio(sum(a[c] or 0 for a, _ in pairs), sum(b[c] or 0 for _, b in pairs)) \
-                if pairs else None
+            totals[f"{k}_ratio"] = (
+                _ratio(sum(a[c] or 0 for a, _ in pairs), sum(b[c] or 0 for _, b in pairs)) if pairs else None
+            )
             logs = [math.log(x) for x in (_ratio(a[c], b[c]) for a, b in pairs) if x]
             geo[f"{k}_ratio"] = math.exp(sum(logs) / len(logs)) if logs and len(logs) == len(pairs) else None
         out += [totals, geo]
@@ -252,7 +284,8 @@ def _md_cell(v) -> str:
 def _md_table(columns, rows) -> list[str]:
     cols = [c for c in columns if c not in ("error",)]
     return ["| " + " | ".join(cols) + " |", "|" + "---|" * len(cols)] + [
-        "| " + " | ".join(_md_cell(r.get(c)) for c in cols) + " |" for r in rows]
+        "| " + " | ".join(_md_cell(r.get(c)) for c in cols) + " |" for r in rows
+    ]
 
 
 def _plots(rows: Sequence[dict], stages: Sequence[str]) -> tuple[bytes, bytes]:
@@ -325,20 +358,38 @@ def _run_one(path: Path, name: str, strategy: str, settings: Settings, outdir: P
 
     (result, loaded, factor, read_s), peak_mb, used = measure_peak(work, memory)
     report = dict(result.report)
-    report["bench"] = {"peak_memory_mb": peak_mb, "memory_method": used, "scale_mm": scale_mm,
-                       "scale_factor": factor, "read_and_scale_s": read_s, "source": str(path)}
+    report["bench"] = {
+        "peak_memory_mb": peak_mb,
+        "memory_method": used,
+        "scale_mm": scale_mm,
+        "scale_factor": factor,
+        "read_and_scale_s": read_s,
+        "source": str(path),
+    }
     if loaded is not None:  # the pipeline saw an in-memory mesh: name the file and its repairs
-        report["input"] = {**report["input"], "path": str(path),
-                           "repairs": list(loaded.repairs) + list(report["input"]["repairs"])}
-        report["warnings"] = [{"code": "repair", "message": f"{name}: {r}"} for r in loaded.repairs] + \
-            list(report["warnings"])
+        report["input"] = {
+            **report["input"],
+            "path": str(path),
+            "repairs": list(loaded.repairs) + list(report["input"]["repairs"]),
+        }
+        report["warnings"] = [{"code": "repair", "message": f"{name}: {r}"} for r in loaded.repairs] + list(
+            report["warnings"]
+        )
     paths = dataclasses.replace(result, report=report).save(outdir / strategy)
     return json.loads(paths["report"].read_text(encoding="utf-8")), used
 
 
-def run_bench(corpus_dir: str | Path, output_dir: str | Path, settings: Settings,
-              strategies: Sequence[str] = ("straight", "tree"), *, baseline: str = "straight",
-              scale_mm: float | None = None, memory: str = "rss", progress: bool = True) -> BenchTable:
+def run_bench(
+    corpus_dir: str | Path,
+    output_dir: str | Path,
+    settings: Settings,
+    strategies: Sequence[str] = ("straight", "tree"),
+    *,
+    baseline: str = "straight",
+    scale_mm: float | None = None,
+    memory: str = "rss",
+    progress: bool = True,
+) -> BenchTable:
     """Support every model in ``corpus_dir`` with every strategy; write the table, ratios and plots.
 
     Parameters
@@ -382,8 +433,10 @@ def run_bench(corpus_dir: str | Path, output_dir: str | Path, settings: Settings
     for s in strategies:
         get_strategy(s)
     if baseline not in strategies:
-        raise SettingsError(f"baseline strategy '{baseline}' is not among the strategies run "
-                            f"({', '.join(strategies)}); add it or choose one of them")
+        raise SettingsError(
+            f"baseline strategy '{baseline}' is not among the strategies run "
+            f"({', '.join(strategies)}); add it or choose one of them"
+        )
     if scale_mm is not None and not scale_mm > 0:
         raise SettingsError(f"scale {scale_mm} mm: give a positive length for the longest side")
     models = find_models(corpus_dir)
@@ -405,12 +458,19 @@ def run_bench(corpus_dir: str | Path, output_dir: str | Path, settings: Settings
             results.append((name, strategy, None, str(exc)))
     stages = _stage_order([r.get("timing_s", {}) for _, _, r, _ in results if r is not None])
     columns = ("model", "strategy", "status", "error", *REPORT_COLUMNS, *(f"{s}_s" for s in stages), "total_s")
-    rows = tuple(report_row(n, s, r, stages) if r is not None else
-                 {"model": n, "strategy": s, "status": "error", "error": e} for n, s, r, e in results)
+    rows = tuple(
+        report_row(n, s, r, stages) if r is not None else {"model": n, "strategy": s, "status": "error", "error": e}
+        for n, s, r, e in results
+    )
     summary = tuple(baseline_ratios(rows, baseline))
     table = BenchTable(columns, rows, summary, baseline, method, {})
-    paths = {"csv": out / "bench.csv", "markdown": out / "bench.md", "summary": out / "summary.csv",
-             "volume_plot": out / "support_volume.png", "stage_plot": out / "stage_times.png"}
+    paths = {
+        "csv": out / "bench.csv",
+        "markdown": out / "bench.md",
+        "summary": out / "summary.csv",
+        "volume_plot": out / "support_volume.png",
+        "stage_plot": out / "stage_times.png",
+    }
     volume_png, stages_png = _plots(rows, stages)
     atomic_write(paths["volume_plot"], volume_png)
     atomic_write(paths["stage_plot"], stages_png)
@@ -443,6 +503,8 @@ def machine_line() -> str:
 
     from .. import __version__
 
-    return (f"machine: {platform.machine()} {platform.system()}, os.cpu_count()={os.cpu_count()}, "
-            f"load average {os.getloadavg()[0]:.2f} at start; python {platform.python_version()}, "
-            f"trimesh {trimesh.__version__}, supportgen {__version__}")
+    return (
+        f"machine: {platform.machine()} {platform.system()}, os.cpu_count()={os.cpu_count()}, "
+        f"load average {os.getloadavg()[0]:.2f} at start; python {platform.python_version()}, "
+        f"trimesh {trimesh.__version__}, supportgen {__version__}"
+    )

@@ -48,7 +48,9 @@ def jar_lid(vented: bool = True) -> trimesh.Trimesh:
     inner = m3d.Manifold.cylinder(12.0, 14.0, 14.0, 96).translate((0, 0, 2.0))
     lid = outer - inner
     # Thread ridge inside the wall: a ring 1 mm proud, printed as a shallow overhang.
-    ridge = (m3d.Manifold.cylinder(1.2, 14.0, 14.0, 96) - m3d.Manifold.cylinder(1.2, 13.0, 13.5, 96)).translate((0, 0, 7.0))
+    ridge = (m3d.Manifold.cylinder(1.2, 14.0, 14.0, 96) - m3d.Manifold.cylinder(1.2, 13.0, 13.5, 96)).translate(
+        (0, 0, 7.0)
+    )
     lid = lid + ridge
     if vented:
         lid = lid - m3d.Manifold.cylinder(4.0, 1.0, 1.0, 24).translate((0, 0, -1.0))
@@ -71,8 +73,9 @@ def trivet() -> trimesh.Trimesh:
         offset = -16.0 + 8.0 * k - 1.5
         bars.append(m3d.Manifold.cube((36.0, 3.0, 3.0)).translate((-18.0, offset, 4.0)))
         bars.append(m3d.Manifold.cube((3.0, 36.0, 3.0)).translate((offset, -18.0, 4.0)))
-    feet = [m3d.Manifold.cylinder(4.0, 1.5, 2.5, 32).translate((x, y, 0.0))
-            for x in (-16.0, 16.0) for y in (-16.0, 16.0)]
+    feet = [
+        m3d.Manifold.cylinder(4.0, 1.5, 2.5, 32).translate((x, y, 0.0)) for x in (-16.0, 16.0) for y in (-16.0, 16.0)
+    ]
     return _mesh(m3d.Manifold.batch_boolean(bars + feet, m3d.OpType.Add))
 
 

@@ -21,7 +21,7 @@ from ..errors import SettingsError
 
 try:
     import resource
-except ImportError:          # Windows
+except ImportError:  # Windows
     resource = None
 
 __all__ = ["MEMORY_METHODS", "peak_rss_mb", "measure_peak"]

@@ -36,8 +36,16 @@ class Oriented:
     warnings: tuple[str, ...] = ()
 
 
-def orient_part(source, settings: Settings | None = None, *, name: str | None = None, units: str = "mm",
-                scale: float = 1.0, n_directions: int | None = None, longest_mm: float | None = None) -> Oriented:
+def orient_part(
+    source,
+    settings: Settings | None = None,
+    *,
+    name: str | None = None,
+    units: str = "mm",
+    scale: float = 1.0,
+    n_directions: int | None = None,
+    longest_mm: float | None = None,
+) -> Oriented:
     """Load (or take) a mesh, search its orientations and place it turned as chosen.
 
     ``units`` and ``scale`` as in :func:`supportgen.generate`; ``longest_mm``, when
@@ -75,9 +83,14 @@ def orient_file(source, outdir, settings: Settings | None = None, **kwargs) -> t
         written.append(paths["map"])
         atomic_write_text(paths["summary"], orientation_markdown(res.orientation, res.name, paths["map"].name))
         written.append(paths["summary"])
-        atomic_write_text(paths["json"], orientation_json(res.orientation, res.name,
-                                                          {"warnings": list(res.warnings),
-                                                           "outputs": {k: str(p) for k, p in paths.items()}}))
+        atomic_write_text(
+            paths["json"],
+            orientation_json(
+                res.orientation,
+                res.name,
+                {"warnings": list(res.warnings), "outputs": {k: str(p) for k, p in paths.items()}},
+            ),
+        )
         written.append(paths["json"])
     except BaseException:
         for p in written:

@@ -34,11 +34,11 @@ def stop_on_signals():
 
     def handler(signum, frame):
         for s in STOP_SIGNALS:
-            signal.signal(s, signal.SIG_IGN)     # one stop is enough: let the clean-up finish
+            signal.signal(s, signal.SIG_IGN)  # one stop is enough: let the clean-up finish
         raise KeyboardInterrupt(signal.Signals(signum).name)
 
     for s in STOP_SIGNALS:
-        if previous[s] is not signal.SIG_IGN:     # a signal ignored on purpose (nohup, a background job) stays so
+        if previous[s] is not signal.SIG_IGN:  # a signal ignored on purpose (nohup, a background job) stays so
             signal.signal(s, handler)
     try:
         yield

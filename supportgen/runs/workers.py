@@ -42,6 +42,7 @@ __all__ = ["run_local", "run_dask", "dask_client"]
 
 # -- local engine: one process per slot, killed on timeout, replaced when it dies ------------------
 
+
 @dataclass
 class _Slot:
     """A worker process, its pipe and the job it is running (bookkeeping of one run_local call)."""
@@ -68,7 +69,7 @@ def _worker_main(conn, run: Callable) -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
     try:
-        importlib.import_module(f"{__package__}.pipeline")    # import once, before the first deadline starts
+        importlib.import_module(f"{__package__}.pipeline")  # import once, before the first deadline starts
     except Exception:  # noqa: BLE001 - run reports the same import error for each file
         pass
     try:
@@ -78,7 +79,7 @@ def _worker_main(conn, run: Callable) -> None:
             if job is None:
                 return
             conn.send(("done", run(job)))
-    except (EOFError, OSError):     # the parent is gone (BrokenPipeError is an OSError): stop, no traceback
+    except (EOFError, OSError):  # the parent is gone (BrokenPipeError is an OSError): stop, no traceback
         return
 
 
@@ -141,8 +142,9 @@ class _LocalPool:
 
     def start(self) -> _Slot:
         parent, child = self.ctx.Pipe()
-        proc = self.ctx.Process(target=_worker_main, args=(child, self.run), name="supportgen-batch-worker",
-                                daemon=True)
+        proc = self.ctx.Process(
+            target=_worker_main, args=(child, self.run), name="supportgen-batch-worker", daemon=True
+        )
         proc.start()
         child.close()
         return _Slot(proc, parent)
@@ -166,8 +168,10 @@ class _LocalPool:
         from multiprocessing.connection import wait
 
         ends = [s.started + self.timeout_s for s in self.slots if s.job is not None] if self.timeout_s else []
-        wait([s.conn for s in self.slots] + [s.proc.sentinel for s in self.slots],
-             max(0.0, min(ends) - time.monotonic()) if ends else None)
+        wait(
+            [s.conn for s in self.slots] + [s.proc.sentinel for s in self.slots],
+            max(0.0, min(ends) - time.monotonic()) if ends else None,
+        )
 
     def collect(self, s: _Slot) -> str | None:
         """Read what ``s`` sent; return why it must be retired (``crashed``/``timeout``) or None."""
@@ -193,14 +197,22 @@ class _LocalPool:
         _stop(s, kill=True)
         if job is not None:
             self.discard(job)
-            reason = (f"took longer than {self.timeout_s:g} s; its worker was stopped (raise --timeout or use "
-                      "coarser settings)") if gone == "timeout" else _died(s.proc.exitcode)
+            reason = (
+                (
+                    f"took longer than {self.timeout_s:g} s; its worker was stopped (raise --timeout or use "
+                    "coarser settings)"
+                )
+                if gone == "timeout"
+                else _died(s.proc.exitcode)
+            )
             self.record(self.lost(job, gone, reason, round(time.monotonic() - s.started, 3)))
         elif not was_ready:
             self.start_failures += 1
             if self.start_failures >= 3:
-                raise SupportGenError(f"batch: worker processes fail to start ({_died(s.proc.exitcode)}); "
-                                      "check that `python -c 'import supportgen.pipeline'` works")
+                raise SupportGenError(
+                    f"batch: worker processes fail to start ({_died(s.proc.exitcode)}); "
+                    "check that `python -c 'import supportgen.pipeline'` works"
+                )
 
     def shutdown(self, graceful: bool) -> None:
         """Stop every worker.  After an interruption, keep a result already on its way (its set is
@@ -221,8 +233,16 @@ class _LocalPool:
                 self.discard(s.job)
 
 
-def run_local(jobs: list, workers: int, timeout_s: float | None, record: Callable, *,
-              run: Callable, discard: Callable, lost: Callable) -> None:
+def run_local(
+    jobs: list,
+    workers: int,
+    timeout_s: float | None,
+    record: Callable,
+    *,
+    run: Callable,
+    discard: Callable,
+    lost: Callable,
+) -> None:
     """Run ``jobs`` in ``workers`` local processes, stopping any past ``timeout_s``.
 
     Parameters
@@ -267,6 +287,7 @@ def run_local(jobs: list, workers: int, timeout_s: float | None, record: Callabl
 
 # -- Dask engine ----------------------------------------------------------------------------------------
 
+
 def dask_client(cluster):
     """A Dask distributed client of ``cluster`` (an address, or an object with ``scheduler_address``).
 
@@ -278,14 +299,18 @@ def dask_client(cluster):
     try:
         from distributed import Client
     except ImportError:
-        raise SupportGenError("batch: --cluster needs Dask distributed, which is not installed; install it with "
-                              "pip install 'supportgen[cluster]'") from None
+        raise SupportGenError(
+            "batch: --cluster needs Dask distributed, which is not installed; install it with "
+            "pip install 'supportgen[cluster]'"
+        ) from None
     address = getattr(cluster, "scheduler_address", cluster)
     try:
         return Client(address, timeout="10s", set_as_default=False)
     except (OSError, TimeoutError) as exc:
-        raise SupportGenError(f"batch: cannot reach the Dask scheduler at {address} ({exc}); start one with "
-                              "`dask scheduler` or fix the address") from None
+        raise SupportGenError(
+            f"batch: cannot reach the Dask scheduler at {address} ({exc}); start one with "
+            "`dask scheduler` or fix the address"
+        ) from None
 
 
 #: A Dask task is recorded as ``timeout`` this long after its own limit if it has not returned by then
@@ -293,8 +318,9 @@ def dask_client(cluster):
 DASK_GRACE_S = 5.0
 
 
-def run_dask(jobs: list, client, timeout_s: float | None, record: Callable, *,
-             run: Callable, discard: Callable, lost: Callable) -> None:
+def run_dask(
+    jobs: list, client, timeout_s: float | None, record: Callable, *, run: Callable, discard: Callable, lost: Callable
+) -> None:
     """Run ``jobs`` as tasks of a Dask client, with a per-task time limit.
 
     Parameters
@@ -340,9 +366,11 @@ def run_dask(jobs: list, client, timeout_s: float | None, record: Callable, *,
             ends = [t0 + timeout_s + DASK_GRACE_S for _, t0 in running.values()] if timeout_s else []
             try:
                 with client.as_current():
-                    wait(list(running) + list(zombies),
-                         timeout=max(0.05, min(ends) - time.monotonic()) if ends else None,
-                         return_when="FIRST_COMPLETED")
+                    wait(
+                        list(running) + list(zombies),
+                        timeout=max(0.05, min(ends) - time.monotonic()) if ends else None,
+                        return_when="FIRST_COMPLETED",
+                    )
             except TimeoutError:
                 pass
             _dask_collect(running, zombies, timeout_s, record, discard, lost)
@@ -363,10 +391,22 @@ def _dask_collect(running: dict, zombies: set, timeout_s, record, discard, lost)
                 continue
             discard(job)
             exc = fut.exception() if fut.status == "error" else fut.status
-            record(lost(job, "crashed", f"Dask task {fut.status}: {type(exc).__name__}: {exc}",
-                        round(time.monotonic() - t0, 3)))
+            record(
+                lost(
+                    job,
+                    "crashed",
+                    f"Dask task {fut.status}: {type(exc).__name__}: {exc}",
+                    round(time.monotonic() - t0, 3),
+                )
+            )
         elif timeout_s and time.monotonic() > t0 + timeout_s + DASK_GRACE_S:
             del running[fut]
             zombies.add(fut)
-            record(lost(job, "timeout", f"took longer than {timeout_s:g} s; the Dask task cannot be stopped, "
-                        "it will save nothing", round(time.monotonic() - t0, 3)))
+            record(
+                lost(
+                    job,
+                    "timeout",
+                    f"took longer than {timeout_s:g} s; the Dask task cannot be stopped, it will save nothing",
+                    round(time.monotonic() - t0, 3),
+                )
+            )

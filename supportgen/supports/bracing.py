@@ -63,8 +63,17 @@ from ..constants import EPS_REL, EPS_ZERO
 from ..settings import Settings
 from .plan import SupportPlan
 
-__all__ = ["EFFECTIVE_LENGTH", "EffectiveLength", "MAX_SLENDERNESS", "BRACE_MIN_ANGLE_DEG", "LEAN_MIN_DEG",
-           "PostRuns", "held_nodes", "post_runs", "add_braces"]
+__all__ = [
+    "EFFECTIVE_LENGTH",
+    "EffectiveLength",
+    "MAX_SLENDERNESS",
+    "BRACE_MIN_ANGLE_DEG",
+    "LEAN_MIN_DEG",
+    "PostRuns",
+    "held_nodes",
+    "post_runs",
+    "add_braces",
+]
 
 
 class EffectiveLength(NamedTuple):
@@ -78,12 +87,14 @@ class EffectiveLength(NamedTuple):
 #: recommended design values [pub: AISC Specification commentary, effective-length
 #: table for idealised end conditions; theoretical values from Timoshenko & Gere 1961].
 #: Sizing uses the design values.
-EFFECTIVE_LENGTH = MappingProxyType({
-    "fixed-fixed": EffectiveLength(0.5, 0.65),
-    "fixed-pinned": EffectiveLength(0.7, 0.80),
-    "pinned-pinned": EffectiveLength(1.0, 1.0),
-    "fixed-free": EffectiveLength(2.0, 2.1),
-})
+EFFECTIVE_LENGTH = MappingProxyType(
+    {
+        "fixed-fixed": EffectiveLength(0.5, 0.65),
+        "fixed-pinned": EffectiveLength(0.7, 0.80),
+        "pinned-pinned": EffectiveLength(1.0, 1.0),
+        "fixed-free": EffectiveLength(2.0, 2.1),
+    }
+)
 
 #: Largest slenderness K L / r of a compression member before a brace is added
 #: [memory: AISC 360 user note to the compression chapter, "preferably not over 200"].
@@ -100,11 +111,11 @@ LEAN_MIN_DEG = 10.0
 
 
 class PostRuns(NamedTuple):
-    edge_run: np.ndarray      # (E,) run of each edge
-    chains: list              # per run: edge indices from top to bottom
-    length: np.ndarray        # (R,) unbraced length (mm): the run, plus the sway length below a swaying run
-    k: np.ndarray             # (R,) design effective-length factor
-    top_held: np.ndarray      # (R,) bool: the run's top node is triangulated
+    edge_run: np.ndarray  # (E,) run of each edge
+    chains: list  # per run: edge indices from top to bottom
+    length: np.ndarray  # (R,) unbraced length (mm): the run, plus the sway length below a swaying run
+    k: np.ndarray  # (R,) design effective-length factor
+    top_held: np.ndarray  # (R,) bool: the run's top node is triangulated
 
 
 def held_nodes(plan: SupportPlan) -> np.ndarray:
@@ -127,8 +138,8 @@ def held_nodes(plan: SupportPlan) -> np.ndarray:
     flat = np.hypot(d[:, 0], d[:, 1])
     horiz = flat / np.maximum(np.linalg.norm(d, axis=1), EPS_ZERO)
     is_edge = np.arange(len(ends)) >= 2 * len(braces)
-    lateral = ~is_edge | (horiz >= math.sin(math.radians(LEAN_MIN_DEG)))   # members that hold sideways
-    members = np.bincount(ends[:, 0], minlength=n)                          # any member, a vertical post too
+    lateral = ~is_edge | (horiz >= math.sin(math.radians(LEAN_MIN_DEG)))  # members that hold sideways
+    members = np.bincount(ends[:, 0], minlength=n)  # any member, a vertical post too
     cand = np.flatnonzero((members >= 3) & (np.bincount(ends[lateral, 0], minlength=n) >= 2))
     dxy = d[:, :2] / np.maximum(flat, EPS_ZERO)[:, None]
     for node in cand:
@@ -248,8 +259,9 @@ def _split_edges(plan: SupportPlan, requests, tol: float):
     return np.array(nodes), np.array(new_edges, int).reshape(-1, 2), np.array(new_radius), req_node
 
 
-def add_braces(plan: SupportPlan, runs: PostRuns, run_need: np.ndarray, run_slender: np.ndarray,
-                settings: Settings) -> tuple[SupportPlan, int]:
+def add_braces(
+    plan: SupportPlan, runs: PostRuns, run_need: np.ndarray, run_slender: np.ndarray, settings: Settings
+) -> tuple[SupportPlan, int]:
     """Brace every run that is too slender, in two directions. Cost O(R * E).
 
     ``runs`` as from :func:`post_runs`; ``run_need`` and ``run_slender`` per run: its
@@ -262,7 +274,7 @@ def add_braces(plan: SupportPlan, runs: PostRuns, run_need: np.ndarray, run_slen
     tol = settings.printer.pixel_mm
     seg = np.linalg.norm(plan.nodes[plan.edges[:, 0]] - plan.nodes[plan.edges[:, 1]], axis=1)
     ends = plan.nodes[plan.edges]
-    lo, hi = ends.min(axis=1), ends.max(axis=1)    # bounding box of each edge, to cut the search
+    lo, hi = ends.min(axis=1), ends.max(axis=1)  # bounding box of each edge, to cut the search
     requests, pairs, tops = [], [], set()
     # runs already joined by a brace, either way: a second brace between the same two
     # posts would cross the first in their common plane (and add no new direction)
@@ -287,12 +299,16 @@ def add_braces(plan: SupportPlan, runs: PostRuns, run_need: np.ndarray, run_slen
             j = int(np.searchsorted(cum, cum[-1] / 2.0))
             t_at = 1.0 - (cum[j] - cum[-1] / 2.0) / seg[chain[j]]
             if not _vertical(*plan.nodes[plan.edges[chain[j]]][:, None, :])[0]:
-                continue                                   # no new node on a leaning edge (see _brace_targets)
+                continue  # no new node on a leaning edge (see _brace_targets)
         a, b = plan.nodes[plan.edges[chain[j]]]
         m = a + t_at * (b - a)
-        reach = min(max(cum[-1], runs.length[r]), 4.0 * s.contact_spacing_mm)   # neighbours only
-        box = ((hi[:, 2] >= m[2] - 2.0 * reach) & (lo[:, 2] <= m[2] + 2.0 * reach)
-               & np.all(lo[:, :2] <= m[:2] + reach, axis=1) & np.all(hi[:, :2] >= m[:2] - reach, axis=1))
+        reach = min(max(cum[-1], runs.length[r]), 4.0 * s.contact_spacing_mm)  # neighbours only
+        box = (
+            (hi[:, 2] >= m[2] - 2.0 * reach)
+            & (lo[:, 2] <= m[2] + 2.0 * reach)
+            & np.all(lo[:, :2] <= m[:2] + reach, axis=1)
+            & np.all(hi[:, :2] >= m[:2] - reach, axis=1)
+        )
         cand = np.flatnonzero(box & ~np.isin(plan.edges, plan.edges[chain]).any(axis=1))
         cand = cand[~np.isin(runs.edge_run[cand], list(partners.get(int(r), ())))]
         found = _brace_targets(m, plan.nodes, plan.edges, cand, reach, s.post_diameter_mm, 3.0 * tol)
@@ -311,7 +327,7 @@ def add_braces(plan: SupportPlan, runs: PostRuns, run_need: np.ndarray, run_slen
     new = req_node[np.array(pairs)]
     new = new[new[:, 0] != new[:, 1]]
     swap = nodes[new[:, 0], 2] > nodes[new[:, 1], 2]
-    new[swap] = new[swap][:, ::-1]                  # lower end first
+    new[swap] = new[swap][:, ::-1]  # lower end first
     if len(new) == 0:
         return plan, 0
     braces = np.concatenate([plan.braces.reshape(-1, 2), new])

@@ -30,8 +30,17 @@ from ..io.contactsfile import ContactRows, read_contacts
 from ..settings import Settings
 from .plan import CONTACT_KINDS, Contacts
 
-__all__ = ["RSA_DENSITY", "poisson_disk", "sample_overhangs", "contacts_at", "merge_contacts",
-           "add_unheld", "expected_count", "densify_points", "contacts_from_rows"]
+__all__ = [
+    "RSA_DENSITY",
+    "poisson_disk",
+    "sample_overhangs",
+    "contacts_at",
+    "merge_contacts",
+    "add_unheld",
+    "expected_count",
+    "densify_points",
+    "contacts_from_rows",
+]
 
 #: Samples per r^2 of a jammed random sequential addition (Feder 1980: coverage 0.547).
 RSA_DENSITY = 0.547 / (np.pi / 4)
@@ -98,8 +107,9 @@ def expected_count(area: float, spacing: float) -> float:
     return RSA_DENSITY * area / spacing**2
 
 
-def sample_overhangs(mesh: trimesh.Trimesh, overhangs: Overhangs, spacing: float, angle_deg: float,
-                     diameter: float, seed: int = 0) -> Contacts:
+def sample_overhangs(
+    mesh: trimesh.Trimesh, overhangs: Overhangs, spacing: float, angle_deg: float, diameter: float, seed: int = 0
+) -> Contacts:
     """Poisson-disk contacts over the overhang faces.
 
     Parameters
@@ -149,8 +159,7 @@ def sample_overhangs(mesh: trimesh.Trimesh, overhangs: Overhangs, spacing: float
     return Contacts(pts[keep], normals[keep], np.full(len(keep), "overhang"), np.full(len(keep), diameter))
 
 
-def contacts_at(mesh: trimesh.Trimesh, xyz: np.ndarray, kind: str, diameter: float,
-                reach_mm: float = 0.0) -> Contacts:
+def contacts_at(mesh: trimesh.Trimesh, xyz: np.ndarray, kind: str, diameter: float, reach_mm: float = 0.0) -> Contacts:
     """Contacts on the part's surface straight above the given points.
 
     Each point ``(x, y, z)`` is moved to the first surface crossing of an
@@ -241,8 +250,9 @@ def add_unheld(existing: Contacts, new: Contacts, radius_mm: float, rise_mm: flo
     return kept
 
 
-def densify_points(contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Settings,
-                   radius_mm: float | None = None, count: int = 6) -> Contacts:
+def densify_points(
+    contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Settings, radius_mm: float | None = None, count: int = 6
+) -> Contacts:
     """Add contacts in a ring around each over-capacity contact, on down-facing surface.
 
     Parameters
@@ -285,8 +295,9 @@ def densify_points(contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Se
     u /= np.linalg.norm(u, axis=1, keepdims=True)
     w = np.cross(n, u)
     phase = 2.0 * np.pi * np.arange(count) / count
-    ring = contacts.points[idx, None, :] + r * (np.cos(phase)[None, :, None] * u[:, None, :]
-                                                + np.sin(phase)[None, :, None] * w[:, None, :])
+    ring = contacts.points[idx, None, :] + r * (
+        np.cos(phase)[None, :, None] * u[:, None, :] + np.sin(phase)[None, :, None] * w[:, None, :]
+    )
     closest, _, tri = trimesh.proximity.closest_point(mesh, ring.reshape(-1, 3))
     normals = mesh.face_normals[tri]
     keep = np.flatnonzero(normals[:, 2] < 0.0)
@@ -298,8 +309,7 @@ def densify_points(contacts: Contacts, over, mesh: trimesh.Trimesh, settings: Se
     if not taken:
         return contacts
     k = len(taken)
-    new = Contacts(closest[taken], normals[taken], np.full(k, "densify"),
-                   np.full(k, settings.rules.tip_diameter_mm))
+    new = Contacts(closest[taken], normals[taken], np.full(k, "densify"), np.full(k, settings.rules.tip_diameter_mm))
     return Contacts.concat([contacts, new])
 
 

@@ -42,7 +42,6 @@ __all__ = ["Penalty", "Clearance", "clearance_field", "free_space_graph", "edge_
 Penalty = Callable[[np.ndarray, np.ndarray], np.ndarray]
 
 
-
 @dataclass(frozen=True)
 class Clearance:
     """Certified lower bounds of the distance from points to a mesh surface.
@@ -91,8 +90,9 @@ class Clearance:
         return np.logical_and.reduceat(ok, first)
 
 
-def clearance_field(mesh: trimesh.Trimesh, clearance: float, spacing: float | None = None,
-                    max_samples: int = 3_000_000) -> Clearance:
+def clearance_field(
+    mesh: trimesh.Trimesh, clearance: float, spacing: float | None = None, max_samples: int = 3_000_000
+) -> Clearance:
     """Sample the surface of ``mesh`` for certified clearance queries.
 
     Parameters
@@ -207,9 +207,16 @@ def edge_cost(upper, lower, area, cost):
     return material if cost is None else material + np.asarray(cost(upper, lower), float)
 
 
-def free_space_graph(mesh: trimesh.Trimesh, settings, field: Clearance, bounds: np.ndarray, *,
-                     step_mm: float | None = None, cost: Penalty | None = None,
-                     max_nodes: int = 60_000) -> nx.DiGraph:
+def free_space_graph(
+    mesh: trimesh.Trimesh,
+    settings,
+    field: Clearance,
+    bounds: np.ndarray,
+    *,
+    step_mm: float | None = None,
+    cost: Penalty | None = None,
+    max_nodes: int = 60_000,
+) -> nx.DiGraph:
     """A lattice of free space: downward edges within the branch angle, clear of the part.
 
     Parameters
@@ -253,8 +260,9 @@ def free_space_graph(mesh: trimesh.Trimesh, settings, field: Clearance, bounds: 
     hz = step_mm or max(2 * s.clearance_mm, s.tip_length_mm)
     while True:
         pitch = hz * t / math.sqrt(2) * (1 - EPS_REL) if t > EPS_SMALL else hz
-        shape = (np.maximum(np.ceil((hi[:2] - lo[:2]) / pitch), 0).astype(int) + 1).tolist() + \
-            [int(max(math.floor((hi[2] - z0) / hz), 0)) + 1]
+        shape = (np.maximum(np.ceil((hi[:2] - lo[:2]) / pitch), 0).astype(int) + 1).tolist() + [
+            int(max(math.floor((hi[2] - z0) / hz), 0)) + 1
+        ]
         if math.prod(shape) <= max_nodes:
             break
         hz *= 1.2
@@ -273,8 +281,8 @@ def free_space_graph(mesh: trimesh.Trimesh, settings, field: Clearance, bounds: 
     offsets = [(di, dj) for di in (-1, 0, 1) for dj in (-1, 0, 1) if t > EPS_SMALL or di == dj == 0]
     flat = np.arange(len(pos)).reshape(shape)
     for di, dj in offsets:
-        src = flat[max(0, -di):shape[0] - max(0, di), max(0, -dj):shape[1] - max(0, dj), 1:]
-        dst = flat[max(0, di):shape[0] - max(0, -di), max(0, dj):shape[1] - max(0, -dj), :-1]
+        src = flat[max(0, -di) : shape[0] - max(0, di), max(0, -dj) : shape[1] - max(0, dj), 1:]
+        dst = flat[max(0, di) : shape[0] - max(0, -di), max(0, dj) : shape[1] - max(0, -dj), :-1]
         src, dst = src.ravel(), dst.ravel()
         both = grid.ravel()[src] & grid.ravel()[dst]
         src, dst = src[both], dst[both]

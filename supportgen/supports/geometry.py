@@ -38,8 +38,9 @@ _SEGMENTS = 16
 
 def to_manifold(mesh: trimesh.Trimesh) -> m3d.Manifold:
     """A manifold3d solid from a closed trimesh (raises GeometryError if it is not one)."""
-    solid = m3d.Manifold(m3d.Mesh(vert_properties=np.asarray(mesh.vertices, np.float32),
-                                  tri_verts=np.asarray(mesh.faces, np.uint32)))
+    solid = m3d.Manifold(
+        m3d.Mesh(vert_properties=np.asarray(mesh.vertices, np.float32), tri_verts=np.asarray(mesh.faces, np.uint32))
+    )
     if solid.status() != m3d.Error.NoError:
         raise GeometryError(f"the part is not a closed manifold solid ({solid.status().name}); repair it first")
     return solid
@@ -48,8 +49,9 @@ def to_manifold(mesh: trimesh.Trimesh) -> m3d.Manifold:
 def to_trimesh(solid: m3d.Manifold) -> trimesh.Trimesh:
     """The triangle mesh of a manifold3d solid."""
     out = solid.to_mesh()
-    return trimesh.Trimesh(np.asarray(out.vert_properties)[:, :3].astype(float),
-                           np.asarray(out.tri_verts, dtype=np.int64), process=False)
+    return trimesh.Trimesh(
+        np.asarray(out.vert_properties)[:, :3].astype(float), np.asarray(out.tri_verts, dtype=np.int64), process=False
+    )
 
 
 def _rotation_to(direction: np.ndarray) -> np.ndarray:
@@ -141,8 +143,10 @@ def _base(plan: SupportPlan, settings: Settings, phase: float = 0.0) -> list[m3d
     chamfer = min(0.5 * t, 0.5, 0.5 * rules.base_margin_mm)
     if rules.base == "raft":
         xy = _raft_centres(xy, radius, rules.contact_spacing_mm)
-    return [m3d.Manifold.hull_points(_chamfered_disc(p, radius, t, chamfer, ph))
-            for p, ph in zip(xy, _phases(phase, len(xy)))]
+    return [
+        m3d.Manifold.hull_points(_chamfered_disc(p, radius, t, chamfer, ph))
+        for p, ph in zip(xy, _phases(phase, len(xy)))
+    ]
 
 
 @dataclass(frozen=True)
@@ -212,8 +216,9 @@ _TIP_BASE_FRACTION = 0.9
 _FOOT_FRACTION = 0.95
 
 
-def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
-                   ) -> tuple[list[m3d.Manifold], list[m3d.Manifold]]:
+def build_supports(
+    plan: SupportPlan, settings: Settings, phase: float = 0.0
+) -> tuple[list[m3d.Manifold], list[m3d.Manifold]]:
     """Primitive solids of a plan: (tips, posts and joints; base parts).
 
     ``phase`` turns every polygonal section by that angle (radians), which moves
@@ -231,7 +236,11 @@ def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
         np.maximum.at(node_r, plan.edges[:, 1], plan.edge_radius)
     no_edge = node_r == 0
     node_r[no_edge] = rules.post_diameter_mm / 2
-    degree = np.bincount(plan.edges.ravel(), minlength=len(plan.nodes)) if len(plan.edges) else np.zeros(len(plan.nodes), int)
+    degree = (
+        np.bincount(plan.edges.ravel(), minlength=len(plan.nodes))
+        if len(plan.edges)
+        else np.zeros(len(plan.nodes), int)
+    )
     joint = degree >= 2
     joint[plan.tip_nodes] = True
     n_prim = len(plan.edges) + len(plan.braces) + int(joint.sum()) + len(plan.tip_points) + len(plan.feet)
@@ -259,8 +268,15 @@ def build_supports(plan: SupportPlan, settings: Settings, phase: float = 0.0
     base = _base(plan, settings, phase)
     for f in plan.feet:
         q, r = plan.nodes[f], node_r[f]
-        parts.append(frustum(q - [0, 0, rules.base_thickness_mm / 2], q + [0, 0, 0.5 * r], _FOOT_FRACTION * r,
-                             _FOOT_FRACTION * r, phase=next(turn)))
+        parts.append(
+            frustum(
+                q - [0, 0, rules.base_thickness_mm / 2],
+                q + [0, 0, 0.5 * r],
+                _FOOT_FRACTION * r,
+                _FOOT_FRACTION * r,
+                phase=next(turn),
+            )
+        )
     return parts, base
 
 
@@ -314,7 +330,7 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
         # Shells that touch or overlap (two parts side by side, a doubled shell) are one
         # solid only once joined; left as separate shells they meet in coincident faces.
         whole = _union(bodies, "part's bodies")
-    for k, phase in enumerate(PHASES):
+    for phase in PHASES:
         parts, base = build_supports(plan, settings, phase * 2 * np.pi / _SEGMENTS)
         supports = _union(parts + base, "supports")
         combined = _union([whole, supports], "part and supports")
@@ -322,5 +338,7 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
         if pinch_points(sup_mesh) == 0 and pinch_points(comb_mesh) == 0:
             base_solid = _union(base, "base")
             return Solids(sup_mesh, comb_mesh, float(supports.volume()), float(base_solid.volume()))
-    raise GeometryError(f"the supports touch themselves or the part at a point after {len(PHASES)} tries "
-                        "(pinch points a file cannot keep); change contact_spacing_mm slightly and run again")
+    raise GeometryError(
+        f"the supports touch themselves or the part at a point after {len(PHASES)} tries "
+        "(pinch points a file cannot keep); change contact_spacing_mm slightly and run again"
+    )

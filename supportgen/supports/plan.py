@@ -64,8 +64,9 @@ class Contacts:
         object.__setattr__(self, "kinds", _ro(self.kinds, "<U8"))
         object.__setattr__(self, "diameters", _ro(self.diameters, float))
         object.__setattr__(self, "loads", _ro(np.zeros(n) if self.loads is None else self.loads, float))
-        object.__setattr__(self, "peak_layers",
-                           _ro(np.full(n, -1) if self.peak_layers is None else self.peak_layers, int))
+        object.__setattr__(
+            self, "peak_layers", _ro(np.full(n, -1) if self.peak_layers is None else self.peak_layers, int)
+        )
         for name in ("normals", "kinds", "diameters", "loads", "peak_layers"):
             if len(getattr(self, name)) != n:
                 raise ValueError(f"Contacts.{name} has {len(getattr(self, name))} rows, points has {n}")
@@ -89,17 +90,22 @@ class Contacts:
         parts = [p for p in parts if len(p)]
         if not parts:
             return cls.empty()
-        return cls(*(np.concatenate([getattr(p, f.name) for p in parts])
-                     for f in dataclasses.fields(cls)))
+        return cls(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in dataclasses.fields(cls)))
 
     def to_records(self) -> list[dict]:
         """One plain dict per contact, for the JSON report."""
         return [
-            {"point": [round(float(v), 4) for v in p], "normal": [round(float(v), 4) for v in nrm],
-             "kind": str(k), "diameter_mm": round(float(d), 4), "load_n": round(float(f), 6),
-             "peak_layer": int(pl)}
-            for p, nrm, k, d, f, pl in zip(self.points, self.normals, self.kinds, self.diameters,
-                                           self.loads, self.peak_layers)
+            {
+                "point": [round(float(v), 4) for v in p],
+                "normal": [round(float(v), 4) for v in nrm],
+                "kind": str(k),
+                "diameter_mm": round(float(d), 4),
+                "load_n": round(float(f), 6),
+                "peak_layer": int(pl),
+            }
+            for p, nrm, k, d, f, pl in zip(
+                self.points, self.normals, self.kinds, self.diameters, self.loads, self.peak_layers
+            )
         ]
 
 
@@ -148,10 +154,17 @@ class SupportPlan:
     braces: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), int))
 
     def __post_init__(self):
-        for name, dtype, tail in (("nodes", float, (3,)), ("edges", int, (2,)), ("edge_radius", float, ()),
-                                  ("tip_points", float, (3,)), ("tip_nodes", int, ()),
-                                  ("tip_diameters", float, ()), ("tip_contact", int, ()),
-                                  ("feet", int, ()), ("braces", int, (2,))):
+        for name, dtype, tail in (
+            ("nodes", float, (3,)),
+            ("edges", int, (2,)),
+            ("edge_radius", float, ()),
+            ("tip_points", float, (3,)),
+            ("tip_nodes", int, ()),
+            ("tip_diameters", float, ()),
+            ("tip_contact", int, ()),
+            ("feet", int, ()),
+            ("braces", int, (2,)),
+        ):
             object.__setattr__(self, name, _ro(getattr(self, name), dtype, tail))
         if len(self.edge_radius) != len(self.edges):
             raise ValueError("SupportPlan.edge_radius must have one value per edge")

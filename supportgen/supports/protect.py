@@ -64,9 +64,21 @@ from .contacts import merge_contacts
 from .freespace import clearance_field
 from .plan import Contacts
 
-__all__ = ["MARK_TOLERANCE_MM", "SIDE_NORMAL_Z", "SIDECAR_SUFFIX", "Selector", "parse_selector",
-           "selectors_from_toml", "sidecar_for", "face_colours", "protect_mask", "Guard", "Relocation",
-           "guard_for", "Holder"]
+__all__ = [
+    "MARK_TOLERANCE_MM",
+    "SIDE_NORMAL_Z",
+    "SIDECAR_SUFFIX",
+    "Selector",
+    "parse_selector",
+    "selectors_from_toml",
+    "sidecar_for",
+    "face_colours",
+    "protect_mask",
+    "Guard",
+    "Relocation",
+    "guard_for",
+    "Holder",
+]
 
 #: Default distance (mm) within which a face counts as marked by a marking mesh:
 #: one pixel of a desktop printer (common practice: 35-50 um pixels).
@@ -130,13 +142,15 @@ def parse_selector(text: str, base_dir: str | Path | None = None) -> Selector:
             path = Path(base_dir) / path
         tol_v = float(tol) if tol else MARK_TOLERANCE_MM
         if not tol_v > 0 or not path_text.strip():
-            raise SettingsError(f"protect selector {text!r}: give a mesh file and a positive tolerance, "
-                                "e.g. mesh:seal.stl,0.05")
+            raise SettingsError(
+                f"protect selector {text!r}: give a mesh file and a positive tolerance, e.g. mesh:seal.stl,0.05"
+            )
         return Selector("mesh", (tol_v,), path, str(text))
     parts = [p.strip() for p in rest.split(",")]
     if len(parts) != _KINDS[kind] or not all(_is_number(p) for p in parts):
-        raise SettingsError(f"protect selector {text!r}: {kind} needs {_KINDS[kind]} numbers separated by "
-                            f"commas; {hint}")
+        raise SettingsError(
+            f"protect selector {text!r}: {kind} needs {_KINDS[kind]} numbers separated by commas; {hint}"
+        )
     values = tuple(float(p) for p in parts)
     if kind == "box" and not all(values[i] <= values[i + 3] for i in range(3)):
         raise SettingsError(f"protect selector {text!r}: give the low corner first (X0<=X1, Y0<=Y1, Z0<=Z1)")
@@ -176,8 +190,9 @@ def selectors_from_toml(path: str | Path) -> list[Selector]:
     if isinstance(items, dict):
         items = items.get("selectors", [])
     if not isinstance(items, list) or not all(isinstance(i, str) for i in items):
-        raise SettingsError(f"{path}: 'protect' must be a list of selector strings, "
-                            'e.g. protect = ["normal:0,0,-1,30"]')
+        raise SettingsError(
+            f"{path}: 'protect' must be a list of selector strings, e.g. protect = [\"normal:0,0,-1,30\"]"
+        )
     return [parse_selector(i, path.parent) for i in items]
 
 
@@ -208,8 +223,10 @@ def face_colours(path: str | Path) -> np.ndarray:
             raise ValueError("no colours")
         colours = np.asarray(visual.face_colors)[:, :3].astype(int)
     except Exception as exc:  # untrusted files: every failure becomes one line
-        raise MeshError(f"{path}: no face or vertex colours to select from ({type(exc).__name__}: {exc}); "
-                        "export with colours, or protect faces with box, normal, height or mesh selectors") from exc
+        raise MeshError(
+            f"{path}: no face or vertex colours to select from ({type(exc).__name__}: {exc}); "
+            "export with colours, or protect faces with box, normal, height or mesh selectors"
+        ) from exc
     return colours
 
 
@@ -241,8 +258,10 @@ def _selector_mask(mesh: trimesh.Trimesh, sel: Selector, source, label: str) -> 
         return (dist.reshape(-1, 4) <= sel.values[0]).all(axis=1)
     # colour
     if source is None:
-        raise SettingsError(f"protect selector {sel.text!r}: {label} is not a coloured file; colour selectors "
-                            "need a PLY, OBJ or 3MF input with colours")
+        raise SettingsError(
+            f"protect selector {sel.text!r}: {label} is not a coloured file; colour selectors "
+            "need a PLY, OBJ or 3MF input with colours"
+        )
     colours = face_colours(source)
     src = np.asarray(mesh.metadata.get("source_face", np.arange(len(mesh.faces))))
     hit = (colours == np.array(sel.values, int)).all(axis=1)
@@ -284,15 +303,18 @@ def protect_mask(mesh: trimesh.Trimesh, protect, *, source=None, label: str = "p
         elif callable(item):
             got = np.asarray(item(np.asarray(mesh.triangles_center), np.asarray(mesh.face_normals)), bool).reshape(-1)
             if got.shape != (n,):
-                raise SettingsError(f"{label}: the protect function returned {got.size} values for {n} faces; "
-                                    "return one bool per face")
+                raise SettingsError(
+                    f"{label}: the protect function returned {got.size} values for {n} faces; return one bool per face"
+                )
             out |= got
         else:
             mask = np.asarray(item, bool).reshape(-1)
             n_in = int(src.max()) + 1 if len(src) else 0
             if len(mask) < n_in:
-                raise SettingsError(f"{label}: protect mask has {len(mask)} values but the input has at least "
-                                    f"{n_in} faces; give one bool per input face")
+                raise SettingsError(
+                    f"{label}: protect mask has {len(mask)} values but the input has at least "
+                    f"{n_in} faces; give one bool per input face"
+                )
             out |= np.where(src >= 0, mask[np.clip(src, 0, None)], False)
     return out
 
@@ -347,8 +369,7 @@ class Guard:
             g = coo_matrix((np.ones(len(adj)), (pos[adj[:, 0]], pos[adj[:, 1]])), shape=(len(idx),) * 2)
             _, lab = connected_components(g, directed=False)
             region[idx] = lab
-        return cls(part, faces, np.asarray(offset, float), settings.rules.tip_max_mm / 2, region,
-                   settings.rules.seed)
+        return cls(part, faces, np.asarray(offset, float), settings.rules.tip_max_mm / 2, region, settings.rules.seed)
 
     def plan_options(self) -> dict:
         """Keyword arguments for a strategy: ``avoid`` when anything is protected."""
@@ -403,8 +424,14 @@ class Guard:
         keep = np.setdiff1d(np.arange(len(contacts)), bad)
         kept = Contacts(*(getattr(contacts, c)[keep] for c in cols))
         mv = bad[ok]
-        moved = Contacts(cand[j[ok]], cand_n[j[ok]], contacts.kinds[mv], contacts.diameters[mv],
-                         contacts.loads[mv], contacts.peak_layers[mv])
+        moved = Contacts(
+            cand[j[ok]],
+            cand_n[j[ok]],
+            contacts.kinds[mv],
+            contacts.diameters[mv],
+            contacts.loads[mv],
+            contacts.peak_layers[mv],
+        )
         # Moved contacts that crowd another contact are merged into it (tips would overlap).
         merged = merge_contacts(kept, moved, rules.tip_max_mm)
         unholdable = tuple(self._unholdable(pts[b]) for b in bad[~ok])
@@ -436,13 +463,18 @@ class Guard:
         axis = np.cross(nrm, [0.0, 0.0, 1.0])
         axis = axis / np.linalg.norm(axis) if np.linalg.norm(axis) > 1e-9 else np.array([1.0, 0.0, 0.0])
         xyz = point - self.offset
-        return {"point_mm": [round(float(v), 3) for v in xyz], "region": int(region[0]),
-                "suggested_rotation": {"axis": [round(float(v), 3) for v in axis], "angle_deg": round(angle, 1)},
-                "message": (f"the contact planned near x {xyz[0]:.2f}, y {xyz[1]:.2f}, z {xyz[2]:.2f} mm (input "
-                            f"coordinates) could only sit on protected region {int(region[0])}; left out (the "
-                            "check says whether the part still prints). "
-                            f"Turn the part {angle:.0f} degrees about the axis ({axis[0]:.2f}, {axis[1]:.2f}, "
-                            f"{axis[2]:.2f}) so that region faces away from the plate, or protect less")}
+        return {
+            "point_mm": [round(float(v), 3) for v in xyz],
+            "region": int(region[0]),
+            "suggested_rotation": {"axis": [round(float(v), 3) for v in axis], "angle_deg": round(angle, 1)},
+            "message": (
+                f"the contact planned near x {xyz[0]:.2f}, y {xyz[1]:.2f}, z {xyz[2]:.2f} mm (input "
+                f"coordinates) could only sit on protected region {int(region[0])}; left out (the "
+                "check says whether the part still prints). "
+                f"Turn the part {angle:.0f} degrees about the axis ({axis[0]:.2f}, {axis[1]:.2f}, "
+                f"{axis[2]:.2f}) so that region faces away from the plate, or protect less"
+            ),
+        }
 
 
 def _describe(item) -> str:
@@ -455,8 +487,15 @@ def _describe(item) -> str:
     return "face mask"
 
 
-def guard_for(mesh_in: trimesh.Trimesh, part: trimesh.Trimesh, offset, settings: Settings, protect=None,
-              source=None, label: str = "part") -> Guard:
+def guard_for(
+    mesh_in: trimesh.Trimesh,
+    part: trimesh.Trimesh,
+    offset,
+    settings: Settings,
+    protect=None,
+    source=None,
+    label: str = "part",
+) -> Guard:
     """The :class:`Guard` of one run: ``protect`` (see :func:`protect_mask`) plus, for a part
     read from a file, the selectors of its side-car file (:func:`sidecar_for`).
 

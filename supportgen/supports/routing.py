@@ -68,8 +68,13 @@ def _tip_ends(contacts: Contacts, s, field: Clearance) -> tuple[np.ndarray, np.n
         for length in first * np.array([1.0, 1.5, 2.0, 3.0, 4.0]):
             cand = p + length * direction
             mid = p + 0.5 * length * direction
-            ok = (~found & leaves & (cand[:, 2] >= s.base_thickness_mm + _MIN_DROP)
-                  & (field.lower(cand, need) >= need) & (field.lower(mid, need) > 0))
+            ok = (
+                ~found
+                & leaves
+                & (cand[:, 2] >= s.base_thickness_mm + _MIN_DROP)
+                & (field.lower(cand, need) >= need)
+                & (field.lower(mid, need) > 0)
+            )
             end[ok], found[ok] = cand[ok], True
     return end, found
 
@@ -101,8 +106,8 @@ def _merge(tips: np.ndarray, s, field: Clearance, cost, b: _Builder):
     pos = tips.copy()
     ids = np.array([b.node(p) for p in tips], int)
     alive = np.ones(len(pos), bool)
-    trunks: list[list[int]] = []          # node ids on each upright trunk, its foot last
-    trunk_xyz = np.zeros((0, 3))          # x, y of each trunk and the height of its top
+    trunks: list[list[int]] = []  # node ids on each upright trunk, its foot last
+    trunk_xyz = np.zeros((0, 3))  # x, y of each trunk and the height of its top
     blocked = []
 
     def ground(q):
@@ -127,8 +132,12 @@ def _merge(tips: np.ndarray, s, field: Clearance, cost, b: _Builder):
         m = np.column_stack([p[:2] + (q[:, :2] - p[:2]) * frac[:, None], zm])
         m[inside] = q[inside]
         pp = np.broadcast_to(p, m.shape)
-        gain = down(p[None])[0] + down(q) - edge_cost(pp, m, area, cost) - np.where(
-            inside, down(q), edge_cost(q, m, area, cost) + down(m))
+        gain = (
+            down(p[None])[0]
+            + down(q)
+            - edge_cost(pp, m, area, cost)
+            - np.where(inside, down(q), edge_cost(q, m, area, cost) + down(m))
+        )
         gain[(zm <= z0 + _MIN_DROP) | (p[2] - zm < _MIN_DROP)] = -np.inf
         # joining an upright trunk already standing on the base
         tdxy = np.linalg.norm(trunk_xyz[:, :2] - p[:2], axis=1)
@@ -143,8 +152,9 @@ def _merge(tips: np.ndarray, s, field: Clearance, cost, b: _Builder):
         segs = [(k, p, m[k]) for k in order if k < len(gain)]
         segs += [(k, q[k], m[k]) for k in order if k < len(gain) and not inside[k]]
         segs += [(k, p, tm[k - len(gain)]) for k in order if k >= len(gain)]
-        ok = field.clear(np.array([u for _, u, _ in segs]).reshape(-1, 3),
-                         np.array([v for _, _, v in segs]).reshape(-1, 3))
+        ok = field.clear(
+            np.array([u for _, u, _ in segs]).reshape(-1, 3), np.array([v for _, _, v in segs]).reshape(-1, 3)
+        )
         bad = {k for (k, _, _), fine in zip(segs, ok) if not fine}
         good = [k for k in order if k not in bad]
         if good and good[0] < len(gain):
@@ -194,8 +204,7 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
     lo = np.minimum(mesh.bounds[0], start.min(axis=0)) - 2 * s.clearance_mm - s.tip_length_mm
     hi = np.maximum(mesh.bounds[1], start.max(axis=0)) + 2 * s.clearance_mm + s.tip_length_mm
     hi[2] = start[:, 2].max()
-    g = free_space_graph(mesh, settings, field, np.array([lo, hi]), step_mm=step_mm, cost=cost,
-                         max_nodes=max_nodes)
+    g = free_space_graph(mesh, settings, field, np.array([lo, hi]), step_mm=step_mm, cost=cost, max_nodes=max_nodes)
     hz, pitch, origin, shape = g.graph["step"], g.graph["pitch"], g.graph["origin"], g.graph["shape"]
     if avoid is not None and "land" in g:
         # No post may stand on a protected face: drop the landings there.
@@ -204,8 +213,7 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
             hits = np.array([g.edges[n, "land"]["hit"] for n in into])
             g.remove_edges_from([(n, "land") for n, bad in zip(into, avoid(hits)) if bad])
     rev = g.reverse(copy=False)
-    search = {sink: nx.dijkstra_predecessor_and_distance(rev, sink) for sink in ("base", "land")
-              if sink in g}
+    search = {sink: nx.dijkstra_predecessor_and_distance(rev, sink) for sink in ("base", "land") if sink in g}
     t = math.tan(math.radians(s.branch_angle_deg))
     area = math.pi * (s.post_diameter_mm / 2) ** 2
     lattice_node: dict[int, int] = {}
@@ -233,8 +241,7 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
                 if sink not in search:
                     continue
                 dist = search[sink][1]
-                total = np.array([first[c] + dist.get(n, np.inf) if ok[c] else np.inf
-                                  for c, n in enumerate(cands)])
+                total = np.array([first[c] + dist.get(n, np.inf) if ok[c] else np.inf for c, n in enumerate(cands)])
                 if np.isfinite(total).any():
                     chosen = (cands[int(np.argmin(total))], sink)
                     break
@@ -257,10 +264,16 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
     return unrouted
 
 
-
-def plan_tree(mesh: trimesh.Trimesh, contacts: Contacts, settings, *, cost: Penalty | None = None,
-              graph_step_mm: float | None = None, max_graph_nodes: int = 60_000,
-              avoid=None) -> SupportPlan:
+def plan_tree(
+    mesh: trimesh.Trimesh,
+    contacts: Contacts,
+    settings,
+    *,
+    cost: Penalty | None = None,
+    graph_step_mm: float | None = None,
+    max_graph_nodes: int = 60_000,
+    avoid=None,
+) -> SupportPlan:
     """Branching supports: contacts merged into trunks that stand on the base or land on the part.
 
     Parameters
@@ -357,8 +370,7 @@ def plan_tree(mesh: trimesh.Trimesh, contacts: Contacts, settings, *, cost: Pena
         edge_radius=np.full(int(keep_edge.sum()), s.post_diameter_mm / 2),
         tip_points=np.concatenate([contacts.points[served][tip_ok], land_pts]),
         tip_nodes=np.concatenate([np.arange(len(served))[tip_ok], land_nodes]),
-        tip_diameters=np.concatenate([contacts.diameters[served][tip_ok],
-                                      np.full(len(land_nodes), s.tip_diameter_mm)]),
+        tip_diameters=np.concatenate([contacts.diameters[served][tip_ok], np.full(len(land_nodes), s.tip_diameter_mm)]),
         tip_contact=np.concatenate([served[tip_ok], np.full(len(land_nodes), -1)]),
         feet=np.array(sorted(set(b.feet)), int),
     )

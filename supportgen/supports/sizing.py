@@ -56,11 +56,29 @@ from .contacts import densify_points
 from .plan import SupportPlan
 
 __all__ = [
-    "EFFECTIVE_LENGTH", "EffectiveLength", "MAX_SLENDERNESS", "BRACE_MIN_ANGLE_DEG", "SizingError",
-    "SizedPlan", "tip_capacity", "required_tip_diameter", "tip_diameter", "over_capacity",
-    "euler_critical_load", "johnson_critical_load", "column_critical_load", "required_post_diameter",
-    "flow_loads", "size_plan", "densify_points", "tip_shear_stress", "bending_stress", "equivalent_tip_load",
-    "required_bending_diameter", "BRACE_FRACTION", "support_layer_forces",
+    "EFFECTIVE_LENGTH",
+    "EffectiveLength",
+    "MAX_SLENDERNESS",
+    "BRACE_MIN_ANGLE_DEG",
+    "SizingError",
+    "SizedPlan",
+    "tip_capacity",
+    "required_tip_diameter",
+    "tip_diameter",
+    "over_capacity",
+    "euler_critical_load",
+    "johnson_critical_load",
+    "column_critical_load",
+    "required_post_diameter",
+    "flow_loads",
+    "size_plan",
+    "densify_points",
+    "tip_shear_stress",
+    "bending_stress",
+    "equivalent_tip_load",
+    "required_bending_diameter",
+    "BRACE_FRACTION",
+    "support_layer_forces",
 ]
 
 
@@ -213,8 +231,9 @@ def column_critical_load(E_mpa, sigma_mpa, d_mm, L_mm, K):
     with np.errstate(divide="ignore", invalid="ignore"):
         lam = 4.0 * np.asarray(K, float) * np.asarray(L_mm, float) / d
     lam_c = math.sqrt(2.0 * np.pi**2 * E_mpa / sigma_mpa)
-    return np.where(lam >= lam_c, euler_critical_load(E_mpa, d, L_mm, K),
-                    johnson_critical_load(E_mpa, sigma_mpa, d, L_mm, K))
+    return np.where(
+        lam >= lam_c, euler_critical_load(E_mpa, d, L_mm, K), johnson_critical_load(E_mpa, sigma_mpa, d, L_mm, K)
+    )
 
 
 def required_post_diameter(compression_n, E_mpa, sigma_mpa, L_mm, K, safety_factor=1.0):
@@ -340,7 +359,7 @@ def _brace_loads(plan: SupportPlan, node_side, node_comp, settings: Settings):
     np.maximum.at(node_r, plan.edges[:, 0], plan.edge_radius)
     np.maximum.at(node_r, plan.edges[:, 1], plan.edge_radius)
     node_r[node_r == 0] = settings.rules.post_diameter_mm / 2
-    d = np.minimum(node_r[b[:, 0]], node_r[b[:, 1]])         # diameter = 2 * (0.5 * min radius)
+    d = np.minimum(node_r[b[:, 0]], node_r[b[:, 1]])  # diameter = 2 * (0.5 * min radius)
     vec = plan.nodes[b[:, 1]] - plan.nodes[b[:, 0]]
     length = np.linalg.norm(vec, axis=1)
     cos = np.hypot(vec[:, 0], vec[:, 1]) / np.maximum(length, 1e-12)
@@ -367,8 +386,9 @@ def _brace_floor(plan: SupportPlan, sz, settings: Settings):
     b = plan.braces.reshape(-1, 2)[weak]
     e_mod, sigma = settings.resin.green_modulus_mpa, settings.resin.green_tensile_mpa
     length = np.linalg.norm(plan.nodes[b[:, 1]] - plan.nodes[b[:, 0]], axis=1)
-    need = np.maximum(required_tip_diameter(load[weak], sigma, sf),
-                      required_post_diameter(load[weak], e_mod, sigma, length, 1.0, sf))
+    need = np.maximum(
+        required_tip_diameter(load[weak], sigma, sf), required_post_diameter(load[weak], e_mod, sigma, length, 1.0, sf)
+    )
     node_need = np.zeros(len(plan.nodes))
     np.maximum.at(node_need, b[:, 0], need)
     np.maximum.at(node_need, b[:, 1], need)
@@ -429,13 +449,19 @@ def flow_loads(plan: SupportPlan, contact_loads):
 
 def _check_plan(plan: SupportPlan, n_contacts: int) -> None:
     n = len(plan.nodes)
-    for name, idx in (("edges", plan.edges.ravel()), ("tip_nodes", plan.tip_nodes), ("feet", plan.feet),
-                      ("braces", plan.braces.ravel())):
+    for name, idx in (
+        ("edges", plan.edges.ravel()),
+        ("tip_nodes", plan.tip_nodes),
+        ("feet", plan.feet),
+        ("braces", plan.braces.ravel()),
+    ):
         if idx.size and (idx.min() < 0 or idx.max() >= n):
             raise SizingError(f"SupportPlan.{name} refers to a node outside 0..{n - 1}; rebuild the plan")
     if plan.tip_contact.size and plan.tip_contact.max() >= n_contacts:
-        raise SizingError(f"SupportPlan.tip_contact refers to contact {plan.tip_contact.max()} but only "
-                          f"{n_contacts} contact loads were given; pass one load per contact")
+        raise SizingError(
+            f"SupportPlan.tip_contact refers to contact {plan.tip_contact.max()} but only "
+            f"{n_contacts} contact loads were given; pass one load per contact"
+        )
     graph = nx.DiGraph(plan.edges.tolist())
     if not nx.is_directed_acyclic_graph(graph):
         raise SizingError("SupportPlan.edges contain a cycle, so load cannot flow down to the feet; fix the routing")
@@ -454,8 +480,8 @@ class _Sizing(NamedTuple):
     length: np.ndarray
     k: np.ndarray
     runs: PostRuns
-    run_need: np.ndarray      # (R,) buckling need before floors (mm)
-    run_slender: np.ndarray   # (R,) K L / r at the chosen diameter
+    run_need: np.ndarray  # (R,) buckling need before floors (mm)
+    run_slender: np.ndarray  # (R,) K L / r at the chosen diameter
     node_side: np.ndarray
     node_comp: np.ndarray
 
@@ -466,7 +492,7 @@ def _size(plan: SupportPlan, tension_c, compression_c, side_c, settings: Setting
     node_comp, compression, _ = flow_loads(plan, compression_c)
     node_side, side, tip_side = flow_loads(plan, side_c)
     contact_tip = plan.tip_contact >= 0
-    tip_side = np.where(contact_tip, tip_side, 0.0)       # a landing tip passes a post's load, not the film's shear
+    tip_side = np.where(contact_tip, tip_side, 0.0)  # a landing tip passes a post's load, not the film's shear
     tip_d = tip_diameter(equivalent_tip_load(tip_load, tip_side), settings)
     held = held_nodes(plan)
     runs = post_runs(plan, held)
@@ -478,8 +504,16 @@ def _size(plan: SupportPlan, tension_c, compression_c, side_c, settings: Setting
     tip_floor = np.zeros(len(plan.nodes))
     np.maximum.at(tip_floor, plan.tip_nodes[contact_tip], tip_d[contact_tip])
     u, v = plan.edges[:, 0], plan.edges[:, 1]
-    d = np.maximum.reduce([need_b, need_t, need_s, np.full(len(u), 0.5 * s.post_diameter_mm), tip_floor[u],
-                           np.zeros(len(u)) if edge_floor is None else edge_floor])
+    d = np.maximum.reduce(
+        [
+            need_b,
+            need_t,
+            need_s,
+            np.full(len(u), 0.5 * s.post_diameter_mm),
+            tip_floor[u],
+            np.zeros(len(u)) if edge_floor is None else edge_floor,
+        ]
+    )
     for _ in range(len(d)):  # never thinner than what flows in from above: O(depth * E)
         inflow = np.zeros(len(plan.nodes))
         np.maximum.at(inflow, v, d)
@@ -492,8 +526,24 @@ def _size(plan: SupportPlan, tension_c, compression_c, side_c, settings: Setting
     np.maximum.at(run_need, runs.edge_run, need_b)
     np.minimum.at(run_d, runs.edge_run, d)
     buckling = column_critical_load(e_mod, sigma, d, length, k)
-    return _Sizing(tip_load, tip_side, tip_d, tension, compression, side, lever, d, buckling, length, k, runs,
-                   run_need, 4.0 * runs.k * runs.length / run_d, node_side, node_comp)
+    return _Sizing(
+        tip_load,
+        tip_side,
+        tip_d,
+        tension,
+        compression,
+        side,
+        lever,
+        d,
+        buckling,
+        length,
+        k,
+        runs,
+        run_need,
+        4.0 * runs.k * runs.length / run_d,
+        node_side,
+        node_comp,
+    )
 
 
 def _stats(a: np.ndarray) -> dict:
@@ -588,12 +638,15 @@ class SizedPlan:
             "tips_over_capacity": int(self.tips_over_capacity),
             "braces": int(len(self.plan.braces)),
             "braces_added": int(self.braces_added),
-            "tips": {"load_n": [_num(x) for x in self.tip_load_n],
-                     "capacity_n": [_num(x) for x in self.tip_capacity_n],
-                     "safety_factor": [_num(x) for x in self.tip_safety_factor],
-                     "side_load_n": [_num(x) for x in (self.tip_side_n if self.tip_side_n is not None else [])],
-                     "side_load_safety_factor": [_num(x) for x in (self.tip_side_safety_factor
-                                                                  if self.tip_side_safety_factor is not None else [])]},
+            "tips": {
+                "load_n": [_num(x) for x in self.tip_load_n],
+                "capacity_n": [_num(x) for x in self.tip_capacity_n],
+                "safety_factor": [_num(x) for x in self.tip_safety_factor],
+                "side_load_n": [_num(x) for x in (self.tip_side_n if self.tip_side_n is not None else [])],
+                "side_load_safety_factor": [
+                    _num(x) for x in (self.tip_side_safety_factor if self.tip_side_safety_factor is not None else [])
+                ],
+            },
         }
 
 
@@ -602,8 +655,15 @@ def _ratio(capacity: np.ndarray, load: np.ndarray) -> np.ndarray:
         return np.divide(capacity, load, out=np.full(load.shape, np.inf), where=load > 0)
 
 
-def size_plan(plan: SupportPlan, contact_loads, settings: Settings, compression_loads=None,
-              *, side_loads=None, max_brace_rounds: int = 3) -> SizedPlan:
+def size_plan(
+    plan: SupportPlan,
+    contact_loads,
+    settings: Settings,
+    compression_loads=None,
+    *,
+    side_loads=None,
+    max_brace_rounds: int = 3,
+) -> SizedPlan:
     """Size every tip and post of a plan from the contacts' peak loads; brace slender posts.
 
     Parameters
@@ -654,8 +714,9 @@ def size_plan(plan: SupportPlan, contact_loads, settings: Settings, compression_
     side_c = np.zeros_like(tension_c) if side_loads is None else _loads(side_loads, "side_loads")
     for name, arr in (("compression_loads", compression_c), ("side_loads", side_c)):
         if arr.shape != tension_c.shape:
-            raise SizingError(f"{name} has shape {arr.shape}, contact_loads {tension_c.shape}; "
-                              "pass one value per contact")
+            raise SizingError(
+                f"{name} has shape {arr.shape}, contact_loads {tension_c.shape}; pass one value per contact"
+            )
     _check_plan(plan, len(tension_c))
     added = 0
     sz = _size(plan, tension_c, compression_c, side_c, settings)
@@ -673,19 +734,44 @@ def size_plan(plan: SupportPlan, contact_loads, settings: Settings, compression_
     tip_cap = tip_capacity(sz.tip_d, sigma)
     tip_sf = _ratio(tip_cap, sz.tip_load)
     tip_side_sf = np.where(sz.tip_side > 0, _ratio(tip_cap, equivalent_tip_load(sz.tip_load, sz.tip_side)), np.inf)
-    edge_sf = np.minimum(_ratio(tip_capacity(sz.diameter, sigma), np.maximum(sz.tension, sz.compression)),
-                         _ratio(sz.buckling, sz.compression))
+    edge_sf = np.minimum(
+        _ratio(tip_capacity(sz.diameter, sigma), np.maximum(sz.tension, sz.compression)),
+        _ratio(sz.buckling, sz.compression),
+    )
     with np.errstate(divide="ignore", invalid="ignore"):
-        stress = (4.0 * np.maximum(sz.tension, sz.compression) / (np.pi * sz.diameter**2)
-                  + bending_stress(sz.side, sz.lever, sz.diameter))
+        stress = 4.0 * np.maximum(sz.tension, sz.compression) / (np.pi * sz.diameter**2) + bending_stress(
+            sz.side, sz.lever, sz.diameter
+        )
     edge_side_sf = np.where(sz.side > 0, _ratio(np.full(stress.shape, sigma), stress), np.inf)
     b_load, b_cap, _ = _brace_loads(sized, sz.node_side, sz.node_comp, settings)
     brace_sf = _ratio(b_cap, b_load)
     tip_over = over_capacity(equivalent_tip_load(sz.tip_load, sz.tip_side), settings)
     lowest = min(float(np.min(a, initial=np.inf)) for a in (tip_sf, edge_sf, tip_side_sf, edge_side_sf, brace_sf))
-    return SizedPlan(sized, sz.tip_load, tip_cap, tip_sf, tip_over, sz.tension, sz.compression, sz.buckling,
-                     edge_sf, sz.length, sz.k, float(s.safety_factor), lowest, int(tip_over.sum()), added,
-                     sz.tip_side, tip_side_sf, sz.side, sz.lever, edge_side_sf, b_load, b_cap, brace_sf)
+    return SizedPlan(
+        sized,
+        sz.tip_load,
+        tip_cap,
+        tip_sf,
+        tip_over,
+        sz.tension,
+        sz.compression,
+        sz.buckling,
+        edge_sf,
+        sz.length,
+        sz.k,
+        float(s.safety_factor),
+        lowest,
+        int(tip_over.sum()),
+        added,
+        sz.tip_side,
+        tip_side_sf,
+        sz.side,
+        sz.lever,
+        edge_side_sf,
+        b_load,
+        b_cap,
+        brace_sf,
+    )
 
 
 def support_layer_forces(plan: SupportPlan, settings: Settings, n_layers: int = 0):
@@ -736,6 +822,7 @@ def support_layer_forces(plan: SupportPlan, settings: Settings, n_layers: int = 
         yy, xx = np.meshgrid(gy[r0:r1], gx[c0:c1], indexing="ij")
         raft[r0:r1, c0:c1] |= (xx - x) ** 2 + (yy - y) ** 2 <= ri * ri
     from scipy import ndimage
+
     lab, m = ndimage.label(raft)
     a_raft = np.bincount(lab.ravel())[1:] * h * h
     j_raft = np.zeros(m)
@@ -744,7 +831,7 @@ def support_layer_forces(plan: SupportPlan, settings: Settings, n_layers: int = 
         p = np.pad(crop, 1)
         edges = int((p[1:, :] != p[:-1, :]).sum() + (p[:, 1:] != p[:, :-1]).sum())
         j_raft[i] = torsion_constant(crop, h, int(coarse_factor(crop.sum(), edges)))
-    law = separation(pr.mechanism)       # the raft leaves the film like any layer: by the printer's mechanism
+    law = separation(pr.mechanism)  # the raft leaves the film like any layer: by the printer's mechanism
     f_raft = float(law(LayerShape(lab, h, a_raft, j_raft, origin=(gx[0], gy[0])), settings).sum())
     k_raft = int(np.ceil(rules.base_thickness_mm / lh))
     force[:k_raft] += f_raft

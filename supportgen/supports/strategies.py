@@ -32,8 +32,14 @@ from .plan import Contacts, SupportPlan
 __all__ = ["STRATEGIES", "get_strategy", "plan_straight", "join_plans"]
 
 
-def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings, *,
-                  avoid: Callable[[np.ndarray], np.ndarray] | None = None, reroute: bool = True) -> SupportPlan:
+def plan_straight(
+    mesh: trimesh.Trimesh,
+    contacts: Contacts,
+    settings: Settings,
+    *,
+    avoid: Callable[[np.ndarray], np.ndarray] | None = None,
+    reroute: bool = True,
+) -> SupportPlan:
     """One vertical post per contact.
 
     Parameters
@@ -97,8 +103,14 @@ def plan_straight(mesh: trimesh.Trimesh, contacts: Contacts, settings: Settings,
     tip_diam = np.concatenate([contacts.diameters, contacts.diameters[land_idx]])
     tip_contact = np.concatenate([np.arange(n), np.full(len(land_idx), -1)])
     return SupportPlan(
-        strategy="straight", nodes=nodes, edges=edges, edge_radius=np.full(len(edges), r_post),
-        tip_points=tip_points, tip_nodes=tip_nodes, tip_diameters=tip_diam, tip_contact=tip_contact,
+        strategy="straight",
+        nodes=nodes,
+        edges=edges,
+        edge_radius=np.full(len(edges), r_post),
+        tip_points=tip_points,
+        tip_nodes=tip_nodes,
+        tip_diameters=tip_diam,
+        tip_contact=tip_contact,
         feet=2 * np.flatnonzero(~lands) + 1,
     )
 
@@ -118,8 +130,17 @@ def _without_refused(mesh, contacts, settings, refused, avoid, reroute) -> Suppo
 
 
 def _empty_plan(strategy: str) -> SupportPlan:
-    return SupportPlan(strategy, np.zeros((0, 3)), np.zeros((0, 2), int), np.zeros(0), np.zeros((0, 3)),
-                       np.zeros(0, int), np.zeros(0), np.zeros(0, int), np.zeros(0, int))
+    return SupportPlan(
+        strategy,
+        np.zeros((0, 3)),
+        np.zeros((0, 2), int),
+        np.zeros(0),
+        np.zeros((0, 3)),
+        np.zeros(0, int),
+        np.zeros(0),
+        np.zeros(0, int),
+        np.zeros(0, int),
+    )
 
 
 def join_plans(strategy: str, first: SupportPlan, second: SupportPlan, second_contacts: np.ndarray) -> SupportPlan:
@@ -128,7 +149,8 @@ def join_plans(strategy: str, first: SupportPlan, second: SupportPlan, second_co
     off = len(first.nodes)
     tip_contact = np.where(second.tip_contact >= 0, second_contacts[np.maximum(second.tip_contact, 0)], -1)
     return SupportPlan(
-        strategy=strategy, nodes=np.vstack([first.nodes, second.nodes]),
+        strategy=strategy,
+        nodes=np.vstack([first.nodes, second.nodes]),
         edges=np.vstack([first.edges, second.edges + off]),
         edge_radius=np.concatenate([first.edge_radius, second.edge_radius]),
         tip_points=np.vstack([first.tip_points, second.tip_points]),
