@@ -57,12 +57,12 @@ def _one_line_naming(msg: str, case_id: str) -> bool:
 
 def _too_large(mesh, settings) -> bool:
     """The part's footprint or height (with the base margin and lift) exceeds the build volume."""
-    pr, sp = settings.printer, settings.supports
+    pr, rules = settings.printer, settings.rules
     ext = mesh.extents
     return bool(
-        ext[0] + 2 * sp.base_margin_mm > pr.build_x_mm
-        or ext[1] + 2 * sp.base_margin_mm > pr.build_y_mm
-        or ext[2] + sp.lift_mm > pr.build_z_mm
+        ext[0] + 2 * rules.base_margin_mm > pr.build_x_mm
+        or ext[1] + 2 * rules.base_margin_mm > pr.build_y_mm
+        or ext[2] + rules.elevation_mm > pr.build_z_mm
     )
 
 
