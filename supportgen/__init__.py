@@ -22,17 +22,17 @@ from .supports.strategies import STRATEGIES
 __version__ = "0.1.0"
 
 
+#: Names loaded on first use (the pipeline pulls in every stage, so ``import
+#: supportgen`` stays quick for scripts that only read settings): name -> module.
+#: Declared once here; ``__init__.pyi`` states their types for IDEs and checkers.
+_LAZY = {"generate": "pipeline", "check": "pipeline", "Result": "pipeline", "orient": "physics.orientation"}
+
+
 def __getattr__(name):
-    # The pipeline pulls in every stage; load it on first use so that
-    # ``import supportgen`` stays quick for scripts that only read settings.
-    if name in ("generate", "check", "Result"):
-        from . import pipeline
+    if name in _LAZY:
+        import importlib
 
-        return getattr(pipeline, name)
-    if name == "orient":
-        from .physics.orientation import orient
-
-        return orient
+        return getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
     raise AttributeError(f"module 'supportgen' has no attribute {name!r}")
 
 
