@@ -397,11 +397,12 @@ def _generate(
         file_info = {"path": str(contacts_file), "rows": len(contacts), "locked": fixed}
     contacts = hold(contacts, fixed)
     densified = repaired = 0
-    for _ in range(MAX_DENSIFY_ROUNDS):
+    for round_ in range(MAX_DENSIFY_ROUNDS + 1):
         with timer("forces"):
             profile = _forces(part, stack.grid, contacts, settings, progress)
         over = over_capacity(profile.contact_tip_loads, settings)
-        if not over.any() or file_info:  # a contacts file is honoured: no contacts added here
+        # The last round only measures: the loads must be those of the contacts kept.
+        if not over.any() or file_info or round_ == MAX_DENSIFY_ROUNDS:  # a contacts file is honoured
             break
         with timer("contacts"):
             more = densify_points(contacts, over, part, settings)
