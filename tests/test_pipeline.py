@@ -144,7 +144,10 @@ def test_a_solid_brick_gets_more_tip_area_than_an_open_lattice():
 
     from supportgen.supports.geometry import to_trimesh
 
-    s = supportgen.Settings().override(pixel_mm=0.1, layer_mm=0.1, tip_min_mm=0.2, force_calibration=0.2)
+    # The squeeze-film term alone (no adhesion term linear in area), the law this test is about.
+    s = supportgen.Settings().override(
+        pixel_mm=0.1, layer_mm=0.1, tip_min_mm=0.2, force_calibration=0.2, force_area_n_mm2=0.0
+    )
     brick = to_trimesh(m3d.Manifold.cube((24, 24, 4), center=True))
     bars = [m3d.Manifold.cube((24, 1.5, 4), center=True).translate((0, y, 0)) for y in np.arange(-11.25, 12, 4.5)]
     # Cross bars 0.2 mm taller, so no faces of the two sets coincide.
@@ -164,8 +167,12 @@ def test_contacts_are_added_where_a_tip_would_need_more_than_the_largest():
     # every tip holds SF x its load at a diameter no larger than tip_max_mm.
     s = supportgen.Settings().override(pixel_mm=0.1, layer_mm=0.1, tip_min_mm=0.2)
     brick = trimesh.creation.box((24, 24, 4))
-    light = supportgen.generate(brick, s.override(force_calibration=0.05), strategy="straight", name="brick")
-    heavy = supportgen.generate(brick, s.override(force_calibration=0.3), strategy="straight", name="brick")
+    # Light: squeeze only at a low factor.  Heavy: a strong adhesion term (0.8 N/mm2 over the
+    # 576 mm2 underside, several N a tip), which the cavitation ceiling on suction does not cap.
+    light = supportgen.generate(
+        brick, s.override(force_calibration=0.05, force_area_n_mm2=0.0), strategy="straight", name="brick"
+    )
+    heavy = supportgen.generate(brick, s.override(force_area_n_mm2=0.8), strategy="straight", name="brick")
     assert light.report["supports"]["contacts_added_by_densifying"] == 0
     assert heavy.report["supports"]["contacts_added_by_densifying"] > 0
     assert len(heavy.contacts) > len(light.contacts)

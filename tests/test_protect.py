@@ -283,11 +283,11 @@ def test_cli_protect_and_contacts_and_sidecar(tmp_path, capsys):
     assert main(["generate", str(part), "-o", str(out2), "--quiet", "--contacts", str(csv)]) == 0
     assert read_contacts(out2 / "slab.contacts.csv").points.shape == read_contacts(csv).points.shape
     # Side-car file next to the part: the same protection without the option (how batches carry it).
-    (tmp_path / "slab.protect.toml").write_text('protect = ["normal:0,0,-1,5"]\n')
+    (tmp_path / "slab.protect.toml").write_text('protect = ["normal:1,0,0,5"]\n')
     out3 = tmp_path / "out3"
     assert main(["generate", str(part), "-o", str(out3), "--quiet"]) == 0
     rep3 = json.loads((out3 / "slab.report.json").read_text())
-    assert rep3["protection"]["protected_faces"] == 2 and rep3["protection"]["selectors"] == ["normal:0,0,-1,5"]
+    assert rep3["protection"]["protected_faces"] == 2 and rep3["protection"]["selectors"] == ["normal:1,0,0,5"]
     # Bad input: one line naming the file.
     bad = tmp_path / "bad.csv"
     bad.write_text("id,x_mm,y_mm,z_mm\n0,1,two,3\n")
