@@ -13,17 +13,17 @@ import numpy as np
 
 from ..constants import EPS_FLOOR
 
-__all__ = ["plot_layers", "plot_tips", "plot_preview", "PREVIEW_VIEWS"]
+__all__ = ["plot_layers", "plot_tips", "plot_preview", "PREVIEW_VIEWS", "new_figure", "png_bytes"]
 
 
-def _figure(**kwargs):
+def new_figure(**kwargs):
     """A new figure that belongs to no pyplot state."""
     from matplotlib.figure import Figure
 
     return Figure(**kwargs)
 
 
-def _png(fig) -> bytes:
+def png_bytes(fig) -> bytes:
     """The figure laid out, as PNG bytes."""
     fig.tight_layout()
     buf = io.BytesIO()
@@ -37,7 +37,7 @@ def plot_layers(
 ) -> bytes:
     """PNG bytes: cured area and separation force per layer, side by side against height."""
     ncols = 2 if force_n is not None else 1
-    fig = _figure(figsize=(4.2 * ncols, 4.2))
+    fig = new_figure(figsize=(4.2 * ncols, 4.2))
     axes = fig.subplots(1, ncols, sharey=True, squeeze=False)
     ax = axes[0, 0]
     ax.plot(area_mm2, z_mm, color="#2a6f97", lw=1)
@@ -57,12 +57,12 @@ def plot_layers(
         )
         ax.grid(alpha=0.3)
     fig.suptitle(title, fontsize=10)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def plot_tips(safety: np.ndarray, target: float, title: str) -> bytes:
     """PNG bytes: histogram of the tips' safety factors (capacity over peak load), with the target."""
-    fig = _figure(figsize=(5, 3.4))
+    fig = new_figure(figsize=(5, 3.4))
     ax = fig.subplots()
     s = np.asarray(safety, float)
     s = s[np.isfinite(s)]
@@ -73,7 +73,7 @@ def plot_tips(safety: np.ndarray, target: float, title: str) -> bytes:
     ax.set_ylabel("tips")
     ax.legend(fontsize=8)
     ax.set_title(title, fontsize=10)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 #: Preview views: (label, elevation, azimuth) in degrees; the last looks up from the plate.
@@ -103,7 +103,7 @@ def plot_preview(part, supports, title: str) -> bytes:
     import trimesh
     from mpl_toolkits.mplot3d.art3d import Poly3DCollection
 
-    fig = _figure(figsize=(12, 4.6))
+    fig = new_figure(figsize=(12, 4.6))
     lo = np.minimum(part.bounds[0], supports.bounds[0]) if len(supports.faces) else part.bounds[0]
     hi = np.maximum(part.bounds[1], supports.bounds[1]) if len(supports.faces) else part.bounds[1]
     span = float((hi - lo).max()) / 2
@@ -147,4 +147,4 @@ def plot_preview(part, supports, title: str) -> bytes:
             ax.plot([x0, x0 + bar], [y0, y0], [z0, z0], color="k", lw=2)
             ax.text(x0 + bar / 2, y0 + 0.12 * span, z0, f"{bar:g} mm", ha="center", va="center", fontsize=8)
     fig.suptitle(title, fontsize=10)
-    return _png(fig)
+    return png_bytes(fig)

@@ -15,30 +15,15 @@ counts for a protected region when that region's surface is closer than ``d / 2`
 
 from __future__ import annotations
 
-import io
-
 import numpy as np
 import trimesh
 
 from ..io.contactsfile import format_contacts
 from ..supports.plan import Contacts, SupportPlan
 from ..supports.protect import Guard, Holder
+from .plots import new_figure, png_bytes
 
 __all__ = ["protection_section", "add_protection", "plot_underside", "contacts_csv"]
-
-
-def _figure(**kwargs):
-    """A new figure that belongs to no pyplot state."""
-    from matplotlib.figure import Figure
-
-    return Figure(**kwargs)
-
-
-def _png(fig) -> bytes:
-    fig.tight_layout()
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=110, metadata={"Software": None})  # fixed metadata: same bytes
-    return buf.getvalue()
 
 
 def _tip_diameters(contacts: Contacts, plan: SupportPlan) -> np.ndarray:
@@ -148,7 +133,7 @@ def plot_underside(
     colours[prot] = np.column_stack(
         [0.85 * np.ones(prot.sum()), 0.3 * shade[prot], 0.3 * shade[prot], np.ones(prot.sum())]
     )
-    fig = _figure(figsize=(5.6, 5.6))
+    fig = new_figure(figsize=(5.6, 5.6))
     ax = fig.subplots()
     xy = tri[order][:, :, :2] * np.array([-1.0, 1.0])
     # Edges in the face colour close the hairline gaps that would show faces behind.
@@ -174,7 +159,7 @@ def plot_underside(
     ax.set_xlabel("-x (mm): seen from below")
     ax.set_ylabel("y (mm)")
     ax.set_title(title, fontsize=10)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def contacts_csv(contacts: Contacts, plan: SupportPlan, tip_safety, offset) -> str:
