@@ -156,3 +156,24 @@ def test_a_part_drawn_in_metres_is_refused_with_the_unit_and_scaled_on_request(t
     made = trimesh.load(tmp_path / "out" / "bracket.supported.stl")
     # Scaled by 1000 exactly: the part's 12 x 10 mm footprint is inside the solid's extent.
     assert made.extents[0] >= 12.0 - 1e-6 and made.extents[1] >= 10.0 - 1e-6
+
+
+def test_version_folder_pointer_and_no_bars_off_a_terminal(tmp_path, capsys):
+    import supportgen
+
+    with pytest.raises(SystemExit) as done:
+        main(["--version"])
+    assert done.value.code == 0 and capsys.readouterr().out.strip() == f"supportgen {supportgen.__version__}"
+    # A folder given to generate points to batch, as a usage error (exit 2), in one line.
+    assert main(["generate", str(tmp_path), "-o", str(tmp_path / "out")]) == 2
+    said = capsys.readouterr().err.strip().splitlines()
+    assert len(said) == 1 and "supportgen batch" in said[0]
+    # Off a terminal (stderr is a pipe here) no progress bar is drawn: tqdm's bar pieces never appear.
+    part = _box_stl(tmp_path / "box.stl")
+    run = subprocess.run(
+        [sys.executable, "-m", "supportgen", "generate", str(part), "-o", str(tmp_path / "o2"), *COARSE[:-1]],
+        capture_output=True,
+        text=True,
+    )
+    assert run.returncode == 0, run.stderr
+    assert "layer/s" not in run.stderr and "%|" not in run.stderr

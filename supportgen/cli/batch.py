@@ -16,7 +16,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from .options import err, nonnegative_seconds, positive, settings_from
+from .options import err, nonnegative_seconds, positive, settings_from, show_progress
 
 __all__ = ["add_parser", "cmd_batch"]
 
@@ -101,7 +101,7 @@ def cmd_batch(args) -> int:
         pattern=args.pattern,
         timeout_s=args.timeout,
         memory_limit_mb=args.memory_limit,
-        progress=not args.quiet,
+        progress=show_progress(args),
         name_clash=args.name_clash,
         wait_s=args.wait,
         protect=args.protect or (),

@@ -12,7 +12,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from .options import positive, settings_from
+from .options import positive, settings_from, show_progress
 
 __all__ = ["add_parser", "cmd_bench", "parse_strategies"]
 
@@ -95,7 +95,7 @@ def cmd_bench(args) -> int:
         baseline=baseline,
         scale_mm=args.scale,
         memory=args.memory,
-        progress=not args.quiet,
+        progress=show_progress(args),
     )
     status = EXIT_OK
     for r in table.rows:

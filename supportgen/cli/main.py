@@ -13,7 +13,7 @@ import sys
 import time
 from pathlib import Path
 
-from .options import common_options, err, nonnegative_seconds, settings_from, strategy_option
+from .options import common_options, err, nonnegative_seconds, settings_from, show_progress, strategy_option
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
 
@@ -107,7 +107,7 @@ def _run_generate(inputs, outdir: Path, args) -> int:
             units=args.units,
             scale=args.scale,
             group_bounds=together,
-            progress=not args.quiet,
+            progress=show_progress(args),
             name=names[str(path)],
             orient=getattr(args, "orient", "keep"),
             rotate=getattr(args, "rotate", None),
@@ -135,6 +135,13 @@ def _run_generate(inputs, outdir: Path, args) -> int:
 
 
 def cmd_generate(args) -> int:
+    folders = [p for p in args.inputs if Path(p).is_dir()]
+    if folders:
+        err(
+            f"error: {folders[0]} is a folder; generate takes mesh files: for a folder tree use "
+            f"'supportgen batch {folders[0]} -o OUTDIR'"
+        )
+        return EXIT_USAGE
     if getattr(args, "contacts", None) and len(args.inputs) != 1:
         err("error: --contacts FILE belongs to one part; give exactly one INPUT with it")
         return EXIT_USAGE
@@ -160,7 +167,7 @@ def cmd_check(args) -> int:
     settings = settings_from(args)
 
     def work(path):
-        ver = supportgen.check(path, settings, progress=not args.quiet)
+        ver = supportgen.check(path, settings, progress=show_progress(args))
         if args.json:
             print(json.dumps({"mesh": str(path), **ver.to_dict()}, sort_keys=True))
         elif ver.passed:
@@ -208,6 +215,9 @@ def build_parser() -> argparse.ArgumentParser:
         prog="supportgen",
         description="Support structures for bottom-up resin printing, sized from the separation force of every layer.",
     )
+    from supportgen import __version__
+
+    parser.add_argument("--version", action="version", version=f"supportgen {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
     common, strategy = common_options(), strategy_option()

@@ -20,8 +20,23 @@ def common_options() -> argparse.ArgumentParser:
         help="override one setting (repeatable), e.g. --set contact_spacing_mm=1.8",
     )
     common.add_argument("--quiet", action="store_true", help="no progress bars or summaries")
+    common.add_argument(
+        "--progress",
+        action=argparse.BooleanOptionalAction,
+        default=None,
+        help="progress bars on stderr (default: only when stderr is a terminal, so logs stay clean)",
+    )
     common.add_argument("--debug", action="store_true", help="show tracebacks")
     return common
+
+
+def show_progress(args) -> bool:
+    """Progress bars: never with --quiet; else as --progress/--no-progress say; else only on a terminal."""
+    if args.quiet:
+        return False
+    if getattr(args, "progress", None) is not None:
+        return bool(args.progress)
+    return sys.stderr.isatty()
 
 
 def strategy_option() -> argparse.ArgumentParser:
