@@ -559,7 +559,7 @@ def test_full_disk_gives_one_line_and_the_next_input_goes_on(tmp_path, capsys, m
         (tmp_path / name).write_bytes(b"solid x\nendsolid x\n")
     out = tmp_path / "small-disk"
     unmount = _small_fs(out, int(1.3 * sizes["part"] / 1024) + 64)
-    real_stage = supportgen.io.outputs._stage
+    real_stage = supportgen.io.outputs.stage_file
     if unmount is None:  # no small file system here: inject ENOSPC for the big part's files
 
         def stage(target, data):
@@ -567,7 +567,7 @@ def test_full_disk_gives_one_line_and_the_next_input_goes_on(tmp_path, capsys, m
                 raise OSError(errno.ENOSPC, "No space left on device", str(target))
             return real_stage(target, data)
 
-        monkeypatch.setattr(supportgen.io.outputs, "_stage", stage)
+        monkeypatch.setattr(supportgen.io.outputs, "stage_file", stage)
     try:
         code = main(["generate", str(tmp_path / "big.stl"), str(tmp_path / "part.stl"), "-o", str(out), "--quiet"])
         err = capsys.readouterr().err.strip().splitlines()

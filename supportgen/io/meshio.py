@@ -20,7 +20,6 @@ from __future__ import annotations
 import io
 import os
 import re
-import tempfile
 import warnings
 import zipfile
 from dataclasses import dataclass
@@ -31,7 +30,7 @@ import numpy as np
 import trimesh
 
 from supportgen.errors import MeshError
-from supportgen.io.outputs import TEMP_PREFIX, TEMP_SUFFIX
+from supportgen.io.outputs import stage_file
 from supportgen.io.repair import HOLE_FRACTION, repair_arrays
 from supportgen.settings import Limits
 
@@ -338,19 +337,12 @@ def atomic_write(path, data: bytes) -> None:
     A new file gets mode 0o644; an existing file keeps its mode.
     """
     path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f"{TEMP_PREFIX}{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
-    done = False
+    tmp = stage_file(path, data)
     try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.chmod(tmp, path.stat().st_mode & 0o7777 if path.exists() else 0o644)
         os.replace(tmp, path)
-        done = True
-    finally:
-        if not done:
-            Path(tmp).unlink(missing_ok=True)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
 
 
 def atomic_write_text(path, text: str) -> None:

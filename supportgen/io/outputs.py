@@ -31,6 +31,7 @@ from supportgen.errors import OutputError
 
 __all__ = [
     "TEMP_PREFIX",
+    "stage_file",
     "TEMP_SUFFIX",
     "CLASH_MODES",
     "OutputFile",
@@ -146,7 +147,7 @@ def _fsync_folder(folder: Path) -> None:
         os.close(fd)
 
 
-def _stage(target: Path, data: bytes) -> Path:
+def stage_file(target: Path, data: bytes) -> Path:
     """``data`` in a new temporary file beside ``target``, flushed to disk; its path."""
     fd, tmp = tempfile.mkstemp(prefix=f"{TEMP_PREFIX}{target.name}.", suffix=TEMP_SUFFIX, dir=target.parent)
     try:
@@ -205,7 +206,7 @@ def commit_set(
         for role, (name, producer) in files.items():
             target = folder / name
             data = producer(dict(staged)) if callable(producer) else producer
-            temps[role] = _stage(target, data)
+            temps[role] = stage_file(target, data)
             staged[role] = OutputFile(role, target, len(data), hashlib.sha256(data).hexdigest())
         if before_commit is not None:
             before_commit()
