@@ -171,6 +171,20 @@ def _child(case, outdir, keep, full_save, conn):
         conn.close()
 
 
+def _unfinished(case, outcome: str, cls: str, t0: float) -> dict:
+    """The row of a case whose worker gave no result (it died or ran out of time)."""
+    return {
+        "id": case.id,
+        "generator": case.generator,
+        "seed": case.seed,
+        "params": case.params,
+        "expect": case.expect,
+        "outcome": outcome,
+        "cls": cls,
+        "seconds": time.perf_counter() - t0,
+    }
+
+
 def run_cases(
     cases,
     outdir: Path,
@@ -208,40 +222,13 @@ def run_cases(
                     row = None
                 p.join()
                 if row is None:
-                    row = {
-                        "id": cid,
-                        "generator": case.generator,
-                        "seed": case.seed,
-                        "params": case.params,
-                        "expect": case.expect,
-                        "outcome": "crash",
-                        "cls": "crash: worker died",
-                        "seconds": time.perf_counter() - t0,
-                    }
+                    row = _unfinished(case, "crash", "crash: worker died", t0)
             elif not p.is_alive():
-                row = {
-                    "id": cid,
-                    "generator": case.generator,
-                    "seed": case.seed,
-                    "params": case.params,
-                    "expect": case.expect,
-                    "outcome": "crash",
-                    "cls": f"crash: worker died (exit code {p.exitcode})",
-                    "seconds": time.perf_counter() - t0,
-                }
+                row = _unfinished(case, "crash", f"crash: worker died (exit code {p.exitcode})", t0)
             elif time.perf_counter() - t0 > timeout:
                 p.kill()
                 p.join()
-                row = {
-                    "id": cid,
-                    "generator": case.generator,
-                    "seed": case.seed,
-                    "params": case.params,
-                    "expect": case.expect,
-                    "outcome": "timeout",
-                    "cls": f"timeout (> {timeout:g} s)",
-                    "seconds": time.perf_counter() - t0,
-                }
+                row = _unfinished(case, "timeout", f"timeout (> {timeout:g} s)", t0)
             if row is not None:
                 recv.close()
                 del running[cid]
