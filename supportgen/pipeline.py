@@ -26,14 +26,13 @@ from .analysis.overhangs import find_overhangs
 from .analysis.placement import check_cures, place
 from .analysis.verify import Verification, speck_area_mm2, verify
 from .constants import OFFSET_MM
-from .errors import SettingsError, SupportGenError
+from .errors import SupportGenError
 from .io.budget import check_memory
 from .io.meshio import LoadedMesh, load_mesh, mesh_bytes, part_name, prepare_mesh
 from .io.outputs import commit_set, prepare_folder
 from .io.units import scale_loaded, unit_factor
 from .physics.loadpath import ForceProfile, ForceTracker
-from .physics.orientation import orient as choose_orientation
-from .physics.orientation import rotation_from_angles, turn
+from .physics.orientation import apply_orientation
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
@@ -75,8 +74,6 @@ OUTPUTS = {
 DEFAULT_STRATEGY = "tree"
 MAX_DENSIFY_ROUNDS = 4
 MAX_REPAIR_ROUNDS = 4
-#: ``generate(orient=...)``: keep the given orientation, or choose one from the physics.
-ORIENT_CHOICES = ("keep", "auto")
 
 
 @dataclass(frozen=True)
@@ -237,25 +234,6 @@ def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Setting
     )
 
 
-def _orient(loaded: LoadedMesh, how: str, rotate, settings: Settings) -> tuple[LoadedMesh, dict]:
-    """The loaded part turned by ``rotate`` (degrees about x, y, z) and, for ``how="auto"``, to the
-    chosen up-direction; and the report's record ``{rotation, chosen_by}``."""
-    if how not in ORIENT_CHOICES:
-        raise SettingsError(f"orient={how!r}: choose one of {', '.join(ORIENT_CHOICES)}")
-    rot, by = np.eye(3), "given"
-    if rotate is not None:
-        angles = np.asarray(rotate, float).ravel()
-        if angles.shape != (3,) or not np.isfinite(angles).all():
-            raise SettingsError(f"rotate={rotate!r}: give three finite angles in degrees, about x, y and z")
-        rot, by = rotation_from_angles(*angles), "rotate"
-    if how == "auto":
-        found = choose_orientation(turn(loaded.mesh, rot), settings)
-        rot, by = found.rotation @ rot, ("rotate+auto" if by == "rotate" else "auto")
-    if by != "given":
-        loaded = dataclasses.replace(loaded, mesh=turn(loaded.mesh, rot))
-    return loaded, {"rotation": [[float(x) for x in row] for row in rot], "chosen_by": by}
-
-
 def generate(
     source, settings: Settings | str | Path | None = None, strategy: str = DEFAULT_STRATEGY, **options
 ) -> Result:
@@ -360,7 +338,8 @@ def _generate(
     with timer("placement"):
         loaded = scale_loaded(loaded, unit_factor(units, scale))
     with timer("orient"):
-        loaded, orientation = _orient(loaded, orient, rotate, settings)
+        turned, orientation = apply_orientation(loaded.mesh, orient, rotate, settings)
+        loaded = dataclasses.replace(loaded, mesh=turned)
     with timer("placement"):
         placed = place(
             loaded.mesh, settings, position="centre" if centre else position, name=name, group_bounds=group_bounds

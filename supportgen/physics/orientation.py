@@ -82,6 +82,8 @@ from .pressure import solve_components
 from .separation import READS_LABELS, LayerShape, separation
 
 __all__ = [
+    "ORIENT_CHOICES",
+    "apply_orientation",
     "TERMS",
     "WEIGHTS",
     "MAX_CELLS",
@@ -537,3 +539,28 @@ def orient(
     return Orientation(
         dirs, rotations, terms, total, int(np.argmin(total)), 0, pareto, refined, pixel_mm, weights, scales
     )
+
+
+#: ``generate(orient=...)``: keep the given orientation, or choose one from the physics.
+ORIENT_CHOICES = ("keep", "auto")
+
+
+def apply_orientation(mesh: trimesh.Trimesh, how: str, rotate, settings) -> tuple[trimesh.Trimesh, dict]:
+    """``mesh`` turned by ``rotate`` (degrees about x, y, z) and, for ``how="auto"``, to the
+    up-direction :func:`orient` chooses; and the report's record ``{rotation, chosen_by}``.
+
+    The mesh is returned as given (the same object) when nothing turns it.
+    """
+    if how not in ORIENT_CHOICES:
+        raise SettingsError(f"orient={how!r}: choose one of {', '.join(ORIENT_CHOICES)}")
+    rot, by = np.eye(3), "given"
+    if rotate is not None:
+        angles = np.asarray(rotate, float).ravel()
+        if angles.shape != (3,) or not np.isfinite(angles).all():
+            raise SettingsError(f"rotate={rotate!r}: give three finite angles in degrees, about x, y and z")
+        rot, by = rotation_from_angles(*angles), "rotate"
+    if how == "auto":
+        found = orient(turn(mesh, rot), settings)
+        rot, by = found.rotation @ rot, ("rotate+auto" if by == "rotate" else "auto")
+    turned = turn(mesh, rot) if by != "given" else mesh
+    return turned, {"rotation": [[float(x) for x in row] for row in rot], "chosen_by": by}
