@@ -20,6 +20,7 @@ Examples
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
 
@@ -32,9 +33,33 @@ from ..errors import MeshError, SettingsError
 from .raster import layer_count, winding_masks
 from .runlength import edge_components, mask_runs, paint_runs, run_overlaps
 
-__all__ = ["Grid", "Layer", "Island", "Overreach", "LayerStack", "iter_layers", "analyse_layers", "component_stats"]
+__all__ = [
+    "Grid",
+    "Layer",
+    "Island",
+    "Overreach",
+    "LayerStack",
+    "iter_layers",
+    "analyse_layers",
+    "component_stats",
+    "speck_area_mm2",
+]
 
 _MARGIN = 5  # empty border of a layer window; near reach searched within 4 pixels
+
+
+def speck_area_mm2(pixel_mm: float) -> float:
+    """Area under which a region is a speck: a disc two pixels across (``pi * pixel_mm**2``).
+
+    A speck is below what the printer resolves as a shape; it is also the least contact
+    through which a layer holds the region above it (see :func:`analyse_layers`).
+    """
+    return float(np.pi * pixel_mm**2)
+
+
+def _hold_pixels(pixel_mm: float) -> int:
+    """Fewest pixels of overlap that cover a speck (4 for the disc two pixels across)."""
+    return int(np.ceil(speck_area_mm2(pixel_mm) / pixel_mm**2 - EPS_ZERO))
 
 
 @dataclass(frozen=True)
@@ -359,18 +384,54 @@ def _far_distance(prev: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.nd
         margin = int(np.ceil(d.max())) + 1
 
 
-def _new_pixels(m: np.ndarray, pw: np.ndarray, new: np.ndarray):
-    """Anchoring and near reach of new pixels (flat indices of a window with a wide False border).
+def _held(m, pw, runs, comp, n, w, hold):
+    """Which components of a layer window the layer below holds.
 
-    Returns, per new pixel, whether an 8-neighbour is cured in both layers (so its
-    component is anchored) and its distance (pixels) to the nearest cured pixel of
-    the layer below when that is within the border's width, else nan.
+    A component is held when it overlaps the cured pixels of the layer below in at
+    least ``hold`` pixels (a speck), or, when it is itself smaller than ``hold``
+    pixels, in at least one: one pixel of contact does not hold a larger region
+    (the independent check in ``benchmarks/stress_corpus.py`` applies the same rule
+    to exact sections).
     """
+    r, s, e = runs
+    size = np.bincount(comp, weights=e - s, minlength=n)
+    both = np.flatnonzero(m & pw)
+    if both.size == 0:
+        return np.zeros(n, bool)
+    br, bc = np.divmod(both, w)
+    lb = comp[np.searchsorted(r * (w + 1) + s, br * (w + 1) + bc, side="right") - 1]
+    overlap = np.bincount(lb, minlength=n)
+    return overlap >= np.minimum(hold, np.maximum(size, 1))
+
+
+def _flat_pixels(island) -> np.ndarray:
+    """Full-grid flat indices of an island's pixels."""
+    r, c = island.mask.nonzero()
+    return (r + island.row0) * island.grid.nx + c + island.col0
+
+
+def _grown_specks(specks, labels, m, runs, comp, r0, c0, nx):
+    """``(index, label)`` for each of last layer's speck islands that lies under a
+    component of this layer with one of ``labels`` (an island here)."""
+    r, s, _ = runs
     w = m.shape[1]
-    mf, pf = m.ravel(), pw.ravel()
-    anchor = np.zeros(new.size, bool)
-    for o in (1, -1, w, -w, w + 1, w - 1, -w + 1, -w - 1):
-        anchor |= mf[new + o] & pf[new + o]
+    for idx, flat in specks:
+        wr, wc = np.divmod(flat, nx)
+        wr, wc = wr - r0, wc - c0
+        ok = (wr >= 0) & (wr < m.shape[0]) & (wc >= 0) & (wc < w)
+        wr, wc = wr[ok], wc[ok]
+        cured = m[wr, wc]
+        lab = comp[np.searchsorted(r * (w + 1) + s, wr[cured] * (w + 1) + wc[cured], side="right") - 1]
+        hit = lab[np.isin(lab, labels)]
+        if hit.size:
+            yield idx, int(hit[0])
+
+
+def _near_reach(pw: np.ndarray, new: np.ndarray, w: int) -> np.ndarray:
+    """Distance (pixels) from each new pixel (flat index of a window with a wide False
+    border) to the nearest cured pixel of the layer below when that is within the
+    border's width, else nan."""
+    pf = pw.ravel()
     d = np.full(new.size, np.nan)
     todo = np.arange(new.size)
     for dist, offsets in _RINGS:
@@ -381,7 +442,7 @@ def _new_pixels(m: np.ndarray, pw: np.ndarray, new: np.ndarray):
         todo = todo[~hit]
         if todo.size == 0:
             break
-    return anchor, d
+    return d
 
 
 def analyse_layers(
@@ -426,10 +487,13 @@ def analyse_layers(
 
     Notes
     -----
-    Layer 0 is anchored by the plate.  A component of layer k > 0 with no cured
-    pixel beneath it in layer k - 1 is an island; it is recorded once, at its
-    first layer, and counts as anchored above it (it will carry contacts), so
-    every cured pixel of layer k - 1 anchors layer k.  The reach of a newly cured
+    Layer 0 is anchored by the plate.  An edge-connected (4-connected) region of
+    layer k > 0 is held by layer k - 1 when they share at least a speck of cured
+    pixels (:func:`speck_area_mm2`; one shared pixel suffices only for a region
+    smaller than a speck); pixels that meet only at a corner share no area, so they
+    do not hold one another.  Any other region is an island; it is recorded once, at its first layer, and counts
+    as anchored above it (it will carry contacts), so every cured pixel of layer
+    k - 1 counts towards holding layer k.  The reach of a newly cured
     pixel of an anchored component is its distance (pixel centre to pixel
     centre) to the nearest cured pixel of layer k - 1: searched among the pixels
     within 4 pixels, else an exact Euclidean distance transform [1]_ in a box
@@ -463,10 +527,12 @@ def analyse_layers(
             "pass a grid of the same pitch or none"
         )
     observers, p = tuple(observers), grid.pixel_mm
+    hold = _hold_pixels(p)
     n_layers = layer_count(float(mesh.bounds[1, 2]), layer_mm)
     rows_out = np.zeros((n_layers, 4))  # area, perimeter, components, reach (pixels)
     reach_xy = np.full((n_layers, 2), np.nan)
     islands, over, inverted = [], [], 0
+    specks, dropped = [], set()  # (index in islands, full-grid flat pixels) of last layer's speck islands
     prev = np.zeros(grid.shape, bool)
     layers = iter_layers(mesh, grid, layer_mm)
     if progress:
@@ -481,7 +547,7 @@ def analyse_layers(
         if rr.size == 0:
             for ob in observers:
                 ob(layer, np.zeros(grid.shape, np.int32), 0)
-            prev = mask
+            prev, specks = mask, []
             continue
         cc = np.flatnonzero(mask.any(axis=0))
         r0, r1, c0, c1 = rr[0] - _MARGIN, rr[-1] + _MARGIN + 1, cc[0] - _MARGIN, cc[-1] + _MARGIN + 1
@@ -491,13 +557,25 @@ def analyse_layers(
         comp, n, area, perim = _run_components(*runs, p)
         rows_out[k, :3] = area * p * p, perim, n
         new = np.flatnonzero(m & ~pw) if k > 0 else np.zeros(0, np.int64)
+        grown = []  # this layer's speck islands, for the next layer
         if new.size:
             nr, nc = np.divmod(new, w)
-            ln = comp[np.searchsorted(runs[0] * (w + 1) + runs[1], nr * (w + 1) + nc, side="right") - 1]
-            anchor, d = _new_pixels(m, pw, new)
-            isl = ~np.isin(ln, ln[anchor])
+            # Holding is judged on edge-connected (4-connected) regions: pixels that meet
+            # only at a corner share no area, so one does not hold the other.
+            n4, comp4 = edge_components(runs[0].size, *run_overlaps((runs[0] + 1, *runs[1:]), runs)[:2])
+            ln = comp4[np.searchsorted(runs[0] * (w + 1) + runs[1], nr * (w + 1) + nc, side="right") - 1]
+            d = _near_reach(pw, new, w)
+            isl = ~_held(m, pw, runs, comp4, n4, w, hold)[ln]
             if isl.any():
-                islands.extend(_islands(new[isl], ln[isl], k, layer.z_mm, grid, r0, c0, w))
+                found = _islands(new[isl], ln[isl], k, layer.z_mm, grid, r0, c0, w)  # in label order
+                labels = np.unique(ln[isl])
+                for idx, lab in _grown_specks(specks, labels, m, runs, comp4, r0, c0, grid.nx):
+                    # The speck was the island's first layer: one island, starting there.
+                    j = int(np.searchsorted(labels, lab))
+                    found[j] = dataclasses.replace(found[j], layer=islands[idx].layer, z_mm=islands[idx].z_mm)
+                    dropped.add(idx)
+                grown = [(len(islands) + j, _flat_pixels(i)) for j, i in enumerate(found) if i.mask.sum() < hold]
+                islands.extend(found)
             if not isl.all():
                 nr, nc, d = nr[~isl], nc[~isl], d[~isl]
                 far = np.isnan(d)
@@ -516,7 +594,7 @@ def analyse_layers(
             ]
             for ob in observers:
                 ob(layer, full, n)
-        prev = mask
+        prev, specks = mask, grown
     reach = rows_out[:, 3] * p
     worst = int(np.argmax(reach)) if n_layers and reach.max() > 0 else -1
     return LayerStack(
@@ -526,7 +604,7 @@ def analyse_layers(
         rows_out[:, 0],
         rows_out[:, 1],
         rows_out[:, 2].astype(int),
-        tuple(islands),
+        tuple(i for j, i in enumerate(islands) if j not in dropped),
         reach,
         reach_xy,
         tuple(over),

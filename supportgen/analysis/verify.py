@@ -27,14 +27,9 @@ import trimesh
 
 from ..constants import EPS_REL
 from ..settings import Settings
-from .layers import LayerStack, analyse_layers
+from .layers import LayerStack, analyse_layers, speck_area_mm2
 
 __all__ = ["Verification", "verify", "speck_area_mm2"]
-
-
-def speck_area_mm2(pixel_mm: float) -> float:
-    """Area under which an island is a speck: a disc two pixels across."""
-    return float(np.pi * pixel_mm**2)
 
 
 @dataclass(frozen=True)
