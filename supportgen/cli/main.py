@@ -309,16 +309,24 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_generate)
 
     p = sub.add_parser("demo", parents=[common, gen_opts], help="run the built-in example batch end to end")
-    p.add_argument("-o", "--output", default="supportgen-demo", metavar="OUTDIR")
+    p.add_argument(
+        "-o",
+        "--output",
+        default="supportgen-demo",
+        metavar="OUTDIR",
+        help="folder for the demo parts' outputs and index.html (default: supportgen-demo)",
+    )
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("check", parents=[common], help="verify already supported meshes")
-    p.add_argument("meshes", nargs="+", metavar="MESH")
+    p.add_argument(
+        "meshes", nargs="+", metavar="MESH", help="supported meshes to check as they are (STL, OBJ, PLY, 3MF)"
+    )
     p.add_argument("--json", action="store_true", help="one JSON line per mesh")
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("profiles", help="list built-in profiles and every setting")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="print the profiles and settings as one JSON document")
     p.set_defaults(func=cmd_profiles)
 
     from supportgen.physics.calibration import SHEET_HELP
