@@ -7,8 +7,9 @@ Registered from ``cli/main.py``::
 
 Exit status: 0 when every row is ``ok`` (supported and passes the check, or up
 to date with an ``ok`` row), 1 when any row is ``failed-check``, ``refused``,
-``error`` or ``timeout`` (a resumed row keeps its earlier status), 2 for usage errors, 130 after Ctrl-C or SIGTERM (the summary of what
-finished is still written, with ``interrupted: true``).
+``error`` or ``timeout`` (a resumed row keeps its earlier status), 2 for
+usage errors, 130 after Ctrl-C or SIGTERM (the summary of what finished is
+still written, with ``interrupted: true``).
 """
 
 from __future__ import annotations

@@ -598,7 +598,7 @@ def write_summary(summary: BatchSummary, meta: dict) -> None:
                     if r["contacts"] is not None
                     else None,
                     "status": r["status"],
-                    "reason": r["reason"],
+                    "reason": f"{r['reason']} (reused from an earlier run)".lstrip() if r["reused"] else r["reason"],
                     "peak_force_n": r["peak_force_n"],
                     "contacts": r["contacts"],
                     "volume_mm3": r["support_volume_mm3"],
