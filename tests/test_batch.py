@@ -22,12 +22,17 @@ import sys
 import time
 from pathlib import Path
 
+import numpy as np
 import pytest
 import trimesh
 
 from supportgen import Settings
 from supportgen.runs.batch import (
     OUTPUT_SUFFIXES,
+    PRINT_TIME_NOTE,
+    TOTAL_ROW,
+    FileResult,
+    count_line,
     discover,
     estimate_peak_mb,
     mesh_footprint,
@@ -161,15 +166,19 @@ def test_folder_good_bad_nested(folder, runs):
         assert row.contacts == report["supports"]["contacts"] > 0
     for name, words in BAD.items():
         row = by_file[name]
-        assert row.status == "failed" and words in row.reason and name in row.reason, row
+        # Unreadable inputs are refused with the reader's reason (not an "error" of the run).
+        assert row.status == "refused" and words in row.reason and name in row.reason, row
         assert not list((out / Path(name).parent).glob(f"{Path(name).name.split('.')[0]}.*"))
     assert summary.exit_code == 1
     with open(out / "batch-summary.csv", newline="") as handle:
         rows = list(csv.DictReader(handle))
     doc = json.loads((out / "batch-summary.json").read_text())
+    assert rows[-1]["file"] == TOTAL_ROW
+    rows = rows[:-1]
     assert [r["file"] for r in rows] == [f["file"] for f in doc["files"]] == sorted([*GOOD, *BAD])
     assert {r["file"]: r["status"] for r in rows} == {r.file: r.status for r in summary.results}
-    assert doc["counts"]["ok"] == len(GOOD) and doc["counts"]["failed"] == len(BAD) and doc["exit_code"] == 1
+    assert doc["counts"]["ok"] == len(GOOD) and doc["counts"]["refused"] == len(BAD) and doc["exit_code"] == 1
+    assert set(doc["counts"]) == {"ok", "failed-check", "refused", "error", "timeout"}
     assert not list(out.rglob("*.tmp"))
 
 
@@ -242,10 +251,10 @@ def test_ctrl_c_then_resume(tmp_path):
     assert len(list(out.rglob("*.supported.stl"))) == len(list(out.rglob("*.batch.json"))) == len(doc["files"])
 
     second = run_batch(tmp_path / "in", out, _coarse(), workers=1, resume=True, progress=False)
-    statuses = {r.file: r.status for r in second.results}
-    assert statuses["a_first.stl"] == "skipped" and set(statuses) == set(names)
-    assert all(statuses[f["file"]] == "skipped" for f in doc["files"])  # nothing finished is redone
-    assert all(statuses[n] == "ok" for n in names if n not in {f["file"] for f in doc["files"]})
+    statuses = {r.file: (r.status, r.reused) for r in second.results}
+    assert statuses["a_first.stl"] == ("ok", True) and set(statuses) == set(names)
+    assert all(statuses[f["file"]] == ("ok", True) for f in doc["files"])  # nothing finished is redone
+    assert all(statuses[n] == ("ok", False) for n in names if n not in {f["file"] for f in doc["files"]})
     assert manifest.stat().st_mtime_ns == stamp
     assert second.exit_code == 0 and not list(out.rglob("*.tmp"))
     # A changed setting makes every file stale again (hashes from hashlib, not the manifest's word).
@@ -253,7 +262,7 @@ def test_ctrl_c_then_resume(tmp_path):
     assert settings_hash(other, "straight") != json.loads(manifest.read_text())["settings_sha256"]
 
 
-def test_crashed_worker_is_recorded(tmp_path):
+def test_dead_worker_is_an_error(tmp_path):
     src = tmp_path / "in"
     big = trimesh.creation.icosphere(subdivisions=4, radius=20.0)
     big.apply_translation((0.0, 0.0, 25.0))
@@ -267,8 +276,8 @@ def test_crashed_worker_is_recorded(tmp_path):
 
     summary = run_batch(src, tmp_path / "out", _coarse(), workers=2, progress=False, on_result=kill_workers)
     rows = {r.file: r for r in summary.results}
-    assert rows["b_empty.stl"].status == "failed"
-    assert rows["a_slow.stl"].status == "crashed" and "SIGKILL" in rows["a_slow.stl"].reason
+    assert rows["b_empty.stl"].status == "refused"  # the input's fault: an empty file
+    assert rows["a_slow.stl"].status == "error" and "SIGKILL" in rows["a_slow.stl"].reason  # the run's fault
     assert summary.exit_code == 1 and not list((tmp_path / "out").glob("a_slow*"))
 
 
@@ -308,12 +317,83 @@ def test_command_line(folder, runs, tmp_path, capsys):
     sets = [a for kv in ("pixel_mm=0.2", "layer_mm=0.2", "tip_min_mm=0.4", "tip_max_mm=1.0") for a in ("--set", kv)]
     args = parser.parse_args(["batch", str(folder), "-o", str(out), "--resume", "--pattern", "*good*", *sets])
     assert args.func(args) == 0  # all up to date: nothing redone
-    assert {r["status"] for r in json.loads((out / "batch-summary.json").read_text())["files"]} == {"skipped"}
-    assert "3 skipped" in capsys.readouterr().out
+    files = json.loads((out / "batch-summary.json").read_text())["files"]
+    assert {(r["status"], r["reused"]) for r in files} == {("ok", True)}
+    assert "3 part(s): 3 ok (3 reused from an earlier run)" in capsys.readouterr().out
     with pytest.raises(SystemExit):
         parser.parse_args(["batch", str(folder), "-o", str(out), "--workers", "0"])
     assert "--workers" in capsys.readouterr().err
     args = parser.parse_args(["batch", str(folder), "-o", str(out), "--pattern", "empty*", "--quiet", *sets])
     assert args.func(args) == 1
-    assert "failed: empty.stl:" in capsys.readouterr().err
+    assert "refused: empty.stl:" in capsys.readouterr().err
     assert os.path.exists(out / "good_box.supported.stl")  # other files' outputs untouched
+
+
+# Settings under which the box's tips cannot hold at the set safety factor: weak green resin (0.5 MPa,
+# the smallest the settings allow), the smallest tips 0.4 mm, safety factor 10.
+WEAK = {"green_tensile_mpa": 0.5, "safety_factor": 10.0, "tip_max_mm": 0.4}
+
+
+def test_failed_check_status_kept_across_resume(tmp_path, capsys):
+    from supportgen.cli.main import main
+
+    src, out = tmp_path / "in", tmp_path / "out"
+    _write_good(src, ("weak_box.stl",))
+    (src / "zero.stl").write_bytes(b"")
+    sets = [a for k, v in {**_coarse_kv(), **WEAK}.items() for a in ("--set", f"{k}={v}")]
+    assert main(["batch", str(src), "-o", str(out), "--workers", "1", "--progress", *sets]) == 1
+    captured = capsys.readouterr()
+    doc = json.loads((out / "batch-summary.json").read_text())
+    rows = {f["file"]: f for f in doc["files"]}
+    box = rows["weak_box.stl"]
+    report = json.loads((out / "weak_box.report.json").read_text())
+    assert box["status"] == "failed-check" and box["passed"] is False and not box["reused"]
+    assert report["verification"]["passed"] is False  # the saved outputs carry the same verdict
+    assert "tear off" in box["reason"] and report["verification"]["failures"][0] in box["reason"]
+    # Independent of the project's sizing: a tip's tensile capacity is stress x area (a 0.4 mm disc:
+    # pi d^2 / 4, exact geometry) over the safety factor; the mean load per contact is above it, so at
+    # least one tip must be over its capacity.
+    allowed_n = 0.5 * np.pi * 0.4**2 / 4 / 10.0
+    assert box["peak_force_n"] / box["contacts"] > allowed_n
+    assert rows["zero.stl"]["status"] == "refused" and "empty" in rows["zero.stl"]["reason"]
+    assert doc["counts"] == {"ok": 0, "failed-check": 1, "refused": 1, "error": 0, "timeout": 0}
+    assert doc["exit_code"] == 1
+    # The progress bar ends on the same counts as the final line (both from count_line).
+    line = count_line([FileResult(**f) for f in doc["files"]])
+    assert f"batch: {line};" in captured.out
+    assert captured.err.count(line) >= 1, captured.err
+    assert "failed-check: weak_box.stl: check failed:" in captured.err
+    stamp = (out / "weak_box.batch.json").stat().st_mtime_ns
+
+    again = run_batch(src, out, _coarse().override(**WEAK), workers=1, resume=True, progress=False)
+    by = {r.file: r for r in again.results}
+    assert (by["weak_box.stl"].status, by["weak_box.stl"].reason) == ("failed-check", box["reason"])
+    assert by["weak_box.stl"].reused and not by["zero.stl"].reused  # the refused input is tried again
+    assert by["zero.stl"].status == "refused" and again.exit_code == 1
+    assert (out / "weak_box.batch.json").stat().st_mtime_ns == stamp  # not redone
+
+
+def _coarse_kv() -> dict:
+    return {"pixel_mm": 0.2, "layer_mm": 0.2, "tip_min_mm": 0.4, "tip_max_mm": 1.0}
+
+
+def test_totals_equal_the_sum_of_the_part_reports(folder, runs):
+    out, summary = folder.parent / "w2", runs["w2"]
+    # Reference: each part's own report.json, read back with json and summed here.
+    reports = [
+        json.loads((out / Path(n).parent / f"{Path(n).name.split('.')[0]}.report.json").read_text()) for n in GOOD
+    ]
+    resin = sum(r["estimates"]["resin_ml"] for r in reports)
+    hours = sum(r["estimates"]["print_time_s"] for r in reports)
+    doc = json.loads((out / "batch-summary.json").read_text())
+    for t in (doc["totals"], summary.totals):
+        assert t["parts"] == len(GOOD) + len(BAD) and t["supported"] == len(GOOD)
+        assert t["resin_ml"] == pytest.approx(resin, abs=1e-3 * len(GOOD))  # rows keep 4 decimals
+        assert t["print_time_s"] == pytest.approx(hours, abs=0.01 * len(GOOD))
+        assert t["counts"] == doc["counts"] and t["print_time_note"] == PRINT_TIME_NOTE
+    with open(out / "batch-summary.csv", newline="") as handle:
+        total = list(csv.DictReader(handle))[-1]
+    assert total["file"] == TOTAL_ROW and total["status"] == "not ok"
+    assert float(total["resin_ml"]) == pytest.approx(resin, abs=1e-3 * len(GOOD))
+    assert float(total["print_time_s"]) == pytest.approx(hours, abs=0.01 * len(GOOD))
+    assert f"{len(GOOD)} ok, {len(BAD)} refused" in total["reason"]

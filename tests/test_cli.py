@@ -177,3 +177,37 @@ def test_version_folder_pointer_and_no_bars_off_a_terminal(tmp_path, capsys):
     )
     assert run.returncode == 0, run.stderr
     assert "layer/s" not in run.stderr and "%|" not in run.stderr
+
+
+def _walk(parser, path=("supportgen",)):
+    """(command path, parser) for the parser and every sub-command below it (argparse's own records)."""
+    import argparse
+
+    yield path, parser
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for name, sub in action.choices.items():
+                yield from _walk(sub, (*path, name))
+
+
+def test_every_argument_of_every_command_has_help():
+    # Walks the installed command's own argparse tree: every action but -h, and every sub-command,
+    # must say what it is for.
+    import argparse
+
+    from supportgen.cli.main import build_parser
+
+    missing, commands = [], 0
+    for path, parser in _walk(build_parser()):
+        commands += 1
+        for action in parser._actions:
+            if isinstance(action, argparse._HelpAction):
+                continue
+            if isinstance(action, argparse._SubParsersAction):
+                helps = {c.dest: c.help for c in action._choices_actions}
+                missing += [f"{' '.join(path)} {n} (the command itself)" for n in action.choices if not helps.get(n)]
+                continue
+            if not (action.help or "").strip() or action.help == argparse.SUPPRESS:
+                missing.append(f"{' '.join(path)} {'/'.join(action.option_strings) or action.dest}")
+    assert commands >= 8  # generate, demo, check, profiles, calibrate, batch, bench, orient and the top level
+    assert not missing, missing

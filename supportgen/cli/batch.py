@@ -5,10 +5,11 @@ Registered from ``cli/main.py``::
     from . import batch as batch_cmd
     batch_cmd.add_parser(sub, [common, strategy])
 
-Exit status: 0 when every file was supported and passes the check (or was up
-to date), 1 when any failed, timed out, crashed, was refused or fails the
-check, 2 for usage errors, 130 after Ctrl-C or SIGTERM (the summary of what
-finished is still written, with ``interrupted: true``).
+Exit status: 0 when every row is ``ok`` (supported and passes the check, or up
+to date with an ``ok`` row), 1 when any row is ``failed-check``, ``refused``,
+``error`` or ``timeout`` (a resumed row keeps its earlier status), 2 for
+usage errors, 130 after Ctrl-C or SIGTERM (the summary of what finished is
+still written, with ``interrupted: true``).
 """
 
 from __future__ import annotations
@@ -28,7 +29,12 @@ def add_parser(subparsers, parents) -> None:
         parents=list(parents),
         help="support every mesh in a folder tree, in parallel",
         description="Support every STL/OBJ/PLY/3MF file under DIR (recursively) into a mirrored tree under OUT, "
-        "then write OUT/batch-summary.csv and .json.",
+        "then write OUT/batch-summary.csv and .json and OUT/index.html. Each file's status is one of: "
+        "ok (supported, passes the print check); failed-check (supported, outputs saved, the check fails); "
+        "refused (the input was refused: bad mesh, units, placement, settings, memory); error (anything else "
+        "went wrong, including a worker that died); timeout. The summary ends with totals: parts, resin (ml) "
+        "and print time (the sum of the per-part times: parts printed one at a time). Exit status 1 when any "
+        "row is not ok.",
     )
     p.add_argument("input", metavar="DIR", help="folder searched recursively for .stl .obj .ply .3mf files")
     p.add_argument("-o", "--output", required=True, metavar="OUT", help="output folder (mirrors DIR)")
@@ -41,7 +47,8 @@ def add_parser(subparsers, parents) -> None:
     p.add_argument(
         "--resume",
         action="store_true",
-        help="skip files whose outputs exist for the same input bytes, settings and strategy",
+        help="do not redo files whose outputs exist for the same input bytes, settings and strategy; their rows "
+        "keep the status and reason of the run that made them, marked reused",
     )
     p.add_argument(
         "--cluster",
@@ -67,7 +74,7 @@ def add_parser(subparsers, parents) -> None:
         choices=("rename", "refuse"),
         default="rename",
         help="files of one folder whose output names collide: name the later ones NAME-2 ... "
-        "(default) or record them as failed",
+        "(default) or record them as refused",
     )
     p.add_argument(
         "--wait",
@@ -88,7 +95,7 @@ def add_parser(subparsers, parents) -> None:
 
 def cmd_batch(args) -> int:
     """Run the batch described by parsed ``args``; return the exit status."""
-    from supportgen.runs.batch import run_batch
+    from supportgen.runs.batch import count_line, run_batch
 
     summary = run_batch(
         Path(args.input),
@@ -107,19 +114,14 @@ def cmd_batch(args) -> int:
         protect=args.protect or (),
     )
     for row in summary.results:
-        if row.status in ("failed", "timeout", "crashed", "refused"):
-            err(f"{row.status}: {row.file}: {row.reason}")
-        elif row.passed is False:
-            err(f"check failed: {row.file}: {row.reason}")
+        if row.bad:
+            err(f"{row.status}{' (reused)' if row.reused else ''}: {row.file}: {row.reason}")
     if summary.interrupted:
         err(
             f"interrupted: {len(summary.results)} file(s) finished, {summary.pending} not done; "
             "run again with --resume to finish"
         )
     if not args.quiet:
-        counts = ", ".join(f"{n} {s}" for s, n in summary.counts.items() if n)
-        print(
-            f"batch: {len(summary.results)} file(s): {counts or 'none found'}; summary: {summary.csv_path}",
-            file=sys.stdout,
-        )
+        line = count_line(summary.results) if summary.results else "no mesh files found"
+        print(f"batch: {line}; summary: {summary.csv_path}", file=sys.stdout)
     return summary.exit_code

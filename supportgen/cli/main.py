@@ -200,13 +200,25 @@ def cmd_profiles(args) -> int:
 
 def cmd_calibrate(args) -> int:
     from supportgen.io.meshio import atomic_write_text
-    from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
+    from supportgen.physics.calibration import (
+        calibrated_settings,
+        fit_calibration,
+        read_measurements,
+        write_coupons,
+    )
 
     settings = settings_from(args)
-    fit = fit_calibration(read_measurements(args.measurements), settings)
+    if args.sheet == "coupons" and not Path(args.sheet).is_file():
+        paths = write_coupons(Path(args.output or "coupons"), settings)
+        if not args.quiet:
+            print("coupon plate written: " + ", ".join(str(p) for p in paths))
+            print(f"print it, fill in peak_force_n, then: supportgen calibrate {paths[1]} -o my-printer.toml")
+        return EXIT_OK
+    output = Path(args.output or "calibrated.toml")
+    fit = fit_calibration(read_measurements(args.sheet), settings)
     print(fit.to_text())
-    atomic_write_text(Path(args.output), calibrated_settings(fit, settings).to_toml())
-    print(f"profile written: {args.output}")
+    atomic_write_text(output, calibrated_settings(fit, settings).to_toml())
+    print(f"profile written: {output}")
     return EXIT_OK
 
 
@@ -297,21 +309,54 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_generate)
 
     p = sub.add_parser("demo", parents=[common, gen_opts], help="run the built-in example batch end to end")
-    p.add_argument("-o", "--output", default="supportgen-demo", metavar="OUTDIR")
+    p.add_argument(
+        "-o",
+        "--output",
+        default="supportgen-demo",
+        metavar="OUTDIR",
+        help="folder for the demo parts' outputs and index.html (default: supportgen-demo)",
+    )
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("check", parents=[common], help="verify already supported meshes")
-    p.add_argument("meshes", nargs="+", metavar="MESH")
+    p.add_argument(
+        "meshes", nargs="+", metavar="MESH", help="supported meshes to check as they are (STL, OBJ, PLY, 3MF)"
+    )
     p.add_argument("--json", action="store_true", help="one JSON line per mesh")
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("profiles", help="list built-in profiles and every setting")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="print the profiles and settings as one JSON document")
     p.set_defaults(func=cmd_profiles)
 
-    p = sub.add_parser("calibrate", parents=[common], help="fit the force calibration from measured peak forces")
-    p.add_argument("measurements", metavar="MEASUREMENTS.csv")
-    p.add_argument("-o", "--output", default="calibrated.toml", metavar="PROFILE.toml")
+    from supportgen.physics.calibration import SHEET_HELP
+
+    p = sub.add_parser(
+        "calibrate",
+        parents=[common],
+        help="write a coupon plate to print and measure, or fit the force calibration from the filled-in sheet",
+        description="Calibrate the separation force law to your printer, film and resin in two steps:\n\n"
+        "  supportgen calibrate coupons -o DIR\n"
+        "      writes DIR/coupons.stl (a plate of coupons to print), DIR/coupons.csv (the\n"
+        "      sheet to fill in) and DIR/README.txt (how to print and measure)\n"
+        "  supportgen calibrate SHEET.csv -o PROFILE.toml\n"
+        "      fits the law to the measured peak forces and writes a profile with\n"
+        "      force_calibration (and force_area_n_mm2) set; use it with --profile",
+        epilog=SHEET_HELP,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument(
+        "sheet",
+        metavar="SHEET.csv|coupons",
+        help="the filled-in sheet to fit, or the word coupons to write a coupon plate and an empty sheet",
+    )
+    p.add_argument(
+        "-o",
+        "--output",
+        metavar="PROFILE.toml|DIR",
+        help="the profile written by a fit (default: calibrated.toml), or the folder for the coupon plate "
+        "(default: coupons)",
+    )
     p.set_defaults(func=cmd_calibrate)
 
     from . import batch as batch_cmd

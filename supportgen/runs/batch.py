@@ -9,7 +9,7 @@ folder under the output tree, then writes ``batch-summary.csv`` and
 Engines (:mod:`supportgen.runs.workers`)
     Local: ``workers`` long-lived processes, one file at a time each; a process
     past its file's deadline is killed (status ``timeout``), one that dies is
-    recorded (``crashed``) and replaced.  Dask: ``cluster="tcp://host:port"``
+    recorded (``error``) and replaced.  Dask: ``cluster="tcp://host:port"``
     sends the same job function to a Dask distributed scheduler (``pip install
     'supportgen[cluster]'``); workers must have supportgen installed and see the
     input and output folders at the same paths (a shared file system).  A Dask
@@ -21,8 +21,10 @@ Output sets and resume
     times out, crashes or is interrupted leaves its previous set as it was and
     no temporary file.  The manifest records the sha256 of the input bytes, of
     ``settings.to_toml()`` plus the strategy, and the size and sha256 of every
-    output; with ``resume=True`` a file is ``skipped`` only when all of them
-    match what is on disk.
+    output, and the file's row (status, reason, figures); with ``resume=True``
+    a file is not redone when all of them match what is on disk: its row is the
+    manifest's (the status and reason of the run that made the outputs), marked
+    ``reused``.
 One run per output folder
     The output folder is locked for the run (:class:`supportgen.io.lock.FolderLock`);
     a second batch or ``generate`` on it waits (``wait_s``) or refuses.
@@ -37,6 +39,18 @@ Memory guard
     :func:`estimate_peak_mb` is a calibrated linear model of a worker's peak
     resident memory; with ``memory_limit_mb`` a file whose estimate exceeds it
     is ``refused`` before the pipeline starts.
+Statuses (:data:`STATUSES`)
+    ``ok`` supported and passes the print check; ``failed-check`` supported,
+    outputs saved, but the check fails (the reason names why); ``refused`` the
+    input was refused with a reason (unreadable or bad mesh, units, placement,
+    settings, memory guard, an output-name clash); ``error`` anything else went
+    wrong (a failure while building or saving, a bug, a worker that died);
+    ``timeout`` past the per-file limit, nothing saved.
+Totals (:func:`totals`)
+    Parts, resin (sum of each report's ``estimates.resin_ml``) and print time
+    (sum of each report's ``estimates.print_time_s``: parts printed one at a
+    time, not sharing a plate), over the rows that have them, and the number of
+    rows per status.
 
 Results do not depend on the engine or the worker count: each file is
 processed alone with the same settings, and the summary is sorted by path.
@@ -57,7 +71,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import SupportGenError
+from ..errors import GeometryError, OutputError, SizingError, SupportGenError
 from ..io.budget import MEMORY_BASE_MB, MEMORY_FACE_BYTES, MEMORY_MASK_FACTOR, estimate_peak_mb, mesh_footprint
 from ..io.lock import FolderLock
 from ..io.meshio import READ_FORMATS, atomic_write_text, part_name
@@ -83,6 +97,9 @@ __all__ = [
     "STATUSES",
     "BAD_STATUSES",
     "SUMMARY_FIELDS",
+    "MANIFEST_FIELDS",
+    "PRINT_TIME_NOTE",
+    "TOTAL_ROW",
     "OUTPUT_SUFFIXES",
     "MANIFEST_SUFFIX",
     "MEMORY_BASE_MB",
@@ -97,14 +114,20 @@ __all__ = [
     "mesh_footprint",
     "estimate_peak_mb",
     "discard_outputs",
+    "totals",
+    "count_line",
     "run_job",
     "write_summary",
     "run_batch",
 ]
 
 SUFFIXES = READ_FORMATS
-STATUSES = ("ok", "failed", "timeout", "crashed", "skipped", "refused")
-BAD_STATUSES = frozenset({"failed", "timeout", "crashed", "refused"})
+STATUSES = ("ok", "failed-check", "refused", "error", "timeout")
+BAD_STATUSES = frozenset(STATUSES) - {"ok"}
+#: Errors that are a failure of the run, not a refusal of the input: the row says ``error``.
+#: Any other SupportGenError (bad mesh, units, placement, settings, memory budget) says ``refused``.
+ERROR_CLASSES = (GeometryError, SizingError, OutputError)
+PRINT_TIME_NOTE = "sum of the per-part print times (parts printed one at a time, not sharing a plate)"
 SUMMARY_FIELDS = (
     "file",
     "status",
@@ -115,6 +138,21 @@ SUMMARY_FIELDS = (
     "seconds",
     "peak_mb",
     "peak_force_n",
+    "resin_ml",
+    "print_time_s",
+    "reused",
+)
+#: What a manifest keeps of its file's row, so that a resumed run can show it as it was.
+MANIFEST_FIELDS = (
+    "status",
+    "reason",
+    "contacts",
+    "support_volume_mm3",
+    "passed",
+    "seconds",
+    "peak_force_n",
+    "resin_ml",
+    "print_time_s",
 )
 #: What Result.save writes for one part (supportgen.pipeline.OUTPUTS), plus the manifest in the same set.
 OUTPUT_SUFFIXES = tuple(OUTPUTS.values())
@@ -135,11 +173,14 @@ class FileResult:
     seconds: float = 0.0
     peak_mb: float | None = None  # the worker process's peak resident memory so far (an upper bound)
     peak_force_n: float | None = None
+    resin_ml: float | None = None  # the report's estimates.resin_ml (part, supports and base)
+    print_time_s: float | None = None  # the report's estimates.print_time_s
+    reused: bool = False  # the row is an earlier run's (resume): its outputs were up to date
 
     @property
     def bad(self) -> bool:
-        """True when the file was not supported, or was supported but fails the print check."""
-        return self.status in BAD_STATUSES or self.passed is False
+        """True when the status is not ``ok`` (not supported, or supported but fails the print check)."""
+        return self.status != "ok"
 
     def to_dict(self) -> dict:
         """The row as a plain dict."""
@@ -159,6 +200,11 @@ class BatchSummary:
     def counts(self) -> dict[str, int]:
         """Number of files per status (every status present, zeros included)."""
         return {s: sum(r.status == s for r in self.results) for s in STATUSES}
+
+    @property
+    def totals(self) -> dict:
+        """See :func:`totals`."""
+        return totals(self.results)
 
     @property
     def exit_code(self) -> int:
@@ -260,19 +306,51 @@ def discard_outputs(job: Job) -> None:
     remove_temps(job.outdir, job.files)
 
 
-def _row(job: Job, report: dict, status: str, seconds: float, reason: str = "") -> FileResult:
+def totals(rows) -> dict:
+    """The batch's totals: ``parts`` (rows), ``supported`` (rows with outputs), ``resin_ml`` and
+    ``print_time_s`` (sums over the rows that have them; the time is :data:`PRINT_TIME_NOTE`),
+    ``print_time_note``, and ``counts`` (rows per status, every status present)."""
+    rows = list(rows)
+    resin = [r.resin_ml for r in rows if r.resin_ml is not None]
+    time_s = [r.print_time_s for r in rows if r.print_time_s is not None]
+    return {
+        "parts": len(rows),
+        "supported": sum(r.contacts is not None for r in rows),
+        "reused": sum(bool(r.reused) for r in rows),
+        "resin_ml": round(float(sum(resin)), 4),
+        "print_time_s": round(float(sum(time_s)), 2),
+        "print_time_note": PRINT_TIME_NOTE,
+        "counts": {s: sum(r.status == s for r in rows) for s in STATUSES},
+    }
+
+
+def count_line(rows) -> str:
+    """One line of the totals, the same on the progress bar and after the batch:
+    ``5 part(s): 3 ok, 1 failed-check, 1 refused (2 reused); resin 4.2 ml; print time 1.25 h (sum)``."""
+    t = totals(rows)
+    counts = ", ".join(f"{n} {s}" for s, n in t["counts"].items() if n) or "none"
+    reused = f" ({t['reused']} reused from an earlier run)" if t["reused"] else ""
+    return (
+        f"{t['parts']} part(s): {counts}{reused}; resin {t['resin_ml']:.1f} ml; "
+        f"print time {t['print_time_s'] / 3600:.2f} h (sum of per-part times)"
+    )
+
+
+def _row(job: Job, report: dict, seconds: float) -> FileResult:
     ver = report["verification"]
-    if not reason and not ver["passed"]:
-        reason = "check failed: " + "; ".join(ver.get("failures", [])[:3])
+    reason = "" if ver["passed"] else "check failed: " + "; ".join(ver.get("failures", [])[:3])
+    est = report.get("estimates", {})
     return FileResult(
         job.rel,
-        status,
-        reason or job.note,
+        "ok" if ver["passed"] else "failed-check",
+        "; ".join(x for x in (reason, job.note) if x),
         int(report["supports"]["contacts"]),
         round(float(report["supports"]["volume_mm3"]), 3),
         bool(ver["passed"]),
         round(seconds, 3),
         peak_force_n=round(float(report["forces"]["peak_layer_force_n"]), 4),
+        resin_ml=None if est.get("resin_ml") is None else round(float(est["resin_ml"]), 4),
+        print_time_s=None if est.get("print_time_s") is None else round(float(est["print_time_s"]), 2),
     )
 
 
@@ -309,7 +387,7 @@ def _manifest(job: Job, input_sha: str, row: FileResult):
             "settings_sha256": settings_hash(job.settings, job.strategy),
             "strategy": job.strategy,
             "outputs": [o.to_dict() for o in staged.values()],
-            **{k: row.to_dict()[k] for k in SUMMARY_FIELDS[3:7]},
+            **{k: row.to_dict()[k] for k in MANIFEST_FIELDS},
         }
         return (json.dumps(doc, indent=1, sort_keys=True) + "\n").encode("utf-8")
 
@@ -322,9 +400,10 @@ def run_job(job: Job) -> FileResult:
     Returns
     -------
     FileResult
-        ``ok``, ``failed`` (the one-line :class:`SupportGenError` or OS error message, or
-        ``internal error: ...``), ``refused`` (memory guard) or ``timeout`` (finished past
-        ``job.timeout_s`` counted from this call: nothing saved).
+        ``ok`` or ``failed-check`` (outputs saved), ``refused`` (the input's one-line
+        :class:`SupportGenError` message, or the memory guard), ``error`` (:data:`ERROR_CLASSES`,
+        an OS error, or ``internal error: ...``) or ``timeout`` (finished past ``job.timeout_s``
+        counted from this call: nothing saved).
 
     Notes
     -----
@@ -353,7 +432,7 @@ def run_job(job: Job) -> FileResult:
             protect=list(job.protect) or None,
         )
         in_time()
-        row = _row(job, result.report, "ok", time.perf_counter() - t0)
+        row = _row(job, result.report, time.perf_counter() - t0)
         result.save(
             job.outdir, extra={"manifest": (job.manifest.name, _manifest(job, input_sha, row))}, before_commit=in_time
         )
@@ -365,18 +444,21 @@ def run_job(job: Job) -> FileResult:
             f"took longer than {job.timeout_s:g} s; finished late, nothing saved",
             seconds=round(time.perf_counter() - t0, 3),
         )
+    except ERROR_CLASSES as exc:
+        status, reason = "error", str(exc)
     except SupportGenError as exc:
-        reason = str(exc)
+        status, reason = "refused", str(exc)
     except OSError as exc:
-        reason = os_error_line(job.source, exc, "read or write")
+        status, reason = "error", os_error_line(job.source, exc, "read or write")
     except Exception as exc:  # noqa: BLE001 - a bug in one stage must not stop the batch; recorded per file
+        status = "error"
         reason = f"internal error: {type(exc).__name__}: {exc} (run `supportgen generate` on it with --debug)"
     discard_outputs(job)
-    return FileResult(job.rel, "failed", reason, seconds=round(time.perf_counter() - t0, 3), peak_mb=peak_rss_mb())
+    return FileResult(job.rel, status, reason, seconds=round(time.perf_counter() - t0, 3), peak_mb=peak_rss_mb())
 
 
 def _lost(job: Job, status: str, reason: str, seconds: float) -> FileResult:
-    """The row of a file whose worker never returned (``timeout`` or ``crashed``)."""
+    """The row of a file whose worker never returned (``timeout``, or ``error`` for a dead worker)."""
     return FileResult(job.rel, status, reason, seconds=seconds)
 
 
@@ -401,14 +483,31 @@ def _up_to_date(job: Job, settings_sha: str) -> dict | None:
     return m if m.get("input_sha256") == file_hash(job.source) else None
 
 
-def _skipped(
-    job: Job, m: dict, reason: str = "outputs up to date (same input and settings)", status: str = "skipped"
-) -> FileResult:
-    return FileResult(job.rel, status, reason, m.get("contacts"), m.get("support_volume_mm3"), m.get("passed"), 0.0)
+def _from_manifest(job: Job, m: dict, reused: bool = True) -> FileResult:
+    """The row a manifest records: the status and reason of the run that made the outputs.
+
+    A manifest written before statuses were recorded gives ``ok`` or ``failed-check`` from ``passed``.
+    """
+    status = m.get("status")
+    if status not in ("ok", "failed-check"):  # only supported files have a manifest
+        status = "failed-check" if m.get("passed") is False else "ok"
+    return FileResult(
+        job.rel,
+        status,
+        str(m.get("reason") or ""),
+        m.get("contacts"),
+        m.get("support_volume_mm3"),
+        m.get("passed"),
+        float(m.get("seconds") or 0.0),
+        peak_force_n=m.get("peak_force_n"),
+        resin_ml=m.get("resin_ml"),
+        print_time_s=m.get("print_time_s"),
+        reused=reused,
+    )
 
 
 def _plan_jobs(root: Path, out: Path, rels: list[Path], settings, strategy, memory_limit_mb, clash="rename"):
-    """Jobs in path order with distinct output names per folder, plus ``failed`` rows for name clashes
+    """Jobs in path order with distinct output names per folder, plus ``refused`` rows for name clashes
     when ``clash="refuse"``."""
     jobs, clashes, folders = [], [], {}
     for rel in rels:
@@ -422,7 +521,7 @@ def _plan_jobs(root: Path, out: Path, rels: list[Path], settings, strategy, memo
                 clashes.append(
                     FileResult(
                         rel.as_posix(),
-                        "failed",
+                        "refused",
                         f"{rel.as_posix()}: its outputs ({stem}.*) would "
                         f"overwrite those of {first}; rename one of them or use --name-clash rename",
                     )
@@ -444,19 +543,47 @@ def _plan_jobs(root: Path, out: Path, rels: list[Path], settings, strategy, memo
     return sorted(jobs, key=lambda j: j.rel), clashes
 
 
+#: The ``file`` cell of the CSV summary's last row, which carries the totals.
+TOTAL_ROW = "(total)"
+
+
+def _total_row(summary: BatchSummary) -> dict:
+    """The CSV's last row: sums of the per-file figures, the counts line as its reason."""
+    t = summary.totals
+
+    def add(key):
+        vals = [getattr(r, key) for r in summary.results if getattr(r, key) is not None]
+        return round(sum(vals), 4) if vals else ""
+
+    return {
+        "file": TOTAL_ROW,
+        "status": "ok" if not any(r.bad for r in summary.results) else "not ok",
+        "reason": f"{count_line(summary.results)}; print time is the {PRINT_TIME_NOTE}",
+        "contacts": add("contacts"),
+        "support_volume_mm3": add("support_volume_mm3"),
+        "seconds": add("seconds"),
+        "resin_ml": t["resin_ml"],
+        "print_time_s": t["print_time_s"],
+        "reused": t["reused"],
+    }
+
+
 def write_summary(summary: BatchSummary, meta: dict) -> None:
-    """Write ``batch-summary.csv`` and ``batch-summary.json`` atomically."""
+    """Write ``batch-summary.csv`` (one row per file, then the :data:`TOTAL_ROW` row) and
+    ``batch-summary.json`` (``files`` and ``totals``) atomically."""
     rows = [r.to_dict() for r in summary.results]
     buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=SUMMARY_FIELDS, lineterminator="\n")
+    writer = csv.DictWriter(buf, fieldnames=SUMMARY_FIELDS, lineterminator="\n", restval="")
     writer.writeheader()
     writer.writerows({k: ("" if v is None else v) for k, v in row.items()} for row in rows)
+    writer.writerow(_total_row(summary))
     atomic_write_text(summary.csv_path, buf.getvalue())
     doc = {
         **meta,
         "interrupted": summary.interrupted,
         "pending": summary.pending,
         "counts": summary.counts,
+        "totals": summary.totals,
         "exit_code": summary.exit_code,
         "files": rows,
     }
@@ -471,7 +598,7 @@ def write_summary(summary: BatchSummary, meta: dict) -> None:
                     if r["contacts"] is not None
                     else None,
                     "status": r["status"],
-                    "reason": r["reason"],
+                    "reason": f"{r['reason']} (reused from an earlier run)".lstrip() if r["reused"] else r["reason"],
                     "peak_force_n": r["peak_force_n"],
                     "contacts": r["contacts"],
                     "volume_mm3": r["support_volume_mm3"],
@@ -526,11 +653,13 @@ def _progress(total: int, done: list, enabled: bool, on_result):
 
     bar = tqdm(total=total, desc="supportgen batch", unit="part", disable=not enabled, dynamic_ncols=True)
     bar.update(len(done))
+    if done:
+        bar.set_postfix_str(count_line(done))
 
     def record(row: FileResult) -> None:
         done.append(row)
         bar.update(1)
-        bar.set_postfix(done=sum(not r.bad for r in done), failed=sum(r.bad for r in done))
+        bar.set_postfix_str(count_line(done))  # the same words as the final line (count_line)
         if on_result is not None:
             on_result(row)
 
@@ -588,7 +717,7 @@ def run_batch(
         exception it raises stops the batch like Ctrl-C (KeyboardInterrupt) or
         propagates after the summary is written.
     name_clash : {"rename", "refuse"}
-        Inputs of one folder whose output names collide: distinct names, or ``failed``.
+        Inputs of one folder whose output names collide: distinct names, or ``refused``.
     wait_s : float, optional
         Another run holds the output folder: wait this long (None: without limit), then refuse.
 
@@ -644,22 +773,24 @@ def _run_locked(jobs, results, client, sha, out, root, strategy, workers, resume
     total, todo = len(jobs) + len(results), []
     for job in jobs:
         m = _up_to_date(job, sha) if resume else None
-        (results.append(_skipped(job, m)) if m else todo.append(job))
+        (results.append(_from_manifest(job, m)) if m else todo.append(job))
     if client is not None and timeout_s:
         todo = [dataclasses.replace(j, timeout_s=timeout_s) for j in todo]
     bar, record = _progress(total, results, progress, on_result)
     try:
         interrupted, raised = _execute(todo, client, workers, timeout_s, record)
+        done = {r.file for r in results}
+        if interrupted:
+            # A set committed just as the batch stopped is complete (its manifest and hashes say so): its
+            # row is the manifest's, made by this run.
+            for job in todo:
+                m = None if job.rel in done else _up_to_date(job, sha)
+                if m:
+                    results.append(_from_manifest(job, m, reused=False))
+            done = {r.file for r in results}
+        bar.set_postfix_str(count_line(results))  # the bar ends on the final line's counts
     finally:
         bar.close()
-    done = {r.file for r in results}
-    if interrupted:
-        # A set committed just as the batch stopped is complete (its manifest and hashes say so): count it done.
-        for job in todo:
-            m = None if job.rel in done else _up_to_date(job, sha)
-            if m:
-                results.append(_skipped(job, m, "outputs complete (saved as the batch was stopped)", "ok"))
-        done = {r.file for r in results}
     summary = BatchSummary(
         tuple(sorted(results, key=lambda r: r.file)), out, interrupted, sum(j.rel not in done for j in todo)
     )

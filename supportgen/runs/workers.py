@@ -10,14 +10,14 @@ functions of the batch (:mod:`supportgen.runs.batch`) that they only call:
 ``discard(job)``
     Removes whatever a stopped or failed job may have left.
 ``lost(job, status, reason, seconds) -> row``
-    The row of a job that never returned (``timeout`` or ``crashed``).
+    The row of a job that never returned (``timeout``, or ``error`` when its worker died).
 
 Local
     :func:`run_local` keeps ``workers`` long-lived processes (``forkserver``,
     which imports the pipeline once; ``spawn`` where that is missing), one
     pipe each, one file at a time per process.  A process past its file's
     deadline is stopped (``timeout``: SIGTERM, then SIGKILL), one that dies is
-    recorded (``crashed``), and a fresh process takes its place.  (A ``ProcessPoolExecutor`` cannot
+    recorded (``error``), and a fresh process takes its place.  (A ``ProcessPoolExecutor`` cannot
     kill one worker, and one dead worker breaks the whole pool, so the pool
     here is a plain one.)  The worker entry point :func:`_worker_main` stays
     at module level: ``forkserver`` and ``spawn`` import it by name.
@@ -174,7 +174,7 @@ class _LocalPool:
         )
 
     def collect(self, s: _Slot) -> str | None:
-        """Read what ``s`` sent; return why it must be retired (``crashed``/``timeout``) or None."""
+        """Read what ``s`` sent; return why it must be retired (``error``: it died; ``timeout``) or None."""
         try:
             while s.conn.poll():
                 kind, payload = s.conn.recv()
@@ -184,15 +184,15 @@ class _LocalPool:
                     s.job = None
                     self.record(payload)
         except (EOFError, OSError):
-            return "crashed"
+            return "error"
         if not s.proc.is_alive():
-            return "crashed"
+            return "error"
         if s.job is not None and self.timeout_s and time.monotonic() > s.started + self.timeout_s:
             return "timeout"
         return None
 
     def retire(self, s: _Slot, gone: str) -> None:
-        """Stop a crashed or late worker; record its job as lost and discard its unfinished set."""
+        """Stop a dead or late worker; record its job as lost and discard its unfinished set."""
         job, s.job, was_ready = s.job, None, s.ready
         _stop(s, kill=True)
         if job is not None:
@@ -394,7 +394,7 @@ def _dask_collect(running: dict, zombies: set, timeout_s, record, discard, lost)
             record(
                 lost(
                     job,
-                    "crashed",
+                    "error",
                     f"Dask task {fut.status}: {type(exc).__name__}: {exc}",
                     round(time.monotonic() - t0, 3),
                 )
