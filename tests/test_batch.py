@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import csv
 import hashlib
+import html
 import json
 import multiprocessing
 import os
@@ -179,6 +180,10 @@ def test_folder_good_bad_nested(folder, runs):
     assert {r["file"]: r["status"] for r in rows} == {r.file: r.status for r in summary.results}
     assert doc["counts"]["ok"] == len(GOOD) and doc["counts"]["refused"] == len(BAD) and doc["exit_code"] == 1
     assert set(doc["counts"]) == {"ok", "failed-check", "refused", "error", "timeout"}
+    # The index page's header carries the same totals line as the command's last line.
+    index = (out / "index.html").read_text()
+    assert f'id="batch-summary" class="verdict unknown">{html.escape(count_line(summary.results))}<' in index
+    assert f"resin {doc['totals']['resin_ml']:.1f} ml" in index
     assert not list(out.rglob("*.tmp"))
 
 

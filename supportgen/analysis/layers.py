@@ -58,8 +58,10 @@ def speck_area_mm2(pixel_mm: float) -> float:
 
 
 def _hold_pixels(pixel_mm: float) -> int:
-    """Fewest pixels of overlap that cover a speck (4 for the disc two pixels across)."""
-    return int(np.ceil(speck_area_mm2(pixel_mm) / pixel_mm**2 - EPS_ZERO))
+    """Fewest pixels of overlap that hold a region: the whole pixels of a speck (3 of
+    its pi).  Not 4: a tip of the smallest diameter, two pixels, cures about a speck,
+    often 3 pixels, and must hold what it touches."""
+    return int(np.floor(speck_area_mm2(pixel_mm) / pixel_mm**2 + EPS_ZERO))
 
 
 @dataclass(frozen=True)

@@ -848,21 +848,21 @@ they are estimates, not measurements.</footer>
 
 _STATUS_CLASS = {
     "ok": "pass",
-    "passes": "pass",
     "failed-check": "fail",
-    "failed": "fail",
     "error": "fail",
     "refused": "warn",
     "timeout": "warn",
 }
 
 
-def batch_index(rows: list[dict], title: str = "Batch") -> str:
+def batch_index(rows: list[dict], title: str = "Batch", totals_line: str | None = None) -> str:
     """A batch's ``index.html``: one sortable row per part, linking its page.
 
     Each row may carry ``name``, ``page`` (a link, relative to the index), ``status``,
     ``reason``, ``peak_force_n``, ``contacts``, ``volume_mm3`` (support volume) and
     ``time_s``; anything missing shows "n/a".  Click a column heading to sort.
+    ``totals_line`` (the batch's counts, resin and print time) replaces the counts
+    the header shows otherwise.
     """
     cols = (
         ("name", "part", None),
@@ -901,9 +901,10 @@ def batch_index(rows: list[dict], title: str = "Batch") -> str:
         for k, (_, lab, d) in enumerate(cols)
     )
     summary = ", ".join(f"{n} {_e(s)}" for s, n in sorted(counts.items())) or "no parts"
+    summary = f"{len(rows or [])} part(s): {summary}" if totals_line is None else _e(totals_line)
     body = f"""
 <header class="top"><div><div class="kicker">supportgen batch</div><h1 id="title">{_e(title)}</h1></div>
-<div id="batch-summary" class="verdict unknown">{len(rows or [])} part(s): {summary}</div></header>
+<div id="batch-summary" class="verdict unknown">{summary}</div></header>
 <main><section class="card"><table id="batch-table" class="grid-table"><thead><tr>{head}</tr></thead>
 <tbody>{"".join(body_rows) or '<tr><td colspan="6" class="na">No parts in this batch.</td></tr>'}</tbody></table>
 <p class="hint">Click a column heading to sort; click again to reverse. "n/a" sorts last.</p></section>

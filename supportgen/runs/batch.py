@@ -607,6 +607,7 @@ def write_summary(summary: BatchSummary, meta: dict) -> None:
                 for r in rows
             ],
             title=f"Batch: {summary.output_dir.name}",
+            totals_line=count_line(summary.results),
         ),
     )
 
