@@ -421,6 +421,12 @@ def _generate(
         with timer("forces"):
             profile = _forces(part, stack.grid, more, settings, progress)
         contacts = _sized_contacts(more, profile, settings)
+    landings_avoided = None
+    if guard.active:
+        # Landings avoided: the same contacts planned without the keep-off, posts on protected faces counted.
+        with timer("routing"):
+            free = plan_fn(part, contacts, settings)
+        landings_avoided = int(np.count_nonzero(guard.avoid(free.tip_points[free.tip_contact < 0])))
     # the raft and the posts are layers too: in the per-layer record and the rated-force check
     profile = profile.with_supports(*support_layer_forces(sized.plan, settings, len(profile.force_n)))
     timer.seconds["total"] = time.perf_counter() - t_total
@@ -447,7 +453,7 @@ def _generate(
     )
     if file_info is not None:
         file_info["added_by_check"] = repaired
-    scars = protection_section(guard, hold, contacts, sized.plan, file_info)
+    scars = protection_section(guard, hold, contacts, sized.plan, file_info, landings_avoided)
     report = add_protection(build_report(records), scars, name)
     return Result(
         name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver, guard

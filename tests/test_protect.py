@@ -184,15 +184,20 @@ def test_ring_with_protected_bore_gets_no_contact_within_a_tip_radius():
     assert r.report["protection"]["contacts_on_protected"] == 0
 
 
-def test_landings_refused_on_protected_faces():
-    # A shelf over a floor: the straight strategy would stand posts on the floor's top;
-    # protecting it (normal up) leaves no landing there (trimesh proximity).
+def _shelf():
+    """A 4 x 4 mm shelf over a 10 x 10 mm floor, held by a wall."""
     floor = trimesh.creation.box((10, 10, 1))
     shelf = trimesh.creation.box((4, 4, 1))
     shelf.apply_translation((0, 0, 4))
     wall = trimesh.creation.box((1, 10, 4))
     wall.apply_translation((-4.5, 0, 2.5))
-    part = trimesh.boolean.union([floor, shelf, wall], engine="manifold")
+    return trimesh.boolean.union([floor, shelf, wall], engine="manifold")
+
+
+def test_landings_refused_on_protected_faces():
+    # A shelf over a floor: the straight strategy would stand posts on the floor's top;
+    # protecting it (normal up) leaves no landing there (trimesh proximity).
+    part = _shelf()
     plain = generate(part, strategy="straight", name="shelf")
     assert plain.plan.landings > 0
     r = generate(part, strategy="straight", protect="normal:0,0,1,5", name="shelf")
@@ -313,3 +318,44 @@ def test_batch_carries_protect_option_and_sidecar_files(tmp_path):
     assert a["protected_faces"] == 4 and b["protected_faces"] == 2
     assert a["contacts_on_protected"] == 0 and b["contacts_on_protected"] == 0
     assert (out / "a.contacts.csv").is_file() and (out / "b.underside.png").is_file()
+
+
+def test_markdown_protection_section_equals_the_json(tmp_path):
+    import json
+    import re
+
+    # The shelf with every up-facing face protected: posts that would stand on the floor are refused.
+    r = generate(_shelf(), strategy="straight", protect="normal:0,0,1,5", name="shelf")
+    paths = r.save(tmp_path)
+    sec = json.loads(paths["report"].read_text())["protection"]
+    md = paths["summary"].read_text()
+    assert "## Protected surfaces" in md
+    # Source: the saved JSON, read back with Python's json module; the Markdown table parsed with re.
+    rows = re.findall(
+        r"^\| region (\d+) \| (\d+) \| ([\d.]+) \| ([-\d., ]+) \| (\d+) \| ([\d.]+) \| (\d+) \|$", md, re.M
+    )
+    assert len(rows) == len(sec["regions"]) > 0
+    for got, want in zip(rows, sec["regions"]):
+        assert int(got[0]) == want["region"] and int(got[1]) == want["faces"]
+        assert float(got[2]) == pytest.approx(want["area_mm2"], abs=5e-4)
+        assert [float(v) for v in got[3].split(",")] == pytest.approx(want["centre_mm"], abs=5e-3)
+        assert (int(got[4]), float(got[5]), int(got[6])) == (want["contacts"], want["tip_area_mm2"], want["landings"])
+        assert want["contacts"] == want["landings"] == 0  # the budget on a protected region
+    rest = re.search(r"^\| rest of the part \| \| \| \| (\d+) \| ([\d.]+) \| (\d+) \|$", md, re.M)
+    assert int(rest[1]) == sec["rest"]["contacts"] and int(rest[3]) == sec["rest"]["landings"]
+    assert float(rest[2]) == pytest.approx(sec["rest"]["tip_area_mm2"], abs=5e-5)
+    moved = re.search(r"contacts moved off protected faces: (\d+) \(merged after moving: (\d+)\)", md)
+    assert (int(moved[1]), int(moved[2])) == (sec["contacts_moved"], sec["contacts_merged_after_moving"])
+    avoided = int(re.search(r"landings avoided .*: (\d+)$", md, re.M)[1])
+    assert avoided == sec["landings_avoided"]
+    held = int(re.search(r"could only be held from protected surface: (\d+)", md)[1])
+    assert held == len(sec["unholdable"])
+    # Landings avoided, independently: the unprotected plan of the same part (no contact is
+    # moved: protected faces look up, contacts sit on faces looking down) stands this many
+    # posts within the keep-off of an up-facing face (trimesh proximity).
+    assert sec["contacts_moved"] == 0
+    plain = generate(_shelf(), strategy="straight", name="shelf")
+    up = trimesh.Trimesh(plain.part.vertices, plain.part.faces[plain.part.face_normals[:, 2] > 0.99], process=False)
+    land = plain.plan.tip_points[plain.plan.tip_contact < 0]
+    _, d, _ = trimesh.proximity.closest_point(up, land)
+    assert avoided == int(np.count_nonzero(d < r.guard.keep_off_mm)) > 0

@@ -42,9 +42,17 @@ def _split(guard: Guard, points: np.ndarray, diam: np.ndarray):
 
 
 def protection_section(
-    guard: Guard, holder: Holder | None, contacts: Contacts, plan: SupportPlan, file_info: dict | None = None
+    guard: Guard,
+    holder: Holder | None,
+    contacts: Contacts,
+    plan: SupportPlan,
+    file_info: dict | None = None,
+    landings_avoided: int | None = None,
 ) -> dict:
-    """The ``protection`` section (see the module notes); coordinates are input coordinates."""
+    """The ``protection`` section (see the module notes); coordinates are input coordinates.
+
+    ``landings_avoided`` is how many posts the same contacts, planned without the
+    keep-off, would stand on protected faces (None when nothing is protected)."""
     diam = _tip_diameters(contacts, plan)
     area = np.pi * diam**2 / 4
     on, region = _split(guard, contacts.points, diam)
@@ -80,6 +88,7 @@ def protection_section(
         },
         "contacts_on_protected": int(np.count_nonzero(on)),
         "landings_on_protected": int(np.count_nonzero(l_on)),
+        "landings_avoided": landings_avoided,
         "contacts_moved": holder.moved if holder else 0,
         "contacts_merged_after_moving": holder.merged if holder else 0,
         "unholdable": list(holder.unholdable) if holder else [],
