@@ -107,7 +107,8 @@ def protection_markdown(section: dict | None) -> list[str]:
     if section.get("protected_faces"):
         sel = ", ".join(f"`{s}`" for s in section.get("selectors") or []) or "given faces"
         lines += [
-            f"Protected: {section['protected_faces']} faces, {section['protected_area_mm2']:.3f} mm² ({sel}); "
+            f"Protected: {section['protected_faces']} faces, "
+            f"{section.get('protected_surface_mm2', section['protected_area_mm2']):.3f} mm² ({sel}); "
             f"no tip or landing within {section['keep_off_mm']:.3f} mm of them.",
             "",
             "Scar budget (a tip counts for a region when its disc reaches it; every protected region must show 0):",

@@ -58,12 +58,12 @@ def protection_section(
     on, region = _split(guard, contacts.points, diam)
     land = plan.tip_contact < 0
     l_on, l_region = _split(guard, plan.tip_points[land], plan.tip_diameters[land])
-    part = guard.part
+    part, surf = guard.part, guard.surface
     regions = []
     for r in range(guard.n_regions):
-        faces = np.flatnonzero(guard.region == r)
-        fa = np.asarray(part.area_faces)[faces]
-        centre = (np.asarray(part.triangles_center)[faces] * fa[:, None]).sum(0) / max(fa.sum(), 1e-300) - guard.offset
+        faces = np.flatnonzero(guard.surface_region == r)
+        fa = np.asarray(surf.area_faces)[faces]
+        centre = (np.asarray(surf.triangles_center)[faces] * fa[:, None]).sum(0) / max(fa.sum(), 1e-300) - guard.offset
         regions.append(
             {
                 "region": r,
@@ -79,6 +79,7 @@ def protection_section(
         "selectors": list(guard.described),
         "protected_faces": int(guard.faces.sum()),
         "protected_area_mm2": float(np.asarray(part.area_faces)[guard.faces].sum()),
+        "protected_surface_mm2": float(surf.area) if guard.active else 0.0,
         "keep_off_mm": guard.keep_off_mm,
         "regions": regions,
         "rest": {
@@ -93,6 +94,7 @@ def protection_section(
         "contacts_merged_after_moving": holder.merged if holder else 0,
         "unholdable": list(holder.unholdable) if holder else [],
         "contacts_file": file_info,
+        "notes": list(guard.notes),
     }
 
 
@@ -109,6 +111,8 @@ def add_protection(report: dict, section: dict, name: str) -> dict:
                 ),
             }
         )
+    for note in section.get("notes") or []:
+        warnings.append({"code": "protect-not-carried", "message": note})
     for u in section["unholdable"]:
         warnings.append({"code": "protected-unholdable", "message": f"{name}: {u['message']}"})
     info = section.get("contacts_file")
