@@ -50,7 +50,8 @@ def figures(name, mesh, protect):
     print(
         f"  protected plan:   {len(prot.contacts)} contacts, moved {p['contacts_moved']} (merged "
         f"{p['contacts_merged_after_moving']}), unholdable {len(p['unholdable'])}, on protected "
-        f"{p['contacts_on_protected']} contacts / {p['landings_on_protected']} landings, {prot.plan.landings} "
+        f"{p['contacts_on_protected']} contacts / {p['landings_on_protected']} landings, landings avoided "
+        f"{p['landings_avoided']}, {prot.plan.landings} "
         f"landings elsewhere, check {'passes' if prot.report['verification']['passed'] else 'FAILS'} "
         f"{prot.report['verification']['failures']}"
     )

@@ -53,6 +53,15 @@ MERGE_FRACTION = 1e-5
 #: :data:`MERGE_FRACTION` applies only where it closes a surface that this leaves open.
 EXACT_FRACTION = 1e-9
 
+#: A face of a solid rebuilt from the winding number (:mod:`supportgen.io.winding`) takes
+#: the marks (protection, colour) of the nearest input face when that face lies within
+#: this many grid cells of it.  Marching cubes on the winding number, a step from 1 to 0
+#: across the surface, puts the rebuilt surface up to half a cell from the input (the
+#: level 1/2 interpolated between a node inside and one outside), and the simplification
+#: moves it less than an eighth of a cell more; one cell covers both, and a face farther
+#: than that has no input face it stands for (an inner wall, a sheet the rebuild dropped).
+REBUILD_CARRY_CELLS = 1.0
+
 #: Relative singular value below which a rigid part's rotation on its supports is
 #: taken as unresisted.  Coordinates are scaled by the larger of the supports' RMS
 #: spread and the loaded region's RMS radius, and the moment matrix goes as spread

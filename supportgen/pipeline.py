@@ -357,23 +357,27 @@ def _generate(
         hold = Holder(guard, settings)
     with timer("overhangs"):
         oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
+    fixed, file_info = 0, None
     with timer("contacts"):
-        contacts = sample_overhangs(
-            part, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed
-        )
-        minima = contacts_at(part, oh.minima - [0, 0, OFFSET_MM], "minimum", rules.tip_diameter_mm)
-        # A local minimum is held only by a tip over it, not by one merely near it.
-        contacts = add_unheld(contacts, minima, rules.tip_min_mm / 2 + pr.pixel_mm, pr.layer_mm)
+        if contacts_file is not None:
+            # A contacts file replaces sampling; the repair rounds below add contacts only where the check needs them.
+            contacts, fixed = contacts_from_rows(contacts_file, part, placed.offset, settings)
+            file_info = {"path": str(contacts_file), "rows": len(contacts), "locked": fixed}
+        else:
+            contacts = sample_overhangs(
+                part, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm, rules.seed
+            )
+            minima = contacts_at(part, oh.minima - [0, 0, OFFSET_MM], "minimum", rules.tip_diameter_mm)
+            # A local minimum is held only by a tip over it, not by one merely near it.
+            contacts = add_unheld(contacts, minima, rules.tip_min_mm / 2 + pr.pixel_mm, pr.layer_mm)
     with timer("layers"):
         stack = analyse_layers(
             part, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm, progress=progress and f"{name}: layers"
         )
         check_cures(stack.area_mm2, settings, name)
-        contacts = _layer_contacts(part, stack, settings, contacts, rules.contact_spacing_mm)
-    fixed, file_info = 0, None
-    if contacts_file is not None:
-        contacts, fixed = contacts_from_rows(contacts_file, part, placed.offset, settings)
-        file_info = {"path": str(contacts_file), "rows": len(contacts), "locked": fixed}
+    if file_info is None:
+        with timer("contacts"):
+            contacts = _layer_contacts(part, stack, settings, contacts, rules.contact_spacing_mm)
     contacts = hold(contacts, fixed)
     densified = repaired = 0
     for round_ in range(MAX_DENSIFY_ROUNDS + 1):
@@ -421,6 +425,12 @@ def _generate(
         with timer("forces"):
             profile = _forces(part, stack.grid, more, settings, progress)
         contacts = _sized_contacts(more, profile, settings)
+    landings_avoided = None
+    if guard.active:
+        # Landings avoided: the same contacts planned without the keep-off, posts on protected faces counted.
+        with timer("routing"):
+            free = plan_fn(part, contacts, settings)
+        landings_avoided = int(np.count_nonzero(guard.avoid(free.tip_points[free.tip_contact < 0])))
     # the raft and the posts are layers too: in the per-layer record and the rated-force check
     profile = profile.with_supports(*support_layer_forces(sized.plan, settings, len(profile.force_n)))
     timer.seconds["total"] = time.perf_counter() - t_total
@@ -447,7 +457,7 @@ def _generate(
     )
     if file_info is not None:
         file_info["added_by_check"] = repaired
-    scars = protection_section(guard, hold, contacts, sized.plan, file_info)
+    scars = protection_section(guard, hold, contacts, sized.plan, file_info, landings_avoided)
     report = add_protection(build_report(records), scars, name)
     return Result(
         name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver, guard

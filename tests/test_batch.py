@@ -402,3 +402,84 @@ def test_totals_equal_the_sum_of_the_part_reports(folder, runs):
     assert float(total["resin_ml"]) == pytest.approx(resin, abs=1e-3 * len(GOOD))
     assert float(total["print_time_s"]) == pytest.approx(hours, abs=0.01 * len(GOOD))
     assert f"{len(GOOD)} ok, {len(BAD)} refused" in total["reason"]
+
+
+def _rows(path: Path) -> list[dict]:
+    """Rows of a contacts file, read with Python's csv reader (not the project's)."""
+    with open(path, newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def _drop_row(path: Path, index: int) -> int:
+    """Delete one data row of a contacts file (a technician's edit); return the rows left."""
+    lines = path.read_text(encoding="utf-8").splitlines(keepends=True)
+    del lines[1 + index]
+    path.write_text("".join(lines), encoding="utf-8")
+    return len(lines) - 1
+
+
+def test_batch_reads_contacts_sidecar_and_resumes_on_its_edit(tmp_path):
+    """A part's NAME.contacts.csv beside it is its contacts; an edit re-runs that part only.
+
+    The output folder lies inside the input folder: the batch's own NAME.contacts.csv
+    outputs must never be read back as side-cars, nor replace them (checked by bytes).
+    """
+    from supportgen.pipeline import generate
+
+    root = tmp_path / "in"
+    _write_good(root, ("lid.stl", "ball.stl"))
+    settings = _coarse()
+    # A contacts file as a run writes it, then one row deleted by hand.
+    first = generate(root / "lid.stl", settings)
+    side = root / "lid.contacts.csv"
+    side.write_text(first.contacts_csv(), encoding="utf-8")
+    written = len(_rows(side))
+    assert written == len(first.contacts) > 2
+    left = _drop_row(side, 1)
+    assert left == written - 1 == len(_rows(side))  # csv module's count of the edited file
+    side_bytes = side.read_bytes()
+    out = root / "out"
+    summary = run_batch(root, out, settings, workers=1, progress=False)
+    assert {r.file: r.status for r in summary.results} == {"ball.stl": "ok", "lid.stl": "ok"}
+    report = json.loads((out / "lid.report.json").read_text())
+    info = report["protection"]["contacts_file"]
+    # One fewer user contact than the file the run wrote: the deleted row is gone.
+    assert info["path"] == str(side) and info["rows"] == written - 1
+    assert report["supports"]["contacts"] == info["rows"] + info["added_by_check"]
+    assert json.loads((out / "ball.report.json").read_text())["protection"]["contacts_file"] is None
+    # The output contacts file is written into OUT, never over the side-car.
+    assert (out / "lid.contacts.csv").is_file() and side.read_bytes() == side_bytes
+    # Unchanged inputs and side-cars: everything reused.
+    again = run_batch(root, out, settings, workers=1, progress=False, resume=True)
+    assert {(r.status, r.reused) for r in again.results} == {("ok", True)}
+    # The batch's own output (under OUT, inside DIR) is not read as an input or side-car.
+    assert len(again.results) == 2
+    # Editing the side-car re-runs that part only, with the edit honoured.
+    _drop_row(side, 0)
+    edited = run_batch(root, out, settings, workers=1, progress=False, resume=True)
+    assert {r.file: (r.status, r.reused) for r in edited.results} == {
+        "ball.stl": ("ok", True),
+        "lid.stl": ("ok", False),
+    }
+    info = json.loads((out / "lid.report.json").read_text())["protection"]["contacts_file"]
+    assert info["rows"] == written - 2 == len(_rows(side))
+    # Removing the side-car is an edit too.
+    side.unlink()
+    gone = run_batch(root, out, settings, workers=1, progress=False, resume=True)
+    assert {r.file: (r.status, r.reused) for r in gone.results} == {
+        "ball.stl": ("ok", True),
+        "lid.stl": ("ok", False),
+    }
+    assert json.loads((out / "lid.report.json").read_text())["protection"]["contacts_file"] is None
+
+
+def test_bad_contacts_sidecar_fails_that_part_with_one_line(tmp_path):
+    """A side-car that cannot be read fails its part with a line naming the file; others go on."""
+    root = tmp_path / "in"
+    _write_good(root, ("lid.stl", "ball.stl"))
+    (root / "lid.contacts.csv").write_text("id,x_mm,y_mm,z_mm\n0,1.0,oops,2.0\n", encoding="utf-8")
+    summary = run_batch(root, tmp_path / "out", _coarse(), workers=1, progress=False)
+    rows = {r.file: r for r in summary.results}
+    assert rows["ball.stl"].status == "ok" and rows["lid.stl"].status == "refused"
+    assert "lid.contacts.csv" in rows["lid.stl"].reason and "line 2" in rows["lid.stl"].reason
+    assert "\n" not in rows["lid.stl"].reason

@@ -184,15 +184,20 @@ def test_ring_with_protected_bore_gets_no_contact_within_a_tip_radius():
     assert r.report["protection"]["contacts_on_protected"] == 0
 
 
-def test_landings_refused_on_protected_faces():
-    # A shelf over a floor: the straight strategy would stand posts on the floor's top;
-    # protecting it (normal up) leaves no landing there (trimesh proximity).
+def _shelf():
+    """A 4 x 4 mm shelf over a 10 x 10 mm floor, held by a wall."""
     floor = trimesh.creation.box((10, 10, 1))
     shelf = trimesh.creation.box((4, 4, 1))
     shelf.apply_translation((0, 0, 4))
     wall = trimesh.creation.box((1, 10, 4))
     wall.apply_translation((-4.5, 0, 2.5))
-    part = trimesh.boolean.union([floor, shelf, wall], engine="manifold")
+    return trimesh.boolean.union([floor, shelf, wall], engine="manifold")
+
+
+def test_landings_refused_on_protected_faces():
+    # A shelf over a floor: the straight strategy would stand posts on the floor's top;
+    # protecting it (normal up) leaves no landing there (trimesh proximity).
+    part = _shelf()
     plain = generate(part, strategy="straight", name="shelf")
     assert plain.plan.landings > 0
     r = generate(part, strategy="straight", protect="normal:0,0,1,5", name="shelf")
@@ -313,3 +318,108 @@ def test_batch_carries_protect_option_and_sidecar_files(tmp_path):
     assert a["protected_faces"] == 4 and b["protected_faces"] == 2
     assert a["contacts_on_protected"] == 0 and b["contacts_on_protected"] == 0
     assert (out / "a.contacts.csv").is_file() and (out / "b.underside.png").is_file()
+
+
+def test_markdown_protection_section_equals_the_json(tmp_path):
+    import json
+    import re
+
+    # The shelf with every up-facing face protected: posts that would stand on the floor are refused.
+    r = generate(_shelf(), strategy="straight", protect="normal:0,0,1,5", name="shelf")
+    paths = r.save(tmp_path)
+    sec = json.loads(paths["report"].read_text())["protection"]
+    md = paths["summary"].read_text()
+    assert "## Protected surfaces" in md
+    # Source: the saved JSON, read back with Python's json module; the Markdown table parsed with re.
+    rows = re.findall(
+        r"^\| region (\d+) \| (\d+) \| ([\d.]+) \| ([-\d., ]+) \| (\d+) \| ([\d.]+) \| (\d+) \|$", md, re.M
+    )
+    assert len(rows) == len(sec["regions"]) > 0
+    for got, want in zip(rows, sec["regions"]):
+        assert int(got[0]) == want["region"] and int(got[1]) == want["faces"]
+        assert float(got[2]) == pytest.approx(want["area_mm2"], abs=5e-4)
+        assert [float(v) for v in got[3].split(",")] == pytest.approx(want["centre_mm"], abs=5e-3)
+        assert (int(got[4]), float(got[5]), int(got[6])) == (want["contacts"], want["tip_area_mm2"], want["landings"])
+        assert want["contacts"] == want["landings"] == 0  # the budget on a protected region
+    rest = re.search(r"^\| rest of the part \| \| \| \| (\d+) \| ([\d.]+) \| (\d+) \|$", md, re.M)
+    assert int(rest[1]) == sec["rest"]["contacts"] and int(rest[3]) == sec["rest"]["landings"]
+    assert float(rest[2]) == pytest.approx(sec["rest"]["tip_area_mm2"], abs=5e-5)
+    moved = re.search(r"contacts moved off protected faces: (\d+) \(merged after moving: (\d+)\)", md)
+    assert (int(moved[1]), int(moved[2])) == (sec["contacts_moved"], sec["contacts_merged_after_moving"])
+    avoided = int(re.search(r"landings avoided .*: (\d+)$", md, re.M)[1])
+    assert avoided == sec["landings_avoided"]
+    held = int(re.search(r"could only be held from protected surface: (\d+)", md)[1])
+    assert held == len(sec["unholdable"])
+    # Landings avoided, independently: the unprotected plan of the same part (no contact is
+    # moved: protected faces look up, contacts sit on faces looking down) stands this many
+    # posts within the keep-off of an up-facing face (trimesh proximity).
+    assert sec["contacts_moved"] == 0
+    plain = generate(_shelf(), strategy="straight", name="shelf")
+    up = trimesh.Trimesh(plain.part.vertices, plain.part.faces[plain.part.face_normals[:, 2] > 0.99], process=False)
+    land = plain.plan.tip_points[plain.plan.tip_contact < 0]
+    _, d, _ = trimesh.proximity.closest_point(up, land)
+    assert avoided == int(np.count_nonzero(d < r.guard.keep_off_mm)) > 0
+
+
+def _edge_pair():
+    """Two 10 mm boxes sharing one edge (non-manifold: four faces on that edge), the upper
+    one overhanging; faces split to 1.25 mm so a box selector can pick a patch."""
+    a = trimesh.creation.box(bounds=[[0, -5, 0], [10, 5, 6]])
+    b = trimesh.creation.box(bounds=[[10, -5, 6], [20, 5, 12]])
+    m = trimesh.util.concatenate([a, b])
+    for _ in range(3):
+        m = m.subdivide()
+    return trimesh.Trimesh(m.vertices, m.faces, process=False)
+
+
+#: A 2.5 x 2.5 mm patch of the upper box's underside (z = 6), in input coordinates.
+_PATCH = ((13.7, -1.3, 5.9), (16.3, 1.3, 6.1))
+
+
+def _patch_selector() -> str:
+    return "box:" + ",".join(str(v) for v in (*_PATCH[0], *_PATCH[1]))
+
+
+def test_protection_survives_the_winding_number_rebuild():
+    part = _edge_pair()
+    loaded = prepare_mesh(part, "pair")
+    # Source: the repair line itself says the solid was rebuilt (edges shared by four faces).
+    assert any("rebuilt" in line for line in loaded.repairs)
+    # The input faces in the box, by trimesh.bounds.contains on their corners (strict: no corner on a side).
+    inside = trimesh.bounds.contains(np.array(_PATCH), part.vertices)[part.faces].all(axis=1)
+    assert inside.sum() == 8
+    patch = trimesh.Trimesh(part.vertices, part.faces[inside], process=False)
+    r = generate(part, name="pair", protect=_patch_selector())
+    sec = r.report["protection"]
+    assert sec["notes"] == [] and sec["protected_faces"] > 0
+    # The protected region is the patch itself (its area by trimesh), not the coarser rebuilt faces.
+    assert len(sec["regions"]) == 1 and sec["regions"][0]["area_mm2"] == pytest.approx(patch.area, rel=1e-9)
+    assert sec["regions"][0]["contacts"] == 0 and sec["regions"][0]["landings"] == 0
+    assert sec["contacts_on_protected"] == 0 and r.report["verification"]["passed"]
+    # No tip disc reaches the input patch (trimesh proximity, input coordinates): the
+    # tips are at least the keep-off distance from it, and no tip is wider than twice that.
+    _, d, _ = trimesh.proximity.closest_point(patch, r.contacts.points - r.guard.offset)
+    assert d.min() >= r.guard.keep_off_mm - 1e-9
+    assert np.all(r.plan.tip_diameters / 2 <= r.guard.keep_off_mm + 1e-9)
+    # Without protection tips do sit on the patch: the check above can fail.
+    plain = generate(part, name="pair")
+    _, d0, _ = trimesh.proximity.closest_point(patch, plain.contacts.points - plain.guard.offset)
+    assert d0.min() < r.guard.keep_off_mm
+
+
+def test_protection_that_cannot_be_carried_is_said_in_one_line():
+    # A square sheet inside the lower box: the rebuilt solid has no face there, so its
+    # protection cannot be carried; the run says so and still protects the patch.
+    part = _edge_pair()
+    sheet = trimesh.Trimesh([[5, -2, 1], [5, 2, 1], [5, 2, 5], [5, -2, 5]], [[0, 1, 2], [0, 2, 3]], process=False)
+    part = trimesh.util.concatenate([part, sheet])
+    loaded = prepare_mesh(part, "pair")
+    notes: list = []
+    mask = protect_mask(loaded.mesh, [_patch_selector(), "box:4.9,-2.1,0.9,5.1,2.1,5.1"], label="pair", notes=notes)
+    assert mask.any() and len(notes) == 1 and "\n" not in notes[0]
+    # Source: the sheet's area by trimesh (4 x 4 mm), named in the line.
+    assert f"{sheet.area:.3g} mm²" in notes[0] and notes[0].startswith("pair: ")
+    # Nothing protected can be carried at all: the same line, and no protected face.
+    notes = []
+    assert not protect_mask(loaded.mesh, "box:4.9,-2.1,0.9,5.1,2.1,5.1", label="pair", notes=notes).any()
+    assert len(notes) == 1 and f"{sheet.area:.3g} mm² of the {sheet.area:.3g} mm²" in notes[0]

@@ -38,7 +38,19 @@ import numpy as np
 
 from ..errors import SettingsError
 
-__all__ = ["COLUMNS", "ContactRows", "format_contacts", "parse_contacts", "read_contacts"]
+__all__ = [
+    "COLUMNS",
+    "SIDECAR_SUFFIX",
+    "ContactRows",
+    "format_contacts",
+    "parse_contacts",
+    "read_contacts",
+    "sidecar_for",
+]
+
+#: Side-car contacts file next to a part (``part.stl`` -> ``part.contacts.csv``): a batch
+#: reads it as that part's contacts (``generate`` reads a contacts file only when given one).
+SIDECAR_SUFFIX = ".contacts.csv"
 
 COLUMNS = ("id", "x_mm", "y_mm", "z_mm", "kind", "diameter_mm", "load_n", "safety_factor", "locked", "nx", "ny", "nz")
 _REQUIRED = ("x_mm", "y_mm", "z_mm")
@@ -203,3 +215,16 @@ def read_contacts(path: str | Path) -> ContactRows:
     except (OSError, UnicodeDecodeError) as exc:
         raise SettingsError(f"{path}: cannot read the contacts file ({exc}); save it as UTF-8 CSV") from None
     return parse_contacts(text, str(path))
+
+
+def sidecar_for(source: str | Path) -> Path | None:
+    """The side-car contacts file of a part file, if it exists (``part.stl`` -> ``part.contacts.csv``).
+
+    Examples
+    --------
+    >>> sidecar_for("/nonexistent/part.stl") is None
+    True
+    """
+    p = Path(source)
+    side = p.with_name((p.name[: -len(p.suffix)] if p.suffix else p.name) + SIDECAR_SUFFIX)
+    return side if side.is_file() else None

@@ -97,7 +97,10 @@ def repair_arrays(
         Closed, consistently wound, encloses positive volume (built with ``process=False``).
         ``mesh.metadata["source_face"]`` maps each face to the input face it came
         from (-1 for faces added to close a hole), so per-face marks on the input
-        (protected surfaces, colours) survive the repair.
+        (protected surfaces, colours) survive the repair.  A solid rebuilt from the
+        winding number (step 7) has no input face (all -1); its
+        ``metadata["rebuilt_from"]`` keeps the input faces, the grid step and the
+        rebuilt vertices, from which :mod:`supportgen.supports.protect` carries marks.
     repairs : tuple of str
         One short line per repair made, in the order of the module notes.
 
@@ -180,8 +183,18 @@ def _repair(vertices, faces, label, *, merge_is_repair, repairs, hole_fraction):
         except MeshError as none:
             raise MeshError(f"{none}; the surface also failed repair: {str(exc).removeprefix(label + ': ')}") from exc
         repairs.append(line)
-        # A rebuilt solid has no face of the input: none carries an input face's marks.
+        # A rebuilt solid has no face of the input: none carries an input face's marks
+        # directly.  The input is kept so that marks can be carried to the nearest rebuilt
+        # faces when they are asked for (supportgen.supports.protect), with the rebuilt
+        # vertices as built, so later moves of the part (scale, turn, lift) can be followed.
         mesh.metadata["source_face"] = np.full(len(mesh.faces), -1)
+        mesh.metadata["rebuilt_from"] = {
+            "vertices": v,
+            "faces": f,
+            "source_face": source,
+            "cell": float(mesh.metadata.get("winding_cell", 0.0)),
+            "built_vertices": np.array(mesh.vertices, float),
+        }
         return mesh
 
 

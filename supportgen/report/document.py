@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["CAUTIONS", "REPORT_KEYS", "to_json", "markdown"]
+__all__ = ["CAUTIONS", "REPORT_KEYS", "to_json", "markdown", "protection_markdown"]
 
 REPORT_KEYS = (
     "input",
@@ -78,6 +78,82 @@ def _fmt(v, digits=2):
     return str(v)
 
 
+def _xyz(v) -> str:
+    return ", ".join(f"{float(c):.2f}" for c in v)
+
+
+def protection_markdown(section: dict | None) -> list[str]:
+    """Lines of the Markdown section on protected surfaces: the scar budget (count and
+    tip area of contacts, and landings, on each protected region, which must be 0, and on
+    the rest), contacts moved, landings avoided, what could only be held from protected
+    surface (with its location) and the contacts file used.  The numbers are those of the
+    report's ``protection`` section; empty when the run protected nothing and read no
+    contacts file.
+
+    Examples
+    --------
+    >>> sec = {"protected_faces": 2, "protected_area_mm2": 4.5, "keep_off_mm": 0.5, "selectors": ["normal:1,0,0,5"],
+    ...        "regions": [{"region": 0, "faces": 2, "area_mm2": 4.5, "centre_mm": [1.5, 0, 0.75],
+    ...                     "contacts": 0, "tip_area_mm2": 0.0, "landings": 0}],
+    ...        "rest": {"contacts": 9, "tip_area_mm2": 0.9, "landings": 0}, "contacts_on_protected": 0,
+    ...        "landings_on_protected": 0, "landings_avoided": 1, "contacts_moved": 3,
+    ...        "contacts_merged_after_moving": 1, "unholdable": [], "contacts_file": None}
+    >>> [ln for ln in protection_markdown(sec) if ln.startswith("| region 0")]
+    ['| region 0 | 2 | 4.500 | 1.50, 0.00, 0.75 | 0 | 0.0000 | 0 |']
+    """
+    if not section or (not section.get("protected_faces") and not section.get("contacts_file")):
+        return []
+    lines = ["", "## Protected surfaces", ""]
+    if section.get("protected_faces"):
+        sel = ", ".join(f"`{s}`" for s in section.get("selectors") or []) or "given faces"
+        lines += [
+            f"Protected: {section['protected_faces']} faces, "
+            f"{section.get('protected_surface_mm2', section['protected_area_mm2']):.3f} mm² ({sel}); "
+            f"no tip or landing within {section['keep_off_mm']:.3f} mm of them.",
+            "",
+            "Scar budget (a tip counts for a region when its disc reaches it; every protected region must show 0):",
+            "",
+            "| where | faces | area (mm²) | centre x, y, z (mm, input) | contacts | tip area (mm²) | landings |",
+            "|---|---|---|---|---|---|---|",
+        ]
+        for r in section.get("regions") or []:
+            lines.append(
+                f"| region {r['region']} | {r['faces']} | {r['area_mm2']:.3f} | {_xyz(r['centre_mm'])} | "
+                f"{r['contacts']} | {r['tip_area_mm2']:.4f} | {r['landings']} |"
+            )
+        rest = section.get("rest") or {}
+        lines.append(
+            f"| rest of the part | | | | {rest.get('contacts')} | {rest.get('tip_area_mm2', 0.0):.4f} | "
+            f"{rest.get('landings')} |"
+        )
+        avoided = section.get("landings_avoided")
+        lines += [
+            "",
+            f"- contacts on protected faces: {section['contacts_on_protected']}; landings on protected faces: "
+            f"{section['landings_on_protected']}",
+            f"- contacts moved off protected faces: {section['contacts_moved']} (merged after moving: "
+            f"{section['contacts_merged_after_moving']})",
+            f"- landings avoided (posts the same contacts would stand on protected faces without the keep-off): "
+            f"{'n/a' if avoided is None else avoided}",
+        ]
+        unholdable = section.get("unholdable") or []
+        lines.append(f"- could only be held from protected surface: {len(unholdable)}")
+        for u in unholdable:
+            rot = u.get("suggested_rotation") or {}
+            lines.append(
+                f"  - at {_xyz(u['point_mm'])} mm (input), region {u['region']}: turn {rot.get('angle_deg')} degrees "
+                f"about ({_xyz(rot.get('axis') or [])})"
+            )
+    info = section.get("contacts_file")
+    if info:
+        lines += [
+            "",
+            f"Contacts file `{info['path']}`: {info['rows']} rows ({info['locked']} locked) used instead of "
+            f"generated contacts; the check added {info.get('added_by_check', 0)}.",
+        ]
+    return lines
+
+
 def markdown(report: dict, name: str, images: dict[str, str]) -> str:
     """A human summary of one report, with the cautions and links to its plots."""
     sup, frc, ver, est = (report.get(k) or {} for k in ("supports", "forces", "verification", "estimates"))
@@ -108,6 +184,7 @@ def markdown(report: dict, name: str, images: dict[str, str]) -> str:
         lines.append(f"- check failed: {failure}")
     for w in report.get("warnings") or []:
         lines.append(f"- warning ({w['code']}): {w['message']}")
+    lines += protection_markdown(report.get("protection"))
     if images:
         lines += ["", "## Plots", ""]
         lines += [f"![{label}]({file})" for label, file in images.items()]

@@ -42,20 +42,28 @@ def _split(guard: Guard, points: np.ndarray, diam: np.ndarray):
 
 
 def protection_section(
-    guard: Guard, holder: Holder | None, contacts: Contacts, plan: SupportPlan, file_info: dict | None = None
+    guard: Guard,
+    holder: Holder | None,
+    contacts: Contacts,
+    plan: SupportPlan,
+    file_info: dict | None = None,
+    landings_avoided: int | None = None,
 ) -> dict:
-    """The ``protection`` section (see the module notes); coordinates are input coordinates."""
+    """The ``protection`` section (see the module notes); coordinates are input coordinates.
+
+    ``landings_avoided`` is how many posts the same contacts, planned without the
+    keep-off, would stand on protected faces (None when nothing is protected)."""
     diam = _tip_diameters(contacts, plan)
     area = np.pi * diam**2 / 4
     on, region = _split(guard, contacts.points, diam)
     land = plan.tip_contact < 0
     l_on, l_region = _split(guard, plan.tip_points[land], plan.tip_diameters[land])
-    part = guard.part
+    part, surf = guard.part, guard.surface
     regions = []
     for r in range(guard.n_regions):
-        faces = np.flatnonzero(guard.region == r)
-        fa = np.asarray(part.area_faces)[faces]
-        centre = (np.asarray(part.triangles_center)[faces] * fa[:, None]).sum(0) / max(fa.sum(), 1e-300) - guard.offset
+        faces = np.flatnonzero(guard.surface_region == r)
+        fa = np.asarray(surf.area_faces)[faces]
+        centre = (np.asarray(surf.triangles_center)[faces] * fa[:, None]).sum(0) / max(fa.sum(), 1e-300) - guard.offset
         regions.append(
             {
                 "region": r,
@@ -71,6 +79,7 @@ def protection_section(
         "selectors": list(guard.described),
         "protected_faces": int(guard.faces.sum()),
         "protected_area_mm2": float(np.asarray(part.area_faces)[guard.faces].sum()),
+        "protected_surface_mm2": float(surf.area) if guard.active else 0.0,
         "keep_off_mm": guard.keep_off_mm,
         "regions": regions,
         "rest": {
@@ -80,10 +89,12 @@ def protection_section(
         },
         "contacts_on_protected": int(np.count_nonzero(on)),
         "landings_on_protected": int(np.count_nonzero(l_on)),
+        "landings_avoided": landings_avoided,
         "contacts_moved": holder.moved if holder else 0,
         "contacts_merged_after_moving": holder.merged if holder else 0,
         "unholdable": list(holder.unholdable) if holder else [],
         "contacts_file": file_info,
+        "notes": list(guard.notes),
     }
 
 
@@ -100,6 +111,8 @@ def add_protection(report: dict, section: dict, name: str) -> dict:
                 ),
             }
         )
+    for note in section.get("notes") or []:
+        warnings.append({"code": "protect-not-carried", "message": note})
     for u in section["unholdable"]:
         warnings.append({"code": "protected-unholdable", "message": f"{name}: {u['message']}"})
     info = section.get("contacts_file")

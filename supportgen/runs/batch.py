@@ -20,11 +20,18 @@ Output sets and resume
     one set (:func:`supportgen.io.outputs.commit_set`): a file that fails,
     times out, crashes or is interrupted leaves its previous set as it was and
     no temporary file.  The manifest records the sha256 of the input bytes, of
-    ``settings.to_toml()`` plus the strategy, and the size and sha256 of every
-    output, and the file's row (status, reason, figures); with ``resume=True``
-    a file is not redone when all of them match what is on disk: its row is the
-    manifest's (the status and reason of the run that made the outputs), marked
-    ``reused``.
+    ``settings.to_toml()`` plus the strategy, of the part's side-car files, and
+    the size and sha256 of every output, and the file's row (status, reason,
+    figures); with ``resume=True`` a file is not redone when all of them match
+    what is on disk: its row is the manifest's (the status and reason of the run
+    that made the outputs), marked ``reused``.
+Side-car files
+    ``NAME.protect.toml`` next to a part adds protected surfaces
+    (:mod:`supportgen.supports.protect`) and ``NAME.contacts.csv`` next to it is
+    read as its contacts (:mod:`supportgen.io.contactsfile`: rows kept are honoured,
+    rows deleted are gone).  Their bytes are part of the resume key (:func:`sidecars_hash`),
+    so editing one re-runs that part only.  Side-cars are looked up beside the input,
+    never in the output tree (inputs under the output folder are not read).
 One run per output folder
     The output folder is locked for the run (:class:`supportgen.io.lock.FolderLock`);
     a second batch or ``generate`` on it waits (``wait_s``) or refuses.
@@ -73,6 +80,7 @@ import numpy as np
 
 from ..errors import GeometryError, OutputError, SizingError, SupportGenError
 from ..io.budget import MEMORY_BASE_MB, MEMORY_FACE_BYTES, MEMORY_MASK_FACTOR, estimate_peak_mb, mesh_footprint
+from ..io.contactsfile import sidecar_for as contacts_sidecar
 from ..io.lock import FolderLock
 from ..io.meshio import READ_FORMATS, atomic_write_text, part_name
 from ..io.outputs import (
@@ -88,6 +96,7 @@ from ..io.outputs import (
 from ..pipeline import DEFAULT_STRATEGY, OUTPUTS
 from ..report.web import batch_index
 from ..settings import Settings
+from ..supports.protect import sidecar_for as protect_sidecar
 from .memory import peak_rss_mb
 from .signals import stop_on_signals
 from .workers import dask_client, run_dask, run_local
@@ -111,6 +120,8 @@ __all__ = [
     "discover",
     "settings_hash",
     "file_hash",
+    "sidecars",
+    "sidecars_hash",
     "mesh_footprint",
     "estimate_peak_mb",
     "discard_outputs",
@@ -297,6 +308,24 @@ def settings_hash(settings: Settings, strategy: str) -> str:
     return hashlib.sha256(f"{settings.to_toml()}\nstrategy = {strategy!r}\n".encode()).hexdigest()
 
 
+def sidecars(source: str | Path) -> list[Path]:
+    """The side-car files of a part that exist: ``NAME.protect.toml`` and ``NAME.contacts.csv``."""
+    return [p for p in (protect_sidecar(source), contacts_sidecar(source)) if p is not None]
+
+
+def sidecars_hash(source: str | Path) -> str | None:
+    """sha256 (hex) of the names and bytes of a part's side-car files; None when it has none."""
+    import hashlib
+
+    found = sidecars(source)
+    if not found:
+        return None
+    h = hashlib.sha256()
+    for p in found:
+        h.update(f"{p.name}\n{file_hash(p)}\n".encode())
+    return h.hexdigest()
+
+
 def discard_outputs(job: Job) -> None:
     """Remove what a stopped or failed job left unfinished: the temporary files of its set.
 
@@ -377,7 +406,7 @@ def _refusal(job: Job, t0: float) -> FileResult | None:
     )
 
 
-def _manifest(job: Job, input_sha: str, row: FileResult):
+def _manifest(job: Job, input_sha: str, row: FileResult, sidecar_sha: str | None = None):
     """The manifest's producer: a function of the staged files of the set (see ``commit_set``)."""
 
     def make(staged) -> bytes:
@@ -385,6 +414,7 @@ def _manifest(job: Job, input_sha: str, row: FileResult):
             "input": job.rel,
             "input_sha256": input_sha,
             "settings_sha256": settings_hash(job.settings, job.strategy),
+            "sidecars_sha256": sidecar_sha,
             "strategy": job.strategy,
             "outputs": [o.to_dict() for o in staged.values()],
             **{k: row.to_dict()[k] for k in MANIFEST_FIELDS},
@@ -420,6 +450,7 @@ def run_job(job: Job) -> FileResult:
         from .. import pipeline
 
         input_sha = file_hash(job.source)
+        sidecar_sha = sidecars_hash(job.source)  # before the run: the bytes it reads
         refused = _refusal(job, t0)
         if refused is not None:
             return refused
@@ -430,11 +461,14 @@ def run_job(job: Job) -> FileResult:
             name=job.name,
             progress=False,
             protect=list(job.protect) or None,
+            contacts=contacts_sidecar(job.source),
         )
         in_time()
         row = _row(job, result.report, time.perf_counter() - t0)
         result.save(
-            job.outdir, extra={"manifest": (job.manifest.name, _manifest(job, input_sha, row))}, before_commit=in_time
+            job.outdir,
+            extra={"manifest": (job.manifest.name, _manifest(job, input_sha, row, sidecar_sha))},
+            before_commit=in_time,
         )
         return dataclasses.replace(row, peak_mb=peak_rss_mb())
     except _Late:
@@ -471,6 +505,8 @@ def _up_to_date(job: Job, settings_sha: str) -> dict | None:
     except (OSError, ValueError, KeyError, TypeError):
         return None
     if m.get("settings_sha256") != settings_sha or not set(job.files[:-1]) <= set(listed):
+        return None
+    if m.get("sidecars_sha256") != sidecars_hash(job.source):  # a side-car was edited, added or removed
         return None
     folder = Path(job.outdir)
     for name, o in listed.items():
@@ -712,7 +748,8 @@ def run_batch(
         A tqdm bar on stderr (done, failed, ETA).
     protect : sequence of str, optional
         Protect selectors (:mod:`supportgen.supports.protect`) for every file; a file's
-        side-car ``NAME.protect.toml`` adds its own.  Not part of the resume key.
+        side-car ``NAME.protect.toml`` adds its own (side-cars are part of the resume key,
+        this argument is not).
     on_result : callable, optional
         Called in this process with each :class:`FileResult` as it arrives; an
         exception it raises stops the batch like Ctrl-C (KeyboardInterrupt) or
@@ -750,7 +787,10 @@ def run_batch(
     inside = _check_folders(root, out, workers, name_clash)
     rels = discover(root, pattern, exclude=out if inside else None)
     jobs, results = _plan_jobs(root, out, rels, settings, strategy, memory_limit_mb, name_clash)
-    refuse_overwrites([Path(j.outdir) / n for j in jobs for n in j.files], [root / r for r in rels])
+    inputs = [root / r for r in rels]
+    refuse_overwrites(
+        [Path(j.outdir) / n for j in jobs for n in j.files], inputs + [s for p in inputs for s in sidecars(p)]
+    )
     prepare_folder(out)
     client = dask_client(cluster) if cluster is not None else None
     jobs = [dataclasses.replace(j, protect=tuple(protect)) for j in jobs] if protect else jobs

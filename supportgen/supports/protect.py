@@ -21,7 +21,13 @@ Selectors, in the part's own input coordinates (mm), repeatable, OR-ed together:
 
 The mask is carried through repair (``mesh.metadata["source_face"]``, kept by
 :func:`supportgen.io.repair.repair_arrays`) and placement (which only translates),
-so it always indexes the faces of the placed part.
+so it always indexes the faces of the placed part.  A part whose solid was rebuilt
+from the winding number (non-manifold, self-intersecting or badly open input) has
+no face of the input: there the selectors are applied to the input faces (moved as
+the part was: scaled, turned) and a rebuilt face is protected when the nearest
+input face is protected and lies within :data:`~supportgen.constants.REBUILD_CARRY_CELLS`
+grid cells of it (trimesh's closest point).  Protected input surface that no
+rebuilt face stands for is named in one warning line, never dropped silently.
 
 How the planner honours it (:class:`Guard`):
 
@@ -58,7 +64,9 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
+from ..constants import REBUILD_CARRY_CELLS
 from ..errors import MeshError, SettingsError
+from ..io.winding import surface_points
 from ..settings import Settings
 from .contacts import merge_contacts
 from .freespace import clearance_field
@@ -268,7 +276,9 @@ def _selector_mask(mesh: trimesh.Trimesh, sel: Selector, source, label: str) -> 
     return np.where(src >= 0, hit[np.clip(src, 0, len(hit) - 1)], False) if len(hit) else np.zeros(len(src), bool)
 
 
-def protect_mask(mesh: trimesh.Trimesh, protect, *, source=None, label: str = "part") -> np.ndarray:
+def protect_mask(
+    mesh: trimesh.Trimesh, protect, *, source=None, label: str = "part", notes: list | None = None
+) -> np.ndarray:
     """Bool mask over the faces of ``mesh`` (the repaired input, input coordinates).
 
     Parameters
@@ -283,6 +293,9 @@ def protect_mask(mesh: trimesh.Trimesh, protect, *, source=None, label: str = "p
         The input file, for colour selectors.
     label : str
         How the input is named in messages.
+    notes : list, optional
+        Receives one line when protected input surface could not be carried onto a
+        rebuilt solid (see the module notes).
 
     Raises
     ------
@@ -294,6 +307,8 @@ def protect_mask(mesh: trimesh.Trimesh, protect, *, source=None, label: str = "p
     if protect is None:
         return out
     items = protect if isinstance(protect, (list, tuple)) else [protect]
+    if items and mesh.metadata.get("rebuilt_from") is not None:
+        return _carry_rebuilt(mesh, items, source, label, notes)[0]
     src = np.asarray(mesh.metadata.get("source_face", np.arange(n)))
     for item in items:
         if isinstance(item, str):
@@ -317,6 +332,102 @@ def protect_mask(mesh: trimesh.Trimesh, protect, *, source=None, label: str = "p
                 )
             out |= np.where(src >= 0, mask[np.clip(src, 0, None)], False)
     return out
+
+
+def _input_surface(mesh: trimesh.Trimesh) -> tuple[trimesh.Trimesh, float]:
+    """The input faces of a rebuilt ``mesh``, moved as ``mesh`` was moved since it was built
+    (an affine map fitted from its vertices, by least squares), and the map's length scale."""
+    rb = mesh.metadata["rebuilt_from"]
+    built = np.asarray(rb["built_vertices"], float)
+    now = np.asarray(mesh.vertices, float)
+    if built.shape != now.shape:
+        raise ValueError("the rebuilt part's vertices changed since it was built")
+    ones = np.ones((len(built), 1))
+    affine, *_ = np.linalg.lstsq(np.hstack([built, ones]), now, rcond=None)
+    fit = np.hstack([built, ones]) @ affine
+    size = float(np.linalg.norm(np.ptp(now, axis=0)))
+    if not np.all(np.isfinite(fit)) or np.abs(fit - now).max() > 1e-6 * max(size, 1.0):
+        raise ValueError("the part was moved by more than a scale, turn and shift since it was rebuilt")
+    v = np.hstack([np.asarray(rb["vertices"], float), np.ones((len(rb["vertices"]), 1))]) @ affine
+    inp = trimesh.Trimesh(v, np.asarray(rb["faces"]), process=False)
+    inp.metadata["source_face"] = np.asarray(rb["source_face"])
+    return inp, abs(float(np.linalg.det(affine[:3]))) ** (1 / 3)
+
+
+def _carry_rebuilt(mesh: trimesh.Trimesh, items, source, label: str, notes: list | None):
+    """The protection of a rebuilt solid's faces, carried from its input faces (module notes),
+    and the protected input surface (moved as ``mesh`` was; None when nothing is protected)."""
+    out = np.zeros(len(mesh.faces), bool)
+    rb = mesh.metadata["rebuilt_from"]
+    try:
+        inp, scale = _input_surface(mesh)
+    except ValueError as exc:
+        if notes is not None:
+            notes.append(
+                f"{label}: the solid was rebuilt from a messy surface and its protection could not be carried "
+                f"({exc}); nothing is protected: repair the input so that it is a clean solid"
+            )
+        return out, None
+    in_mask = protect_mask(inp, items, source=source, label=label)
+    if not in_mask.any():
+        return out, None
+    tol = REBUILD_CARRY_CELLS * float(rb["cell"]) * scale
+    # Each rebuilt face is looked at from points on it a cell apart: it is protected when the
+    # nearest input face to any of them is protected and within the tolerance (a large face
+    # of the simplified rebuild may straddle the edge of a protected region).
+    prot = trimesh.Trimesh(inp.vertices, inp.faces[in_mask], process=False)
+    lo, hi = prot.bounds[0] - tol, prot.bounds[1] + tol
+    tri = np.asarray(mesh.triangles)
+    near_box = np.flatnonzero(((tri.max(axis=1) >= lo) & (tri.min(axis=1) <= hi)).all(axis=1))
+    pts, owner = surface_points(tri[near_box], tol, owners=True)
+    inside = ((pts >= lo) & (pts <= hi)).all(axis=1)
+    pts, owner = pts[inside], near_box[owner[inside]]
+    if len(pts):
+        _, d_prot, _ = trimesh.proximity.closest_point(prot, pts)
+        near = d_prot <= tol
+        pts, owner, d_prot = pts[near], owner[near], d_prot[near]
+    if len(pts) and not in_mask.all():
+        # Protected only where the nearest input face is a protected one.
+        rest = trimesh.Trimesh(inp.vertices, inp.faces[~in_mask], process=False)
+        _, d_rest, _ = trimesh.proximity.closest_point(rest, pts)
+        owner = owner[d_prot <= d_rest]
+    out[owner] = True
+    # Protected input surface with no protected rebuilt face within the tolerance is not protected: say so.
+    areas = np.asarray(inp.area_faces)[in_mask]
+    if out.any():
+        carried = trimesh.Trimesh(mesh.vertices, mesh.faces[out], process=False)
+        _, d_back, _ = trimesh.proximity.closest_point(carried, np.asarray(inp.triangles_center)[in_mask])
+        lost = d_back > tol
+    else:
+        lost = np.ones(len(areas), bool)
+    if lost.any() and notes is not None:
+        notes.append(
+            f"{label}: the solid was rebuilt from a messy surface; {areas[lost].sum():.3g} mm² of the "
+            f"{areas.sum():.3g} mm² protected input surface ({int(lost.sum())} faces) has no rebuilt face within "
+            f"{tol:.3g} mm (inside the solid, or a sheet the rebuild dropped) and is not protected; "
+            "repair the input so that it is a clean solid, or protect with a wider selector"
+        )
+    if not out.any():
+        return out, None
+    if lost.any():  # what was not carried is not protected, so not measured to either
+        keep = np.flatnonzero(in_mask)[~lost]
+        return out, trimesh.Trimesh(inp.vertices, inp.faces[keep], process=False)
+    return out, prot
+
+
+def _regions(mesh: trimesh.Trimesh, faces: np.ndarray) -> np.ndarray:
+    """Connected region (over shared edges) of each selected face of ``mesh``; -1 elsewhere."""
+    region = np.full(len(faces), -1)
+    if faces.any():
+        adj = np.asarray(mesh.face_adjacency).reshape(-1, 2)
+        adj = adj[faces[adj].all(axis=1)]
+        idx = np.flatnonzero(faces)
+        pos = np.full(len(faces), -1)
+        pos[idx] = np.arange(len(idx))
+        g = coo_matrix((np.ones(len(adj)), (pos[adj[:, 0]], pos[adj[:, 1]])), shape=(len(idx),) * 2)
+        _, lab = connected_components(g, directed=False)
+        region[idx] = lab
+    return region
 
 
 @dataclass(frozen=True)
@@ -346,6 +457,13 @@ class Guard:
         Least distance from a contact or landing to a protected face: ``tip_max_mm / 2``.
     region : (m,) int ndarray
         Connected protected region of each face (-1 for allowed faces).
+    surface : trimesh.Trimesh
+        The protected surface distances are measured to (build coordinates): the
+        protected faces of ``part``, or for a solid rebuilt from the winding number the
+        protected input faces themselves (the rebuilt faces that stand for them are
+        coarser, see the module notes).
+    surface_region : (k,) int ndarray
+        Connected protected region of each face of ``surface``.
     """
 
     part: trimesh.Trimesh
@@ -355,21 +473,32 @@ class Guard:
     region: np.ndarray = field(repr=False, default=None)
     seed: int = 0
     described: tuple[str, ...] = ()
+    notes: tuple[str, ...] = ()
+    surface: trimesh.Trimesh | None = field(repr=False, default=None)
+    surface_region: np.ndarray | None = field(repr=False, default=None)
+    carried: bool = False
 
     @classmethod
-    def build(cls, part: trimesh.Trimesh, faces, offset, settings: Settings) -> Guard:
+    def build(cls, part: trimesh.Trimesh, faces, offset, settings: Settings, surface=None) -> Guard:
         faces = np.asarray(faces, bool)
-        region = np.full(len(faces), -1)
-        if faces.any():
-            adj = np.asarray(part.face_adjacency).reshape(-1, 2)
-            adj = adj[faces[adj].all(axis=1)]
-            idx = np.flatnonzero(faces)
-            pos = np.full(len(faces), -1)
-            pos[idx] = np.arange(len(idx))
-            g = coo_matrix((np.ones(len(adj)), (pos[adj[:, 0]], pos[adj[:, 1]])), shape=(len(idx),) * 2)
-            _, lab = connected_components(g, directed=False)
-            region[idx] = lab
-        return cls(part, faces, np.asarray(offset, float), settings.rules.tip_max_mm / 2, region, settings.rules.seed)
+        region = _regions(part, faces)
+        if surface is None or not faces.any():
+            surface = trimesh.Trimesh(part.vertices, part.faces[faces], process=False)
+            surface_region, carried = region[faces], False
+        else:
+            surface_region = _regions(surface, np.ones(len(surface.faces), bool))
+            carried = True
+        return cls(
+            part,
+            faces,
+            np.asarray(offset, float),
+            settings.rules.tip_max_mm / 2,
+            region,
+            settings.rules.seed,
+            surface=surface,
+            surface_region=surface_region,
+            carried=carried,
+        )
 
     def plan_options(self) -> dict:
         """Keyword arguments for a strategy: ``avoid`` when anything is protected."""
@@ -381,12 +510,11 @@ class Guard:
 
     @property
     def n_regions(self) -> int:
-        return int(self.region.max()) + 1 if self.active else 0
+        return int(self.surface_region.max()) + 1 if self.active and len(self.surface_region) else 0
 
-    @cached_property
+    @property
     def _protected(self) -> trimesh.Trimesh:
-        idx = np.flatnonzero(self.faces)
-        return trimesh.Trimesh(self.part.vertices, self.part.faces[idx], process=False)
+        return self.surface
 
     def nearest(self, points) -> tuple[np.ndarray, np.ndarray]:
         """Exact distance from each point to the protected surface, and that face's region
@@ -394,9 +522,8 @@ class Guard:
         pts = np.asarray(points, float).reshape(-1, 3)
         if not self.active or len(pts) == 0:
             return np.full(len(pts), np.inf), np.full(len(pts), -1)
-        idx = np.flatnonzero(self.faces)
         _, dist, tri = trimesh.proximity.closest_point(self._protected, pts)
-        return np.asarray(dist, float), self.region[idx[tri]]
+        return np.asarray(dist, float), self.surface_region[tri]
 
     def avoid(self, points) -> np.ndarray:
         """True where a landing at the point would lie within the keep-off distance of a protected face."""
@@ -442,7 +569,10 @@ class Guard:
         """Allowed surface points a tip may move to: on faces looking down or sideways,
         certified at least the keep-off distance from every protected face."""
         part = self.part
-        allowed = np.flatnonzero(~self.faces & (np.asarray(part.face_normals)[:, 2] <= SIDE_NORMAL_Z))
+        # Where the protected surface is not the part's own faces (a rebuilt solid), a face
+        # may be protected only in part: the clearance test below decides point by point.
+        free = np.ones(len(self.faces), bool) if self.carried else ~self.faces
+        allowed = np.flatnonzero(free & (np.asarray(part.face_normals)[:, 2] <= SIDE_NORMAL_Z))
         if len(allowed) == 0:
             return np.zeros((0, 3)), np.zeros((0, 3))
         sub = trimesh.Trimesh(part.vertices, part.faces[allowed], process=False)
@@ -456,8 +586,9 @@ class Guard:
     def _unholdable(self, point) -> dict:
         """Location (input coordinates) and the turn that would face the region there away from the plate."""
         dist, region = self.nearest(point[None])
-        faces = np.flatnonzero(self.region == region[0])
-        nrm = (np.asarray(self.part.face_normals)[faces] * np.asarray(self.part.area_faces)[faces, None]).sum(axis=0)
+        faces = np.flatnonzero(self.surface_region == region[0])
+        surf = self.surface
+        nrm = (np.asarray(surf.face_normals)[faces] * np.asarray(surf.area_faces)[faces, None]).sum(axis=0)
         nrm = nrm / max(np.linalg.norm(nrm), 1e-12)
         angle = math.degrees(math.acos(float(np.clip(nrm[2], -1, 1))))
         axis = np.cross(nrm, [0.0, 0.0, 1.0])
@@ -507,9 +638,17 @@ def guard_for(
         side = sidecar_for(source)
         if side is not None:
             items += selectors_from_toml(side)
-    faces = protect_mask(mesh_in, items, source=source, label=label)
-    guard = Guard.build(part, faces, offset, settings)
-    return dataclasses.replace(guard, described=tuple(_describe(i) for i in items))
+    notes: list[str] = []
+    surface = None
+    if items and mesh_in.metadata.get("rebuilt_from") is not None:
+        faces, surface = _carry_rebuilt(mesh_in, items, source, label, notes)
+        if surface is not None:
+            surface = surface.copy()
+            surface.apply_translation(np.asarray(offset, float))  # as the part was lifted
+    else:
+        faces = protect_mask(mesh_in, items, source=source, label=label, notes=notes)
+    guard = Guard.build(part, faces, offset, settings, surface)
+    return dataclasses.replace(guard, described=tuple(_describe(i) for i in items), notes=tuple(notes))
 
 
 class Holder:
