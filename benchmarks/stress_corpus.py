@@ -497,7 +497,8 @@ def independent_check(
 
     Fails (``failures`` lists why) when the file does not read back watertight (trimesh),
     when it cures nothing, when a layer region larger than a speck overlaps the layer below
-    by less than a speck (an island: it starts in mid-air), when its first layer does not sit
+    by less than a speck (an island: it starts in mid-air; regions closer than half a pixel
+    are one region, as the printer cures them), when its first layer does not sit
     on the plate, or when it holds less volume than the input part (``part_volume_mm3``).
     """
     import shapely
@@ -520,7 +521,11 @@ def independent_check(
     if mesh.bounds[0, 2] > layer_mm / 2:
         failures.append("off-plate")
     speck = speck_area_mm2(pixel_mm)
-    layers = layer_polygons(mesh, layer_mm)
+    # A printer cannot open a gap narrower than half a pixel (its smallest reliable feature is
+    # 2-3 pixels, common practice: ../shared/REFERENCE.md section 6), so regions that close
+    # gaps are one region: each section is closed by a quarter pixel (buffer out, then in).
+    close = pixel_mm / 4
+    layers = [(z, g.buffer(close).buffer(-close), t) for z, g, t in layer_polygons(mesh, layer_mm)]
     cured = sum(g.area for _, g, _ in layers) * layer_mm
     out["cured_mm3"] = float(cured)
     if cured <= speck * layer_mm:
