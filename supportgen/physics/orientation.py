@@ -84,6 +84,7 @@ from .separation import READS_LABELS, LayerShape, separation
 __all__ = [
     "ORIENT_CHOICES",
     "apply_orientation",
+    "check_orientation_choice",
     "TERMS",
     "WEIGHTS",
     "MAX_CELLS",
@@ -545,19 +546,27 @@ def orient(
 ORIENT_CHOICES = ("keep", "auto")
 
 
+def check_orientation_choice(how: str, rotate) -> list[float] | None:
+    """Refuse an unknown ``how`` or a ``rotate`` that is not three finite angles; the angles as floats."""
+    if how not in ORIENT_CHOICES:
+        raise SettingsError(f"orient={how!r}: choose one of {', '.join(ORIENT_CHOICES)}")
+    if rotate is None:
+        return None
+    angles = np.asarray(rotate, float).ravel()
+    if angles.shape != (3,) or not np.isfinite(angles).all():
+        raise SettingsError(f"rotate={rotate!r}: give three finite angles in degrees, about x, y and z")
+    return [float(a) for a in angles]
+
+
 def apply_orientation(mesh: trimesh.Trimesh, how: str, rotate, settings) -> tuple[trimesh.Trimesh, dict]:
     """``mesh`` turned by ``rotate`` (degrees about x, y, z) and, for ``how="auto"``, to the
     up-direction :func:`orient` chooses; and the report's record ``{rotation, chosen_by}``.
 
     The mesh is returned as given (the same object) when nothing turns it.
     """
-    if how not in ORIENT_CHOICES:
-        raise SettingsError(f"orient={how!r}: choose one of {', '.join(ORIENT_CHOICES)}")
+    angles = check_orientation_choice(how, rotate)
     rot, by = np.eye(3), "given"
-    if rotate is not None:
-        angles = np.asarray(rotate, float).ravel()
-        if angles.shape != (3,) or not np.isfinite(angles).all():
-            raise SettingsError(f"rotate={rotate!r}: give three finite angles in degrees, about x, y and z")
+    if angles is not None:
         rot, by = rotation_from_angles(*angles), "rotate"
     if how == "auto":
         found = orient(turn(mesh, rot), settings)
