@@ -49,7 +49,7 @@ from .supports.contacts import (
 )
 from .supports.geometry import Solids, combine
 from .supports.plan import Contacts, SupportPlan
-from .supports.protect import Guard, Holder, guard_for
+from .supports.protect import Guard, Holder, guard_for, protected_faces
 from .supports.sizing import SizedPlan, over_capacity, size_plan, support_layer_forces, tip_diameter
 from .supports.strategies import get_strategy
 
@@ -337,23 +337,21 @@ def _generate(
         check_memory(len(loaded.mesh.faces), loaded.mesh.bounds, settings, str(loaded.source))
     with timer("placement"):
         loaded = scale_loaded(loaded, unit_factor(units, scale))
+    file_source = None if isinstance(source, trimesh.Trimesh) else source
     with timer("orient"):
-        turned, orientation = apply_orientation(loaded.mesh, orient, rotate, settings)
+        # Protected faces are chosen in the input's own coordinates, before any turn; the mask is
+        # over faces, which turning keeps, and the orientation search scores it.
+        found = protected_faces(loaded.mesh, protect, file_source, name)
+        turned, orientation = apply_orientation(
+            loaded.mesh, orient, rotate, settings, protect=found[0] if found[0].any() else None
+        )
         loaded = dataclasses.replace(loaded, mesh=turned)
     with timer("placement"):
         placed = place(
             loaded.mesh, settings, position="centre" if centre else position, name=name, group_bounds=group_bounds
         )
         part = placed.mesh
-        guard = guard_for(
-            loaded.mesh,
-            part,
-            placed.offset,
-            settings,
-            protect,
-            None if isinstance(source, trimesh.Trimesh) else source,
-            name,
-        )
+        guard = guard_for(loaded.mesh, part, placed.offset, settings, label=name, found=found)
         hold = Holder(guard, settings)
     with timer("overhangs"):
         oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)

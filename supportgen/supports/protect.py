@@ -77,6 +77,7 @@ __all__ = [
     "Guard",
     "Relocation",
     "guard_for",
+    "protected_faces",
     "Holder",
 ]
 
@@ -487,6 +488,20 @@ def _describe(item) -> str:
     return "face mask"
 
 
+def protected_faces(mesh_in: trimesh.Trimesh, protect=None, source=None, label: str = "part"):
+    """The mask of :func:`protect_mask` for ``protect`` plus, for a part read from a file, the
+    selectors of its side-car file (:func:`sidecar_for`); and how each item is described.
+
+    ``mesh_in`` is the repaired part in input coordinates (selectors are in those).
+    """
+    items = list(protect) if isinstance(protect, (list, tuple)) else ([] if protect is None else [protect])
+    if source is not None:
+        side = sidecar_for(source)
+        if side is not None:
+            items += selectors_from_toml(side)
+    return protect_mask(mesh_in, items, source=source, label=label), tuple(_describe(i) for i in items)
+
+
 def guard_for(
     mesh_in: trimesh.Trimesh,
     part: trimesh.Trimesh,
@@ -495,21 +510,18 @@ def guard_for(
     protect=None,
     source=None,
     label: str = "part",
+    found=None,
 ) -> Guard:
     """The :class:`Guard` of one run: ``protect`` (see :func:`protect_mask`) plus, for a part
     read from a file, the selectors of its side-car file (:func:`sidecar_for`).
 
     ``mesh_in`` is the repaired part in input coordinates, ``part`` the placed part
-    (the same faces moved by ``offset``).
+    (the same faces, turned and moved; ``offset`` is the move).  ``found``, when given, is
+    what :func:`protected_faces` returned for them (not computed again).
     """
-    items = list(protect) if isinstance(protect, (list, tuple)) else ([] if protect is None else [protect])
-    if source is not None:
-        side = sidecar_for(source)
-        if side is not None:
-            items += selectors_from_toml(side)
-    faces = protect_mask(mesh_in, items, source=source, label=label)
+    faces, described = found if found is not None else protected_faces(mesh_in, protect, source, label)
     guard = Guard.build(part, faces, offset, settings)
-    return dataclasses.replace(guard, described=tuple(_describe(i) for i in items))
+    return dataclasses.replace(guard, described=described)
 
 
 class Holder:
