@@ -17,6 +17,7 @@ import trimesh
 import supportgen
 from supportgen.cli.main import main
 from supportgen.physics import orientation as O
+from supportgen.physics.loadpath import statics_shares
 from supportgen.report.orientation import orientation_markdown
 from supportgen.runs.demo import demo_part
 from supportgen.runs.orient import ORIENT_OUTPUTS
@@ -127,11 +128,18 @@ def test_rotation_helpers_against_trimesh():
     assert O.pareto_front(np.array([[1.0, 1.0], [2.0, 2.0], [0.5, 3.0]])).tolist() == [0, 2]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="known: with the bounded force law's adhesion term, one tip of the turned cup needs more than "
-    "tip_max_mm and densifying finds no down-facing surface near it (issue 14 follow-up)",
-)
+def test_one_tip_under_a_one_pixel_layer_carries_that_layer_exactly():
+    # Statics (any text: a rigid body on one support): the single support takes the whole load,
+    # whatever its position and however small the loaded region (here one pixel, no spread at all).
+    # The turned cup's first layer is such a pixel on such a tip; it read 390 N for a 0.2 mN layer.
+    xy, f = np.array([[2.50364232, -0.80299562]]), 2e-4
+    r = statics_shares(xy, [0.2], f, f * xy[0, 0], f * xy[0, 1])
+    assert r[0] == pytest.approx(f, rel=1e-9)
+    # Two supports at the same point share by stiffness (force balance, no lever between them).
+    r = statics_shares(np.vstack([xy, xy]), [0.2, 0.6], f, f * xy[0, 0], f * xy[0, 1])
+    assert r == pytest.approx([f / 4, 3 * f / 4], rel=1e-9)
+
+
 def test_oriented_output_feeds_generate_and_passes_the_check(tmp_path, coarse):
     src = tmp_path / "cup.stl"
     part = _open_box((12.0, 12.0, 8.0), 2.0)
