@@ -242,3 +242,16 @@ def test_generate_orient_auto_scores_the_protect_selectors_in_input_coordinates(
     # The guard keeps the same faces (the selector read in the input's coordinates), now on the turned part.
     assert np.array_equal(r.guard.faces, box.face_normals @ [0.0, 0.0, -1.0] > np.cos(np.radians(5)))
     assert r.report["verification"]["passed"]
+
+
+def test_orient_cli_scores_protect_selectors(tmp_path):
+    src = tmp_path / "slab.stl"
+    trimesh.creation.box((16.0, 10.0, 3.0)).export(src)
+    out = tmp_path / "out"
+    argv = ["orient", str(src), "-o", str(out), "--directions", "20", "--quiet", "--set", "orient_pixel_mm=0.8"]
+    assert main([*argv, "--protect", "normal:0,0,-1,5"]) == 0
+    data = json.loads((out / "slab.orient.json").read_text())
+    # Exact geometry: as given, the protected face is the whole 16 x 10 bottom, facing straight down.
+    assert data["given"]["terms"]["protected_mm2"] == pytest.approx(160.0, rel=1e-12)
+    assert data["chosen"]["terms"]["protected_mm2"] < 160.0
+    assert "protected surface facing down" in (out / "slab.orient.md").read_text()
