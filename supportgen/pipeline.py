@@ -49,7 +49,7 @@ from .supports.contacts import (
 )
 from .supports.geometry import Solids, combine
 from .supports.plan import Contacts, SupportPlan
-from .supports.protect import Guard, Holder, guard_for
+from .supports.protect import Guard, Holder, guard_for, protected_faces
 from .supports.sizing import SizedPlan, over_capacity, size_plan, support_layer_forces, tip_diameter
 from .supports.strategies import get_strategy
 
@@ -337,8 +337,14 @@ def _generate(
         check_memory(len(loaded.mesh.faces), loaded.mesh.bounds, settings, str(loaded.source))
     with timer("placement"):
         loaded = scale_loaded(loaded, unit_factor(units, scale))
+    file_source = None if isinstance(source, trimesh.Trimesh) else source
     with timer("orient"):
-        turned, orientation = apply_orientation(loaded.mesh, orient, rotate, settings)
+        # Protected faces are chosen in the input's own coordinates, before any turn; the mask is
+        # over faces, which turning keeps, and the orientation search scores it.
+        found = protected_faces(loaded.mesh, protect, file_source, name)
+        turned, orientation = apply_orientation(
+            loaded.mesh, orient, rotate, settings, protect=found.faces if found.faces.any() else None
+        )
         loaded = dataclasses.replace(loaded, mesh=turned)
     with timer("placement"):
         placed = place(
@@ -346,13 +352,7 @@ def _generate(
         )
         part = placed.mesh
         guard = guard_for(
-            loaded.mesh,
-            part,
-            placed.offset,
-            settings,
-            protect,
-            None if isinstance(source, trimesh.Trimesh) else source,
-            name,
+            loaded.mesh, part, placed.offset, settings, label=name, found=found, rotation=orientation["rotation"]
         )
         hold = Holder(guard, settings)
     with timer("overhangs"):

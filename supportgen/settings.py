@@ -329,6 +329,17 @@ class OrientRules:
     weight_minima: float = _f(0.5, 0.0, 100.0, "", "practice", "local minima: each needs a contact of its own")
     weight_volume: float = _f(1.0, 0.0, 100.0, "", "practice", "support volume estimate: resin used and removal work")
     weight_height: float = _f(1.0, 0.0, 100.0, "", "practice", "print height: layers, so print time")
+    weight_protect: float = _f(
+        5.0,
+        0.0,
+        100.0,
+        "",
+        "practice",
+        "protected surface facing down (mm², with a tip's scar per protected local minimum), measured "
+        "against the median overhang area: the user said those faces must stay clean, and a direction that "
+        "turns them down either scars them or leaves them unheld (the contacts are moved off or dropped), "
+        "so it weighs more than any other term; 0 ignores the protect mask",
+    )
     orient_near_fraction: float = _f(
         0.9, 0.1, 1.0, "", "practice", "a layer is near the peak when its force is at least this fraction of it"
     )

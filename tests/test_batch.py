@@ -483,3 +483,59 @@ def test_bad_contacts_sidecar_fails_that_part_with_one_line(tmp_path):
     assert rows["ball.stl"].status == "ok" and rows["lid.stl"].status == "refused"
     assert "lid.contacts.csv" in rows["lid.stl"].reason and "line 2" in rows["lid.stl"].reason
     assert "\n" not in rows["lid.stl"].reason
+
+
+def test_orient_auto_and_rotate_are_run_and_part_of_the_resume_key(tmp_path):
+    import numpy as np
+
+    from supportgen.cli.main import main
+    from supportgen.physics.orientation import rotation_from_angles
+
+    # A 20 x 12 x 2 mm plate lying flat: its given orientation has the largest layer possible.
+    plate = trimesh.creation.box((20.0, 12.0, 2.0))
+    (tmp_path / "in").mkdir()
+    plate.export(tmp_path / "in" / "plate.stl")
+    out = tmp_path / "out"
+    fast = _coarse().override(orient_directions=20, orient_pixel_mm=0.8)
+    keep = run_batch(tmp_path / "in", out, fast, workers=1, progress=False)
+    assert keep.results[0].status == "ok"
+    manifest = json.loads((out / "plate.batch.json").read_text())
+    # The given orientation keeps the key it had before the choice existed (hashlib over the same text).
+    old = hashlib.sha256(f"{fast.to_toml()}\nstrategy = {'tree'!r}\n".encode()).hexdigest()
+    assert manifest["settings_sha256"] == old == settings_hash(fast, "tree") and manifest["orient"] == "keep"
+    auto = run_batch(tmp_path / "in", out, fast, workers=1, resume=True, progress=False, orient="auto")
+    assert (auto.results[0].status, auto.results[0].reused) == ("ok", False)  # the choice is part of the key
+    report = json.loads((out / "plate.report.json").read_text())
+    assert report["orientation"]["chosen_by"] == "auto"
+    again = run_batch(tmp_path / "in", out, fast, workers=1, resume=True, progress=False, orient="auto")
+    assert (again.results[0].status, again.results[0].reused) == ("ok", True)
+    # The command line: --rotate turns every part.
+    code = main(
+        [
+            "batch",
+            str(tmp_path / "in"),
+            "-o",
+            str(out),
+            "--workers",
+            "1",
+            "--resume",
+            "--quiet",
+            "--rotate",
+            "90",
+            "0",
+            "0",
+        ]
+        + [
+            f"--set={k}={v}"
+            for k, v in (("pixel_mm", 0.2), ("layer_mm", 0.2), ("tip_min_mm", 0.4), ("tip_max_mm", 1.0))
+        ]
+    )
+    assert code == 0
+    report = json.loads((out / "plate.report.json").read_text())
+    assert report["orientation"]["chosen_by"] == "rotate"
+    assert np.allclose(report["orientation"]["rotation"], rotation_from_angles(90, 0, 0))
+    # Exact geometry: turned 90 degrees about x, the plate's 12 mm side stands up, so the print is
+    # that tall above the part's elevation (trimesh's bounds of the saved supported solid).
+    top = trimesh.load(out / "plate.supported.stl", force="mesh").bounds[1, 2]
+    assert abs(top - (12.0 + Settings().rules.elevation_mm)) < 0.2 + 1e-3  # 0.2: one layer of the grid
+    assert json.loads((out / "plate.batch.json").read_text())["rotate"] == [90.0, 0.0, 0.0]

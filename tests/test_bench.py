@@ -231,3 +231,74 @@ def test_measure_peak_sees_a_large_array(method):
     assert peak_mb >= 0.95 * nbytes / 1e6
     if used == "tracemalloc":
         assert peak_mb <= 1.2 * nbytes / 1e6
+
+
+def _roark_j(w: float, t: float) -> float:
+    """Torsion constant of a w x t rectangle (w >= t): Roark's Formulas for Stress and Strain,
+    7th ed., table 10.7 case 4: K = a b^3 (16/3 - 3.36 (b/a)(1 - b^4 / (12 a^4))), a = w/2, b = t/2."""
+    a, b = w / 2, t / 2
+    return a * b**3 * (16 / 3 - 3.36 * b / a * (1 - b**4 / (12 * a**4)))
+
+
+def test_orient_keep_against_auto_over_a_folder(tmp_path):
+    from supportgen.runs.demo import demo_part
+
+    corpus = tmp_path / "corpus"
+    corpus.mkdir()
+    write_mesh(demo_part("jar_lid"), corpus / "jar_lid.stl")
+    write_mesh(trimesh.creation.box((60.0, 40.0, 3.0)), corpus / "plate.stl")
+    out = tmp_path / "out"
+    sets = [f"--set={k}={v}" for k, v in {**COARSE, "orient_directions": 40, "orient_pixel_mm": 0.8}.items()]
+    code = _cli(
+        ["bench", str(corpus), "-o", str(out), "--strategies", "tree", "--orient", "keep,auto", "--quiet", *sets]
+    )
+    assert code == 0
+    with open(out / "orient.csv", newline="", encoding="utf-8") as fh:
+        rows = {r["model"]: r for r in csv.DictReader(fh)}
+    assert set(rows) == {"jar_lid", "plate", "median over parts"}
+    figures = {
+        "peak_layer_force_n": ("forces", "peak_layer_force_n"),
+        "contacts": ("supports", "contacts"),
+        "landings": ("supports", "landings"),
+        "support_volume_mm3": ("supports", "volume_mm3"),
+        "height_mm": ("estimates", "height_mm"),
+    }
+    ratios = {f: [] for f in figures}
+    for model in ("jar_lid", "plate"):
+        keep = json.loads((out / "tree" / f"{model}.report.json").read_text(encoding="utf-8"))
+        auto = json.loads((out / "tree-auto" / f"{model}.report.json").read_text(encoding="utf-8"))
+        assert keep["orientation"]["chosen_by"] == "given" and auto["orientation"]["chosen_by"] == "auto"
+        row = rows[model]
+        # The table's numbers are the per-part reports' numbers (read back with json and csv).
+        for f, keys in figures.items():
+            assert _cell_equals(row[f"{f}_keep"], _get(keep, keys)), (model, f)
+            assert _cell_equals(row[f"{f}_auto"], _get(auto, keys)), (model, f)
+            if _get(keep, keys):
+                r = _get(auto, keys) / _get(keep, keys)
+                assert float(row[f"{f}_ratio"]) == pytest.approx(r, rel=1e-12)
+                ratios[f].append(r)
+        assert row["passed_keep"] == str(keep["verification"]["passed"])
+        assert row["passed_auto"] == str(auto["verification"]["passed"])
+        # trimesh: the print height is the top of the saved combined solid (STL float32).
+        combined = trimesh.load(out / "tree-auto" / f"{model}.supported.stl", force="mesh")
+        assert float(row["height_mm_auto"]) == pytest.approx(combined.bounds[1, 2], abs=1e-4)
+    # The plate flat is its worst stance: of the rectangles it can stand on, the 60 x 40 layer has by far
+    # the largest torsion constant (Roark, table 10.7 case 4: over 100 times that of 60 x 3), so the
+    # chosen orientation's peak force is not higher than flat.
+    assert _roark_j(60.0, 40.0) / _roark_j(60.0, 3.0) > 100
+    assert float(rows["plate"]["peak_layer_force_n_auto"]) <= float(rows["plate"]["peak_layer_force_n_keep"])
+    # The median row is numpy's median of the per-part figures.
+    med = rows["median over parts"]
+    for f, rs in ratios.items():
+        assert float(med[f"{f}_ratio"]) == pytest.approx(float(np.median(rs)), rel=1e-12)
+    md = (out / "bench.md").read_text(encoding="utf-8")
+    assert "## Orientation: `auto` against `keep`" in md and "| median over parts | tree |" in md
+
+
+def test_orient_choice_is_checked(tmp_path, capsys):
+    with pytest.raises(SettingsError, match="orientation choice 'up'"):
+        run_bench(tmp_path, tmp_path / "out", supportgen.Settings(), ("straight",), orients=("up",), progress=False)
+    with pytest.raises(SystemExit) as exc:
+        _cli(["bench", str(tmp_path), "-o", str(tmp_path / "out"), "--orient", "keep,sideways"])
+    assert exc.value.code == 2
+    assert "unknown orientation choice 'sideways'" in capsys.readouterr().err

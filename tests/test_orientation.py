@@ -17,6 +17,8 @@ import trimesh
 import supportgen
 from supportgen.cli.main import main
 from supportgen.physics import orientation as O
+from supportgen.physics.loadpath import statics_shares
+from supportgen.report.orientation import orientation_markdown
 from supportgen.runs.demo import demo_part
 from supportgen.runs.orient import ORIENT_OUTPUTS
 from supportgen.supports.geometry import to_trimesh
@@ -126,11 +128,18 @@ def test_rotation_helpers_against_trimesh():
     assert O.pareto_front(np.array([[1.0, 1.0], [2.0, 2.0], [0.5, 3.0]])).tolist() == [0, 2]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="known: with the bounded force law's adhesion term, one tip of the turned cup needs more than "
-    "tip_max_mm and densifying finds no down-facing surface near it (issue 14 follow-up)",
-)
+def test_one_tip_under_a_one_pixel_layer_carries_that_layer_exactly():
+    # Statics (any text: a rigid body on one support): the single support takes the whole load,
+    # whatever its position and however small the loaded region (here one pixel, no spread at all).
+    # The turned cup's first layer is such a pixel on such a tip; it read 390 N for a 0.2 mN layer.
+    xy, f = np.array([[2.50364232, -0.80299562]]), 2e-4
+    r = statics_shares(xy, [0.2], f, f * xy[0, 0], f * xy[0, 1])
+    assert r[0] == pytest.approx(f, rel=1e-9)
+    # Two supports at the same point share by stiffness (force balance, no lever between them).
+    r = statics_shares(np.vstack([xy, xy]), [0.2, 0.6], f, f * xy[0, 0], f * xy[0, 1])
+    assert r == pytest.approx([f / 4, 3 * f / 4], rel=1e-9)
+
+
 def test_oriented_output_feeds_generate_and_passes_the_check(tmp_path, coarse):
     src = tmp_path / "cup.stl"
     part = _open_box((12.0, 12.0, 8.0), 2.0)
@@ -182,3 +191,67 @@ def test_orient_cli_bad_input_one_line(tmp_path, capsys):
     assert main(["orient", str(bad), "-o", str(tmp_path), "--quiet"]) == 1
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "broken.stl" in err[0]
+
+
+_ONLY_HEIGHT = {k: 0.0 for k in O.WEIGHTS.values()} | {"weight_height": 1.0}
+
+
+def test_protected_face_is_not_turned_down_when_the_term_is_on():
+    box = trimesh.creation.box((20.0, 12.0, 6.0))
+    bottom = box.face_normals @ [0.0, 0.0, -1.0] > 0.999  # the 20 x 12 face looking down as given
+    cos_a = np.cos(np.radians(supportgen.Settings().rules.overhang_angle_deg))
+    # Height alone: lying flat (6 mm) is the lowest stance, so the given orientation, protected face down.
+    off = supportgen.Settings().override(**(_ONLY_HEIGHT | {"weight_protect": 0.0}))
+    o = O.orient(box, off, n_directions=40, pixel_mm=0.6, protect=bottom)
+    assert o.chosen == o.keep  # free to stand on the protected face when its weight is 0
+    # Exact geometry: the whole 20 x 12 face faces down; its corners are no strict minima (flat).
+    assert o.terms["protected_mm2"][o.keep] == pytest.approx(20.0 * 12.0, rel=1e-12)
+    on = supportgen.Settings().override(**(_ONLY_HEIGHT | {"weight_protect": 5.0}))
+    o = O.orient(box, on, n_directions=40, pixel_mm=0.6, protect=bottom)
+    assert o.terms["protected_mm2"][o.chosen] == 0.0
+    assert -(o.rotation @ [0.0, 0.0, -1.0])[2] <= cos_a  # exact geometry: that face is no overhang
+    # Near lying flat on the opposite face (6 mm, within the search's resolution): lower than standing
+    # on a 20 x 6 or 12 x 6 side (12 and 20 mm tall, exact geometry).
+    assert o.terms["height_mm"][o.chosen] < 12.0 and o.directions[o.chosen][2] < 0
+    # Without a mask the term is 0 everywhere and changes nothing.
+    plain = O.orient(box, on, n_directions=40, pixel_mm=0.6)
+    assert not plain.terms["protected_mm2"].any() and plain.chosen == plain.keep
+
+
+def test_protected_faces_stay_up_under_the_default_weights():
+    box = trimesh.creation.box((20.0, 12.0, 6.0))
+    s = supportgen.Settings()
+    cos_a = np.cos(np.radians(s.rules.overhang_angle_deg))
+    for n in ([0.0, 0.0, -1.0], [-1.0, 0.0, 0.0], [0.0, 1.0, 0.0]):
+        mask = box.face_normals @ n > 0.999
+        o = O.orient(box, s, n_directions=40, pixel_mm=0.6, protect=mask)
+        # Exact geometry: the protected face is not turned down past the overhang angle.
+        assert -(o.rotation @ n)[2] <= cos_a, n
+        assert o.candidate(o.chosen)["terms"]["protected_mm2"] <= np.pi * s.rules.tip_diameter_mm**2  # a scar at most
+    md = orientation_markdown(o, "box")
+    assert "protected surface facing down" in md and o.weights["protected_mm2"] == s.orient.weight_protect
+
+
+def test_generate_orient_auto_scores_the_protect_selectors_in_input_coordinates(coarse):
+    box = trimesh.creation.box((12.0, 8.0, 4.0))
+    s = coarse.override(**(_ONLY_HEIGHT | {"weight_protect": 5.0, "orient_directions": 24, "orient_pixel_mm": 0.8}))
+    r = supportgen.generate(box, s, orient="auto", protect="normal:0,0,-1,5", strategy="straight")
+    rot = np.array(r.report["orientation"]["rotation"])
+    # The face that looked down as given (exact geometry: normal -z) now faces up or sideways.
+    assert (rot @ [0.0, 0.0, -1.0])[2] >= -np.cos(np.radians(s.rules.overhang_angle_deg))
+    # The guard keeps the same faces (the selector read in the input's coordinates), now on the turned part.
+    assert np.array_equal(r.guard.faces, box.face_normals @ [0.0, 0.0, -1.0] > np.cos(np.radians(5)))
+    assert r.report["verification"]["passed"]
+
+
+def test_orient_cli_scores_protect_selectors(tmp_path):
+    src = tmp_path / "slab.stl"
+    trimesh.creation.box((16.0, 10.0, 3.0)).export(src)
+    out = tmp_path / "out"
+    argv = ["orient", str(src), "-o", str(out), "--directions", "20", "--quiet", "--set", "orient_pixel_mm=0.8"]
+    assert main([*argv, "--protect", "normal:0,0,-1,5"]) == 0
+    data = json.loads((out / "slab.orient.json").read_text())
+    # Exact geometry: as given, the protected face is the whole 16 x 10 bottom, facing straight down.
+    assert data["given"]["terms"]["protected_mm2"] == pytest.approx(160.0, rel=1e-12)
+    assert data["chosen"]["terms"]["protected_mm2"] < 160.0
+    assert "protected surface facing down" in (out / "slab.orient.md").read_text()

@@ -135,30 +135,36 @@ class Island:
     def held_by(self, xyz: np.ndarray, radius_mm: float, rise_mm: float) -> np.ndarray:
         """Which of the points ``xyz`` (k, 3) would hold this island as tips.
 
-        A tip holds the island when it touches the island's first layer: its
-        point lies over the island's pixels (within ``radius_mm``, a tip's reach
-        across) and no more than ``rise_mm`` above the layer's mid-plane.  A tip
-        beside the island or higher up touches the part only after the island
-        has cured in mid-air.
+        A tip holds the island when it touches the island's first layer through
+        at least a speck (the rule :func:`analyse_layers` holds regions by): the
+        island's pixels within ``radius_mm`` (a tip's reach across) of its point
+        number at least 3 (all of them for a smaller island), and the point is no
+        more than ``rise_mm`` above the layer's mid-plane.  A tip beside the island
+        or higher up touches the part only after the island has cured in mid-air.
 
         Examples
         --------
         >>> g = Grid(0.0, 0.0, 0.1, 10, 10)
         >>> isl = Island(3, 0.35, 0.04, (0.45, 0.45), np.ones((2, 2), bool), 4, 4, g)
-        >>> isl.held_by(np.array([[0.45, 0.45, 0.35], [0.45, 0.45, 2.0], [2.0, 2.0, 0.35]]), 0.1, 0.1).tolist()
-        [True, False, False]
+        >>> pts = [[0.45, 0.45, 0.35], [0.45, 0.45, 2.0], [2.0, 2.0, 0.35], [0.6, 0.6, 0.35]]
+        >>> isl.held_by(np.array(pts), 0.1, 0.1).tolist()  # the last touches one pixel only
+        [True, False, False, False]
         """
         xyz = np.atleast_2d(np.asarray(xyz, float))
         if len(xyz) == 0:
             return np.zeros(0, bool)
-        k = int(np.ceil(radius_mm / self.grid.pixel_mm))
-        padded = np.pad(self.mask, k)
-        near = ndimage.distance_transform_edt(~padded) * self.grid.pixel_mm <= radius_mm
+        p = self.grid.pixel_mm
+        k = int(np.ceil(radius_mm / p))
+        dr, dc = np.mgrid[-k : k + 1, -k : k + 1]
+        disc = (np.hypot(dr, dc) * p <= radius_mm + EPS_ZERO).astype(np.int32)
+        padded = np.pad(self.mask, k).astype(np.int32)
+        touched = ndimage.correlate(padded, disc, mode="constant")  # island pixels under a tip at each pixel
+        need = min(_hold_pixels(p), int(self.mask.sum()))
         rows, cols = self.grid.index(xyz[:, :2])
         i, j = rows - self.row0 + k, cols - self.col0 + k
-        inside = (i >= 0) & (j >= 0) & (i < near.shape[0]) & (j < near.shape[1])
+        inside = (i >= 0) & (j >= 0) & (i < padded.shape[0]) & (j < padded.shape[1])
         over = np.zeros(len(xyz), bool)
-        over[inside] = near[i[inside], j[inside]]
+        over[inside] = touched[i[inside], j[inside]] >= max(need, 1)
         return over & (xyz[:, 2] <= self.z_mm + rise_mm)
 
     def points(self, spacing_mm: float, seed: int = 0) -> np.ndarray:

@@ -12,9 +12,9 @@ import argparse
 import sys
 from pathlib import Path
 
-from .options import positive, settings_from, show_progress
+from .options import positive, rotate_option, settings_from, show_progress
 
-__all__ = ["add_parser", "cmd_bench", "parse_strategies"]
+__all__ = ["add_parser", "cmd_bench", "parse_strategies", "parse_orients"]
 
 EXIT_OK, EXIT_FAILED = 0, 1
 
@@ -39,6 +39,27 @@ def parse_strategies(text: str) -> list[str]:
     for n in names:
         if n not in STRATEGIES:
             raise argparse.ArgumentTypeError(f"unknown strategy '{n}'; valid strategies: {', '.join(STRATEGIES)}")
+    return list(dict.fromkeys(names))
+
+
+def parse_orients(text: str) -> list[str]:
+    """``"keep,auto"`` -> ``["keep", "auto"]``; anything else is an argparse error naming the choices.
+
+    Examples
+    --------
+    >>> parse_orients("keep, auto")
+    ['keep', 'auto']
+    >>> parse_orients("up")
+    Traceback (most recent call last):
+    ...
+    argparse.ArgumentTypeError: unknown orientation choice 'up'; give keep, auto or keep,auto
+    """
+    from supportgen.physics.orientation import ORIENT_CHOICES
+
+    names = [n.strip() for n in text.split(",") if n.strip()]
+    for n in names or [""]:
+        if n not in ORIENT_CHOICES:
+            raise argparse.ArgumentTypeError(f"unknown orientation choice {n!r}; give keep, auto or keep,auto")
     return list(dict.fromkeys(names))
 
 
@@ -77,6 +98,15 @@ def add_parser(subparsers, parents) -> argparse.ArgumentParser:
         default="rss",
         help="peak memory by resident-set growth (default) or traced allocations (slows the run)",
     )
+    p.add_argument(
+        "--orient",
+        type=parse_orients,
+        default=["keep"],
+        metavar="keep|auto|keep,auto",
+        help="orientation of each part: the given one (keep, default), the one chosen from the physics (auto), "
+        "or both, compared in OUT/orient.csv and bench.md",
+    )
+    rotate_option(p)
     p.set_defaults(func=cmd_bench)
     return p
 
@@ -96,15 +126,17 @@ def cmd_bench(args) -> int:
         scale_mm=args.scale,
         memory=args.memory,
         progress=show_progress(args),
+        orients=args.orient,
+        rotate=args.rotate,
     )
     status = EXIT_OK
     for r in table.rows:
         if r["status"] != "ok":
-            print(f"supportgen: error: {r['model']} / {r['strategy']}: {r['error']}", file=sys.stderr)
+            print(f"supportgen: error: {r['model']} / {r['strategy']} / {r['orient']}: {r['error']}", file=sys.stderr)
             status = EXIT_FAILED
         elif not r["passed"]:
             print(
-                f"supportgen: check failed: {r['model']} / {r['strategy']}: "
+                f"supportgen: check failed: {r['model']} / {r['strategy']} / {r['orient']}: "
                 f"{r['islands']} island(s), largest reach {r['max_reach_mm']} mm",
                 file=sys.stderr,
             )
@@ -114,5 +146,9 @@ def cmd_bench(args) -> int:
             if row["model"].startswith("all"):
                 figs = ", ".join(f"{k[:-6]} x{v:.2f}" for k, v in row.items() if k.endswith("_ratio") and v is not None)
                 print(f"{row['strategy']} vs {baseline}, {row['model']}: {figs}")
+        for row in table.orient_rows:
+            if row["model"] == "median over parts":
+                figs = ", ".join(f"{k[:-6]} x{v:.2f}" for k, v in row.items() if k.endswith("_ratio") and v is not None)
+                print(f"auto vs keep ({row['strategy']}), median over parts: {figs}")
         print(f"table: {table.paths['csv']} and {table.paths['markdown']}; ratios: {table.paths['summary']}")
     return status

@@ -6,7 +6,15 @@ from __future__ import annotations
 import argparse
 import sys
 
-__all__ = ["common_options", "strategy_option", "positive", "nonnegative_seconds", "settings_from", "err"]
+__all__ = [
+    "common_options",
+    "strategy_option",
+    "rotate_option",
+    "positive",
+    "nonnegative_seconds",
+    "settings_from",
+    "err",
+]
 
 
 def common_options() -> argparse.ArgumentParser:
@@ -52,6 +60,17 @@ def strategy_option() -> argparse.ArgumentParser:
         help=f"support strategy (default: {DEFAULT_STRATEGY})",
     )
     return parent
+
+
+def rotate_option(parser) -> None:
+    """Add ``--rotate X Y Z`` (degrees about x, then y, then z; ``generate(rotate=...)``) to ``parser``."""
+    parser.add_argument(
+        "--rotate",
+        type=float,
+        nargs=3,
+        metavar=("X", "Y", "Z"),
+        help="turn each part by these degrees about x, then y, then z first",
+    )
 
 
 def positive(cast, what: str = "a positive number"):

@@ -45,6 +45,13 @@ def add_parser(subparsers, parents) -> None:
         metavar="MM",
         help="scale each part so its longest side is MM (for unitless meshes)",
     )
+    p.add_argument(
+        "--protect",
+        action="append",
+        metavar="SELECTOR",
+        help="faces that must get no tip, in the part's own coordinates (repeatable; see generate --help): "
+        "scored so they are not turned down; a file NAME.protect.toml next to a part adds its list",
+    )
     p.set_defaults(func=cmd_orient)
 
 
@@ -63,6 +70,7 @@ def cmd_orient(args) -> int:
                 n_directions=args.directions,
                 longest_mm=args.scale,
                 units=args.units,
+                protect=args.protect,
             )
         except supportgen.SupportGenError as exc:
             if args.debug:

@@ -55,7 +55,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..analysis.runlength import box_runs, edge_components, run_overlaps
-from ..constants import EPS_REL, EPS_ZERO, STATICS_RCOND
+from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO, STATICS_RCOND
 from .pressure import solve_runs
 from .separation import (
     SIDE_LOAD,
@@ -102,7 +102,10 @@ def statics_matrix(xy, stiffness, length_scale: float = 0.0) -> np.ndarray:
     xy = np.asarray(xy, float).reshape(-1, 2)
     k = np.asarray(stiffness, float)
     c = (k[:, None] * xy).sum(axis=0) / k.sum()
-    d = xy - c
+    # An offset under EPS_SMALL is the round-off of the centre, not a spread: with the loaded region a
+    # single pixel (length_scale 0) it would be divided by EPS_ZERO and resist the moment with
+    # reactions of 1e9 times the load (a one-pixel first layer on one tip).
+    d = np.where(np.abs(xy - c) < EPS_SMALL, 0.0, xy - c)
     scale = max(float(np.sqrt((k[:, None] * d**2).sum() / k.sum())), float(length_scale), EPS_ZERO)
     b = np.column_stack([np.ones(len(k)), d / scale])
     n = b.T @ (k[:, None] * b)

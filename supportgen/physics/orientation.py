@@ -28,7 +28,13 @@ physical units (:data:`TERMS`):
     minimal support volume in 3D-printing", Computers & Graphics 51 (2015),
     without their occlusion step (so it errs high where the part shades itself);
 ``height_mm``
-    print height, so layers and time.
+    print height, so layers and time;
+``protected_mm2``
+    with a protect mask (the faces that must carry no tip,
+    :mod:`supportgen.supports.protect`): the area of protected faces that would
+    face down steeper than the overhang angle (they would need tips), plus one
+    tip's scar ``pi tip_diameter_mm^2 / 4`` for each strict local minimum on a
+    protected face; 0 everywhere without a mask.
 
 The total is ``sum_i w_i t_i / median(t_i)`` over the first, even set of
 candidates (so the weights are unitless and a term's scale does not matter);
@@ -84,6 +90,7 @@ from .separation import READS_LABELS, LayerShape, separation
 __all__ = [
     "ORIENT_CHOICES",
     "apply_orientation",
+    "check_orientation_choice",
     "TERMS",
     "WEIGHTS",
     "MAX_CELLS",
@@ -112,6 +119,7 @@ TERMS = (
     "minima",
     "support_volume_mm3",
     "height_mm",
+    "protected_mm2",
 )
 WEIGHTS = {
     "peak_force_n": "weight_force",
@@ -121,6 +129,7 @@ WEIGHTS = {
     "minima": "weight_minima",
     "support_volume_mm3": "weight_volume",
     "height_mm": "weight_height",
+    "protected_mm2": "weight_protect",
 }
 #: Cells (layers x rows x columns over the part's bounding sphere) the scoring grid may have:
 #: a few million keeps one candidate to tens of milliseconds (benchmarks/bench_orient.py).
@@ -202,13 +211,16 @@ def _check_mesh(mesh) -> None:
         raise MeshError("orientation: the mesh has no faces; load a closed triangle mesh first")
 
 
-def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings) -> dict[str, np.ndarray]:
-    """Height, overhang area, strict local minima and support volume for many up-directions at once.
+def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=None) -> dict[str, np.ndarray]:
+    """Height, overhang area, strict local minima, support volume and protected area facing down
+    for many up-directions at once.
 
     Vectorised over blocks of directions: O(F K) for F faces and K directions.
     Overhang faces are those with ``-n . d > cos(overhang_angle_deg)`` (the rule
     of :func:`supportgen.analysis.overhangs.overhang_faces`); every face counts,
     since the part stands ``elevation_mm`` above the plate on its supports.
+    ``protect`` is a bool mask over the faces (None: no protected face); a
+    local minimum is protected when any face at it is.
     """
     vt = np.ascontiguousarray(np.asarray(mesh.vertices, float).T)
     nt = np.ascontiguousarray(np.asarray(mesh.face_normals, float).T)
@@ -223,7 +235,14 @@ def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings) -> dict[str
     edge_t = np.ascontiguousarray(vt[:, dst] - vt[:, src])
     cos_a = np.cos(np.radians(settings.rules.overhang_angle_deg))
     elev = settings.rules.elevation_mm
-    out = {k: np.zeros(len(dirs)) for k in ("height_mm", "overhang_area_mm2", "minima", "support_volume_mm3")}
+    keys = ("height_mm", "overhang_area_mm2", "minima", "support_volume_mm3", "protected_mm2")
+    out = {k: np.zeros(len(dirs)) for k in keys}
+    guarded = _protect_mask(mesh, protect)
+    a_guarded = np.where(guarded, a, 0.0)
+    v_guarded = np.zeros(len(mesh.vertices), bool)
+    v_guarded[np.asarray(mesh.faces)[guarded].ravel()] = True
+    v_guarded = v_guarded[src[starts]]  # per vertex group of the minima test
+    scar = np.pi * settings.rules.tip_diameter_mm**2 / 4.0
     for lo in range(0, len(dirs), _DIR_CHUNK):
         d = np.asarray(dirs[lo : lo + _DIR_CHUNK], float)  # (k, 3): rows are directions
         sl = slice(lo, lo + len(d))
@@ -237,7 +256,22 @@ def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings) -> dict[str
         out["support_volume_mm3"][sl] = np.where(over, down * lift, 0.0) @ a
         rise = np.minimum.reduceat(d @ edge_t, starts, axis=1)
         out["minima"][sl] = (rise > EPS_SMALL).sum(axis=1)
+        if guarded.any():
+            out["protected_mm2"][sl] = over @ a_guarded + scar * ((rise > EPS_SMALL) & v_guarded).sum(axis=1)
     return out
+
+
+def _protect_mask(mesh, protect) -> np.ndarray:
+    """``protect`` as a bool mask over the faces of ``mesh`` (all False when None)."""
+    n = len(mesh.faces)
+    if protect is None:
+        return np.zeros(n, bool)
+    mask = np.asarray(protect, bool).reshape(-1)
+    if mask.shape != (n,):
+        raise SettingsError(
+            f"orientation: the protect mask has {mask.size} values for {n} faces; give one bool per face"
+        )
+    return mask
 
 
 @dataclass(frozen=True)
@@ -383,13 +417,14 @@ def layer_profile(mesh, rotation, pixel_mm: float, settings) -> LayerProfile:
 
 
 def score_directions(
-    mesh: trimesh.Trimesh, dirs: np.ndarray, settings, pixel_mm: float | None = None
+    mesh: trimesh.Trimesh, dirs: np.ndarray, settings, pixel_mm: float | None = None, protect=None
 ) -> dict[str, np.ndarray]:
-    """Every term of :data:`TERMS` for each up-direction of ``dirs`` (K, 3), in physical units."""
+    """Every term of :data:`TERMS` for each up-direction of ``dirs`` (K, 3), in physical units;
+    ``protect``: bool mask over the faces that must carry no tip (see :func:`surface_terms`)."""
     _check_mesh(mesh)
     dirs = np.atleast_2d(np.asarray(dirs, float))
     pixel_mm = scoring_pixel(mesh, settings) if pixel_mm is None else pixel_mm
-    out = surface_terms(mesh, dirs, settings)
+    out = surface_terms(mesh, dirs, settings, protect)
     frac = settings.orient.orient_near_fraction
     for key in ("peak_force_n", "near_peak_layers", "cup_area_mm2", "peak_area_mm2"):
         out[key] = np.zeros(len(dirs))
@@ -475,7 +510,12 @@ def _totals(terms, weights, scales):
 
 
 def orient(
-    mesh: trimesh.Trimesh, settings=None, *, n_directions: int | None = None, pixel_mm: float | None = None
+    mesh: trimesh.Trimesh,
+    settings=None,
+    *,
+    n_directions: int | None = None,
+    pixel_mm: float | None = None,
+    protect=None,
 ) -> Orientation:
     """Score up-directions over the whole sphere and choose the best (lowest weighted total).
 
@@ -490,6 +530,9 @@ def orient(
         Directions of the even set (default ``orient_directions``).
     pixel_mm : float, optional
         Scoring pixel (default :func:`scoring_pixel`).
+    protect : bool array, optional
+        Mask over the faces of ``mesh`` that must carry no tip
+        (:func:`supportgen.supports.protect.protect_mask`): scored as ``protected_mm2``.
 
     Returns
     -------
@@ -500,7 +543,9 @@ def orient(
     The even set (plus the given orientation) is scored, the :data:`REFINE_BEST`
     best are refined by :data:`REFINE_EACH` directions each within one lattice
     spacing ``sqrt(4 pi / n)``, and the terms of every candidate are divided by
-    their medians over the even set.  Cost O(K (F + cells)) for K candidates.
+    their medians over the even set (the protected area over the overhang area's
+    median: scars on protected faces against the scars a typical direction makes
+    anywhere; its own median is 0 whenever the protected faces are a small part).  Cost O(K (F + cells)) for K candidates.
     """
     from ..settings import Settings
 
@@ -510,12 +555,14 @@ def orient(
     n = o.orient_directions if n_directions is None else int(n_directions)
     pixel_mm = scoring_pixel(mesh, settings) if pixel_mm is None else float(pixel_mm)
     dirs = np.vstack([[0.0, 0.0, 1.0], fibonacci_sphere(n)])
-    terms = score_directions(mesh, dirs, settings, pixel_mm)
+    terms = score_directions(mesh, dirs, settings, pixel_mm, protect)
     weights = {k: float(getattr(o, WEIGHTS[k])) for k in TERMS}
     # A term zero for most directions (minima of a convex part) is scaled by a thousandth of its largest value.
     scales = {k: max(float(np.median(terms[k])), float(np.abs(terms[k]).max()) * SCALE_FLOOR, EPS_SMALL) for k in TERMS}
     # A cup is measured against a layer's area: most directions have none, so its own median would be 0.
     scales["cup_area_mm2"] = max(float(np.median(terms["peak_area_mm2"])), EPS_SMALL)
+    # Protected area facing down is measured against the overhang area: most directions turn none of it down.
+    scales["protected_mm2"] = scales["overhang_area_mm2"]
     total = _totals(terms, weights, scales)
     best = np.argsort(total)[:REFINE_BEST]
     spacing = np.sqrt(4.0 * np.pi / n)
@@ -528,7 +575,7 @@ def orient(
         local = np.column_stack([np.sin(t) * np.cos(ph), np.sin(t) * np.sin(ph), np.cos(t)])
         extra.append(local @ r.T)
     extra = np.vstack(extra)
-    more = score_directions(mesh, extra, settings, pixel_mm)
+    more = score_directions(mesh, extra, settings, pixel_mm, protect)
     dirs = np.vstack([dirs, extra])
     terms = {k: np.concatenate([terms[k], more[k]]) for k in terms}
     total = _totals(terms, weights, scales)
@@ -545,22 +592,31 @@ def orient(
 ORIENT_CHOICES = ("keep", "auto")
 
 
-def apply_orientation(mesh: trimesh.Trimesh, how: str, rotate, settings) -> tuple[trimesh.Trimesh, dict]:
+def check_orientation_choice(how: str, rotate) -> list[float] | None:
+    """Refuse an unknown ``how`` or a ``rotate`` that is not three finite angles; the angles as floats."""
+    if how not in ORIENT_CHOICES:
+        raise SettingsError(f"orient={how!r}: choose one of {', '.join(ORIENT_CHOICES)}")
+    if rotate is None:
+        return None
+    angles = np.asarray(rotate, float).ravel()
+    if angles.shape != (3,) or not np.isfinite(angles).all():
+        raise SettingsError(f"rotate={rotate!r}: give three finite angles in degrees, about x, y and z")
+    return [float(a) for a in angles]
+
+
+def apply_orientation(mesh: trimesh.Trimesh, how: str, rotate, settings, protect=None) -> tuple[trimesh.Trimesh, dict]:
     """``mesh`` turned by ``rotate`` (degrees about x, y, z) and, for ``how="auto"``, to the
-    up-direction :func:`orient` chooses; and the report's record ``{rotation, chosen_by}``.
+    up-direction :func:`orient` chooses (scoring ``protect``, a bool mask over the faces);
+    and the report's record ``{rotation, chosen_by}``.
 
     The mesh is returned as given (the same object) when nothing turns it.
     """
-    if how not in ORIENT_CHOICES:
-        raise SettingsError(f"orient={how!r}: choose one of {', '.join(ORIENT_CHOICES)}")
+    angles = check_orientation_choice(how, rotate)
     rot, by = np.eye(3), "given"
-    if rotate is not None:
-        angles = np.asarray(rotate, float).ravel()
-        if angles.shape != (3,) or not np.isfinite(angles).all():
-            raise SettingsError(f"rotate={rotate!r}: give three finite angles in degrees, about x, y and z")
+    if angles is not None:
         rot, by = rotation_from_angles(*angles), "rotate"
     if how == "auto":
-        found = orient(turn(mesh, rot), settings)
+        found = orient(turn(mesh, rot), settings, protect=protect)
         rot, by = found.rotation @ rot, ("rotate+auto" if by == "rotate" else "auto")
     turned = turn(mesh, rot) if by != "given" else mesh
     return turned, {"rotation": [[float(x) for x in row] for row in rot], "chosen_by": by}

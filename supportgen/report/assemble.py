@@ -165,6 +165,7 @@ def build_report(r: RunRecords) -> dict:
         "layers": r.layers.to_dict(),
         "estimates": {
             "layers": layers,
+            "height_mm": float(solids.combined.bounds[1, 2]),  # print height above the plate, supports included
             "print_time_s": layers * pr.layer_cycle_s,
             "resin_ml": volume_ml,
             "resin_g": volume_ml * r.settings.resin.density_g_cm3,

@@ -27,6 +27,7 @@ _LABELS = {
     "minima": "local minima",
     "support_volume_mm3": "support volume estimate (mm³)",
     "height_mm": "print height (mm)",
+    "protected_mm2": "protected surface facing down (mm²)",
 }
 
 

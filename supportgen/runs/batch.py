@@ -20,7 +20,8 @@ Output sets and resume
     one set (:func:`supportgen.io.outputs.commit_set`): a file that fails,
     times out, crashes or is interrupted leaves its previous set as it was and
     no temporary file.  The manifest records the sha256 of the input bytes, of
-    ``settings.to_toml()`` plus the strategy, of the part's side-car files, and
+    ``settings.to_toml()`` plus the strategy and the orientation choice (``orient``,
+    ``rotate``), of the part's side-car files, and
     the size and sha256 of every output, and the file's row (status, reason,
     figures); with ``resume=True`` a file is not redone when all of them match
     what is on disk: its row is the manifest's (the status and reason of the run
@@ -93,6 +94,7 @@ from ..io.outputs import (
     remove_temps,
     sha256_of,
 )
+from ..physics.orientation import check_orientation_choice
 from ..pipeline import DEFAULT_STRATEGY, OUTPUTS
 from ..report.web import batch_index
 from ..settings import Settings
@@ -245,6 +247,8 @@ class Job:
     timeout_s: float | None = None  # counted from the job's own start, in the worker (Dask): past it nothing is saved
     note: str = ""  # said in the row (a renamed output)
     protect: tuple = ()  # protect selectors for every file (side-car files add their own)
+    orient: str = "keep"  # generate(orient=...): the given orientation, or one chosen from the physics
+    rotate: tuple | None = None  # generate(rotate=...): degrees about x, y, z, before any search
 
     @property
     def files(self) -> list[str]:
@@ -301,11 +305,19 @@ def discover(input_dir: str | Path, pattern: str | None = None, exclude: str | P
     return sorted(found, key=lambda p: p.as_posix())
 
 
-def settings_hash(settings: Settings, strategy: str) -> str:
-    """sha256 (hex) of ``settings.to_toml()`` followed by the strategy name."""
+def settings_hash(settings: Settings, strategy: str, orient: str = "keep", rotate=None) -> str:
+    """sha256 (hex) of ``settings.to_toml()`` followed by the strategy name and the orientation choice.
+
+    The given orientation with no rotation hashes as before the choice existed, so outputs
+    made then stay up to date; ``auto`` or a rotation is a different key.
+    """
     import hashlib
 
-    return hashlib.sha256(f"{settings.to_toml()}\nstrategy = {strategy!r}\n".encode()).hexdigest()
+    text = f"{settings.to_toml()}\nstrategy = {strategy!r}\n"
+    if orient != "keep" or rotate is not None:
+        angles = None if rotate is None else [float(a) for a in rotate]
+        text += f"orient = {orient!r}\nrotate = {angles!r}\n"
+    return hashlib.sha256(text.encode()).hexdigest()
 
 
 def sidecars(source: str | Path) -> list[Path]:
@@ -413,9 +425,11 @@ def _manifest(job: Job, input_sha: str, row: FileResult, sidecar_sha: str | None
         doc = {
             "input": job.rel,
             "input_sha256": input_sha,
-            "settings_sha256": settings_hash(job.settings, job.strategy),
+            "settings_sha256": settings_hash(job.settings, job.strategy, job.orient, job.rotate),
             "sidecars_sha256": sidecar_sha,
             "strategy": job.strategy,
+            "orient": job.orient,
+            "rotate": None if job.rotate is None else list(job.rotate),
             "outputs": [o.to_dict() for o in staged.values()],
             **{k: row.to_dict()[k] for k in MANIFEST_FIELDS},
         }
@@ -462,6 +476,8 @@ def run_job(job: Job) -> FileResult:
             progress=False,
             protect=list(job.protect) or None,
             contacts=contacts_sidecar(job.source),
+            orient=job.orient,
+            rotate=job.rotate,
         )
         in_time()
         row = _row(job, result.report, time.perf_counter() - t0)
@@ -720,6 +736,8 @@ def run_batch(
     name_clash: str = "rename",
     wait_s: float | None = 0.0,
     protect=(),
+    orient: str = "keep",
+    rotate=None,
 ) -> BatchSummary:
     """Support every mesh under ``input_dir`` into a mirrored tree under ``output_dir``.
 
@@ -750,6 +768,11 @@ def run_batch(
         Protect selectors (:mod:`supportgen.supports.protect`) for every file; a file's
         side-car ``NAME.protect.toml`` adds its own (side-cars are part of the resume key,
         this argument is not).
+    orient : {"keep", "auto"}
+        Every part's given orientation, or the one :func:`supportgen.physics.orientation.orient`
+        chooses (``generate(orient=...)``); part of the resume key.
+    rotate : (3,) degrees, optional
+        Turn every part about x, then y, then z first (``generate(rotate=...)``); part of the resume key.
     on_result : callable, optional
         Called in this process with each :class:`FileResult` as it arrives; an
         exception it raises stops the batch like Ctrl-C (KeyboardInterrupt) or
@@ -794,7 +817,11 @@ def run_batch(
     prepare_folder(out)
     client = dask_client(cluster) if cluster is not None else None
     jobs = [dataclasses.replace(j, protect=tuple(protect)) for j in jobs] if protect else jobs
-    sha = settings_hash(settings, strategy)
+    if orient != "keep" or rotate is not None:
+        rotate = check_orientation_choice(orient, rotate)  # refused before any work
+        rotate = None if rotate is None else tuple(rotate)
+        jobs = [dataclasses.replace(j, orient=orient, rotate=rotate) for j in jobs]
+    sha = settings_hash(settings, strategy, orient, rotate)
     try:
         with FolderLock(out, wait_s=wait_s), stop_on_signals():
             clean_temps(out, recursive=True)  # left by a killed run; the lock says none is running
@@ -841,6 +868,8 @@ def _run_locked(jobs, results, client, sha, out, root, strategy, workers, resume
             "input_dir": str(root),
             "output_dir": str(out),
             "strategy": strategy,
+            "orient": jobs[0].orient if jobs else None,
+            "rotate": list(jobs[0].rotate) if jobs and jobs[0].rotate is not None else None,
             "settings_sha256": sha,
             "engine": "dask" if client is not None else "local",
             "workers": None if client is not None else (workers or os.cpu_count()),

@@ -1,16 +1,22 @@
 """Bench: every model of a folder with every strategy, one table, ratios and plots.
 
-For each model file and each strategy the part is supported with
+For each model file, each strategy and each orientation choice (``keep``, the
+given orientation, and/or ``auto``, chosen by
+:func:`supportgen.physics.orientation.orient`) the part is supported with
 :func:`supportgen.generate`, its files are saved with ``Result.save`` into
-``OUTDIR/<strategy>/`` and one table row is read back from the saved
-``NAME.report.json``, so every figure in the table is the figure in that report.
+``OUTDIR/<strategy>/`` (``OUTDIR/<strategy>-auto/`` for ``auto``) and one table
+row is read back from the saved ``NAME.report.json``, so every figure in the
+table is the figure in that report.
 The peak memory of the run is measured here and written into the report as well
 (key ``bench``), so the same holds for it.
 
 Outputs in ``OUTDIR`` (each written atomically): ``bench.csv`` and ``bench.md``
 (the table; the Markdown adds the ratios and the plots), ``summary.csv`` (ratios
 against the baseline strategy, per model and over all models),
-``support_volume.png`` and ``stage_times.png``.
+``support_volume.png`` and ``stage_times.png``; when both ``keep`` and ``auto``
+are run, ``orient.csv`` (per part and strategy: peak layer force, contacts,
+landings, support volume, print height and the check under both, the ratio
+auto/keep of each figure, and the median over the parts), also in ``bench.md``.
 
 Peak memory, method ``"rss"`` (default): the growth of the resident set during
 the run, ``VmHWM`` after minus ``VmRSS`` before, with free heap pages handed back
@@ -40,6 +46,7 @@ import numpy as np
 
 from ..errors import SettingsError, SupportGenError
 from ..io.meshio import READ_FORMATS, atomic_write, atomic_write_text, load_mesh, part_name
+from ..physics.orientation import ORIENT_CHOICES
 from ..settings import Settings
 from ..supports.strategies import get_strategy
 from .memory import MEMORY_METHODS, measure_peak
@@ -56,6 +63,8 @@ __all__ = [
     "run_bench",
     "grid_settings",
     "machine_line",
+    "ORIENT_FIGURES",
+    "orient_comparison",
 ]
 
 #: Pipeline stages in the order they run; a stage a report adds later goes after them.
@@ -76,7 +85,10 @@ REPORT_COLUMNS: dict[str, tuple[str, ...]] = {
     "min_safety_factor": ("forces", "min_safety_factor"),
     "peak_layer_force_n": ("forces", "peak_layer_force_n"),
     "peak_memory_mb": ("bench", "peak_memory_mb"),
+    "height_mm": ("estimates", "height_mm"),
 }
+#: Figures compared between the given orientation (``keep``) and the chosen one (``auto``).
+ORIENT_FIGURES = ("peak_layer_force_n", "contacts", "landings", "support_volume_mm3", "height_mm")
 _RATIOS = {"support_volume": "support_volume_mm3", "contacts": "contacts", "resin": "resin_ml", "time": "total_s"}
 
 
@@ -94,6 +106,7 @@ class BenchTable:
     baseline: str
     memory_method: str
     paths: dict
+    orient_rows: tuple[dict, ...] = ()
 
     @property
     def failures(self) -> tuple[dict, ...]:
@@ -127,6 +140,16 @@ class BenchTable:
             "",
         ]
         lines += _md_table(tuple(self.summary[0]) if self.summary else ("model",), self.summary)
+        if self.orient_rows:
+            lines += [
+                "",
+                "## Orientation: `auto` against `keep`",
+                "",
+                "Per part and strategy, each figure under the given orientation (keep) and the chosen one "
+                "(auto), their ratio auto/keep, and the median over the parts where both ran.",
+                "",
+            ]
+            lines += _md_table(tuple(self.orient_rows[0]), self.orient_rows)
         lines += [
             "",
             "## Plots",
@@ -172,7 +195,7 @@ def _stage_order(timings: Sequence[dict]) -> list[str]:
     return [s for s in STAGES if s in seen] + sorted(seen - set(STAGES))
 
 
-def report_row(model: str, strategy: str, report: dict, stages: Sequence[str]) -> dict:
+def report_row(model: str, strategy: str, report: dict, stages: Sequence[str], orient: str = "keep") -> dict:
     """One table row from a report dict (as read back from ``NAME.report.json``).
 
     Parameters
@@ -186,10 +209,10 @@ def report_row(model: str, strategy: str, report: dict, stages: Sequence[str]) -
     Returns
     -------
     dict
-        ``model``, ``strategy``, ``status`` "ok", ``error`` "", one key per
+        ``model``, ``strategy``, ``status`` "ok", ``error`` "", ``orient``, one key per
         :data:`REPORT_COLUMNS`, ``<stage>_s`` and ``total_s``.
     """
-    row = {"model": model, "strategy": strategy, "status": "ok", "error": ""}
+    row = {"model": model, "strategy": strategy, "status": "ok", "error": "", "orient": orient}
     for column, keys in REPORT_COLUMNS.items():
         value = report
         for k in keys:
@@ -259,6 +282,57 @@ def baseline_ratios(rows: Sequence[dict], baseline: str) -> list[dict]:
     return out
 
 
+def orient_comparison(rows: Sequence[dict]) -> list[dict]:
+    """The given orientation (``keep``) against the chosen one (``auto``), per part and strategy.
+
+    Returns
+    -------
+    list of dict
+        For every model and strategy whose ``keep`` and ``auto`` runs both succeeded:
+        ``model``, ``strategy``, ``<figure>_keep``, ``<figure>_auto`` and
+        ``<figure>_ratio`` (auto / keep; None when keep is 0 or missing) for each of
+        :data:`ORIENT_FIGURES`, and ``passed_keep``, ``passed_auto``.  Then one row
+        per strategy, model ``median over parts``: the median of each column over
+        those parts (ratios: the median of the per-part ratios that exist), and the
+        number of parts passing the check under each.
+
+    Examples
+    --------
+    >>> rows = [{"model": m, "strategy": "tree", "orient": o, "status": "ok", "passed": True,
+    ...          "peak_layer_force_n": f, "contacts": 10, "landings": 0, "support_volume_mm3": 1.0,
+    ...          "height_mm": 5.0} for m, o, f in (("a", "keep", 4.0), ("a", "auto", 1.0))]
+    >>> c = orient_comparison(rows)
+    >>> c[0]["peak_layer_force_n_ratio"], c[1]["model"], c[1]["passed_auto"]
+    (0.25, 'median over parts', 1)
+    """
+    ok = {(r["model"], r["strategy"], r.get("orient", "keep")): r for r in rows if r["status"] == "ok"}
+    out = []
+    for strategy in dict.fromkeys(r["strategy"] for r in rows):
+        per = []
+        for model in dict.fromkeys(r["model"] for r in rows):
+            keep, auto = ok.get((model, strategy, "keep")), ok.get((model, strategy, "auto"))
+            if keep is None or auto is None:
+                continue
+            row = {"model": model, "strategy": strategy}
+            for f in ORIENT_FIGURES:
+                row[f"{f}_keep"], row[f"{f}_auto"] = keep.get(f), auto.get(f)
+                row[f"{f}_ratio"] = _ratio(auto.get(f), keep.get(f))
+            row["passed_keep"], row["passed_auto"] = keep.get("passed"), auto.get("passed")
+            per.append(row)
+        if not per:
+            continue
+        med = {"model": "median over parts", "strategy": strategy}
+        for key in per[0]:
+            if key in med or key.startswith("passed"):
+                continue
+            vals = [float(r[key]) for r in per if r[key] is not None]
+            med[key] = float(np.median(vals)) if vals else None
+        med["passed_keep"] = sum(r["passed_keep"] is True for r in per)
+        med["passed_auto"] = sum(r["passed_auto"] is True for r in per)
+        out += per + [med]
+    return out
+
+
 def _cell(v) -> str:
     return "" if v is None else repr(v) if isinstance(v, float) else str(v)
 
@@ -295,8 +369,9 @@ def _plots(rows: Sequence[dict], stages: Sequence[str]) -> tuple[bytes, bytes]:
     import matplotlib.pyplot as plt
 
     models = list(dict.fromkeys(r["model"] for r in rows))
-    strategies = list(dict.fromkeys(r["strategy"] for r in rows))
-    by = {(r["model"], r["strategy"]): r for r in rows if r["status"] == "ok"}
+    label = {id(r): run_folder(r["strategy"], r.get("orient", "keep")) for r in rows}
+    strategies = list(dict.fromkeys(label[id(r)] for r in rows))
+    by = {(r["model"], label[id(r)]): r for r in rows if r["status"] == "ok"}
     x = np.arange(len(models))
     width = 0.8 / max(1, len(strategies))
     fig, ax = plt.subplots(figsize=(max(5.0, 1.2 * len(models) + 2), 3.6))
@@ -319,7 +394,7 @@ def _plots(rows: Sequence[dict], stages: Sequence[str]) -> tuple[bytes, bytes]:
         vals = np.array([r.get(f"{s}_s") or 0.0 for r in runs])
         ax.bar(np.arange(len(runs)), vals, 0.7, bottom=bottom, label=s, color=colours(j % 20))
         bottom += vals
-    ax.set_xticks(np.arange(len(runs)), [f"{r['model']}\n{r['strategy']}" for r in runs], fontsize=7)
+    ax.set_xticks(np.arange(len(runs)), [f"{r['model']}\n{label[id(r)]}" for r in runs], fontsize=7)
     ax.set_ylabel("seconds")
     ax.set_title("Time per stage")
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0))
@@ -345,16 +420,23 @@ def _scaled(path: Path, scale_mm: float):
     return mesh, loaded, factor
 
 
-def _run_one(path: Path, name: str, strategy: str, settings: Settings, outdir: Path, scale_mm, memory: str):
+def run_folder(strategy: str, orient: str = "keep") -> str:
+    """The folder (under the bench's output) of one strategy's runs: ``<strategy>``, or ``<strategy>-auto``."""
+    return strategy if orient == "keep" else f"{strategy}-{orient}"
+
+
+def _run_one(path: Path, name: str, strategy: str, settings: Settings, outdir: Path, scale_mm, memory: str, turn=None):
     import supportgen
+
+    turn = turn or {}  # orient= and rotate= of generate
 
     def work():
         t0 = time.perf_counter()
         if scale_mm is None:
-            return supportgen.generate(path, settings, strategy=strategy, name=name), None, 1.0, 0.0
+            return supportgen.generate(path, settings, strategy=strategy, name=name, **turn), None, 1.0, 0.0
         mesh, loaded, factor = _scaled(path, scale_mm)
         read_s = time.perf_counter() - t0
-        return supportgen.generate(mesh, settings, strategy=strategy, name=name), loaded, factor, read_s
+        return supportgen.generate(mesh, settings, strategy=strategy, name=name, **turn), loaded, factor, read_s
 
     (result, loaded, factor, read_s), peak_mb, used = measure_peak(work, memory)
     report = dict(result.report)
@@ -375,7 +457,7 @@ def _run_one(path: Path, name: str, strategy: str, settings: Settings, outdir: P
         report["warnings"] = [{"code": "repair", "message": f"{name}: {r}"} for r in loaded.repairs] + list(
             report["warnings"]
         )
-    paths = dataclasses.replace(result, report=report).save(outdir / strategy)
+    paths = dataclasses.replace(result, report=report).save(outdir / run_folder(strategy, turn.get("orient", "keep")))
     return json.loads(paths["report"].read_text(encoding="utf-8")), used
 
 
@@ -389,6 +471,8 @@ def run_bench(
     scale_mm: float | None = None,
     memory: str = "rss",
     progress: bool = True,
+    orients: Sequence[str] = ("keep",),
+    rotate=None,
 ) -> BenchTable:
     """Support every model in ``corpus_dir`` with every strategy; write the table, ratios and plots.
 
@@ -411,6 +495,11 @@ def run_bench(
         How peak memory is measured (see the module notes).
     progress : bool
         A progress bar over the runs (stderr).
+    orients : sequence of {"keep", "auto"}
+        Orientation choices run for every model and strategy (``generate(orient=...)``);
+        with both, the table gains the keep/auto comparison (:func:`orient_comparison`).
+    rotate : (3,) degrees, optional
+        Turn every part first (``generate(rotate=...)``), before any ``auto`` search.
 
     Returns
     -------
@@ -419,7 +508,7 @@ def run_bench(
     Raises
     ------
     SettingsError
-        Unknown strategy, baseline not among the strategies, or ``scale_mm`` <= 0.
+        Unknown strategy or orientation choice, baseline not among the strategies, or ``scale_mm`` <= 0.
     SupportGenError
         ``corpus_dir`` is missing or holds no model. A model that fails is recorded
         as an ``error`` row, not raised.
@@ -427,11 +516,15 @@ def run_bench(
     Notes
     -----
     Runs one after another in this process: cost is the sum of the ``generate``
-    runs, O(models x strategies).
+    runs, O(models x strategies x orients).
     """
     strategies = list(dict.fromkeys(strategies))
     for s in strategies:
         get_strategy(s)
+    orients = list(dict.fromkeys(orients))
+    bad = [o for o in orients if o not in ORIENT_CHOICES] or ([] if orients else ["(none)"])
+    if bad:
+        raise SettingsError(f"orientation choice {bad[0]!r}: give one or more of {', '.join(ORIENT_CHOICES)}")
     if baseline not in strategies:
         raise SettingsError(
             f"baseline strategy '{baseline}' is not among the strategies run "
@@ -442,28 +535,46 @@ def run_bench(
     models = find_models(corpus_dir)
     out = Path(output_dir)
     out.mkdir(parents=True, exist_ok=True)
-    runs = [(m, s) for m in models for s in strategies]
+    runs = [(m, s, o) for m in models for s in strategies for o in orients]
     if progress:
         from tqdm import tqdm
 
         runs = tqdm(runs, desc="bench", unit="run", file=sys.stderr)
     results, method = [], memory
-    for (name, path), strategy in runs:
+    for (name, path), strategy, how in runs:
         if progress:
-            runs.set_postfix_str(f"{name} / {strategy}")
+            runs.set_postfix_str(f"{name} / {strategy} / {how}")
         try:
-            report, method = _run_one(path, name, strategy, settings, out, scale_mm, memory)
-            results.append((name, strategy, report, ""))
+            turn = {"orient": how, "rotate": rotate}
+            report, method = _run_one(path, name, strategy, settings, out, scale_mm, memory, turn)
+            results.append((name, strategy, how, report, ""))
         except SupportGenError as exc:
-            results.append((name, strategy, None, str(exc)))
-    stages = _stage_order([r.get("timing_s", {}) for _, _, r, _ in results if r is not None])
-    columns = ("model", "strategy", "status", "error", *REPORT_COLUMNS, *(f"{s}_s" for s in stages), "total_s")
-    rows = tuple(
-        report_row(n, s, r, stages) if r is not None else {"model": n, "strategy": s, "status": "error", "error": e}
-        for n, s, r, e in results
+            results.append((name, strategy, how, None, str(exc)))
+    stages = _stage_order([r.get("timing_s", {}) for *_, r, _ in results if r is not None])
+    columns = (
+        "model",
+        "strategy",
+        "status",
+        "error",
+        "orient",
+        *REPORT_COLUMNS,
+        *(f"{s}_s" for s in stages),
+        "total_s",
     )
-    summary = tuple(baseline_ratios(rows, baseline))
-    table = BenchTable(columns, rows, summary, baseline, method, {})
+    rows = tuple(
+        report_row(n, s, r, stages, o)
+        if r is not None
+        else {"model": n, "strategy": s, "status": "error", "error": e, "orient": o}
+        for n, s, o, r, e in results
+    )
+    # Strategies are compared with the baseline within each orientation choice.
+    summary = tuple(
+        {**row, "orient": o} if len(orients) > 1 else row
+        for o in orients
+        for row in baseline_ratios([r for r in rows if r["orient"] == o], baseline)
+    )
+    oriented = tuple(orient_comparison(rows)) if {"keep", "auto"} <= set(orients) else ()
+    table = BenchTable(columns, rows, summary, baseline, method, {}, oriented)
     paths = {
         "csv": out / "bench.csv",
         "markdown": out / "bench.md",
@@ -476,6 +587,9 @@ def run_bench(
     atomic_write(paths["stage_plot"], stages_png)
     atomic_write_text(paths["summary"], _csv(tuple(summary[0]) if summary else ("model", "strategy"), summary))
     atomic_write_text(paths["csv"], table.to_csv())
+    if oriented:
+        paths["orient"] = out / "orient.csv"
+        atomic_write_text(paths["orient"], _csv(tuple(oriented[0]), oriented))
     atomic_write_text(paths["markdown"], table.to_markdown())
     return dataclasses.replace(table, paths=paths)
 

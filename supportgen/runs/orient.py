@@ -19,6 +19,7 @@ from ..io.units import scale_loaded, unit_factor
 from ..physics.orientation import Orientation, orient, turn
 from ..report.orientation import orientation_json, orientation_markdown, plot_orientation
 from ..settings import Settings
+from ..supports.protect import protected_faces
 
 __all__ = ["ORIENT_OUTPUTS", "Oriented", "orient_part", "orient_file"]
 
@@ -45,11 +46,14 @@ def orient_part(
     scale: float = 1.0,
     n_directions: int | None = None,
     longest_mm: float | None = None,
+    protect=None,
 ) -> Oriented:
     """Load (or take) a mesh, search its orientations and place it turned as chosen.
 
     ``units`` and ``scale`` as in :func:`supportgen.generate`; ``longest_mm``, when
-    given, scales the part so its longest side is that many mm (for unitless meshes).
+    given, scales the part so its longest side is that many mm (for unitless meshes);
+    ``protect`` as in :func:`supportgen.generate` (a part file's side-car file is added):
+    its faces are scored by the ``protected_mm2`` term.
     """
     settings = Settings() if settings is None else settings
     if isinstance(source, trimesh.Trimesh):
@@ -61,7 +65,8 @@ def orient_part(
     loaded = scale_loaded(loaded, unit_factor(units, scale))
     if longest_mm is not None:
         loaded = scale_loaded(loaded, float(longest_mm) / float(loaded.mesh.extents.max()))
-    o = orient(loaded.mesh, settings, n_directions=n_directions)
+    faces = protected_faces(loaded.mesh, protect, None if isinstance(source, trimesh.Trimesh) else source, name).faces
+    o = orient(loaded.mesh, settings, n_directions=n_directions, protect=faces if faces.any() else None)
     placed = place(turn(loaded.mesh, o.rotation), settings, position="centre", name=name)
     return Oriented(name, o, placed.mesh, tuple(loaded.repairs) + tuple(placed.warnings))
 

@@ -85,6 +85,8 @@ __all__ = [
     "Guard",
     "Relocation",
     "guard_for",
+    "Protected",
+    "protected_faces",
     "Holder",
 ]
 
@@ -618,20 +620,25 @@ def _describe(item) -> str:
     return "face mask"
 
 
-def guard_for(
-    mesh_in: trimesh.Trimesh,
-    part: trimesh.Trimesh,
-    offset,
-    settings: Settings,
-    protect=None,
-    source=None,
-    label: str = "part",
-) -> Guard:
-    """The :class:`Guard` of one run: ``protect`` (see :func:`protect_mask`) plus, for a part
-    read from a file, the selectors of its side-car file (:func:`sidecar_for`).
+@dataclasses.dataclass(frozen=True)
+class Protected:
+    """What a run protects, in the part's own (input) coordinates: ``faces`` (mask over the
+    repaired part's faces), ``described`` (one line per selector), ``surface`` (for a solid
+    rebuilt from a messy surface, the protected input surface that distances are measured
+    to; else None) and ``notes`` (warnings, e.g. protection that could not be carried)."""
 
-    ``mesh_in`` is the repaired part in input coordinates, ``part`` the placed part
-    (the same faces moved by ``offset``).
+    faces: np.ndarray
+    described: tuple[str, ...] = ()
+    surface: trimesh.Trimesh | None = None
+    notes: tuple[str, ...] = ()
+
+
+def protected_faces(mesh_in: trimesh.Trimesh, protect=None, source=None, label: str = "part") -> Protected:
+    """What :func:`protect_mask` protects for ``protect`` plus, for a part read from a file, the
+    selectors of its side-car file (:func:`sidecar_for`); carried onto the faces of a solid
+    rebuilt from a messy surface (module notes).
+
+    ``mesh_in`` is the repaired part in input coordinates (selectors are in those).
     """
     items = list(protect) if isinstance(protect, (list, tuple)) else ([] if protect is None else [protect])
     if source is not None:
@@ -642,13 +649,47 @@ def guard_for(
     surface = None
     if items and mesh_in.metadata.get("rebuilt_from") is not None:
         faces, surface = _carry_rebuilt(mesh_in, items, source, label, notes)
-        if surface is not None:
-            surface = surface.copy()
-            surface.apply_translation(np.asarray(offset, float))  # as the part was lifted
     else:
         faces = protect_mask(mesh_in, items, source=source, label=label, notes=notes)
-    guard = Guard.build(part, faces, offset, settings, surface)
-    return dataclasses.replace(guard, described=tuple(_describe(i) for i in items), notes=tuple(notes))
+    return Protected(faces, tuple(_describe(i) for i in items), surface, tuple(notes))
+
+
+def guard_for(
+    mesh_in: trimesh.Trimesh,
+    part: trimesh.Trimesh,
+    offset,
+    settings: Settings,
+    protect=None,
+    source=None,
+    label: str = "part",
+    found: Protected | None = None,
+    rotation=None,
+) -> Guard:
+    """The :class:`Guard` of one run: ``protect`` (see :func:`protect_mask`) plus, for a part
+    read from a file, the selectors of its side-car file (:func:`sidecar_for`).
+
+    ``mesh_in`` is the repaired part in input coordinates, ``part`` the placed part
+    (the same faces, turned by ``rotation`` (3, 3) about the origin, then moved by
+    ``offset``).  ``found``, when given, is what :func:`protected_faces` returned for
+    them (not computed again).
+    """
+    if found is None:
+        found = protected_faces(mesh_in, protect, source, label)
+    surface = found.surface
+    if surface is not None:
+        surface = surface.copy()
+        if rotation is not None:
+            surface.apply_transform(_rotation4(rotation))  # turned as the part was
+        surface.apply_translation(np.asarray(offset, float))  # and lifted
+    guard = Guard.build(part, found.faces, offset, settings, surface)
+    return dataclasses.replace(guard, described=found.described, notes=found.notes)
+
+
+def _rotation4(rotation) -> np.ndarray:
+    """The 4 x 4 transform of a 3 x 3 turn."""
+    m = np.eye(4)
+    m[:3, :3] = np.asarray(rotation, float)
+    return m
 
 
 class Holder:
