@@ -16,16 +16,22 @@ The Python API::
 
 from .errors import GeometryError, MeshError, OutputError, PlacementError, SettingsError, SupportGenError
 from .settings import PROFILES, Settings, load_settings
-from .supports.plan import Contacts, SupportPlan
-from .supports.strategies import STRATEGIES
 
 __version__ = "0.1.0"
 
 
 #: Names loaded on first use (the pipeline pulls in every stage, so ``import
-#: supportgen`` stays quick for scripts that only read settings): name -> module.
+#: supportgen`` stays quick for scripts and commands that only read settings): name -> module.
 #: Declared once here; ``__init__.pyi`` states their types for IDEs and checkers.
-_LAZY = {"generate": "pipeline", "check": "pipeline", "Result": "pipeline", "orient": "physics.orientation"}
+_LAZY = {
+    "generate": "pipeline",
+    "check": "analysis.verify",
+    "Result": "pipeline",
+    "orient": "physics.orientation",
+    "Contacts": "supports.plan",
+    "SupportPlan": "supports.plan",
+    "STRATEGIES": "supports.strategies",
+}
 
 
 def __getattr__(name):

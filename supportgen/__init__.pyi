@@ -1,5 +1,6 @@
 """Public API of supportgen, as IDEs and type checkers see it (the module loads some names lazily)."""
 
+from .analysis.verify import check as check
 from .errors import GeometryError as GeometryError
 from .errors import MeshError as MeshError
 from .errors import OutputError as OutputError
@@ -8,7 +9,6 @@ from .errors import SettingsError as SettingsError
 from .errors import SupportGenError as SupportGenError
 from .physics.orientation import orient as orient
 from .pipeline import Result as Result
-from .pipeline import check as check
 from .pipeline import generate as generate
 from .settings import PROFILES as PROFILES
 from .settings import Settings as Settings

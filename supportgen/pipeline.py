@@ -24,7 +24,7 @@ import trimesh
 from .analysis.layers import Grid, LayerStack, analyse_layers
 from .analysis.overhangs import find_overhangs
 from .analysis.placement import check_cures, place
-from .analysis.verify import Verification, speck_area_mm2, verify
+from .analysis.verify import Verification, check, speck_area_mm2, verify
 from .constants import OFFSET_MM
 from .errors import SupportGenError
 from .io.budget import check_memory
@@ -38,7 +38,7 @@ from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
 from .report.protection import add_protection, contacts_csv, plot_underside, protection_section
 from .report.web import part_page
-from .settings import Settings, load_settings
+from .settings import DEFAULT_STRATEGY, Settings, resolve_settings
 from .supports.contacts import (
     add_unheld,
     contacts_at,
@@ -71,7 +71,6 @@ OUTPUTS = {
 
 #: ``tree`` verifies on the demo and the shared corpus with less support volume
 #: than ``straight`` (benchmarks/compare_strategies.py).
-DEFAULT_STRATEGY = "tree"
 MAX_DENSIFY_ROUNDS = 4
 MAX_REPAIR_ROUNDS = 4
 
@@ -172,14 +171,6 @@ class _Timer:
             yield
         finally:
             self.seconds[stage] = self.seconds.get(stage, 0.0) + time.perf_counter() - t0
-
-
-def _resolve_settings(settings, overrides) -> Settings:
-    if settings is None:
-        settings = Settings()
-    elif not isinstance(settings, Settings):
-        settings = load_settings(settings)
-    return settings.override(overrides) if overrides else settings
 
 
 def _layer_contacts(part, stack: LayerStack, settings: Settings, contacts: Contacts, spacing_mm: float) -> Contacts:
@@ -316,7 +307,7 @@ def _generate(
     """:func:`generate` without the naming of errors."""
     t_total = time.perf_counter()
     contacts_file = contacts  # the name ``contacts`` is the run's contacts below
-    settings = _resolve_settings(settings, overrides)
+    settings = resolve_settings(settings, overrides)
     plan_fn = get_strategy(strategy)
     timer = _Timer()
     rules, pr = settings.rules, settings.printer
@@ -462,20 +453,3 @@ def _generate(
     return Result(
         name, solids.combined, solids.supports, part, contacts, sized.plan, report, stack, profile, ver, guard
     )
-
-
-def check(mesh, settings: Settings | str | Path | None = None, *, progress: bool = False, **overrides) -> Verification:
-    """Verify an already supported mesh (a path or a trimesh) standing on the plate.
-
-    Raises
-    ------
-    supportgen.errors.SupportGenError
-        The file cannot be read.
-    """
-    settings = _resolve_settings(settings, overrides)
-    if isinstance(mesh, trimesh.Trimesh):
-        name, tm = "mesh", mesh
-    else:
-        name = Path(mesh).name
-        tm = load_mesh(mesh).mesh
-    return verify(tm, settings, progress=progress, name=name)

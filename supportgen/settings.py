@@ -51,8 +51,17 @@ __all__ = [
     "PROFILES",
     "MECHANISMS",
     "load_settings",
+    "resolve_settings",
     "describe",
+    "STRATEGY_NAMES",
+    "DEFAULT_STRATEGY",
 ]
+
+#: The support strategies a user can choose (``supportgen.supports.strategies.STRATEGIES``
+#: registers one function per name; named here so the command line can offer them without
+#: importing the geometry stages).
+STRATEGY_NAMES = ("straight", "tree")
+DEFAULT_STRATEGY = "tree"
 
 MECHANISMS = ("pull", "slide", "tilt")
 BASE_KINDS = ("raft", "pads")
@@ -482,6 +491,16 @@ PROFILES: dict[str, dict[str, Any]] = {
     },
     "tilt-vat": {"mechanism": "tilt"},
 }
+
+
+def resolve_settings(settings=None, overrides: Mapping[str, Any] | None = None) -> Settings:
+    """Settings from ``settings`` (None: the defaults; a :class:`Settings`; else a built-in
+    profile name or TOML file for :func:`load_settings`), with ``overrides`` applied."""
+    if settings is None:
+        settings = Settings()
+    elif not isinstance(settings, Settings):
+        settings = load_settings(settings)
+    return settings.override(overrides) if overrides else settings
 
 
 def load_settings(source: str | Path | Mapping[str, Any] | None = None, **overrides) -> Settings:

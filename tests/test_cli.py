@@ -211,3 +211,24 @@ def test_every_argument_of_every_command_has_help():
                 missing.append(f"{' '.join(path)} {'/'.join(action.option_strings) or action.dest}")
     assert commands >= 8  # generate, demo, check, profiles, calibrate, batch, bench, orient and the top level
     assert not missing, missing
+
+
+def test_help_and_check_load_only_what_they_need():
+    # Start-up (issue: the command line imports what a sub-command needs): building every
+    # sub-command's parser must not import the mesh, solid, graph or plotting libraries, and
+    # `check` must not import the support stages.  Run in a fresh interpreter (sys.modules).
+    code = """
+import sys
+from supportgen.cli.main import main
+try:
+    main(['--help'])
+except SystemExit:
+    pass
+heavy = {'trimesh', 'manifold3d', 'scipy', 'networkx', 'matplotlib', 'shapely', 'rtree'}
+print(sorted({m.split('.')[0] for m in sys.modules} & heavy))
+import supportgen
+supportgen.check
+print(sorted(m for m in sys.modules if m.startswith(('supportgen.supports', 'supportgen.report', 'supportgen.pipeline'))))
+"""
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.splitlines()
+    assert out[-2:] == ["[]", "[]"], out

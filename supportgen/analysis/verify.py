@@ -21,15 +21,16 @@ including ones from other tools or edited by hand.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 import trimesh
 
 from ..constants import EPS_REL
-from ..settings import Settings
+from ..settings import Settings, resolve_settings
 from .layers import LayerStack, analyse_layers, speck_area_mm2
 
-__all__ = ["Verification", "verify", "speck_area_mm2"]
+__all__ = ["Verification", "verify", "check", "speck_area_mm2"]
 
 
 @dataclass(frozen=True)
@@ -160,3 +161,26 @@ def verify(
         failures=tuple(failures),
         layers=stack,
     )
+
+
+def check(mesh, settings=None, *, progress: bool = False, **overrides) -> Verification:
+    """Verify an already supported mesh (a path or a trimesh) standing on the plate.
+
+    ``settings`` is a :class:`~supportgen.settings.Settings`, a built-in profile name or a
+    TOML file (None: the defaults); ``overrides`` are applied to it.  Only the mesh reader
+    and the layer analysis are imported, so the ``check`` command starts fast.
+
+    Raises
+    ------
+    supportgen.errors.SupportGenError
+        The file cannot be read.
+    """
+    from ..io.meshio import load_mesh
+
+    settings = resolve_settings(settings, overrides)
+    if isinstance(mesh, trimesh.Trimesh):
+        name, tm = "mesh", mesh
+    else:
+        name = Path(mesh).name
+        tm = load_mesh(mesh).mesh
+    return verify(tm, settings, progress=progress, name=name)

@@ -31,7 +31,7 @@ def parse_strategies(text: str) -> list[str]:
     ...
     argparse.ArgumentTypeError: unknown strategy 'pillars'; valid strategies: straight, tree
     """
-    from supportgen.supports.strategies import STRATEGIES
+    from supportgen.settings import STRATEGY_NAMES as STRATEGIES
 
     names = [n.strip() for n in text.split(",") if n.strip()]
     if not names:

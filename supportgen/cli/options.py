@@ -49,14 +49,13 @@ def show_progress(args) -> bool:
 
 def strategy_option() -> argparse.ArgumentParser:
     """--strategy with the registered names and the pipeline's default, as a parent parser."""
-    from supportgen.pipeline import DEFAULT_STRATEGY
-    from supportgen.supports.strategies import STRATEGIES
+    from supportgen.settings import DEFAULT_STRATEGY, STRATEGY_NAMES
 
     parent = argparse.ArgumentParser(add_help=False)
     parent.add_argument(
         "--strategy",
         default=DEFAULT_STRATEGY,
-        choices=sorted(STRATEGIES),
+        choices=STRATEGY_NAMES,
         help=f"support strategy (default: {DEFAULT_STRATEGY})",
     )
     return parent

@@ -39,7 +39,6 @@ import numpy as np
 
 from ..constants import EPS_FLOOR
 from ..errors import SettingsError
-from .separation import squeeze_force_n
 
 __all__ = [
     "COLUMNS",
@@ -203,6 +202,8 @@ def read_measurements(path) -> np.ndarray:
 
 def _predictors(meas: np.ndarray, settings) -> tuple[np.ndarray, np.ndarray]:
     """Raw squeeze-film force (c = 1) and area of each row."""
+    from .separation import squeeze_force_n  # here, so the command line's help does not load the layer code
+
     p, r = settings.printer, settings.resin
     v = np.where(np.isnan(meas[:, 3]), p.lift_speed_mm_s, meas[:, 3])
     h = np.where(np.isnan(meas[:, 4]), p.film_gap_mm, meas[:, 4])

@@ -25,7 +25,7 @@ import trimesh
 
 from ..constants import EPS_SMALL, OFFSET_MM
 from ..errors import SettingsError
-from ..settings import Settings
+from ..settings import STRATEGY_NAMES, Settings
 from .freespace import surface_below
 from .plan import Contacts, SupportPlan
 
@@ -180,6 +180,7 @@ STRATEGIES: dict[str, Callable[[trimesh.Trimesh, Contacts, Settings], SupportPla
     "straight": plan_straight,
     "tree": _plan_tree,
 }
+assert tuple(sorted(STRATEGIES)) == STRATEGY_NAMES, "register every name of settings.STRATEGY_NAMES"
 
 
 def get_strategy(name: str):
