@@ -36,7 +36,7 @@ from .physics.orientation import apply_orientation
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
-from .report.protection import add_protection, contacts_csv, plot_underside, protection_section
+from .report.protection import TrackedHolder, add_protection, contacts_csv, plot_underside, protection_section
 from .report.web import part_page
 from .settings import Settings, load_settings
 from .supports.contacts import (
@@ -49,7 +49,7 @@ from .supports.contacts import (
 )
 from .supports.geometry import Solids, combine
 from .supports.plan import Contacts, SupportPlan
-from .supports.protect import Guard, Holder, guard_for, protected_faces
+from .supports.protect import Guard, guard_for, protected_faces
 from .supports.sizing import SizedPlan, over_capacity, size_plan, support_layer_forces, tip_diameter
 from .supports.strategies import get_strategy
 
@@ -354,7 +354,7 @@ def _generate(
         guard = guard_for(
             loaded.mesh, part, placed.offset, settings, label=name, found=found, rotation=orientation["rotation"]
         )
-        hold = Holder(guard, settings)
+        hold = TrackedHolder(guard, settings)
     with timer("overhangs"):
         oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
     fixed, file_info = 0, None
