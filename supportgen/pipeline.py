@@ -140,7 +140,13 @@ class Result:
             "underside": lambda staged: self.underside_png(),
             "summary": lambda staged: markdown(report, n, images).encode("utf-8"),
             "page": lambda staged: part_page(
-                report, self.combined, self.supports, self.part, report["supports"].get("contact_points", [])
+                report,
+                self.combined,
+                self.supports,
+                self.part,
+                report["supports"].get("contact_points", []),
+                protected=self.guard.faces if self.guard is not None else None,
+                offset=self.guard.offset if self.guard is not None else None,
             ).encode("utf-8"),
             "report": lambda staged: to_json(
                 {**report, "outputs": {**report["outputs"], "files": [o.to_dict() for o in staged.values()]}}
