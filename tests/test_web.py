@@ -606,7 +606,7 @@ def test_demo_pages_for_the_closing_note(tmp_path):
     out = _out_dir(tmp_path)
     rows = []
     for name in DEMO_PARTS:
-        res = supportgen.generate(demo_part(name), name=name)
+        res = supportgen.generate(demo_part(name), name=name, protect=DEMO_PROTECT.get(name))
         page = out / f"{name}.report.html"
         page.write_text(_page_of(res), encoding="utf-8")
         check_page(page, tmp_path, PART_IDS, out / f"{name}.report.png", min_colours=200)
