@@ -538,7 +538,9 @@ def _protected_hue_pixels(pixels: np.ndarray) -> int:
     r, g, b = rgb.T
     h = np.where(mx == r, ((g - b) / c) % 6, np.where(mx == g, (b - r) / c + 2, (r - g) / c + 4)) * 60
     ref = web.srgb_to_lab(np.array([int(web.PROTECTED_COLOUR[i : i + 2], 16) / 255 for i in (1, 3, 5)]))
-    hue_ref = 326.0  # #cc79a7: max r, min g, ((r - g) / c + 4) * 60 = 326 degrees (colorsys.rgb_to_hsv)
+    import colorsys
+
+    hue_ref = 360 * colorsys.rgb_to_hsv(*(int(web.PROTECTED_COLOUR[i : i + 2], 16) / 255 for i in (1, 3, 5)))[0]
     assert ref[1] > 20 and ref[2] < 0  # reddish purple in CIE L*a*b*: a* > 0, b* < 0
     near = np.abs((h - hue_ref + 180) % 360 - 180) <= 15
     return int(np.count_nonzero(near & (mx - mn > 0.15) & (mx > 0.35) & (mx > mn)))
