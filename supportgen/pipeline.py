@@ -36,7 +36,7 @@ from .physics.orientation import apply_orientation
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
 from .report.plots import plot_layers, plot_preview, plot_tips
-from .report.protection import add_protection, contacts_csv, plot_underside, protection_section
+from .report.protection import TrackedHolder, add_protection, contacts_csv, plot_underside, protection_section
 from .report.web import part_page
 from .settings import DEFAULT_STRATEGY, Settings, resolve_settings
 from .supports.contacts import (
@@ -49,7 +49,7 @@ from .supports.contacts import (
 )
 from .supports.geometry import Solids, combine
 from .supports.plan import Contacts, SupportPlan
-from .supports.protect import Guard, Holder, guard_for, protected_faces
+from .supports.protect import Guard, guard_for, protected_faces
 from .supports.sizing import SizedPlan, over_capacity, size_plan, support_layer_forces, tip_diameter
 from .supports.strategies import get_strategy
 
@@ -139,7 +139,13 @@ class Result:
             "underside": lambda staged: self.underside_png(),
             "summary": lambda staged: markdown(report, n, images).encode("utf-8"),
             "page": lambda staged: part_page(
-                report, self.combined, self.supports, self.part, report["supports"].get("contact_points", [])
+                report,
+                self.combined,
+                self.supports,
+                self.part,
+                report["supports"].get("contact_points", []),
+                protected=self.guard.faces if self.guard is not None else None,
+                offset=self.guard.offset if self.guard is not None else None,
             ).encode("utf-8"),
             "report": lambda staged: to_json(
                 {**report, "outputs": {**report["outputs"], "files": [o.to_dict() for o in staged.values()]}}
@@ -345,7 +351,7 @@ def _generate(
         guard = guard_for(
             loaded.mesh, part, placed.offset, settings, label=name, found=found, rotation=orientation["rotation"]
         )
-        hold = Holder(guard, settings)
+        hold = TrackedHolder(guard, settings)
     with timer("overhangs"):
         oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
     fixed, file_info = 0, None

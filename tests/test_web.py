@@ -26,7 +26,8 @@ import trimesh
 
 import supportgen
 from supportgen.report import batch_index, part_page, web
-from supportgen.runs.demo import DEMO_PARTS, demo_part
+from supportgen.report.document import markdown
+from supportgen.runs.demo import DEMO_PARTS, DEMO_PROTECT, demo_part, write_demo_inputs
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 needs_chromium = pytest.mark.skipif(
@@ -75,13 +76,71 @@ def _settings():
 
 
 def _page_of(result) -> str:
-    return part_page(result.report, result.combined, result.supports, result.part, result.contacts.to_records())
+    guard = result.guard
+    return part_page(
+        result.report,
+        result.combined,
+        result.supports,
+        result.part,
+        result.contacts.to_records(),
+        protected=None if guard is None else guard.faces,
+        offset=None if guard is None else guard.offset,
+    )
 
 
 @pytest.fixture(scope="module")
 def hook():
     """A small real run: the demo hook through generate."""
     return supportgen.generate(demo_part("hook"), _settings(), name="hook")
+
+
+def _coarse():
+    # Coarse pixel, layer and tips: the protected-surface run below stays a few seconds on 2 cores.
+    return supportgen.Settings().override(pixel_mm=0.2, layer_mm=0.2, tip_min_mm=0.4, tip_max_mm=1.0)
+
+
+@pytest.fixture(scope="module")
+def lid(tmp_path_factory):
+    """The demo's canister lid read from its file with its protect side-car (DEMO_PROTECT), saved as
+    a run saves it: (result, saved paths, the saved JSON report)."""
+    folder = tmp_path_factory.mktemp("demo_inputs")
+    (path,) = [p for p in write_demo_inputs(folder) if p.stem == "canister_lid"]
+    assert (folder / "canister_lid.protect.toml").is_file()
+    res = supportgen.generate(path, _coarse(), name="canister_lid")
+    paths = res.save(tmp_path_factory.mktemp("lid_out"))
+    return res, paths, json.loads(paths["report"].read_text())
+
+
+def _scene(html: str) -> dict:
+    return json.loads(re.search(r'<script type="application/json" id="scene-data">(.*?)</script>', html, re.S)[1])
+
+
+def _protection_figures(sec: dict) -> dict[str, tuple[float, float]]:
+    """The figures the page must show for a ``protection`` section: key -> (value, display tolerance)."""
+    want = {
+        "protected_faces": (sec["protected_faces"], 0),
+        "protected_surface_mm2": (sec["protected_surface_mm2"], 5e-4),
+        "keep_off_mm": (sec["keep_off_mm"], 5e-4),
+        "rest.contacts": (sec["rest"]["contacts"], 0),
+        "rest.tip_area_mm2": (sec["rest"]["tip_area_mm2"], 5e-5),
+        "rest.landings": (sec["rest"]["landings"], 0),
+        "unholdable": (len(sec["unholdable"]), 0),
+    }
+    for key in (
+        "contacts_on_protected",
+        "landings_on_protected",
+        "contacts_moved",
+        "contacts_merged_after_moving",
+        "landings_avoided",
+    ):
+        want[key] = (sec[key], 0)
+    for k, r in enumerate(sec["regions"]):
+        want[f"regions.{k}.faces"] = (r["faces"], 0)
+        want[f"regions.{k}.area_mm2"] = (r["area_mm2"], 5e-4)
+        want[f"regions.{k}.contacts"] = (r["contacts"], 0)
+        want[f"regions.{k}.tip_area_mm2"] = (r["tip_area_mm2"], 5e-5)
+        want[f"regions.{k}.landings"] = (r["landings"], 0)
+    return want
 
 
 def _out_dir(tmp_path: Path) -> Path:
@@ -129,11 +188,18 @@ class _Ids(HTMLParser):
         self.links: list[str] = []
         self.rows = 0
         self._in_tbody = False
+        self.keyed: dict[str, str] = {}  # text of each element with a data-key (the protection figures)
+        self._key: str | None = None
+        self.scene: str = ""
+        self._in_scene = False
 
     def handle_starttag(self, tag, attrs):
         a = dict(attrs)
         if "id" in a:
             self.ids.add(a["id"])
+        if "data-key" in a:
+            self._key = a["data-key"]
+            self.keyed[self._key] = ""
         if tag == "body":
             self.body = {k: v or "" for k, v in attrs}
         if tag == "a" and a.get("href"):
@@ -142,10 +208,22 @@ class _Ids(HTMLParser):
             self._in_tbody = True
         if tag == "tr" and self._in_tbody:
             self.rows += 1
+        if tag == "script" and a.get("id") == "scene-data":
+            self._in_scene = True
+
+    def handle_data(self, data):
+        if self._key is not None:
+            self.keyed[self._key] += data
+        if self._in_scene:
+            self.scene += data
 
     def handle_endtag(self, tag):
         if tag == "tbody":
             self._in_tbody = False
+        if tag == "span":
+            self._key = None
+        if tag == "script":
+            self._in_scene = False
 
 
 def dom_of(path: Path, tmp: Path, fragment: str = "") -> tuple[_Ids, list[str]]:
@@ -311,6 +389,64 @@ def test_failed_checks_are_located():
     assert [(m["kind"], m["xyz"]) for m in web.failure_marks({**report, "verification": old})] == expected
 
 
+def test_protected_mask_travels_unchanged_and_moved_contacts_are_placed(lid):
+    """The page's scene carries the run's own Guard.faces bit for bit (decoded with numpy.unpackbits, the
+    inverse of the packbits the page is written with); the contacts the report says were moved sit on
+    the part, clear of every protected face by the keep-off (trimesh closest point), and are contacts of
+    the final plan."""
+    res, paths, sec = lid[0], lid[1], lid[2]["protection"]
+    html = paths["page"].read_text(encoding="utf-8")
+    prot = _scene(html)["protected"]
+    bits = np.unpackbits(np.frombuffer(base64.b64decode(prot["bits"]), np.uint8))[: prot["faces"]].astype(bool)
+    np.testing.assert_array_equal(bits, res.guard.faces)
+    assert prot["count"] == int(bits.sum()) == sec["protected_faces"] > 0
+    assert prot["faces"] == len(res.part.faces)
+    # Every moved contact not merged into a neighbour afterwards is listed where it now sits.
+    moved = np.asarray(sec["moved_to_mm"], float).reshape(-1, 3) + res.guard.offset
+    assert len(moved) == sec["contacts_moved"] - sec["contacts_merged_after_moving"] > 0
+    surf = res.guard.surface
+    _, d_prot, _ = trimesh.proximity.closest_point(surf, moved)
+    assert np.all(d_prot >= res.guard.keep_off_mm)
+    _, d_part, _ = trimesh.proximity.closest_point(res.part, moved)
+    assert np.all(d_part < 1e-6)
+    final = res.contacts.points - res.guard.offset
+    assert np.all(np.min(np.linalg.norm(final[None] - np.asarray(sec["moved_to_mm"])[:, None], axis=2), axis=1) < 2e-3)
+    np.testing.assert_allclose(np.asarray(_scene(html)["moved"], float).reshape(-1, 3), moved, atol=2e-3)
+
+
+def test_protection_section_is_omitted_like_the_markdown_when_nothing_is_protected(hook):
+    """No protected face and no contacts file: neither the Markdown (document.protection_markdown) nor the
+    page has the section, and the page has no protected-faces legend entry or scene mask."""
+    assert hook.report["protection"]["protected_faces"] == 0 and not hook.report["protection"]["contacts_file"]
+    assert "## Protected surfaces" not in markdown(hook.report, "hook", {})
+    html = _page_of(hook)
+    assert 'id="protection"' not in html and 'id="legend-protected"' not in html
+    assert _scene(html)["protected"]["count"] == 0
+    # A mask that does not fit the part's faces is not drawn (and does not crash the page).
+    assert web.protected_bits(np.ones(3, bool), len(hook.part.faces)) is None
+
+
+def test_contacts_file_figures_equal_the_json(lid, tmp_path):
+    """A run reading the lid's own NAME.contacts.csv back: the page's contacts-file line shows the JSON's
+    rows, locked rows and contacts the check added (the saved JSON read back with Python's json module)."""
+    res, paths, _ = lid
+    again = supportgen.generate(
+        demo_part("canister_lid"),
+        _coarse(),
+        protect=DEMO_PROTECT["canister_lid"],
+        contacts=paths["contacts"],
+        name="canister_lid",
+    )
+    saved = again.save(tmp_path)
+    info = json.loads(saved["report"].read_text())["protection"]["contacts_file"]
+    assert info["rows"] == len(res.contacts)
+    ids = _Ids()
+    ids.feed(saved["page"].read_text(encoding="utf-8"))
+    assert "contacts-file" in ids.ids
+    shown = {k: int(ids.keyed[f"contacts_file.{k}"]) for k in ("rows", "locked", "added_by_check")}
+    assert shown == {k: info[k] for k in ("rows", "locked", "added_by_check")}
+
+
 # --------------------------------------------------------------------------- in the browser
 
 
@@ -393,6 +529,57 @@ def test_batch_index_loads_with_two_rows_and_links(hook, tmp_path):
     assert dom.links == sorted(dom.links, reverse=True) == ["hook_unsupported.report.html", "hook.report.html"]
 
 
+def _protected_hue_pixels(pixels: np.ndarray) -> int:
+    """Pixels whose hue lies within 15 degrees of PROTECTED_COLOUR's, saturated and not dark (HSV by
+    Python's colorsys formulas, vectorised); lighting scales a face's colour, keeping its hue."""
+    rgb = pixels.astype(float) / 255
+    mx, mn = rgb.max(axis=1), rgb.min(axis=1)
+    c = np.where(mx > mn, mx - mn, 1.0)
+    r, g, b = rgb.T
+    h = np.where(mx == r, ((g - b) / c) % 6, np.where(mx == g, (b - r) / c + 2, (r - g) / c + 4)) * 60
+    ref = web.srgb_to_lab(np.array([int(web.PROTECTED_COLOUR[i : i + 2], 16) / 255 for i in (1, 3, 5)]))
+    import colorsys
+
+    hue_ref = 360 * colorsys.rgb_to_hsv(*(int(web.PROTECTED_COLOUR[i : i + 2], 16) / 255 for i in (1, 3, 5)))[0]
+    assert ref[1] > 20 and ref[2] < 0  # reddish purple in CIE L*a*b*: a* > 0, b* < 0
+    near = np.abs((h - hue_ref + 180) % 360 - 180) <= 15
+    return int(np.count_nonzero(near & (mx - mn > 0.15) & (mx > 0.35) & (mx > mn)))
+
+
+@needs_chromium
+def test_protected_surfaces_shown_on_the_demo_lid(lid, tmp_path):
+    """The demo lid's page as Result.save writes it: loads without a console message, draws, shades its
+    protected faces (the page's own decoded count equals the JSON's protected_faces; pixels of that hue
+    in the view, none without the mask), has the legend entry and the section, and the section's figures
+    equal the saved JSON report's (read back with Python's json module)."""
+    res, paths, report = lid
+    sec = report["protection"]
+    out = _out_dir(tmp_path)
+    page = out / "canister_lid.report.html"
+    if page.resolve() != paths["page"].resolve():
+        shutil.copyfile(paths["page"], page)
+    ids = PART_IDS + ("protection", "scar-budget", "protection-figures", "legend-protected", "tog-protected")
+    dom, pixels = check_page(page, tmp_path, ids, out / "canister_lid.report.png", min_colours=200)
+    assert dom.body.get("data-protected-faces") == str(sec["protected_faces"]) != "0"
+    # The legend entry names the count; the scene data's mask has as many protected faces.
+    assert _scene(paths["page"].read_text(encoding="utf-8"))["protected"]["count"] == sec["protected_faces"]
+    want = _protection_figures(sec)
+    assert set(want) <= set(dom.keyed), f"figures missing: {sorted(set(want) - set(dom.keyed))}"
+    for key, (value, tol) in want.items():
+        assert float(dom.keyed[key]) == pytest.approx(value, abs=tol), key
+    assert sec["contacts_on_protected"] == sec["landings_on_protected"] == 0  # the budget the run promises
+    shaded = _protected_hue_pixels(pixels)
+    assert shaded > 500, f"only {shaded} pixels of the protected colour in the view"
+    # The same page without the mask: no pixel of that hue (nothing else on the page is drawn in it
+    # except the moved-contact rings, which are a darker shade and thin).
+    bare = tmp_path / "lid_bare.report.html"
+    bare.write_text(
+        part_page(report, res.combined, res.supports, res.part, res.contacts.to_records()), encoding="utf-8"
+    )
+    _, bare_pixels = check_page(bare, tmp_path, PART_IDS, tmp_path / "lid_bare.png", min_colours=200)
+    assert _protected_hue_pixels(bare_pixels) < shaded / 20
+
+
 @needs_chromium
 def test_harness_catches_a_broken_page(hook, tmp_path):
     """The checks above can fail: a script error, a page that never draws, and a missing element."""
@@ -421,7 +608,7 @@ def test_demo_pages_for_the_closing_note(tmp_path):
     out = _out_dir(tmp_path)
     rows = []
     for name in DEMO_PARTS:
-        res = supportgen.generate(demo_part(name), name=name)
+        res = supportgen.generate(demo_part(name), name=name, protect=DEMO_PROTECT.get(name))
         page = out / f"{name}.report.html"
         page.write_text(_page_of(res), encoding="utf-8")
         check_page(page, tmp_path, PART_IDS, out / f"{name}.report.png", min_colours=200)

@@ -23,7 +23,35 @@ from ..supports.plan import Contacts, SupportPlan
 from ..supports.protect import Guard, Holder
 from .plots import new_figure, png_bytes
 
-__all__ = ["protection_section", "add_protection", "plot_underside", "contacts_csv"]
+__all__ = ["protection_section", "add_protection", "plot_underside", "contacts_csv", "TrackedHolder"]
+
+
+class TrackedHolder(Holder):
+    """A :class:`~supportgen.supports.protect.Holder` that also keeps where moved contacts went
+    (build coordinates), so the report can mark them: the points of each relocation's result that
+    were not among its input contacts (a moved contact that was merged into another is not kept)."""
+
+    def __init__(self, guard: Guard, settings):
+        super().__init__(guard, settings)
+        self.moved_points = np.zeros((0, 3))
+
+    def __call__(self, contacts: Contacts, start: int = 0) -> Contacts:
+        out = super().__call__(contacts, start)
+        if not np.array_equal(out.points, contacts.points):
+            before = {tuple(p) for p in np.asarray(contacts.points, float).tolist()}
+            new = [p for p in np.asarray(out.points, float).tolist() if tuple(p) not in before]
+            if new:
+                self.moved_points = np.vstack([self.moved_points, np.array(new, float)])
+        return out
+
+
+def _moved_still_there(holder, contacts: Contacts) -> np.ndarray:
+    """The moved points of ``holder`` (a :class:`TrackedHolder`) that are contacts of the final plan."""
+    pts = getattr(holder, "moved_points", None)
+    if pts is None or not len(pts):
+        return np.zeros((0, 3))
+    final = {tuple(p) for p in np.asarray(contacts.points, float).tolist()}
+    return np.array([p for p in pts.tolist() if tuple(p) in final], float).reshape(-1, 3)
 
 
 def _tip_diameters(contacts: Contacts, plan: SupportPlan) -> np.ndarray:
@@ -92,6 +120,8 @@ def protection_section(
         "landings_avoided": landings_avoided,
         "contacts_moved": holder.moved if holder else 0,
         "contacts_merged_after_moving": holder.merged if holder else 0,
+        # Where the moved contacts now sit (input coordinates), when the holder kept them.
+        "moved_to_mm": [[round(float(v), 3) for v in p - guard.offset] for p in _moved_still_there(holder, contacts)],
         "unholdable": list(holder.unholdable) if holder else [],
         "contacts_file": file_info,
         "notes": list(guard.notes),

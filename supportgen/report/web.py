@@ -10,6 +10,11 @@ URLs, and the meshes travel as base64 typed arrays.  The page shows
   safety factor on our own colour scale, failed-check locations marked;
 - cured area and separation force per layer against height, with the printer's
   rated force and a hover read-out;
+- protected faces shaded in their own colour, contacts moved off them ringed, and
+  places that could only be held from protected surface marked; a "Protected
+  surfaces" section with the scar budget of the report's ``protection`` section
+  (omitted, as in the Markdown, when nothing is protected and no contacts file
+  was read);
 - the distribution of tip safety factors (and post / side-load factors when the
   report carries them), warnings, check failures, settings, provenance, timings
   and the resin handling cautions.
@@ -46,6 +51,8 @@ __all__ = [
     "failure_marks",
     "srgb_to_lab",
     "FAIL_COLOUR",
+    "PROTECTED_COLOUR",
+    "protected_bits",
     "SF_SCALE_MAX",
     "SF_ROUNDING_REL",
     "QUANTISE_ABOVE_BYTES",
@@ -75,6 +82,11 @@ FAIL_COLOUR = "#e4002b"  # below 1: the tip tears off
 _UNDER_COLOUR = "#ff7f11"  # between 1 and the target
 _NA_COLOUR = "#9a9a9a"  # no factor known
 _PART_COLOUR = "#e6e1d6"
+# Protected faces: reddish purple of the Okabe & Ito colour-blind-safe palette (Okabe and Ito,
+# "Color Universal Design", 2008), apart in hue and lightness from the part, the supports, the
+# safety ramp and the failure red; contacts moved off them get a ring of a darker shade of it.
+PROTECTED_COLOUR = "#cc79a7"
+_MOVED_COLOUR = "#6e2a58"
 _SUPPORT_COLOUR = "#8d9bab"
 
 _VENDOR_FILES = ("three.core.min.js", "three.module.min.js", "OrbitControls.js")
@@ -336,6 +348,138 @@ def failure_marks(report: dict) -> list[dict]:
     return out
 
 
+# --------------------------------------------------------------------------- protected surfaces
+
+
+def protected_bits(mask, n_faces: int) -> dict | None:
+    """A bool mask over the part's faces as the page carries it: ``count`` protected faces,
+    ``faces`` in all, ``bits`` (base64 of numpy.packbits, face ``i`` is bit ``7 - i % 8`` of byte
+    ``i // 8``).  None when there is no mask or it does not fit the part's faces.
+
+    Examples
+    --------
+    >>> protected_bits([True, False, True], 3)
+    {'count': 2, 'faces': 3, 'bits': 'oA=='}
+    >>> protected_bits([True], 3) is None
+    True
+    """
+    if mask is None:
+        return None
+    m = np.asarray(mask).reshape(-1)
+    if m.dtype != bool or len(m) != n_faces:
+        return None
+    return {"count": int(m.sum()), "faces": int(n_faces), "bits": _b64(np.packbits(m))}
+
+
+def _num_span(key: str, v, digits: int | None = None) -> str:
+    """A figure of the protection section, tagged with its key so a test can read it back."""
+    if isinstance(v, bool) or v is None:
+        text = "n/a"
+    elif digits is None:
+        text = str(v)
+    else:
+        f = _num(v)
+        text = "n/a" if f is None else f"{f:.{digits}f}"
+    return f'<span class="num" data-key="{_e(key)}">{_e(text)}</span>'
+
+
+def _xyz_text(v) -> str:
+    if not isinstance(v, (list, tuple)) or len(v) != 3 or any(_num(c) is None for c in v):
+        return "n/a"
+    return ", ".join(f"{float(c):.2f}" for c in v)
+
+
+def _protection_html(section) -> str:
+    """The "Protected surfaces" card: the numbers of the report's ``protection`` section, laid out as
+    the Markdown's (``document.protection_markdown``); "" when nothing is protected and no contacts
+    file was read (the Markdown omits the section then too)."""
+    if not isinstance(section, dict) or (not section.get("protected_faces") and not section.get("contacts_file")):
+        return ""
+    parts = []
+    if section.get("protected_faces"):
+        sel = ", ".join(f"<code>{_e(x)}</code>" for x in section.get("selectors") or []) or "given faces"
+        surf = section.get("protected_surface_mm2", section.get("protected_area_mm2"))
+        parts.append(
+            f'<p><i class="swatch" style="background:{PROTECTED_COLOUR}"></i>Protected: '
+            f"{_num_span('protected_faces', section.get('protected_faces'))} faces, "
+            f"{_num_span('protected_surface_mm2', surf, 3)} mm² ({sel}); no tip or landing within "
+            f"{_num_span('keep_off_mm', section.get('keep_off_mm'), 3)} mm of them.</p>"
+            '<p class="note">Scar budget: a tip counts for a region when its disc reaches it; every protected '
+            "region must show 0.</p>"
+        )
+        rows = []
+        for k, r in enumerate(section.get("regions") or []):
+            if not isinstance(r, dict):
+                continue
+            p = f"regions.{k}."
+            bad = (_num(r.get("contacts")) or 0) + (_num(r.get("landings")) or 0) > 0
+            rows.append(
+                f'<tr data-row="region-{k}"{" class=bad" if bad else ""}><td>region {_e(r.get("region"))}</td>'
+                f'<td class="num">{_num_span(p + "faces", r.get("faces"))}</td>'
+                f'<td class="num">{_num_span(p + "area_mm2", r.get("area_mm2"), 3)}</td>'
+                f"<td>{_e(_xyz_text(r.get('centre_mm')))}</td>"
+                f'<td class="num">{_num_span(p + "contacts", r.get("contacts"))}</td>'
+                f'<td class="num">{_num_span(p + "tip_area_mm2", r.get("tip_area_mm2"), 4)}</td>'
+                f'<td class="num">{_num_span(p + "landings", r.get("landings"))}</td></tr>'
+            )
+        rest = section.get("rest") if isinstance(section.get("rest"), dict) else {}
+        rows.append(
+            '<tr data-row="rest"><td>rest of the part</td><td></td><td></td><td></td>'
+            f'<td class="num">{_num_span("rest.contacts", rest.get("contacts"))}</td>'
+            f'<td class="num">{_num_span("rest.tip_area_mm2", rest.get("tip_area_mm2"), 4)}</td>'
+            f'<td class="num">{_num_span("rest.landings", rest.get("landings"))}</td></tr>'
+        )
+        parts.append(
+            '<table id="scar-budget" class="grid-table compact"><thead><tr><th>where</th><th class="num">faces</th>'
+            '<th class="num">area (mm²)</th><th>centre x, y, z (mm, input)</th><th class="num">contacts</th>'
+            f'<th class="num">tip area (mm²)</th><th class="num">landings</th></tr></thead><tbody>{"".join(rows)}'
+            "</tbody></table>"
+        )
+        moved_to = section.get("moved_to_mm") or []
+        where = (
+            f' <span class="na">(now at {"; ".join(_e(_xyz_text(p)) for p in moved_to)} mm, input; ringed in '
+            f'<i class="swatch ring" style="border-color:{_MOVED_COLOUR}"></i>in the 3D view)</span>'
+            if moved_to
+            else ""
+        )
+        unholdable = [u for u in section.get("unholdable") or [] if isinstance(u, dict)]
+        items = [
+            f"<li>contacts on protected faces: {_num_span('contacts_on_protected', section.get('contacts_on_protected'))}"
+            f"; landings on protected faces: {_num_span('landings_on_protected', section.get('landings_on_protected'))}"
+            "</li>",
+            f"<li>contacts moved off protected faces: {_num_span('contacts_moved', section.get('contacts_moved'))} "
+            f"(merged after moving: {_num_span('contacts_merged_after_moving', section.get('contacts_merged_after_moving'))})"
+            f"{where}</li>",
+            "<li>landings avoided (posts the same contacts would stand on protected faces without the keep-off): "
+            f"{_num_span('landings_avoided', section.get('landings_avoided'))}</li>",
+            f'<li>could only be held from protected surface: <span class="num" data-key="unholdable">'
+            f"{len(unholdable)}</span></li>",
+        ]
+        parts.append(f'<ul id="protection-figures" class="plain">{"".join(items)}</ul>')
+        if unholdable:
+            lis = []
+            for k, u in enumerate(unholdable):
+                rot = u.get("suggested_rotation") if isinstance(u.get("suggested_rotation"), dict) else {}
+                lis.append(
+                    f'<li class="failure"><span class="tag prot">protected only</span> at '
+                    f"{_e(_xyz_text(u.get('point_mm')))} mm (input), region {_e(u.get('region'))}: turn "
+                    f"{_e(rot.get('angle_deg'))} degrees about ({_e(_xyz_text(rot.get('axis')))}) "
+                    f'<button class="link" data-focus-prot="{k}">show in 3D</button></li>'
+                )
+            parts.append(f'<ul id="unholdable" class="warnings">{"".join(lis)}</ul>')
+    info = section.get("contacts_file")
+    if isinstance(info, dict):
+        parts.append(
+            f'<p id="contacts-file">Contacts file <code>{_e(info.get("path"))}</code>: '
+            f"{_num_span('contacts_file.rows', info.get('rows'))} rows "
+            f"({_num_span('contacts_file.locked', info.get('locked'))} locked) used instead of generated contacts; "
+            f"the check added {_num_span('contacts_file.added_by_check', info.get('added_by_check', 0))}.</p>"
+        )
+    for note in section.get("notes") or []:
+        parts.append(f'<p class="note">{_e(note)}</p>')
+    return f'<section class="card" id="protection"><h2>Protected surfaces</h2>{"".join(parts)}</section>'
+
+
 # --------------------------------------------------------------------------- SVG charts
 
 
@@ -519,7 +663,7 @@ def _histogram(values: np.ndarray, target: float | None, title: str, element_id:
     )
 
 
-def _legend(target: float) -> str:
+def _legend(target: float, protected: int = 0, moved: int = 0, unholdable: int = 0) -> str:
     stops = np.linspace(0, 1, 9)
     grad = ", ".join(f"{_css(c)} {100 * t:.0f}%" for c, t in zip(np.round(_ramp(stops) * 255).astype(int), stops))
     lo = max(target, 1.0)
@@ -536,8 +680,29 @@ def _legend(target: float) -> str:
         f'<span><i style="background:{_NA_COLOUR}"></i>n/a</span></div>'
         f'<div class="swatches"><span><i style="background:{_PART_COLOUR}"></i>part</span>'
         f'<span><i style="background:{_SUPPORT_COLOUR}"></i>supports and base</span>'
-        f'<span><i class="ring"></i>failed check</span></div></div>'
+        f'<span><i class="ring"></i>failed check</span></div>{_protected_legend(protected, moved, unholdable)}</div>'
     )
+
+
+def _protected_legend(protected: int, moved: int, unholdable: int) -> str:
+    if not (protected or moved or unholdable):
+        return ""
+    items = []
+    if protected:
+        items.append(
+            f'<span id="legend-protected"><i style="background:{PROTECTED_COLOUR}"></i>protected faces ({protected})</span>'
+        )
+    if moved:
+        items.append(
+            f'<span id="legend-moved"><i class="ring" style="border-color:{_MOVED_COLOUR}"></i>'
+            f"contact moved off a protected face ({moved})</span>"
+        )
+    if unholdable:
+        items.append(
+            f'<span id="legend-unholdable"><i class="ring" style="border-color:{PROTECTED_COLOUR}"></i>'
+            f"held only from protected surface ({unholdable})</span>"
+        )
+    return f'<div class="swatches">{"".join(items)}</div>'
 
 
 # --------------------------------------------------------------------------- tables
@@ -634,7 +799,9 @@ def _importmap() -> str:
     return f'<script type="importmap">{_json_script({"imports": imports})}</script>'
 
 
-def part_page(report: dict, combined, supports, part, contacts_records: list[dict]) -> str:
+def part_page(
+    report: dict, combined, supports, part, contacts_records: list[dict], *, protected=None, offset=None
+) -> str:
     """One self-contained HTML page for a part's report (see the module notes).
 
     Parameters
@@ -645,6 +812,12 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
         The supported part, the supports with their base, and the placed part alone.
     contacts_records : list of dict
         ``Contacts.to_records()``: point, diameter_mm, load_n (and safety_factor if known).
+    protected : (len(part.faces),) bool array, optional
+        The run's protected faces of ``part`` (``Guard.faces``), shaded in the 3D view; a mask
+        that does not fit ``part`` is not drawn.
+    offset : (3,) array, optional
+        Input to build coordinates (``Guard.offset``): places the moved contacts and the places
+        held only from protected surface, which the report records in input coordinates.
     """
     report = report if isinstance(report, dict) else {}
     name = _get(report, "input", "name", default="part")
@@ -668,6 +841,19 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
     c = contact_safety(contacts_records, report)
     colours = sf_colours(c["sf"], target)
     fails = failure_marks(report)
+    prot = _get(report, "protection", default={})
+    prot = prot if isinstance(prot, dict) else {}
+    shift = np.zeros(3)
+    if offset is not None and np.asarray(offset).shape == (3,) and np.isfinite(np.asarray(offset, float)).all():
+        shift = np.asarray(offset, float)
+
+    def build_xyz(p):
+        ok = isinstance(p, (list, tuple)) and len(p) == 3 and all(_num(v) is not None for v in p)
+        return (np.asarray(p, float) + shift).tolist() if ok and offset is not None else None
+
+    moved_xyz = [q for q in (build_xyz(p) for p in prot.get("moved_to_mm") or []) if q is not None]
+    unholdable = [u for u in prot.get("unholdable") or [] if isinstance(u, dict)]
+    unheld_xyz = [build_xyz(u.get("point_mm")) for u in unholdable]
     scene = {
         "part": encode_mesh(pv, pf),
         "supports": encode_mesh(sv, sf_),
@@ -679,10 +865,20 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
             "colours": _b64(colours),
         },
         "failures": fails,
-        "colours": {"part": _PART_COLOUR, "supports": _SUPPORT_COLOUR, "fail": FAIL_COLOUR},
+        "protected": protected_bits(protected, len(pf)),
+        "moved": moved_xyz,
+        "unholdable": unheld_xyz,
+        "colours": {
+            "part": _PART_COLOUR,
+            "supports": _SUPPORT_COLOUR,
+            "fail": FAIL_COLOUR,
+            "protected": PROTECTED_COLOUR,
+            "moved": _MOVED_COLOUR,
+        },
         "plate": [_num(_get(report, "settings", "printer", k)) for k in ("build_x_mm", "build_y_mm")],
     }
     plot_svg, plot_data = _layer_plot(report)
+    n_protected = scene["protected"]["count"] if scene["protected"] else 0
 
     sup = _get(report, "supports", default={})
     frc = _get(report, "forces", default={})
@@ -801,6 +997,11 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
         if len(c_sf)
         else "contact safety factors: n/a"
     )
+    tog_protected = (
+        '\n      <label><input id="tog-protected" type="checkbox" checked> protected faces</label>'
+        if n_protected
+        else ""
+    )
     body = f"""
 <header class="top"><div><div class="kicker">supportgen report</div><h1 id="title">{_e(name)}</h1></div>
 <div id="verdict" class="verdict {vclass}">{_e(verdict)}</div></header>
@@ -816,11 +1017,11 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
       <label><input id="tog-part" type="checkbox" checked> part</label>
       <label><input id="tog-supports" type="checkbox" checked> supports</label>
       <label><input id="tog-contacts" type="checkbox" checked> contacts</label>
-      <label><input id="tog-xray" type="checkbox"> see-through supports</label>
+      <label><input id="tog-xray" type="checkbox"> see-through supports</label>{tog_protected}
     </div>
     <div class="hint">Drag to orbit, scroll to zoom, right-drag to pan. Grid: 10 mm squares on the build plate.</div>
   </div>
-  <aside class="side"><div id="figures" class="figures">{cards_html}</div>{_legend(target)}
+  <aside class="side"><div id="figures" class="figures">{cards_html}</div>{_legend(target, n_protected, len(moved_xyz), len(unholdable))}
     <div class="contact-stats">{_e(contact_note)}</div>
   </aside>
 </section>
@@ -829,6 +1030,7 @@ def part_page(report: dict, combined, supports, part, contacts_records: list[dic
     <div id="readout" class="readout">Hover over the plot to read a layer.</div></div></section>
 <section class="card"><h2>Safety factor distributions</h2><div class="hists">{"".join(hists)}</div></section>
 <section class="card" id="warnings"><h2>Warnings and checks</h2>{warnings_html}</section>
+{_protection_html(prot)}
 <section class="two">
   <div class="card"><h2>Provenance</h2>{_table(prov_rows, "provenance")}<h3>Time per stage</h3>{timing_html}</div>
   <div class="card"><h2>Settings</h2>{settings_html}</div>

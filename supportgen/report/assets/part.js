@@ -32,6 +32,14 @@ function geometry(m) {
   return g;
 }
 
+function protectedMask(p, nFaces) {
+  if (!p || !p.count || p.faces !== nFaces) return null;
+  const bits = new Uint8Array(bytes(p.bits));
+  const mask = new Uint8Array(nFaces);
+  for (let f = 0; f < nFaces; f++) mask[f] = (bits[f >> 3] >> (7 - (f & 7))) & 1;
+  return mask;
+}
+
 function setupView() {
   const data = JSON.parse(document.getElementById('scene-data').textContent);
   const host = document.getElementById('view3d');
@@ -59,11 +67,34 @@ function setupView() {
 
   const groups = {};
   const partGeo = geometry(data.part);
+  const partMat = new THREE.MeshStandardMaterial(
+    { color: data.colours.part, roughness: 0.65, metalness: 0.0, flatShading: true });
+  const protMat = new THREE.MeshStandardMaterial(
+    { color: data.colours.protected, roughness: 0.65, metalness: 0.0, flatShading: true });
+  let protectedDrawn = 0;
   if (partGeo) {
-    groups.part = new THREE.Mesh(partGeo, new THREE.MeshStandardMaterial(
-      { color: data.colours.part, roughness: 0.65, metalness: 0.0, flatShading: true }));
+    // Protected faces (a bit per face, numpy.packbits order): the index is reordered so they come
+    // last and drawn as a second group in their own material.
+    const prot = protectedMask(data.protected, data.part.faces);
+    if (prot) {
+      const idx = partGeo.getIndex().array;
+      const out = new idx.constructor(idx.length);
+      let a = 0;
+      let b = idx.length;
+      for (let f = 0; f < data.part.faces; f++) {
+        if (prot[f]) { b -= 3; out.set(idx.subarray(3 * f, 3 * f + 3), b); protectedDrawn++; }
+        else { out.set(idx.subarray(3 * f, 3 * f + 3), a); a += 3; }
+      }
+      partGeo.setIndex(new THREE.BufferAttribute(out, 1));
+      partGeo.addGroup(0, a, 0);
+      partGeo.addGroup(a, idx.length - a, 1);
+      groups.part = new THREE.Mesh(partGeo, [partMat, protMat]);
+    } else {
+      groups.part = new THREE.Mesh(partGeo, partMat);
+    }
     scene.add(groups.part);
   }
+  body.dataset.protectedFaces = String(protectedDrawn);
   const supGeo = geometry(data.supports);
   if (supGeo) {
     groups.supports = new THREE.Mesh(supGeo, new THREE.MeshStandardMaterial(
@@ -106,6 +137,35 @@ function setupView() {
     const line = new THREE.Line(new THREE.BufferGeometry().setFromPoints([new THREE.Vector3(p.x, p.y, 0), p]),
       new THREE.LineBasicMaterial({ color: data.colours.fail }));
     scene.add(line);
+  }
+
+  // Contacts moved off protected faces: a ring round each where it now sits.
+  const ringR = radius * 0.022;
+  if ((data.moved || []).length) {
+    const g = new THREE.Group();
+    for (const q of data.moved) {
+      const ring = new THREE.Mesh(new THREE.TorusGeometry(ringR, ringR * 0.18, 8, 32),
+        new THREE.MeshBasicMaterial({ color: data.colours.moved, depthTest: false, transparent: true }));
+      ring.position.set(q[0], q[1], q[2]);
+      ring.renderOrder = 9;
+      g.add(ring);
+    }
+    groups.moved = g;
+    scene.add(g);
+  }
+  // Places that could only be held from protected surface: a larger ring and a line down to the plate.
+  const unheldPoints = [];
+  for (const q of data.unholdable || []) {
+    if (!q) { unheldPoints.push(null); continue; }
+    const p = new THREE.Vector3(q[0], q[1], q[2]);
+    unheldPoints.push(p);
+    const ring = new THREE.Mesh(new THREE.TorusGeometry(radius * 0.045, radius * 0.007, 8, 40),
+      new THREE.MeshBasicMaterial({ color: data.colours.protected, depthTest: false, transparent: true }));
+    ring.position.copy(p);
+    ring.renderOrder = 10;
+    scene.add(ring);
+    scene.add(new THREE.Line(new THREE.BufferGeometry().setFromPoints([new THREE.Vector3(p.x, p.y, 0), p]),
+      new THREE.LineBasicMaterial({ color: data.colours.protected })));
   }
 
   // The build plate: a 10 mm grid under the part.
@@ -156,6 +216,22 @@ function setupView() {
     const box = document.getElementById(id);
     if (!groups[key]) { box.disabled = true; continue; }
     box.addEventListener('change', () => { groups[key].visible = box.checked; render(); });
+  }
+  const protBox = document.getElementById('tog-protected');
+  if (protBox && groups.part && Array.isArray(groups.part.material)) {
+    protBox.addEventListener('change', () => {
+      groups.part.material = [partMat, protBox.checked ? protMat : partMat];
+      if (groups.moved) groups.moved.visible = protBox.checked;
+      render();
+    });
+  }
+  for (const b of document.querySelectorAll('button[data-focus-prot]')) {
+    b.addEventListener('click', () => {
+      const p = unheldPoints[Number(b.dataset.focusProt)];
+      if (!p) return;
+      host.scrollIntoView({ behavior: 'smooth', block: 'center' });
+      look([0.9, -1.3, 0.85], 0.35, p);
+    });
   }
   for (const b of document.querySelectorAll('button[data-focus]')) {
     b.addEventListener('click', () => {
