@@ -497,7 +497,7 @@ def independent_check(
 
     Fails (``failures`` lists why) when the file does not read back watertight (trimesh),
     when it cures nothing, when a layer region larger than a speck overlaps the layer below
-    by less than a speck (an island: it starts in mid-air; regions closer than half a pixel
+    by less than a speck (an island: it starts in mid-air; regions closer than one pixel
     are one region, as the printer cures them), when its first layer does not sit
     on the plate, or when it holds less volume than the input part (``part_volume_mm3``).
     """
@@ -521,10 +521,12 @@ def independent_check(
     if mesh.bounds[0, 2] > layer_mm / 2:
         failures.append("off-plate")
     speck = speck_area_mm2(pixel_mm)
-    # A printer cannot open a gap narrower than half a pixel (its smallest reliable feature is
-    # 2-3 pixels, common practice: ../shared/REFERENCE.md section 6), so regions that close
-    # gaps are one region: each section is closed by a quarter pixel (buffer out, then in).
-    close = pixel_mm / 4
+    # A printer does not open a gap narrower than one pixel: where pixel centres fall decides
+    # whether the gap has an unlit pixel at all, and light spreads past a lit pixel's edge
+    # (smallest reliable feature 2-3 pixels, common practice: ../shared/REFERENCE.md section 6).
+    # So regions closer than a pixel are one region: each section is closed by half a pixel
+    # (buffer out, then in); a region apart by a pixel or more stays apart.
+    close = pixel_mm / 2
     layers = [(z, g.buffer(close).buffer(-close), t) for z, g, t in layer_polygons(mesh, layer_mm)]
     cured = sum(g.area for _, g, _ in layers) * layer_mm
     out["cured_mm3"] = float(cured)

@@ -27,12 +27,7 @@ import stress_corpus as sc  # noqa: E402
 CASES = sc.ci_cases(30)
 
 #: Known failures today: case id -> failure class (see benchmarks/STRESS_FINDINGS.md).
-KNOWN = {
-    "messy-selfx-lattice-00": "check: islands of 7 pixels left on a self-intersecting lattice rebuilt from its "
-    "winding number (the grid's bumps on thin struts; verify fails too)",
-    "messy-hole-lattice-01": "check: an island the project's verify counts as held by a pixel within its near "
-    "reach (analysis/layers.py anchoring), which the independent re-slice does not",
-}
+KNOWN: dict[str, str] = {}
 
 
 def _param(case):
@@ -116,6 +111,21 @@ def test_check_finds_an_open_mesh_and_a_speck_is_no_island(tmp_path):
     assert "not-watertight" in sc.independent_check(_write(tmp_path, open_box, "open.stl"))["failures"]
     pin = trimesh.creation.box((0.05, 0.05, 1), trimesh.transformations.translation_matrix((0, 0, 12)))
     assert sc.independent_check(_write(tmp_path, trimesh.util.concatenate([box, pin]), "pin.stl"))["islands"] == 0
+
+
+def test_check_joins_regions_under_a_pixel_apart_and_not_farther(tmp_path):
+    # Exact geometry: a 2 mm block hangs beside a 10 mm column from z = 5 to 7, a gap g away.
+    # A gap of 0.4 pixel (0.02 mm) is not opened by a printer (smallest reliable feature 2-3
+    # pixels, common practice), so the block is held by the column's side; at 2 pixels
+    # (0.1 mm) it starts in mid-air: one island at its first layer, 4 mm^2.
+    column = trimesh.creation.box((10, 10, 10), trimesh.transformations.translation_matrix((0, 0, 5)))
+    for gap, islands in ((0.02, 0), (0.1, 1)):
+        block = trimesh.creation.box((2, 2, 2), trimesh.transformations.translation_matrix((6 + gap, 0, 6)))
+        out = sc.independent_check(_write(tmp_path, trimesh.util.concatenate([column, block]), f"gap{gap}.stl"))
+        assert out["islands"] == islands, (gap, out)
+        if islands:
+            assert out["first_island"]["z_mm"] == pytest.approx(5.025)
+            assert out["first_island"]["area_mm2"] == pytest.approx(4.0, rel=1e-6)
 
 
 def test_check_layers_match_trimesh_polygons_full(tmp_path):
