@@ -159,10 +159,14 @@ def add_protection(report: dict, section: dict, name: str) -> dict:
     return {**report, "protection": section, "warnings": warnings}
 
 
+_PROTECTED_RGB = (0.8, 0.475, 0.655)  # #cc79a7, as on the report page
+
+
 def plot_underside(
     part: trimesh.Trimesh, protected: np.ndarray | None, contacts: Contacts, plan: SupportPlan, title: str
 ) -> bytes:
-    """PNG bytes: the part seen from below (x mirrored), protected faces shaded red,
+    """PNG bytes: the part seen from below (x mirrored), protected faces shaded reddish purple
+    (the report page's colour, #cc79a7 of Okabe and Ito's colour-blind-safe palette),
     contacts marked (crosses on a protected face), landings as triangles."""
     from matplotlib.collections import PolyCollection
 
@@ -173,9 +177,7 @@ def plot_underside(
     order = np.argsort(-tri[:, :, 2].min(axis=1), kind="stable")
     shade = 0.55 + 0.4 * np.clip(-nz, 0, 1)
     colours = np.column_stack([shade, shade, shade, np.ones(len(tri))])
-    colours[prot] = np.column_stack(
-        [0.85 * np.ones(prot.sum()), 0.3 * shade[prot], 0.3 * shade[prot], np.ones(prot.sum())]
-    )
+    colours[prot, :3] = np.outer(0.6 + 0.4 * shade[prot], _PROTECTED_RGB)
     fig = new_figure(figsize=(5.6, 5.6))
     ax = fig.subplots()
     xy = tri[order][:, :, :2] * np.array([-1.0, 1.0])
@@ -190,7 +192,7 @@ def plot_underside(
         from matplotlib.patches import Patch
 
         handles, _ = ax.get_legend_handles_labels()
-        handles.append(Patch(color=(0.85, 0.3, 0.3), label=f"protected faces ({int(prot.sum())})"))
+        handles.append(Patch(color=_PROTECTED_RGB, label=f"protected faces ({int(prot.sum())})"))
         ax.legend(handles=handles, loc="upper right", fontsize=7)
     else:
         ax.legend(loc="upper right", fontsize=7)
