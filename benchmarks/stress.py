@@ -22,6 +22,7 @@ Usage::
 
     python benchmarks/stress.py [-o OUTDIR] [--cases N] [--case ID] [--workers 2]
                                 [--timeout 300] [--seed 0] [--keep-outputs] [--full-save] [--resume] [--summarise] [--ci] [--list]
+                                [--orient keep|auto]
 """
 
 from __future__ import annotations
@@ -80,8 +81,9 @@ def _message_class(msg: str, case_id: str) -> str:
     return msg[:110]
 
 
-def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = False) -> dict:
-    """Build, support, save and check one case; never raises."""
+def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = False, orient: str = "keep") -> dict:
+    """Build, support (standing as given, or as ``orient="auto"`` chooses), save and check one case;
+    never raises."""
     settings = supportgen.Settings()
     pr = settings.printer
     row = {"id": case.id, "generator": case.generator, "seed": case.seed, "params": case.params, "expect": case.expect}
@@ -102,7 +104,7 @@ def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = 
     part_volume = abs(float(mesh.volume)) if clean else None
     t0 = time.perf_counter()
     try:
-        result = supportgen.generate(str(path), settings, name=case.id)
+        result = supportgen.generate(str(path), settings, name=case.id, orient=orient)
         if full_save:
             paths = result.save(outdir / "cases" / case.id)
         else:  # the combined solid only, by the writer Result.save uses (the plots cost ~3 s a case)
@@ -164,9 +166,9 @@ def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = 
     return row
 
 
-def _child(case, outdir, keep, full_save, conn):
+def _child(case, outdir, keep, full_save, orient, conn):
     try:
-        conn.send(run_case(case, outdir, keep, full_save))
+        conn.send(run_case(case, outdir, keep, full_save, orient))
     finally:
         conn.close()
 
@@ -194,6 +196,7 @@ def run_cases(
     full_save: bool = False,
     echo=print,
     log: Path | None = None,
+    orient: str = "keep",
 ) -> list[dict]:
     """Run ``cases`` in up to ``workers`` forked processes, one per case, each killed past ``timeout``;
     each finished row is appended to ``log`` (JSON lines) as it arrives, when given."""
@@ -208,7 +211,7 @@ def run_cases(
         while todo and len(running) < workers:
             case = todo.pop(0)
             recv, send = ctx.Pipe(duplex=False)
-            p = ctx.Process(target=_child, args=(case, outdir, keep, full_save, send), daemon=True)
+            p = ctx.Process(target=_child, args=(case, outdir, keep, full_save, orient, send), daemon=True)
             p.start()
             send.close()
             running[case.id] = (case, p, recv, time.perf_counter())
@@ -318,6 +321,12 @@ def main(argv=None) -> int:
         "--summarise", action="store_true", help="write the table from OUTDIR/stress.jsonl without running anything"
     )
     ap.add_argument("--list", action="store_true", help="list the case ids and stop")
+    ap.add_argument(
+        "--orient",
+        choices=("keep", "auto"),
+        default="keep",
+        help="support each case as given (default) or standing as the orientation search chooses",
+    )
     args = ap.parse_args(argv)
     cases = sc.ci_cases(30, args.seed) if args.ci else sc.make_cases(args.seed)
     if not sc.corpus_available():
@@ -357,7 +366,14 @@ def main(argv=None) -> int:
         print(f"summarising {len(rows)} of {len(cases)} cases")
     else:
         rows = done + run_cases(
-            cases_left, args.output, args.workers, args.timeout, args.keep_outputs, args.full_save, log=log
+            cases_left,
+            args.output,
+            args.workers,
+            args.timeout,
+            args.keep_outputs,
+            args.full_save,
+            log=log,
+            orient=args.orient,
         )
     order = {c.id: i for i, c in enumerate(cases)}
     rows.sort(key=lambda r: order[r["id"]])
