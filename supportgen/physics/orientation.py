@@ -91,6 +91,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+import scipy.sparse as sparse
 import trimesh
 from scipy import ndimage
 
@@ -120,6 +121,7 @@ __all__ = [
     "bolt_group_loads",
     "allowed_tip_load",
     "tip_loads",
+    "minima_pairs",
     "weighted_totals",
     "layer_profile",
     "score_directions",
@@ -241,7 +243,9 @@ def _check_mesh(mesh) -> None:
         raise MeshError("orientation: the mesh has no faces; load a closed triangle mesh first")
 
 
-def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=None) -> dict[str, np.ndarray]:
+def surface_terms(
+    mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=None, minima=None
+) -> dict[str, np.ndarray]:
     """Height, overhang area, strict local minima, support volume and protected area facing down
     for many up-directions at once.
 
@@ -250,28 +254,23 @@ def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=Non
     of :func:`supportgen.analysis.overhangs.overhang_faces`); every face counts,
     since the part stands ``elevation_mm`` above the plate on its supports.
     ``protect`` is a bool mask over the faces (None: no protected face); a
-    local minimum is protected when any face at it is.
+    local minimum is protected when any face at it is.  ``minima``: the pairs of
+    :func:`minima_pairs` for ``dirs``, when already found.
     """
     vt = np.ascontiguousarray(np.asarray(mesh.vertices, float).T)
     nt = np.ascontiguousarray(np.asarray(mesh.face_normals, float).T)
     a = np.asarray(mesh.area_faces, float)
     ct = np.ascontiguousarray(np.asarray(mesh.triangles_center, float).T)
-    e = np.asarray(mesh.edges_unique)
-    src = np.concatenate([e[:, 0], e[:, 1]])
-    dst = np.concatenate([e[:, 1], e[:, 0]])
-    order = np.argsort(src, kind="stable")
-    src, dst = src[order], dst[order]
-    starts = np.flatnonzero(np.r_[True, src[1:] != src[:-1]])
-    edge_t = np.ascontiguousarray(vt[:, dst] - vt[:, src])
     cos_a = np.cos(np.radians(settings.rules.overhang_angle_deg))
     elev = settings.rules.elevation_mm
+    mk, mv = minima_pairs(mesh, dirs) if minima is None else minima
     keys = ("height_mm", "overhang_area_mm2", "minima", "support_volume_mm3", "protected_mm2")
     out = {k: np.zeros(len(dirs)) for k in keys}
     guarded = _protect_mask(mesh, protect)
     a_guarded = np.where(guarded, a, 0.0)
     v_guarded = np.zeros(len(mesh.vertices), bool)
     v_guarded[np.asarray(mesh.faces)[guarded].ravel()] = True
-    v_guarded = v_guarded[src[starts]]  # per vertex group of the minima test
+    out["minima"] = np.bincount(mk, minlength=len(dirs)).astype(float)
     scar = np.pi * settings.rules.tip_diameter_mm**2 / 4.0
     for lo in range(0, len(dirs), _DIR_CHUNK):
         d = np.asarray(dirs[lo : lo + _DIR_CHUNK], float)  # (k, 3): rows are directions
@@ -284,11 +283,36 @@ def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=Non
         out["overhang_area_mm2"][sl] = over @ a
         lift = d @ ct - hmin[:, None] + elev
         out["support_volume_mm3"][sl] = np.where(over, down * lift, 0.0) @ a
-        rise = np.minimum.reduceat(d @ edge_t, starts, axis=1)
-        out["minima"][sl] = (rise > EPS_SMALL).sum(axis=1)
         if guarded.any():
-            out["protected_mm2"][sl] = over @ a_guarded + scar * ((rise > EPS_SMALL) & v_guarded).sum(axis=1)
+            out["protected_mm2"][sl] = over @ a_guarded
+    if guarded.any():
+        out["protected_mm2"] += scar * np.bincount(mk[v_guarded[mv]], minlength=len(dirs))
     return out
+
+
+def minima_pairs(mesh: trimesh.Trimesh, dirs) -> tuple[np.ndarray, np.ndarray]:
+    """Strict local minima of height along each up-direction: (direction index, vertex index) pairs.
+
+    A vertex is a strict minimum when every edge from it rises by more than
+    ``EPS_SMALL`` (the rule of :mod:`supportgen.analysis.overhangs`).  Vectorised over
+    blocks of directions, O(E K) for E edges and K directions.
+    """
+    dirs = np.atleast_2d(np.asarray(dirs, float))
+    vt = np.asarray(mesh.vertices, float).T
+    e = np.asarray(mesh.edges_unique)
+    src = np.concatenate([e[:, 0], e[:, 1]])
+    dst = np.concatenate([e[:, 1], e[:, 0]])
+    order = np.argsort(src, kind="stable")
+    src, dst = src[order], dst[order]
+    starts = np.flatnonzero(np.r_[True, src[1:] != src[:-1]])
+    edge_t = np.ascontiguousarray(vt[:, dst] - vt[:, src])
+    ks, vs = [], []
+    for lo in range(0, len(dirs), _DIR_CHUNK):
+        rise = np.minimum.reduceat(dirs[lo : lo + _DIR_CHUNK] @ edge_t, starts, axis=1)
+        k, g = np.nonzero(rise > EPS_SMALL)
+        ks.append(k + lo)
+        vs.append(src[starts][g])
+    return np.concatenate(ks).astype(np.int64), np.concatenate(vs).astype(np.int64)
 
 
 def _protect_mask(mesh, protect) -> np.ndarray:
@@ -342,7 +366,7 @@ def allowed_tip_load(settings) -> float:
     return settings.resin.green_tensile_mpa * np.pi * d * d / 4.0 / settings.rules.safety_factor
 
 
-def tip_loads(mesh: trimesh.Trimesh, dirs, z_mm, force_n, centroid_xy, settings) -> np.ndarray:
+def tip_loads(mesh: trimesh.Trimesh, dirs, z_mm, force_n, centroid_xy, settings, minima=None) -> np.ndarray:
     """Worst tip load (N) of each up-direction's estimated plan under its near-peak layers.
 
     Parameters
@@ -355,6 +379,8 @@ def tip_loads(mesh: trimesh.Trimesh, dirs, z_mm, force_n, centroid_xy, settings)
         Where each layer's force acts (its area centroid), in the frame of
         :func:`rotation_to_up` of the direction (as :func:`layer_profile` gives it).
     settings : Settings
+    minima : tuple of two int arrays, optional
+        :func:`minima_pairs` of ``dirs``, when already found.
 
     Returns
     -------
@@ -376,14 +402,21 @@ def tip_loads(mesh: trimesh.Trimesh, dirs, z_mm, force_n, centroid_xy, settings)
     moment about its centroid is ``A/12 sum_i (v_i - c)(v_i - c)^T``), found by
     (K, F) x (F, 9) products; the layer's force is shared by
     :func:`bolt_group_loads` in that continuous form, and the worst tip is at the
-    group's extreme point in the direction ``S^-1 (a - g)`` (a face vertex, or a
-    ring's edge).  Not modelled: contacts the plan adds where a layer reaches too
+    group's extreme point in the direction ``S^-1 (a - g)`` (a vertex below the
+    layer of a face carrying tips, or a ring's edge).  Not modelled: contacts the plan adds where a layer reaches too
     far, and which 3-D component a tip holds (every tip below a layer holds it).
     Cost O(K (F + V) J).
     """
     dirs = np.atleast_2d(np.asarray(dirs, float))
-    z_mm, force_n = np.atleast_2d(z_mm), np.atleast_2d(force_n)
-    centroid_xy = np.asarray(centroid_xy, float).reshape(len(dirs), -1, 2)
+    # Blocks of nearby directions share most of their down-facing faces: visit them in bands.
+    all_k, all_v = minima_pairs(dirs=dirs, mesh=mesh) if minima is None else minima
+    visit = _banded_order(dirs)
+    rank = np.empty_like(visit)
+    rank[visit] = np.arange(len(visit))
+    all_k = rank[all_k]  # direction indices in visiting order
+    dirs = dirs[visit]
+    z_mm, force_n = np.atleast_2d(z_mm)[visit], np.atleast_2d(force_n)[visit]
+    centroid_xy = np.asarray(centroid_xy, float).reshape(len(visit), -1, 2)[visit]
     rules = settings.rules
     verts = np.asarray(mesh.vertices, float)
     origin = verts.mean(axis=0)
@@ -396,17 +429,13 @@ def tip_loads(mesh: trimesh.Trimesh, dirs, z_mm, force_n, centroid_xy, settings)
     nt = np.ascontiguousarray(np.asarray(mesh.face_normals, float).T)
     a = np.asarray(mesh.area_faces, float)
     dev = tri - c[:, None, :]
-    # Per face: second moment per unit weight about the origin, (1/12) sum (v_i - c)(v_i - c)^T + c c^T.
-    t9 = (np.einsum("fia,fib->fab", dev, dev) / 12.0 + c[:, :, None] * c[:, None, :]).reshape(-1, 9)
-    vv9 = (v[:, :, None] * v[:, None, :]).reshape(-1, 9)
-    e = np.asarray(mesh.edges_unique)
-    src = np.concatenate([e[:, 0], e[:, 1]])
-    dst = np.concatenate([e[:, 1], e[:, 0]])
-    order = np.argsort(src, kind="stable")
-    src, dst = src[order], dst[order]
-    starts = np.flatnonzero(np.r_[True, src[1:] != src[:-1]])
-    edge_t = np.ascontiguousarray(vt[:, dst] - vt[:, src])
-    group_v = src[starts]
+    # Per face, per unit weight: first moment c and second moment about the origin,
+    # (1/12) sum (v_i - c)(v_i - c)^T + c c^T; per vertex: v and v v^T. One product gives all.
+    t_face = np.hstack([c, (np.einsum("fia,fib->fab", dev, dev) / 12.0 + c[:, :, None] * c[:, None, :]).reshape(-1, 9)])
+    t_vert = np.hstack([v, (v[:, :, None] * v[:, None, :]).reshape(-1, 9)])
+    # Which faces touch each vertex: a (V, F) incidence, to find the vertices of the faces carrying tips.
+    nf = len(faces)
+    touch = sparse.csr_matrix((np.ones(3 * nf), (faces.ravel(), np.repeat(np.arange(nf), 3))), shape=(len(v), nf))
     cos_a = np.cos(np.radians(rules.overhang_angle_deg))
     s = rules.contact_spacing_mm
     ring_r = 0.5 * s
@@ -416,45 +445,70 @@ def tip_loads(mesh: trimesh.Trimesh, dirs, z_mm, force_n, centroid_xy, settings)
     for lo in range(0, len(dirs), _DIR_CHUNK):
         d = dirs[lo : lo + _DIR_CHUNK]
         k = len(d)
+        rows = np.arange(k)
         proj = np.stack([rotation_to_up(x)[:2] for x in d])  # (k, 2, 3): plate axes of each turned frame
         hv = d @ vt
         hmin = hv.min(axis=1, keepdims=True)
         hv -= hmin
-        hf = d @ ct - hmin
-        down = np.clip(-(d @ nt), -1.0, 1.0)
-        tilt = np.degrees(np.arccos(down))
+        # Only the faces that face down in some direction of the block can carry tips.
+        down = -(d @ nt)
+        over_all = down > cos_a
+        in_u = over_all.any(axis=0)
+        over = over_all[:, in_u]
+        hf = d @ ct[:, in_u] - hmin
+        tilt = np.degrees(np.arccos(np.clip(down[:, in_u][over], -1.0, 1.0)))
         spacing = s * (1.0 + 0.5 * np.clip(tilt / max(rules.overhang_angle_deg, EPS_ZERO), 0.0, 1.0))
-        w0 = np.where(down > cos_a, RSA_DENSITY * a / spacing**2, 0.0)
-        mins = np.zeros((k, len(v)), bool)
-        mins[:, group_v] = np.minimum.reduceat(d @ edge_t, starts, axis=1) > EPS_SMALL
-        mins[np.arange(k), np.argmin(hv, axis=1)] = True  # the lowest point is always held
-        pv = np.einsum("kij,jv->kiv", proj, vt)  # (k, 2, V) plate coordinates of the vertices
+        w0 = np.zeros(over.shape)
+        w0[over] = RSA_DENSITY * np.broadcast_to(a[in_u], over.shape)[over] / spacing**2
+        t_u = t_face[in_u]
+        # Vertices of the faces carrying tips (a tip may sit there once it is below the layer).
+        on_v = (touch @ np.ascontiguousarray(over_all.T, dtype=float)).T > 0  # (k, V)
+        v_on = np.flatnonzero(on_v.any(axis=0))
+        h_on = np.where(on_v[:, v_on], hv[:, v_on], np.inf)
+        pv_on = np.einsum("kij,jv->kiv", proj, vt[:, v_on])  # plate coordinates of those vertices
+        # Strict local minima, and the lowest point, as (direction, vertex) pairs.
+        pick = (all_k >= lo) & (all_k < lo + k)
+        mk, mv = np.r_[all_k[pick] - lo, rows], np.r_[all_v[pick], np.argmin(hv, axis=1)]
+        mk, mv = np.unique(np.column_stack([mk, mv]), axis=0).T
+        m_h = hv[mk, mv]
+        m_t = t_vert[mv]
+        m_xy = np.einsum("pij,pj->pi", proj[mk], v[mv])
         shift = proj @ origin  # (k, 2): the layer centroids are in the turned frame of the mesh as given
         worst = np.zeros(k)
         for j in range(z_mm.shape[1]):
-            zj = z_mm[lo : lo + k, j][:, None]
-            w = np.where(hf < zj, w0, 0.0)
-            m = (mins & (hv < zj)).astype(float)
-            nm = m.sum(axis=1)
+            zj = z_mm[lo : lo + k, j]
+            w = np.where(hf < zj[:, None], w0, 0.0)
+            held = m_h < zj[mk]
+            nm = np.bincount(mk[held], minlength=k).astype(float)
             n = w.sum(axis=1) + patch_n * nm
-            m1 = np.einsum("kij,kj->ki", proj, w @ c + patch_n * (m @ v))
-            m3 = ((w @ t9) + patch_n * (m @ vv9)).reshape(k, 3, 3)
-            m2 = np.einsum("kia,kab,kjb->kij", proj, m3, proj) + (patch_m2 * nm)[:, None, None] * np.eye(2)
+            mom = w @ t_u
+            np.add.at(mom, mk[held], patch_n * m_t[held])
+            m1 = np.einsum("kij,kj->ki", proj, mom[:, :3])
+            m2 = np.einsum("kia,kab,kjb->kij", proj, mom[:, 3:].reshape(k, 3, 3), proj)
+            m2 += (patch_m2 * nm)[:, None, None] * np.eye(2)
             g = m1 / n[:, None]
             sm = m2 - n[:, None, None] * g[:, :, None] * g[:, None, :]
             ecc = centroid_xy[lo : lo + k, j] - shift - g
             u = np.einsum("kij,kj->ki", np.linalg.pinv(sm, rcond=EPS_SMALL), ecc)
-            val = np.einsum("ki,kiv->kv", u, pv)
-            fmax = np.maximum(np.maximum(val[:, faces[:, 0]], val[:, faces[:, 1]]), val[:, faces[:, 2]])
-            reach = np.maximum(
-                np.where(w > 0, fmax, -np.inf).max(axis=1),
-                np.where(m > 0, val + ring_r * np.linalg.norm(u, axis=1)[:, None], -np.inf).max(axis=1),
-            )
+            reach = np.full(k, -np.inf)
+            if len(v_on):
+                reach = np.where(h_on < zj[:, None], np.einsum("ki,kiv->kv", u, pv_on), -np.inf).max(axis=1)
+            at_min = np.where(held, (u[mk] * m_xy).sum(axis=1) + ring_r * np.linalg.norm(u[mk], axis=1), -np.inf)
+            np.maximum.at(reach, mk, at_min)
             lever = np.maximum(reach - (u * g).sum(axis=1), 0.0)
             f = force_n[lo : lo + k, j]
             worst = np.maximum(worst, f / n + f * lever)
-        out[lo : lo + k] = worst
+        out[visit[lo : lo + k]] = worst
     return out
+
+
+def _banded_order(dirs: np.ndarray) -> np.ndarray:
+    """An order of unit vectors in which blocks of :data:`_DIR_CHUNK` lie close together: bands of
+    equal z width holding about two blocks each, walked in alternating longitude."""
+    bands = max(int(np.sqrt(2.0 * len(dirs) / _DIR_CHUNK)), 1)
+    band = np.minimum(((1.0 - dirs[:, 2]) / 2.0 * bands).astype(int), bands - 1)
+    lon = np.arctan2(dirs[:, 1], dirs[:, 0])
+    return np.lexsort((np.where(band % 2 == 1, lon, -lon), band))
 
 
 @dataclass(frozen=True)
@@ -613,7 +667,8 @@ def score_directions(
     _check_mesh(mesh)
     dirs = np.atleast_2d(np.asarray(dirs, float))
     pixel_mm = scoring_pixel(mesh, settings) if pixel_mm is None else pixel_mm
-    out = surface_terms(mesh, dirs, settings, protect)
+    minima = minima_pairs(mesh, dirs)
+    out = surface_terms(mesh, dirs, settings, protect, minima)
     frac = settings.orient.orient_near_fraction
     for key in ("peak_force_n", "near_peak_layers", "cup_area_mm2", "peak_area_mm2"):
         out[key] = np.zeros(len(dirs))
@@ -631,7 +686,7 @@ def score_directions(
             top = top[prof.force_n[top] >= frac * peak]  # the peak itself always passes
             top = np.resize(top, NEAR_LOADS)
             near_z[i], near_f[i], near_c[i] = prof.z_mm[top], prof.force_n[top], prof.centroid_xy[top]
-    out["tip_load_n"] = tip_loads(mesh, dirs, near_z, near_f, near_c, settings)
+    out["tip_load_n"] = tip_loads(mesh, dirs, near_z, near_f, near_c, settings, minima)
     return out
 
 
