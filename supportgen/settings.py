@@ -349,6 +349,19 @@ class OrientRules:
         "turns them down either scars them or leaves them unheld (the contacts are moved off or dropped), "
         "so it weighs more than any other term; 0 ignores the protect mask",
     )
+    weight_tip_load: float = _f(
+        3.0,
+        0.0,
+        100.0,
+        "",
+        "practice",
+        "worst tip load of the estimated plan at the near-peak layers (the layer force shared among the "
+        "tips on the contactable surface below it by the elastic bolt-group method): it is the peak force "
+        "as the tips feel it, lever included, and the figure the print check fails on, so it weighs as much "
+        "as the peak force; while it is above 0, a direction whose worst tip would need more than tip_max_mm "
+        "at the safety factor scores worse than every direction whose tips hold (feasibility penalty); "
+        "0 switches off the term and the penalty",
+    )
     orient_near_fraction: float = _f(
         0.9, 0.1, 1.0, "", "practice", "a layer is near the peak when its force is at least this fraction of it"
     )

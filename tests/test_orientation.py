@@ -255,3 +255,93 @@ def test_orient_cli_scores_protect_selectors(tmp_path):
     assert data["given"]["terms"]["protected_mm2"] == pytest.approx(160.0, rel=1e-12)
     assert data["chosen"]["terms"]["protected_mm2"] < 160.0
     assert "protected surface facing down" in (out / "slab.orient.md").read_text()
+
+
+def test_bolt_group_square_of_four_tips_under_an_eccentric_load():
+    # Hand-worked, exact statics of a rigid plate on four equal springs at (+-a, +-a) (the elastic
+    # bolt-group method, Budynas and Nisbett, Shigley's Mechanical Engineering Design, 10th ed., bolted
+    # joints): S = diag(4 a^2, 4 a^2), so P_i = F/4 + F (e_x x_i + e_y y_i) / (4 a^2).
+    a, f = 10.0, 8.0
+    xy = np.array([[-a, -a], [a, -a], [a, a], [-a, a]])
+    p = O.bolt_group_loads(xy, f, [5.0, 0.0])
+    assert p == pytest.approx([1.0, 3.0, 3.0, 1.0], rel=1e-12)  # 2 -+ 8 * 5 * 10 / 400
+    p = O.bolt_group_loads(xy, f, [5.0, -10.0])
+    assert p == pytest.approx([2 - 1 + 2, 2 + 1 + 2, 2 + 1 - 2, 2 - 1 - 2], rel=1e-12)
+    # Force and moment balance about both plan axes (statics): sum P = F, sum P r = F e.
+    assert p.sum() == pytest.approx(f) and p @ xy == pytest.approx(f * np.array([5.0, -10.0]))
+    # A load outside the group lifts the far tips off (a negative share: compression in the far tips).
+    assert O.bolt_group_loads(xy, f, [30.0, 0.0]).min() == pytest.approx(2.0 - 8.0 * 30 * 10 / 400)
+
+
+def _box_with_centred_bottom(lx, ly, h) -> trimesh.Trimesh:
+    """A box whose bottom is a fan of 4 triangles about its centre, vertex 0 (the first lowest point)."""
+    box = trimesh.creation.box((lx, ly, h))
+    keep = box.face_normals[:, 2] > -0.5
+    v = np.vstack([[[0.0, 0.0, -h / 2]], box.vertices])
+    faces = box.faces[keep] + 1
+    low = [i + 1 for i in np.flatnonzero(np.isclose(box.vertices[:, 2], -h / 2))]
+    ring = sorted(low, key=lambda i: np.arctan2(v[i, 1], v[i, 0]))  # counter-clockwise seen from above
+    fan = [[0, ring[(j + 1) % 4], ring[j]] for j in range(4)]  # clockwise from above: normals down
+    mesh = trimesh.Trimesh(v, np.vstack([faces, fan]), process=False)
+    assert mesh.is_watertight and mesh.is_volume
+    return mesh
+
+
+def test_tip_loads_of_a_box_standing_flat_against_the_rectangle_moments():
+    # A 20 x 12 x 6 box stood flat: its whole bottom is contactable. The estimate spreads tips at the
+    # jamming density of random sequential addition (Feder, J. Theor. Biol. 87:237, 1980: 0.547 of the
+    # plane covered by discs of the spacing), so n = 0.6965 * 240 / s^2, and their second moment about
+    # the y axis is n L^2 / 12 (exact geometry of a rectangle). The lowest point (the bottom's centre
+    # here) adds the patch of a tip and a ring of 6 at half the spacing: 7 tips, 6 (s/2)^2 / 2 about
+    # any axis through it. A force F at (e, 0): the worst tip is at x = 10 (bolt-group method, Shigley).
+    s = supportgen.Settings()
+    box = _box_with_centred_bottom(20.0, 12.0, 6.0)
+    sp = s.rules.contact_spacing_mm
+    f, e = 5.0, 4.0
+    got = O.tip_loads(box, [[0.0, 0.0, 1.0]], [[3.0]], [[f]], [[[e, 0.0]]], s)[0]
+    n_area = 0.547 / (np.pi / 4) * 240.0 / sp**2
+    n = n_area + 7
+    sxx = n_area * 20.0**2 / 12 + 6 * (sp / 2) ** 2 / 2
+    assert got == pytest.approx(f / n + f * e * 10.0 / sxx, rel=1e-9)
+    # Centred, every tip takes the same share F / n (force balance).
+    got = O.tip_loads(box, [[0.0, 0.0, 1.0]], [[3.0]], [[f]], [[[0.0, 0.0]]], s)[0]
+    assert got == pytest.approx(f / n, rel=1e-9)
+
+
+def _l_bracket(leg=40.0, width=20.0, t=3.0) -> trimesh.Trimesh:
+    return to_trimesh(m3d.Manifold.cube((leg, width, t)) + m3d.Manifold.cube((t, width, leg)))
+
+
+def test_l_bracket_is_not_stood_on_a_far_corner_when_the_tip_load_term_is_on():
+    bracket = _l_bracket()
+    off = supportgen.Settings().override(weight_tip_load=0.0)
+    o = O.orient(bracket, off, n_directions=60, pixel_mm=0.8)
+    c = o.chosen
+    # Without the term the scorer stands it on one corner: no overhang, one strict minimum.
+    assert o.terms["overhang_area_mm2"][c] == 0.0 and o.terms["minima"][c] == 1
+    turned = O.turn(bracket, o.rotation)
+    low = turned.vertices[np.argmin(turned.vertices[:, 2]), :2]
+    # Exact geometry: the lowest point is a corner of the bracket (a vertex of the two boxes' union).
+    corners = {tuple(v) for v in np.round(_l_bracket().vertices, 6)}
+    assert tuple(np.round(bracket.vertices[np.argmin(turned.vertices[:, 2])], 6)) in corners
+    prof = O.layer_profile(bracket, o.rotation, 0.8, off)
+    peak = int(np.argmax(prof.force_n))
+    lever = np.linalg.norm(prof.centroid_xy[peak] - low)
+    # The peak layer acts far from that corner: many contact spacings away (the fandisk failure).
+    assert lever > 5 * off.rules.contact_spacing_mm, lever
+    # Statics of the patch the plan grows at a minimum (a tip and a ring of 6 at half the spacing,
+    # the densify rule), by the bolt-group method: its worst tip is over what the largest tip holds.
+    sp = off.rules.contact_spacing_mm
+    ring = low + sp / 2 * np.column_stack([np.cos(np.arange(6) * np.pi / 3), np.sin(np.arange(6) * np.pi / 3)])
+    patch = O.bolt_group_loads(np.vstack([low, ring]), prof.force_n[peak], prof.centroid_xy[peak])
+    allowed = O.allowed_tip_load(off)
+    assert patch.max() > allowed
+    assert o.terms["tip_load_n"][c] > allowed and not o.feasible[c]
+    # With the term on (default weight) the chosen stance's tips hold, and it is another stance.
+    on = supportgen.Settings()
+    p = O.orient(bracket, on, n_directions=60, pixel_mm=0.8)
+    assert p.feasible[p.chosen] and p.terms["tip_load_n"][p.chosen] <= allowed
+    assert np.degrees(np.arccos(np.clip(p.directions[p.chosen] @ o.directions[c], -1, 1))) > 20.0
+    # Every candidate whose tips hold scores better than every one whose tips do not (the penalty).
+    assert p.total[p.feasible].max() < p.total[~p.feasible].min()
+    assert "worst tip load" in orientation_markdown(p, "bracket")

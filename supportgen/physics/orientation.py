@@ -34,11 +34,25 @@ physical units (:data:`TERMS`):
     :mod:`supportgen.supports.protect`): the area of protected faces that would
     face down steeper than the overhang angle (they would need tips), plus one
     tip's scar ``pi tip_diameter_mm^2 / 4`` for each strict local minimum on a
-    protected face; 0 everywhere without a mask.
+    protected face; 0 everywhere without a mask;
+``tip_load_n``
+    the worst tip load the plan would need at the layers near the peak force
+    (:func:`tip_loads`): the contactable surface (overhang faces below the
+    layer, strict local minima and the lowest point) is a group of tips at the
+    rule's contact spacing, and each near-peak layer's force, acting at its
+    area centroid, is shared among them by the elastic bolt-group method
+    (:func:`bolt_group_loads`).  A stance whose tips all cluster under one
+    point while the peak layer lies far off carries the layer's moment on a
+    short lever, so its worst tip takes many times the layer's force.
 
 The total is ``sum_i w_i t_i / median(t_i)`` over the first, even set of
 candidates (so the weights are unitless and a term's scale does not matter);
 the weights and their reasoning are in :class:`supportgen.settings.OrientRules`.
+A candidate whose worst tip load exceeds what the largest tip holds at the
+safety factor (:func:`allowed_tip_load`, the rule of
+:func:`supportgen.supports.sizing.over_capacity`) is *infeasible*: while the
+``tip_load_n`` weight is above 0 every infeasible candidate scores worse than
+every feasible one (:func:`weighted_totals`).
 The Pareto-optimal candidates (no other is at least as good in every weighted
 term and better in one) are listed so that a user can pick another.
 
@@ -77,12 +91,13 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+import scipy.sparse as sparse
 import trimesh
 from scipy import ndimage
 
 from ..analysis.layers import Grid
 from ..analysis.raster import layer_count, ray_crossings
-from ..constants import EPS_SMALL, EPS_ZERO
+from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO
 from ..errors import MeshError, SettingsError
 from .pressure import solve_components
 from .separation import READS_LABELS, LayerShape, separation
@@ -103,6 +118,11 @@ __all__ = [
     "scoring_pixel",
     "area_error_bound",
     "surface_terms",
+    "bolt_group_loads",
+    "allowed_tip_load",
+    "tip_loads",
+    "minima_pairs",
+    "weighted_totals",
     "layer_profile",
     "score_directions",
     "pareto_front",
@@ -120,6 +140,7 @@ TERMS = (
     "support_volume_mm3",
     "height_mm",
     "protected_mm2",
+    "tip_load_n",
 )
 WEIGHTS = {
     "peak_force_n": "weight_force",
@@ -130,6 +151,7 @@ WEIGHTS = {
     "support_volume_mm3": "weight_volume",
     "height_mm": "weight_height",
     "protected_mm2": "weight_protect",
+    "tip_load_n": "weight_tip_load",
 }
 #: Cells (layers x rows x columns over the part's bounding sphere) the scoring grid may have:
 #: a few million keeps one candidate to tens of milliseconds (benchmarks/bench_orient.py).
@@ -141,6 +163,16 @@ REFINE_BEST, REFINE_EACH = 3, 30
 #: Smallest scale of a term, as a fraction of its largest value over the candidates (see :func:`orient`).
 SCALE_FLOOR = 1e-3
 _DIR_CHUNK = 16  # directions per vectorised block of the surface terms
+#: Layers per candidate whose force is shared among the tips (:func:`tip_loads`): the largest-force
+#: layers among those within ``orient_near_fraction`` of the peak.
+NEAR_LOADS = 3
+#: Tips per unit area of a random sequential addition at jamming, times spacing^2 (Feder, "Random
+#: sequential adsorption", J. Theor. Biol. 87:237, 1980: coverage 0.547 of discs of diameter r); the
+#: density :mod:`supportgen.supports.contacts` samples overhangs at (physics may not import supports).
+RSA_DENSITY = 0.547 / (np.pi / 4.0)
+#: Tips in the ring the plan adds around a tip over capacity, at half the contact spacing
+#: (:func:`supportgen.supports.contacts.densify_points`): a local minimum is held by that patch.
+DENSIFY_RING = 6
 
 
 def fibonacci_sphere(n: int) -> np.ndarray:
@@ -211,7 +243,9 @@ def _check_mesh(mesh) -> None:
         raise MeshError("orientation: the mesh has no faces; load a closed triangle mesh first")
 
 
-def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=None) -> dict[str, np.ndarray]:
+def surface_terms(
+    mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=None, minima=None
+) -> dict[str, np.ndarray]:
     """Height, overhang area, strict local minima, support volume and protected area facing down
     for many up-directions at once.
 
@@ -220,28 +254,23 @@ def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=Non
     of :func:`supportgen.analysis.overhangs.overhang_faces`); every face counts,
     since the part stands ``elevation_mm`` above the plate on its supports.
     ``protect`` is a bool mask over the faces (None: no protected face); a
-    local minimum is protected when any face at it is.
+    local minimum is protected when any face at it is.  ``minima``: the pairs of
+    :func:`minima_pairs` for ``dirs``, when already found.
     """
     vt = np.ascontiguousarray(np.asarray(mesh.vertices, float).T)
     nt = np.ascontiguousarray(np.asarray(mesh.face_normals, float).T)
     a = np.asarray(mesh.area_faces, float)
     ct = np.ascontiguousarray(np.asarray(mesh.triangles_center, float).T)
-    e = np.asarray(mesh.edges_unique)
-    src = np.concatenate([e[:, 0], e[:, 1]])
-    dst = np.concatenate([e[:, 1], e[:, 0]])
-    order = np.argsort(src, kind="stable")
-    src, dst = src[order], dst[order]
-    starts = np.flatnonzero(np.r_[True, src[1:] != src[:-1]])
-    edge_t = np.ascontiguousarray(vt[:, dst] - vt[:, src])
     cos_a = np.cos(np.radians(settings.rules.overhang_angle_deg))
     elev = settings.rules.elevation_mm
+    mk, mv = minima_pairs(mesh, dirs) if minima is None else minima
     keys = ("height_mm", "overhang_area_mm2", "minima", "support_volume_mm3", "protected_mm2")
     out = {k: np.zeros(len(dirs)) for k in keys}
     guarded = _protect_mask(mesh, protect)
     a_guarded = np.where(guarded, a, 0.0)
     v_guarded = np.zeros(len(mesh.vertices), bool)
     v_guarded[np.asarray(mesh.faces)[guarded].ravel()] = True
-    v_guarded = v_guarded[src[starts]]  # per vertex group of the minima test
+    out["minima"] = np.bincount(mk, minlength=len(dirs)).astype(float)
     scar = np.pi * settings.rules.tip_diameter_mm**2 / 4.0
     for lo in range(0, len(dirs), _DIR_CHUNK):
         d = np.asarray(dirs[lo : lo + _DIR_CHUNK], float)  # (k, 3): rows are directions
@@ -254,11 +283,36 @@ def surface_terms(mesh: trimesh.Trimesh, dirs: np.ndarray, settings, protect=Non
         out["overhang_area_mm2"][sl] = over @ a
         lift = d @ ct - hmin[:, None] + elev
         out["support_volume_mm3"][sl] = np.where(over, down * lift, 0.0) @ a
-        rise = np.minimum.reduceat(d @ edge_t, starts, axis=1)
-        out["minima"][sl] = (rise > EPS_SMALL).sum(axis=1)
         if guarded.any():
-            out["protected_mm2"][sl] = over @ a_guarded + scar * ((rise > EPS_SMALL) & v_guarded).sum(axis=1)
+            out["protected_mm2"][sl] = over @ a_guarded
+    if guarded.any():
+        out["protected_mm2"] += scar * np.bincount(mk[v_guarded[mv]], minlength=len(dirs))
     return out
+
+
+def minima_pairs(mesh: trimesh.Trimesh, dirs) -> tuple[np.ndarray, np.ndarray]:
+    """Strict local minima of height along each up-direction: (direction index, vertex index) pairs.
+
+    A vertex is a strict minimum when every edge from it rises by more than
+    ``EPS_SMALL`` (the rule of :mod:`supportgen.analysis.overhangs`).  Vectorised over
+    blocks of directions, O(E K) for E edges and K directions.
+    """
+    dirs = np.atleast_2d(np.asarray(dirs, float))
+    vt = np.asarray(mesh.vertices, float).T
+    e = np.asarray(mesh.edges_unique)
+    src = np.concatenate([e[:, 0], e[:, 1]])
+    dst = np.concatenate([e[:, 1], e[:, 0]])
+    order = np.argsort(src, kind="stable")
+    src, dst = src[order], dst[order]
+    starts = np.flatnonzero(np.r_[True, src[1:] != src[:-1]])
+    edge_t = np.ascontiguousarray(vt[:, dst] - vt[:, src])
+    ks, vs = [], []
+    for lo in range(0, len(dirs), _DIR_CHUNK):
+        rise = np.minimum.reduceat(dirs[lo : lo + _DIR_CHUNK] @ edge_t, starts, axis=1)
+        k, g = np.nonzero(rise > EPS_SMALL)
+        ks.append(k + lo)
+        vs.append(src[starts][g])
+    return np.concatenate(ks).astype(np.int64), np.concatenate(vs).astype(np.int64)
 
 
 def _protect_mask(mesh, protect) -> np.ndarray:
@@ -274,6 +328,189 @@ def _protect_mask(mesh, protect) -> np.ndarray:
     return mask
 
 
+def bolt_group_loads(xy, force, at) -> np.ndarray:
+    """Tension in each of equal tips at ``xy`` (n, 2) holding a rigid part under a force ``force``
+    normal to the plate acting at ``at`` (2,): the elastic bolt-group method.
+
+    ``P_i = F / n + F (a - g)^T S^-1 (r_i - g)``, with ``g`` the group's centroid and
+    ``S = sum_j (r_j - g)(r_j - g)^T`` its second-moment tensor: the direct share plus
+    the moment ``F (a - g)`` resisted in proportion to each tip's distance from the
+    centroid (equal stiffness, a rigid part).  About the group's principal axes it is
+    the textbook ``F/n + M_x y_i / sum y_j^2 + M_y x_i / sum x_j^2`` for a fastener group
+    under tension and moment (Budynas and Nisbett, Shigley's Mechanical Engineering
+    Design, 10th ed., 2015, bolted joints: eccentric and prying loads on bolt groups;
+    the in-plane ``F/n + M r_i / sum r_j^2`` of a group in shear is its twin for a
+    load in the plane).  Tips in a line cannot resist the moment about that line
+    (``S`` singular): the pseudo-inverse drops it.
+
+    >>> bolt_group_loads([[-1, -1], [1, -1], [1, 1], [-1, 1]], 4.0, [0.5, 0.0]).round(6).tolist()
+    [0.5, 1.5, 1.5, 0.5]
+    """
+    r = np.asarray(xy, float).reshape(-1, 2)
+    g = r.mean(axis=0)
+    d = r - g
+    u = np.linalg.pinv(d.T @ d) @ (np.asarray(at, float) - g)
+    return float(force) * (1.0 / len(r) + d @ u)
+
+
+def allowed_tip_load(settings) -> float:
+    """Largest load (N) one tip may take: a tip of ``tip_max_mm`` at the green tensile strength,
+    ``sigma pi d^2 / 4``, over the safety factor.
+
+    The formula of :func:`supportgen.supports.sizing.tip_capacity` and the rule of
+    :func:`supportgen.supports.sizing.over_capacity` (a tip is over capacity when it
+    would need more than ``tip_max_mm`` at ``safety_factor`` times its load),
+    written out here because ``physics`` may not import ``supports``.
+    """
+    d = settings.rules.tip_max_mm
+    return settings.resin.green_tensile_mpa * np.pi * d * d / 4.0 / settings.rules.safety_factor
+
+
+def tip_loads(mesh: trimesh.Trimesh, dirs, z_mm, force_n, centroid_xy, settings, minima=None) -> np.ndarray:
+    """Worst tip load (N) of each up-direction's estimated plan under its near-peak layers.
+
+    Parameters
+    ----------
+    mesh : trimesh.Trimesh
+    dirs : (K, 3) up-directions.
+    z_mm, force_n : (K, J)
+        Height above the turned part's lowest point and separation force of J layers each.
+    centroid_xy : (K, J, 2)
+        Where each layer's force acts (its area centroid), in the frame of
+        :func:`rotation_to_up` of the direction (as :func:`layer_profile` gives it).
+    settings : Settings
+    minima : tuple of two int arrays, optional
+        :func:`minima_pairs` of ``dirs``, when already found.
+
+    Returns
+    -------
+    (K,) ndarray
+        The largest tip load over the J layers.
+
+    Notes
+    -----
+    The tips that can hold a layer are those on the contactable surface below it:
+    every overhang face (``-n . d > cos(overhang_angle_deg)``) whose centre lies
+    below the layer, carrying tips at the jamming density of random sequential
+    addition, :data:`RSA_DENSITY` per ``r^2``, with ``r`` the contact spacing grown to
+    1.5x at the critical angle (the rule of :mod:`supportgen.supports.contacts`);
+    and each strict local minimum below the layer, and the lowest point, held by
+    the patch the plan grows there once a tip is over capacity: the tip and a ring
+    of :data:`DENSIFY_RING` at half the spacing.  The tips are spread evenly over
+    the faces projected to the plate, so the group's count, centroid and second
+    moment are sums over faces of exact triangle moments (a triangle's second
+    moment about its centroid is ``A/12 sum_i (v_i - c)(v_i - c)^T``), found by
+    (K, F) x (F, 9) products; the layer's force is shared by
+    :func:`bolt_group_loads` in that continuous form, and the worst tip is at the
+    group's extreme point in the direction ``S^-1 (a - g)`` (a vertex below the
+    layer of a face carrying tips, or a ring's edge).  Not modelled: contacts the plan adds where a layer reaches too
+    far, and which 3-D component a tip holds (every tip below a layer holds it).
+    Cost O(K (F + V) J).
+    """
+    dirs = np.atleast_2d(np.asarray(dirs, float))
+    # Blocks of nearby directions share most of their down-facing faces: visit them in bands.
+    all_k, all_v = minima_pairs(dirs=dirs, mesh=mesh) if minima is None else minima
+    visit = _banded_order(dirs)
+    rank = np.empty_like(visit)
+    rank[visit] = np.arange(len(visit))
+    all_k = rank[all_k]  # direction indices in visiting order
+    dirs = dirs[visit]
+    z_mm, force_n = np.atleast_2d(z_mm)[visit], np.atleast_2d(force_n)[visit]
+    centroid_xy = np.asarray(centroid_xy, float).reshape(len(visit), -1, 2)[visit]
+    rules = settings.rules
+    verts = np.asarray(mesh.vertices, float)
+    origin = verts.mean(axis=0)
+    v = verts - origin
+    vt = np.ascontiguousarray(v.T)
+    faces = np.asarray(mesh.faces)
+    tri = v[faces]  # (F, 3, 3)
+    c = tri.mean(axis=1)
+    ct = np.ascontiguousarray(c.T)
+    nt = np.ascontiguousarray(np.asarray(mesh.face_normals, float).T)
+    a = np.asarray(mesh.area_faces, float)
+    dev = tri - c[:, None, :]
+    # Per face, per unit weight: first moment c and second moment about the origin,
+    # (1/12) sum (v_i - c)(v_i - c)^T + c c^T; per vertex: v and v v^T. One product gives all.
+    t_face = np.hstack([c, (np.einsum("fia,fib->fab", dev, dev) / 12.0 + c[:, :, None] * c[:, None, :]).reshape(-1, 9)])
+    t_vert = np.hstack([v, (v[:, :, None] * v[:, None, :]).reshape(-1, 9)])
+    # Which faces touch each vertex: a (V, F) incidence, to find the vertices of the faces carrying tips.
+    nf = len(faces)
+    touch = sparse.csr_matrix((np.ones(3 * nf), (faces.ravel(), np.repeat(np.arange(nf), 3))), shape=(len(v), nf))
+    cos_a = np.cos(np.radians(rules.overhang_angle_deg))
+    s = rules.contact_spacing_mm
+    ring_r = 0.5 * s
+    patch_n = 1.0 + DENSIFY_RING
+    patch_m2 = DENSIFY_RING * ring_r**2 / 2.0  # a ring's second moment about any axis through its centre
+    out = np.zeros(len(dirs))
+    for lo in range(0, len(dirs), _DIR_CHUNK):
+        d = dirs[lo : lo + _DIR_CHUNK]
+        k = len(d)
+        rows = np.arange(k)
+        proj = np.stack([rotation_to_up(x)[:2] for x in d])  # (k, 2, 3): plate axes of each turned frame
+        hv = d @ vt
+        hmin = hv.min(axis=1, keepdims=True)
+        hv -= hmin
+        # Only the faces that face down in some direction of the block can carry tips.
+        down = -(d @ nt)
+        over_all = down > cos_a
+        in_u = over_all.any(axis=0)
+        over = over_all[:, in_u]
+        hf = d @ ct[:, in_u] - hmin
+        tilt = np.degrees(np.arccos(np.clip(down[:, in_u][over], -1.0, 1.0)))
+        spacing = s * (1.0 + 0.5 * np.clip(tilt / max(rules.overhang_angle_deg, EPS_ZERO), 0.0, 1.0))
+        w0 = np.zeros(over.shape)
+        w0[over] = RSA_DENSITY * np.broadcast_to(a[in_u], over.shape)[over] / spacing**2
+        t_u = t_face[in_u]
+        # Vertices of the faces carrying tips (a tip may sit there once it is below the layer).
+        on_v = (touch @ np.ascontiguousarray(over_all.T, dtype=float)).T > 0  # (k, V)
+        v_on = np.flatnonzero(on_v.any(axis=0))
+        h_on = np.where(on_v[:, v_on], hv[:, v_on], np.inf)
+        pv_on = np.einsum("kij,jv->kiv", proj, vt[:, v_on])  # plate coordinates of those vertices
+        # Strict local minima, and the lowest point, as (direction, vertex) pairs.
+        pick = (all_k >= lo) & (all_k < lo + k)
+        mk, mv = np.r_[all_k[pick] - lo, rows], np.r_[all_v[pick], np.argmin(hv, axis=1)]
+        mk, mv = np.unique(np.column_stack([mk, mv]), axis=0).T
+        m_h = hv[mk, mv]
+        m_t = t_vert[mv]
+        m_xy = np.einsum("pij,pj->pi", proj[mk], v[mv])
+        shift = proj @ origin  # (k, 2): the layer centroids are in the turned frame of the mesh as given
+        worst = np.zeros(k)
+        for j in range(z_mm.shape[1]):
+            zj = z_mm[lo : lo + k, j]
+            w = np.where(hf < zj[:, None], w0, 0.0)
+            held = m_h < zj[mk]
+            nm = np.bincount(mk[held], minlength=k).astype(float)
+            n = w.sum(axis=1) + patch_n * nm
+            mom = w @ t_u
+            np.add.at(mom, mk[held], patch_n * m_t[held])
+            m1 = np.einsum("kij,kj->ki", proj, mom[:, :3])
+            m2 = np.einsum("kia,kab,kjb->kij", proj, mom[:, 3:].reshape(k, 3, 3), proj)
+            m2 += (patch_m2 * nm)[:, None, None] * np.eye(2)
+            g = m1 / n[:, None]
+            sm = m2 - n[:, None, None] * g[:, :, None] * g[:, None, :]
+            ecc = centroid_xy[lo : lo + k, j] - shift - g
+            u = np.einsum("kij,kj->ki", np.linalg.pinv(sm, rcond=EPS_SMALL), ecc)
+            reach = np.full(k, -np.inf)
+            if len(v_on):
+                reach = np.where(h_on < zj[:, None], np.einsum("ki,kiv->kv", u, pv_on), -np.inf).max(axis=1)
+            at_min = np.where(held, (u[mk] * m_xy).sum(axis=1) + ring_r * np.linalg.norm(u[mk], axis=1), -np.inf)
+            np.maximum.at(reach, mk, at_min)
+            lever = np.maximum(reach - (u * g).sum(axis=1), 0.0)
+            f = force_n[lo : lo + k, j]
+            worst = np.maximum(worst, f / n + f * lever)
+        out[visit[lo : lo + k]] = worst
+    return out
+
+
+def _banded_order(dirs: np.ndarray) -> np.ndarray:
+    """An order of unit vectors in which blocks of :data:`_DIR_CHUNK` lie close together: bands of
+    equal z width holding about two blocks each, walked in alternating longitude."""
+    bands = max(int(np.sqrt(2.0 * len(dirs) / _DIR_CHUNK)), 1)
+    band = np.minimum(((1.0 - dirs[:, 2]) / 2.0 * bands).astype(int), bands - 1)
+    lon = np.arctan2(dirs[:, 1], dirs[:, 0])
+    return np.lexsort((np.where(band % 2 == 1, lon, -lon), band))
+
+
 @dataclass(frozen=True)
 class LayerProfile:
     """Per-layer figures of one candidate on the scoring grid (arrays of length L)."""
@@ -284,6 +521,7 @@ class LayerProfile:
     sealed_mm2: np.ndarray
     force_n: np.ndarray
     exact: np.ndarray  # layers whose force used the solved torsion constant
+    centroid_xy: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))  # (L, 2) of the suction area
 
     @property
     def peak_force_n(self) -> float:
@@ -390,10 +628,14 @@ def layer_profile(mesh, rotation, pixel_mm: float, settings) -> LayerProfile:
     """
     _check_mesh(mesh)
     v = (np.asarray(rotation, float) @ np.asarray(mesh.vertices, float).T).T
-    occ, _grid = _occupancy(v, np.asarray(mesh.faces), pixel_mm)
+    occ, grid = _occupancy(v, np.asarray(mesh.faces), pixel_mm)
     sealed = _sealed(occ)
     p2 = pixel_mm * pixel_mm
-    force, lab, first, law = _layer_forces(occ | sealed, pixel_mm, settings)
+    suction = occ | sealed
+    force, lab, first, law = _layer_forces(suction, pixel_mm, settings)
+    cnt = np.maximum(suction.sum(axis=(1, 2)), 1)
+    cx = suction.sum(axis=1) @ (grid.x0 + np.arange(grid.nx) * pixel_mm) / cnt
+    cy = suction.sum(axis=2) @ (grid.y0 + np.arange(grid.ny) * pixel_mm) / cnt
     exact = np.zeros(len(force), bool)
     for k in np.argsort(force)[::-1][:EXACT_LAYERS]:
         a, b = first[k], first[k + 1]
@@ -413,6 +655,7 @@ def layer_profile(mesh, rotation, pixel_mm: float, settings) -> LayerProfile:
         sealed.sum(axis=(1, 2)) * p2,
         force,
         exact,
+        np.column_stack([cx, cy]),
     )
 
 
@@ -424,10 +667,13 @@ def score_directions(
     _check_mesh(mesh)
     dirs = np.atleast_2d(np.asarray(dirs, float))
     pixel_mm = scoring_pixel(mesh, settings) if pixel_mm is None else pixel_mm
-    out = surface_terms(mesh, dirs, settings, protect)
+    minima = minima_pairs(mesh, dirs)
+    out = surface_terms(mesh, dirs, settings, protect, minima)
     frac = settings.orient.orient_near_fraction
     for key in ("peak_force_n", "near_peak_layers", "cup_area_mm2", "peak_area_mm2"):
         out[key] = np.zeros(len(dirs))
+    near_z, near_f = np.zeros((len(dirs), NEAR_LOADS)), np.zeros((len(dirs), NEAR_LOADS))
+    near_c = np.zeros((len(dirs), NEAR_LOADS, 2))
     for i, d in enumerate(dirs):
         prof = layer_profile(mesh, rotation_to_up(d), pixel_mm, settings)
         peak = prof.peak_force_n
@@ -435,6 +681,12 @@ def score_directions(
         out["near_peak_layers"][i] = np.count_nonzero(prof.force_n >= frac * peak) if peak > 0 else 0
         out["cup_area_mm2"][i] = prof.sealed_mm2.max(initial=0.0)
         out["peak_area_mm2"][i] = prof.area_mm2.max(initial=0.0)
+        if len(prof.force_n):
+            top = np.argsort(prof.force_n)[::-1][:NEAR_LOADS]
+            top = top[prof.force_n[top] >= frac * peak]  # the peak itself always passes
+            top = np.resize(top, NEAR_LOADS)
+            near_z[i], near_f[i], near_c[i] = prof.z_mm[top], prof.force_n[top], prof.centroid_xy[top]
+    out["tip_load_n"] = tip_loads(mesh, dirs, near_z, near_f, near_c, settings, minima)
     return out
 
 
@@ -472,6 +724,12 @@ class Orientation:
     pixel_mm: float
     weights: dict
     scales: dict = field(default_factory=dict)
+    allowed_tip_load_n: float = float("inf")
+
+    @property
+    def feasible(self) -> np.ndarray:
+        """Candidates whose estimated worst tip load is within :func:`allowed_tip_load`."""
+        return self.terms["tip_load_n"] <= self.allowed_tip_load_n * (1.0 + EPS_REL)
 
     @property
     def rotation(self) -> np.ndarray:
@@ -485,6 +743,7 @@ class Orientation:
             "rotation": [[round(float(x), 9) for x in row] for row in self.rotations[i]],
             "refined": bool(self.refined[i]),
             "terms": {k: float(self.terms[k][i]) for k in (*TERMS, "peak_area_mm2")},
+            "tips_hold": bool(self.feasible[i]),
             "total": float(self.total[i]),
         }
 
@@ -495,6 +754,7 @@ class Orientation:
             "pareto": [int(i) for i in self.pareto],
             "weights": dict(self.weights),
             "scales": {k: float(v) for k, v in self.scales.items()},
+            "allowed_tip_load_n": float(self.allowed_tip_load_n),
             "grid": {
                 "pixel_mm": self.pixel_mm,
                 "layer_mm": self.pixel_mm,
@@ -505,8 +765,16 @@ class Orientation:
         }
 
 
-def _totals(terms, weights, scales):
-    return sum(weights[k] * terms[k] / scales[k] for k in TERMS)
+def weighted_totals(terms, weights, scales, allowed_n: float) -> np.ndarray:
+    """``sum_k w_k t_k / scale_k`` over :data:`TERMS`, with the feasibility penalty: while the
+    ``tip_load_n`` weight is above 0 and some candidates' worst tip load is within ``allowed_n``
+    (:func:`allowed_tip_load`), every other candidate is raised by the spread of the totals plus 1,
+    so it scores worse than every feasible one (and keeps its order among the infeasible)."""
+    total = sum(weights[k] * np.asarray(terms[k], float) / scales[k] for k in TERMS)
+    over = np.asarray(terms["tip_load_n"]) > allowed_n * (1.0 + EPS_REL)
+    if weights["tip_load_n"] > 0 and over.any() and not over.all():
+        total = total + np.where(over, total[~over].max() - total[over].min() + 1.0, 0.0)
+    return total
 
 
 def orient(
@@ -563,7 +831,8 @@ def orient(
     scales["cup_area_mm2"] = max(float(np.median(terms["peak_area_mm2"])), EPS_SMALL)
     # Protected area facing down is measured against the overhang area: most directions turn none of it down.
     scales["protected_mm2"] = scales["overhang_area_mm2"]
-    total = _totals(terms, weights, scales)
+    allowed = allowed_tip_load(settings)
+    total = weighted_totals(terms, weights, scales, allowed)
     best = np.argsort(total)[:REFINE_BEST]
     spacing = np.sqrt(4.0 * np.pi / n)
     rng = np.random.default_rng(settings.rules.seed)
@@ -578,13 +847,13 @@ def orient(
     more = score_directions(mesh, extra, settings, pixel_mm, protect)
     dirs = np.vstack([dirs, extra])
     terms = {k: np.concatenate([terms[k], more[k]]) for k in terms}
-    total = _totals(terms, weights, scales)
+    total = weighted_totals(terms, weights, scales, allowed)
     refined = np.r_[np.zeros(n + 1, bool), np.ones(len(extra), bool)]
     active = [k for k in TERMS if weights[k] > 0]
     pareto = pareto_front(np.column_stack([terms[k] for k in active]))
     rotations = np.stack([rotation_to_up(d) for d in dirs])
     return Orientation(
-        dirs, rotations, terms, total, int(np.argmin(total)), 0, pareto, refined, pixel_mm, weights, scales
+        dirs, rotations, terms, total, int(np.argmin(total)), 0, pareto, refined, pixel_mm, weights, scales, allowed
     )
 
 

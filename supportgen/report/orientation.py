@@ -28,6 +28,7 @@ _LABELS = {
     "support_volume_mm3": "support volume estimate (mm³)",
     "height_mm": "print height (mm)",
     "protected_mm2": "protected surface facing down (mm²)",
+    "tip_load_n": "worst tip load, bolt-group estimate (N)",
 }
 
 
@@ -50,7 +51,13 @@ def orientation_markdown(o: Orientation, name: str, image: str | None = None, ma
     ]
     for k in TERMS:
         lines.append(f"| {_LABELS[k]} | {g['terms'][k]:.4g} | {c['terms'][k]:.4g} | {o.weights[k]:g} |")
+    hold = "hold" if o.feasible[o.chosen] else "do NOT hold (no candidate's tips hold)"
     lines += [
+        "",
+        f"Tips: the largest tip holds {o.allowed_tip_load_n:.3g} N at the safety factor; the chosen "
+        f"orientation's tips {hold}; {int(o.feasible.sum())} of {len(o.total)} candidates' tips hold, and "
+        "while the tip-load weight is above 0 every candidate whose tips do not hold scores worse than "
+        "every one whose tips do.",
         "",
         f"Scoring grid: {o.pixel_mm:.3g} mm pixels and layers; each layer's outline is within half a "
         "pixel of the exact section. `generate` recomputes every figure at the printer's resolution.",
