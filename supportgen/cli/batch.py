@@ -17,7 +17,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from .options import err, nonnegative_seconds, positive, rotate_option, settings_from, show_progress
+from .options import err, nonnegative_seconds, orientation_options, positive, settings_from, show_progress
 
 __all__ = ["add_parser", "cmd_batch"]
 
@@ -90,13 +90,7 @@ def add_parser(subparsers, parents) -> None:
         help="faces of every part that must get no tip or landing (repeatable; see generate --help); "
         "a file NAME.protect.toml next to a part adds its own",
     )
-    p.add_argument(
-        "--orient",
-        choices=("keep", "auto"),
-        default="keep",
-        help="keep each part's given orientation (default) or choose one from the physics (auto)",
-    )
-    rotate_option(p)
+    orientation_options(p)
     p.set_defaults(func=cmd_batch)
 
 

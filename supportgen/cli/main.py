@@ -13,7 +13,15 @@ import sys
 import time
 from pathlib import Path
 
-from .options import common_options, err, nonnegative_seconds, settings_from, show_progress, strategy_option
+from .options import (
+    common_options,
+    err,
+    nonnegative_seconds,
+    orientation_options,
+    settings_from,
+    show_progress,
+    strategy_option,
+)
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
 
@@ -275,19 +283,7 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="SECONDS",
         help="if another run is writing to the output folder, wait up to SECONDS for it (default: refuse at once)",
     )
-    gen_opts.add_argument(
-        "--orient",
-        choices=("keep", "auto"),
-        default="keep",
-        help="keep the given orientation (default) or choose one from the physics (auto)",
-    )
-    gen_opts.add_argument(
-        "--rotate",
-        type=float,
-        nargs=3,
-        metavar=("X", "Y", "Z"),
-        help="turn each part by these degrees about x, then y, then z first",
-    )
+    orientation_options(gen_opts)
     gen_opts.add_argument(
         "--protect",
         action="append",

@@ -10,6 +10,7 @@ __all__ = [
     "common_options",
     "strategy_option",
     "rotate_option",
+    "orientation_options",
     "positive",
     "nonnegative_seconds",
     "settings_from",
@@ -59,6 +60,17 @@ def strategy_option() -> argparse.ArgumentParser:
         help=f"support strategy (default: {DEFAULT_STRATEGY})",
     )
     return parent
+
+
+def orientation_options(parser) -> None:
+    """Add ``--orient keep|auto`` (``generate(orient=...)``) and ``--rotate X Y Z`` to ``parser``."""
+    parser.add_argument(
+        "--orient",
+        choices=("keep", "auto"),
+        default="keep",
+        help="keep each part's given orientation (default) or choose one from the physics (auto)",
+    )
+    rotate_option(parser)
 
 
 def rotate_option(parser) -> None:

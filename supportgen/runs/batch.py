@@ -155,18 +155,9 @@ SUMMARY_FIELDS = (
     "print_time_s",
     "reused",
 )
-#: What a manifest keeps of its file's row, so that a resumed run can show it as it was.
-MANIFEST_FIELDS = (
-    "status",
-    "reason",
-    "contacts",
-    "support_volume_mm3",
-    "passed",
-    "seconds",
-    "peak_force_n",
-    "resin_ml",
-    "print_time_s",
-)
+#: What a manifest keeps of its file's row, so that a resumed run can show it as it was: all
+#: but the file (the manifest's own ``input``), the worker's memory and the reuse flag.
+MANIFEST_FIELDS = tuple(f for f in SUMMARY_FIELDS if f not in ("file", "peak_mb", "reused"))
 #: What Result.save writes for one part (supportgen.pipeline.OUTPUTS), plus the manifest in the same set.
 OUTPUT_SUFFIXES = tuple(OUTPUTS.values())
 MANIFEST_SUFFIX = ".batch.json"
