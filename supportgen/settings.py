@@ -55,6 +55,7 @@ __all__ = [
     "describe",
     "STRATEGY_NAMES",
     "DEFAULT_STRATEGY",
+    "ORIENT_CHOICES",
 ]
 
 #: The support strategies a user can choose (``supportgen.supports.strategies.STRATEGIES``
@@ -62,6 +63,9 @@ __all__ = [
 #: importing the geometry stages).
 STRATEGY_NAMES = ("straight", "tree")
 DEFAULT_STRATEGY = "tree"
+#: How a part stands: as given (the default: a user's orientation may be deliberate) or as
+#: ``supportgen.physics.orientation.orient`` chooses.
+ORIENT_CHOICES = ("keep", "auto")
 
 MECHANISMS = ("pull", "slide", "tilt")
 BASE_KINDS = ("raft", "pads")

@@ -19,6 +19,18 @@ __all__ = ["add_parser", "cmd_bench", "parse_strategies", "parse_orients"]
 EXIT_OK, EXIT_FAILED = 0, 1
 
 
+def _names(text: str, valid, what: str, plural: str) -> list[str]:
+    """The comma-separated names of ``text``, each one of ``valid``, in order without repeats;
+    anything else is an argparse error listing the valid names."""
+    names = [n.strip() for n in text.split(",") if n.strip()]
+    if not names:
+        raise argparse.ArgumentTypeError(f"no {what} named; valid {plural}: {', '.join(valid)}")
+    for n in names:
+        if n not in valid:
+            raise argparse.ArgumentTypeError(f"unknown {what} '{n}'; valid {plural}: {', '.join(valid)}")
+    return list(dict.fromkeys(names))
+
+
 def parse_strategies(text: str) -> list[str]:
     """``"straight,tree"`` -> ``["straight", "tree"]``; an unknown name is an argparse error listing the valid ones.
 
@@ -31,15 +43,9 @@ def parse_strategies(text: str) -> list[str]:
     ...
     argparse.ArgumentTypeError: unknown strategy 'pillars'; valid strategies: straight, tree
     """
-    from supportgen.settings import STRATEGY_NAMES as STRATEGIES
+    from supportgen.settings import STRATEGY_NAMES
 
-    names = [n.strip() for n in text.split(",") if n.strip()]
-    if not names:
-        raise argparse.ArgumentTypeError(f"no strategy named; valid strategies: {', '.join(STRATEGIES)}")
-    for n in names:
-        if n not in STRATEGIES:
-            raise argparse.ArgumentTypeError(f"unknown strategy '{n}'; valid strategies: {', '.join(STRATEGIES)}")
-    return list(dict.fromkeys(names))
+    return _names(text, STRATEGY_NAMES, "strategy", "strategies")
 
 
 def parse_orients(text: str) -> list[str]:
@@ -52,15 +58,11 @@ def parse_orients(text: str) -> list[str]:
     >>> parse_orients("up")
     Traceback (most recent call last):
     ...
-    argparse.ArgumentTypeError: unknown orientation choice 'up'; give keep, auto or keep,auto
+    argparse.ArgumentTypeError: unknown orientation choice 'up'; valid orientation choices: keep, auto
     """
-    from supportgen.physics.orientation import ORIENT_CHOICES
+    from supportgen.settings import ORIENT_CHOICES
 
-    names = [n.strip() for n in text.split(",") if n.strip()]
-    for n in names or [""]:
-        if n not in ORIENT_CHOICES:
-            raise argparse.ArgumentTypeError(f"unknown orientation choice {n!r}; give keep, auto or keep,auto")
-    return list(dict.fromkeys(names))
+    return _names(text, ORIENT_CHOICES, "orientation choice", "orientation choices")
 
 
 def add_parser(subparsers, parents) -> argparse.ArgumentParser:

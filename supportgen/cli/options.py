@@ -64,9 +64,11 @@ def strategy_option() -> argparse.ArgumentParser:
 
 def orientation_options(parser) -> None:
     """Add ``--orient keep|auto`` (``generate(orient=...)``) and ``--rotate X Y Z`` to ``parser``."""
+    from supportgen.settings import ORIENT_CHOICES
+
     parser.add_argument(
         "--orient",
-        choices=("keep", "auto"),
+        choices=ORIENT_CHOICES,
         default="keep",
         help="keep each part's given orientation (default) or choose one from the physics (auto)",
     )

@@ -99,6 +99,7 @@ from ..analysis.layers import Grid
 from ..analysis.raster import layer_count, ray_crossings
 from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO
 from ..errors import MeshError, SettingsError
+from ..settings import ORIENT_CHOICES
 from .pressure import solve_components
 from .separation import READS_LABELS, LayerShape, separation
 
@@ -858,7 +859,6 @@ def orient(
 
 
 #: ``generate(orient=...)``: keep the given orientation, or choose one from the physics.
-ORIENT_CHOICES = ("keep", "auto")
 
 
 def check_orientation_choice(how: str, rotate) -> list[float] | None:

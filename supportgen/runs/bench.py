@@ -46,8 +46,7 @@ import numpy as np
 
 from ..errors import SettingsError, SupportGenError
 from ..io.meshio import READ_FORMATS, atomic_write, atomic_write_text, load_mesh, part_name
-from ..physics.orientation import ORIENT_CHOICES
-from ..settings import Settings
+from ..settings import ORIENT_CHOICES, Settings
 from ..supports.strategies import get_strategy
 from .memory import MEMORY_METHODS, measure_peak
 
