@@ -69,8 +69,6 @@ OUTPUTS = {
     "underside": ".underside.png",
 }
 
-#: ``tree`` verifies on the demo and the shared corpus with less support volume
-#: than ``straight`` (benchmarks/compare_strategies.py).
 MAX_DENSIFY_ROUNDS = 4
 MAX_REPAIR_ROUNDS = 4
 

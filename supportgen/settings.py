@@ -62,6 +62,8 @@ __all__ = [
 #: registers one function per name; named here so the command line can offer them without
 #: importing the geometry stages).
 STRATEGY_NAMES = ("straight", "tree")
+#: ``tree`` verifies on the demo and the shared corpus with less support volume than
+#: ``straight`` (benchmarks/compare_strategies.py).
 DEFAULT_STRATEGY = "tree"
 #: How a part stands: as given (the default: a user's orientation may be deliberate) or as
 #: ``supportgen.physics.orientation.orient`` chooses.

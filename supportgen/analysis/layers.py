@@ -43,6 +43,7 @@ __all__ = [
     "analyse_layers",
     "component_stats",
     "speck_area_mm2",
+    "HOLD_PIXELS",
 ]
 
 _MARGIN = 5  # empty border of a layer window; near reach searched within 4 pixels
@@ -57,11 +58,16 @@ def speck_area_mm2(pixel_mm: float) -> float:
     return float(np.pi * pixel_mm**2)
 
 
-def _hold_pixels(pixel_mm: float) -> int:
-    """Fewest pixels of overlap that hold a region: the whole pixels of a speck (3 of
-    its pi).  Not 4: a tip of the smallest diameter, two pixels, cures about a speck,
-    often 3 pixels, and must hold what it touches."""
-    return int(np.floor(speck_area_mm2(pixel_mm) / pixel_mm**2 + EPS_ZERO))
+#: Fewest pixels of overlap that hold a region: the whole pixels of a speck (3 of its pi
+#: pixels, whatever the pitch).  Not 4: a tip of the smallest diameter, two pixels, cures
+#: about a speck, often 3 pixels, and must hold what it touches.
+HOLD_PIXELS = 3
+
+
+def _labels_at(runs, comp, w: int, rows, cols) -> np.ndarray:
+    """The component (``comp`` of each run) of cured window pixels (rows, cols)."""
+    r, s = runs[0], runs[1]
+    return comp[np.searchsorted(r * (w + 1) + s, rows * (w + 1) + cols, side="right") - 1]
 
 
 @dataclass(frozen=True)
@@ -159,7 +165,7 @@ class Island:
         disc = (np.hypot(dr, dc) * p <= radius_mm + EPS_ZERO).astype(np.int32)
         padded = np.pad(self.mask, k).astype(np.int32)
         touched = ndimage.correlate(padded, disc, mode="constant")  # island pixels under a tip at each pixel
-        need = min(_hold_pixels(p), int(self.mask.sum()))
+        need = min(HOLD_PIXELS, int(self.mask.sum()))
         rows, cols = self.grid.index(xyz[:, :2])
         i, j = rows - self.row0 + k, cols - self.col0 + k
         inside = (i >= 0) & (j >= 0) & (i < padded.shape[0]) & (j < padded.shape[1])
@@ -392,24 +398,21 @@ def _far_distance(prev: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.nd
         margin = int(np.ceil(d.max())) + 1
 
 
-def _held(m, pw, runs, comp, n, w, hold):
+def _held(m, pw, runs, comp, n, w):
     """Which components of a layer window the layer below holds.
 
     A component is held when it overlaps the cured pixels of the layer below in at
-    least ``hold`` pixels (a speck), or, when it is itself smaller than ``hold``
-    pixels, in at least one: one pixel of contact does not hold a larger region
+    least :data:`HOLD_PIXELS` (a speck), or, when it is itself smaller than that, in
+    at least one: one pixel of contact does not hold a larger region
     (the independent check in ``benchmarks/stress_corpus.py`` applies the same rule
     to exact sections).
     """
-    r, s, e = runs
-    size = np.bincount(comp, weights=e - s, minlength=n)
+    size = np.bincount(comp, weights=runs[2] - runs[1], minlength=n)
     both = np.flatnonzero(m & pw)
     if both.size == 0:
         return np.zeros(n, bool)
-    br, bc = np.divmod(both, w)
-    lb = comp[np.searchsorted(r * (w + 1) + s, br * (w + 1) + bc, side="right") - 1]
-    overlap = np.bincount(lb, minlength=n)
-    return overlap >= np.minimum(hold, np.maximum(size, 1))
+    overlap = np.bincount(_labels_at(runs, comp, w, *np.divmod(both, w)), minlength=n)
+    return overlap >= np.minimum(HOLD_PIXELS, np.maximum(size, 1))
 
 
 def _flat_pixels(island) -> np.ndarray:
@@ -421,7 +424,6 @@ def _flat_pixels(island) -> np.ndarray:
 def _grown_specks(specks, labels, m, runs, comp, r0, c0, nx):
     """``(index, label)`` for each of last layer's speck islands that lies under a
     component of this layer with one of ``labels`` (an island here)."""
-    r, s, _ = runs
     w = m.shape[1]
     for idx, flat in specks:
         wr, wc = np.divmod(flat, nx)
@@ -429,7 +431,7 @@ def _grown_specks(specks, labels, m, runs, comp, r0, c0, nx):
         ok = (wr >= 0) & (wr < m.shape[0]) & (wc >= 0) & (wc < w)
         wr, wc = wr[ok], wc[ok]
         cured = m[wr, wc]
-        lab = comp[np.searchsorted(r * (w + 1) + s, wr[cured] * (w + 1) + wc[cured], side="right") - 1]
+        lab = _labels_at(runs, comp, w, wr[cured], wc[cured])
         hit = lab[np.isin(lab, labels)]
         if hit.size:
             yield idx, int(hit[0])
@@ -535,7 +537,6 @@ def analyse_layers(
             "pass a grid of the same pitch or none"
         )
     observers, p = tuple(observers), grid.pixel_mm
-    hold = _hold_pixels(p)
     n_layers = layer_count(float(mesh.bounds[1, 2]), layer_mm)
     rows_out = np.zeros((n_layers, 4))  # area, perimeter, components, reach (pixels)
     reach_xy = np.full((n_layers, 2), np.nan)
@@ -571,9 +572,9 @@ def analyse_layers(
             # Holding is judged on edge-connected (4-connected) regions: pixels that meet
             # only at a corner share no area, so one does not hold the other.
             n4, comp4 = edge_components(runs[0].size, *run_overlaps((runs[0] + 1, *runs[1:]), runs)[:2])
-            ln = comp4[np.searchsorted(runs[0] * (w + 1) + runs[1], nr * (w + 1) + nc, side="right") - 1]
+            ln = _labels_at(runs, comp4, w, nr, nc)
             d = _near_reach(pw, new, w)
-            isl = ~_held(m, pw, runs, comp4, n4, w, hold)[ln]
+            isl = ~_held(m, pw, runs, comp4, n4, w)[ln]
             if isl.any():
                 found = _islands(new[isl], ln[isl], k, layer.z_mm, grid, r0, c0, w)  # in label order
                 labels = np.unique(ln[isl])
@@ -582,7 +583,7 @@ def analyse_layers(
                     j = int(np.searchsorted(labels, lab))
                     found[j] = dataclasses.replace(found[j], layer=islands[idx].layer, z_mm=islands[idx].z_mm)
                     dropped.add(idx)
-                grown = [(len(islands) + j, _flat_pixels(i)) for j, i in enumerate(found) if i.mask.sum() < hold]
+                grown = [(len(islands) + j, _flat_pixels(i)) for j, i in enumerate(found) if i.mask.sum() < HOLD_PIXELS]
                 islands.extend(found)
             if not isl.all():
                 nr, nc, d = nr[~isl], nc[~isl], d[~isl]
