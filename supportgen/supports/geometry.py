@@ -5,7 +5,8 @@ Every primitive is a manifold3d solid; all are joined in one
 output is one closed, oriented solid or an error.
 
 Tip: a cone frustum from the tip diameter at the contact (extended
-``tip_depth_mm`` into the part along its axis) to the post radius at its node.
+``tip_depth_mm`` (up to a tenth more, each tip its own) into the part along its axis) to
+the post radius at its node.
 Post segment: a frustum between two nodes.  Joint: a sphere at every node
 where segments meet, of the largest radius there.  Base: a raft (slabs under
 groups of neighbouring feet, made of overlapping discs) or pads (one disc per
@@ -183,7 +184,12 @@ def _phases(start: float, n: int) -> np.ndarray:
     both copies (a pinch a file merges into a non-manifold edge).  Turning each
     by its own fraction of a segment puts them in general position.
     """
-    return start + (np.arange(1, n + 1) * _GOLDEN % 1.0) * 2 * np.pi / _SEGMENTS
+    return start + _fractions(n) * 2 * np.pi / _SEGMENTS
+
+
+def _fractions(n: int, offset: float = 0.0) -> np.ndarray:
+    """``n`` distinct numbers in [0, 1) after ``offset``, from the golden-ratio sequence."""
+    return (offset + np.arange(1, n + 1) * _GOLDEN) % 1.0
 
 
 #: Segments reach this fraction of their radius past each node, into the joint there.
@@ -210,6 +216,12 @@ def _overlapping(p0, p1, r: float):
 #: near-tangent facets keeps coincident vertices; a slightly narrower cone starts inside
 #: the sphere and leaves it at a clear angle.
 _TIP_BASE_FRACTION = 0.9
+
+#: Tips reach into the part between ``tip_depth_mm`` and this much more (a fraction of it),
+#: each by its own amount: tips standing on one flat face at one height would otherwise end
+#: in coplanar caps, and two caps that overlap (contacts closer than a tip's width, as an
+#: island's point beside a minimum can be) leave coincident vertices no turn removes.
+_DEPTH_SPREAD = 0.1
 
 #: Radius of a foot (the stub sinking a post into the base) over its post's: inside the
 #: post's polygon (whose sides are cos(pi/16) = 0.98 of its radius from the axis).
@@ -245,6 +257,9 @@ def build_supports(
     joint[plan.tip_nodes] = True
     n_prim = len(plan.edges) + len(plan.braces) + int(joint.sum()) + len(plan.tip_points) + len(plan.feet)
     turn = iter(_phases(phase, n_prim))
+    # Each tip's own depth, from the same never-repeating sequence (offset by the turn, so a
+    # retry at another phase moves the caps too).
+    depth = rules.tip_depth_mm * (1 + _DEPTH_SPREAD * _fractions(len(plan.tip_points), phase * _SEGMENTS / (2 * np.pi)))
     for (a, b), r in zip(plan.edges, plan.edge_radius):
         parts.append(frustum(*_overlapping(plan.nodes[a], plan.nodes[b], r), r, r, phase=next(turn)))
     for a, b in plan.braces:
@@ -253,14 +268,14 @@ def build_supports(
     # A joint sphere, once, at every node where segments meet or a tip starts.
     for i in np.flatnonzero(joint):
         parts.append(_sphere(plan.nodes[i], node_r[i], next(turn)))
-    for p, node, d in zip(plan.tip_points, plan.tip_nodes, plan.tip_diameters):
+    for p, node, d, dep in zip(plan.tip_points, plan.tip_nodes, plan.tip_diameters, depth):
         q = plan.nodes[node]
         axis = p - q
         length = np.linalg.norm(axis)
         ph = next(turn)
         if length < EPS_REL:
             continue
-        p_in = p + axis / length * rules.tip_depth_mm
+        p_in = p + axis / length * dep
         parts.append(frustum(q, p_in, _TIP_BASE_FRACTION * node_r[node], d / 2, phase=ph))
     # Feet: posts sink half the base thickness into the base so the union is sound.  The
     # foot is a little narrower than its post and reaches into it, so their side faces and
