@@ -113,6 +113,7 @@ def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = 
             write_mesh(result.combined, paths["combined"])
         row["generate_s"] = time.perf_counter() - t0
         row["project_passed"] = bool(result.report["verification"]["passed"])
+        row["stages_s"] = {k: round(float(v), 3) for k, v in result.report.get("timing_s", {}).items()}
     except supportgen.SupportGenError as e:
         msg = str(e)
         row.update(seconds=time.perf_counter() - t0, message=msg, exception=type(e).__name__)

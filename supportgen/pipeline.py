@@ -31,7 +31,7 @@ from .io.budget import check_memory
 from .io.meshio import LoadedMesh, load_mesh, mesh_bytes, part_name, prepare_mesh
 from .io.outputs import commit_set, prepare_folder
 from .io.units import scale_loaded, unit_factor
-from .physics.loadpath import ForceProfile, ForceTracker
+from .physics.loadpath import ForceProfile, ForceTracker, LayerRecorder
 from .physics.orientation import apply_orientation
 from .report.assemble import RunRecords, build_report
 from .report.document import markdown, to_json
@@ -205,19 +205,9 @@ def _layer_contacts(part, stack: LayerStack, settings: Settings, contacts: Conta
     return merge_contacts(held, reach, spacing_mm)
 
 
-def _forces(part, grid: Grid, contacts: Contacts, settings: Settings, progress: bool) -> ForceProfile:
-    tracker = ForceTracker(grid, settings.printer.layer_mm, contacts.points, settings)
-    pr = settings.printer
-    analyse_layers(
-        part,
-        pr.pixel_mm,
-        pr.layer_mm,
-        settings.rules.reach_limit_mm,
-        grid=grid,
-        observers=(tracker,),
-        progress=progress and "forces",
-    )
-    return tracker.result()
+def _forces(records, grid: Grid, contacts: Contacts, settings: Settings) -> ForceProfile:
+    """The load path of ``contacts`` over the part's recorded layers (no layer sliced or solved again)."""
+    return ForceTracker(grid, settings.printer.layer_mm, contacts.points, settings).replay(records)
 
 
 def _sized_contacts(contacts: Contacts, profile: ForceProfile, settings: Settings) -> Contacts:
@@ -366,8 +356,17 @@ def _generate(
             # A local minimum is held only by a tip over it, not by one merely near it.
             contacts = add_unheld(contacts, minima, rules.tip_min_mm / 2 + pr.pixel_mm, pr.layer_mm)
     with timer("layers"):
+        # The contact-independent half of the load path (runs, cavities, pressure solves) is
+        # recorded on this one pass and replayed for every set of contacts below.
+        recorder = LayerRecorder(Grid.covering(part.bounds, pr.pixel_mm), settings)
         stack = analyse_layers(
-            part, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm, progress=progress and f"{name}: layers"
+            part,
+            pr.pixel_mm,
+            pr.layer_mm,
+            rules.reach_limit_mm,
+            grid=recorder.grid,
+            observers=(recorder,),
+            progress=progress and f"{name}: layers",
         )
         check_cures(stack.area_mm2, settings, name)
     if file_info is None:
@@ -377,7 +376,7 @@ def _generate(
     densified = repaired = 0
     for round_ in range(MAX_DENSIFY_ROUNDS + 1):
         with timer("forces"):
-            profile = _forces(part, stack.grid, contacts, settings, progress)
+            profile = _forces(recorder.records, stack.grid, contacts, settings)
         over = over_capacity(profile.contact_tip_loads, settings)
         # The last round only measures: the loads must be those of the contacts kept.
         if not over.any() or file_info or round_ == MAX_DENSIFY_ROUNDS:  # a contacts file is honoured
@@ -418,7 +417,7 @@ def _generate(
             break
         repaired += len(more) - len(contacts)
         with timer("forces"):
-            profile = _forces(part, stack.grid, more, settings, progress)
+            profile = _forces(recorder.records, stack.grid, more, settings)
         contacts = _sized_contacts(more, profile, settings)
     landings_avoided = None
     if guard.active:

@@ -15,6 +15,7 @@ from scipy import ndimage
 from supportgen.analysis.layers import Grid, Layer
 from supportgen.analysis.runlength import mask_runs
 from supportgen.errors import SettingsError
+from supportgen.physics import loadpath
 from supportgen.physics import pressure as pz
 from supportgen.physics import separation as laws
 from supportgen.physics.calibration import calibrated_settings, fit_calibration, read_measurements
@@ -523,11 +524,13 @@ def cup_sequence():
 
 
 @pytest.mark.parametrize("mechanism", ["pull", "tilt"])
-def test_tracker_matches_uncached_full_image_solve(mechanism):
+def test_tracker_matches_uncached_full_image_solve(mechanism, monkeypatch):
     # The tracker works on row runs, keeps solves between layers and never labels the
     # image; the reference labels the whole image with scipy.ndimage, seals cavities with
     # sealed_cavities and solves every component afresh. J and area must agree per layer
     # to solver round-off, and so must the layer force (the tilt law reads the labels).
+    # Every component is solved here (no strip bound; that shortcut has its own tests).
+    monkeypatch.setattr(loadpath, "THIN_SHARE", 0.0)
     masks = cup_sequence()
     ref = reference_layers(masks)
     s = Settings().override(mechanism=mechanism)
@@ -548,9 +551,10 @@ def test_tracker_matches_uncached_full_image_solve(mechanism):
     )
 
 
-def test_tracker_matches_uncached_solve_on_random_masks():
+def test_tracker_matches_uncached_solve_on_random_masks(monkeypatch):
     # Noisy random layers (many holes, diagonal-only contacts, empty layers): the run-based
     # cavities, components and perimeters must give the reference's J in every layer.
+    monkeypatch.setattr(loadpath, "THIN_SHARE", 0.0)  # every component solved, as above
     rng = np.random.default_rng(7)
     for _ in range(12):
         n = int(rng.integers(20, 48))
@@ -630,3 +634,69 @@ def test_coarse_bound_holds_for_any_block_alignment(offset):
         lab, _ = ndimage.label(shifted, EIGHT)
         assert pz.coarse_factor(mask.sum(), pz._edges(mask)) >= 3
         assert pz.solve_components(lab, [1], PX)[1][0] == pytest.approx(pz.torsion_constant(mask, PX), rel=0.02)
+
+
+# --- thin components: the strip bound instead of a solve -------------------------
+
+
+def test_strip_width_is_the_least_width_shapely_finds():
+    # Reference library: shapely's minimum rotated rectangle of the union of the pixel
+    # squares has the least width of their convex hull as its shorter side.
+    import shapely
+    from shapely.geometry import box
+
+    from supportgen.analysis.runlength import mask_runs
+
+    rng = np.random.default_rng(3)
+    yy, xx = np.mgrid[0:120, 0:120]
+    for _ in range(6):
+        a, t, L = rng.uniform(0, np.pi), rng.uniform(3, 20), rng.uniform(30, 100)
+        u = (xx - 60) * np.cos(a) + (yy - 60) * np.sin(a)
+        v = -(xx - 60) * np.sin(a) + (yy - 60) * np.cos(a)
+        m = (np.abs(v) < t / 2) & (np.abs(u) < L / 2)
+        rr, cc = np.nonzero(m)
+        poly = shapely.union_all([box(c, r, c + 1, r + 1) for r, c in zip(rr, cc)])
+        rect = np.asarray(poly.minimum_rotated_rectangle.exterior.coords)[:4]
+        sides = np.hypot(*np.diff(np.vstack([rect, rect[:1]]), axis=0).T)
+        assert pz.strip_width(*mask_runs(m)) == pytest.approx(sides.min(), rel=1e-9)
+
+
+def test_strip_bound_holds_the_solved_torsion_function():
+    # Domain monotonicity (maximum principle): a region inside a strip t wide has phi at most
+    # the strip's t^2/8 everywhere (exact strip solution (t^2/4 - y^2)/2). Checked against the
+    # pixel solve on random thin regions: bars, bent bars, a ring, blobs.
+    from supportgen.analysis.runlength import mask_runs
+
+    rng = np.random.default_rng(11)
+    yy, xx = np.mgrid[0:90, 0:90]
+    shapes = []
+    for _ in range(8):
+        a, t = rng.uniform(0, np.pi), rng.uniform(4, 16)
+        v = -(xx - 45) * np.sin(a) + (yy - 45) * np.cos(a)
+        shapes.append((np.abs(v) < t / 2) & (rng.random(xx.shape) < 0.97))
+    shapes.append(((xx - 45) ** 2 + (yy - 45) ** 2 < 40**2) & ((xx - 45) ** 2 + (yy - 45) ** 2 > 34**2))
+    for m in shapes:
+        phi = pz.pressure_shape(m, PX)
+        width_mm = pz.strip_width(*mask_runs(m)) * PX
+        assert phi.max() <= pz.strip_bound_phi(width_mm)
+        # J = 4 int(phi dA) <= t^2 A / 2
+        assert 4 * phi.sum() * PX**2 <= width_mm**2 * m.sum() * PX**2 / 2
+
+
+def test_thin_layers_overstate_the_force_within_the_recorded_bound(monkeypatch):
+    # A long thin bar (12 pixels of 0.05 mm = 0.6 mm wide) across the plate: with the shortcut its
+    # force lies between the solved force and the solved force plus the recorded bound, and the
+    # bound is at most THIN_SHARE of the bar's adhesion (b A).
+    yy, xx = centred(84)
+    bar = (np.abs(yy) < 6) & (np.abs(xx) < 80)
+    s = Settings()
+    fast, share = run([bar, bar], settings=s), loadpath.THIN_SHARE
+    monkeypatch.setattr(loadpath, "THIN_SHARE", 0.0)
+    solved = run([bar, bar], settings=s)
+    assert fast.strip_bounded == 2 and solved.strip_bounded == 0
+    bound = fast.strip_bound_n
+    assert np.all(fast.force_n >= solved.force_n)
+    assert np.all(fast.force_n <= solved.force_n + bound + 1e-15)
+    adhesion = s.printer.force_area_n_mm2 * bar.sum() * PX**2
+    assert 0 < bound.max() <= share * adhesion + 1e-15
+    assert fast.to_dict()["strip_bound"]["components"] == 2

@@ -56,7 +56,7 @@ import numpy as np
 
 from ..analysis.runlength import box_runs, edge_components, run_overlaps
 from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO, STATICS_RCOND
-from .pressure import solve_runs
+from .pressure import solve_runs, strip_bound_phi, strip_width
 from .separation import (
     SIDE_LOAD,
     capped_sample_forces,
@@ -67,7 +67,7 @@ from .separation import (
     slide_force,
 )
 
-__all__ = ["ForceTracker", "ForceProfile", "statics_shares", "statics_matrix"]
+__all__ = ["ForceTracker", "ForceProfile", "LayerRecord", "LayerRecorder", "statics_shares", "statics_matrix"]
 
 
 def statics_matrix(xy, stiffness, length_scale: float = 0.0) -> np.ndarray:
@@ -155,6 +155,12 @@ class ForceProfile:
     support_force_n : (L,) float ndarray
         Force of the raft and post cross-sections in each layer (N), added to
         ``force_n`` by :meth:`with_supports`; zeros until then.
+    rated_force_n : float or None
+    strip_bound_n : (L,) float ndarray or None
+        The most each layer's force is overstated (never understated) where thin
+        components took their strip bound instead of a pressure solve (N).
+    strip_bounded : int
+        How many components (over all layers) took it.
     """
 
     force_n: np.ndarray
@@ -170,6 +176,8 @@ class ForceProfile:
     mechanism: str = "pull"
     support_force_n: np.ndarray | None = None
     rated_force_n: float | None = None
+    strip_bound_n: np.ndarray | None = None
+    strip_bounded: int = 0
 
     @property
     def contact_tip_loads(self) -> np.ndarray:
@@ -223,8 +231,26 @@ class ForceProfile:
             "contact_squeeze_loads_n": [float(v) for v in _or_zeros(self.contact_squeeze_loads, self.contact_loads)],
             "support_force_n": [float(v) for v in _or_zeros(self.support_force_n, self.force_n)],
             "mechanism": self.mechanism,
+            "strip_bound": _strip_bound(self),
             "warnings": [{"code": c, "message": m} for c, m in self.warnings],
         }
+
+
+def _strip_bound(profile: ForceProfile) -> dict:
+    """The thin-component shortcut's error bound, for the report."""
+    bound = _or_zeros(profile.strip_bound_n, profile.force_n)
+    share = np.divide(
+        bound, profile.force_n[: bound.size], out=np.zeros(bound.size), where=profile.force_n[: bound.size] > 0
+    )
+    return {
+        "components": int(profile.strip_bounded),
+        "tolerance_share_of_adhesion": THIN_SHARE,
+        "max_overstatement_n": float(bound.max(initial=0.0)),
+        "max_overstatement_share": float(share.max(initial=0.0)),
+        "note": "thin components (no sealed cavity) whose narrowest strip bounds their suction to at most "
+        f"{THIN_SHARE:g} of their adhesion take that bound as a uniform pressure instead of a solve: "
+        "each layer's force is overstated by at most max_overstatement_n, never understated",
+    }
 
 
 def _or_zeros(a, like):
@@ -246,6 +272,13 @@ def _over_rated(force, rated) -> tuple:
         ),
     )
 
+
+#: Largest suction, as a share of the adhesion of the same area, that a thin component may be
+#: given by its strip bound instead of a solve (see ``LayerRecorder._geometry``): the layer's
+#: force is then overstated (never understated) by at most this share of its adhesion term:
+#: the 2 % the coarse-grid solves are held to (:mod:`supportgen.physics.pressure`), our choice.
+#: At the default film and resin a region inside a strip 1.8 mm wide takes it.
+THIN_SHARE = 0.02
 
 #: Unheld force below which no warning is given (N): a thousandth of the smallest
 #: tip's capacity at common green strengths.
@@ -298,8 +331,9 @@ class ForceTracker:
         self._node = np.full(len(pts), -1)  # union-find node each contact holds
         self._parent: list[int] = []
         self._held: dict[int, list[int]] = {}  # root -> contacts
-        self._prev = None  # the layer below: runs, labels, nodes, solves
-        self._force, self._area, self._unheld = {}, {}, {}
+        self._prev_node0 = None  # first union-find node of the layer below
+        self._recorder = LayerRecorder(grid, settings, keep=False)  # when fed layer by layer
+        self._force, self._area, self._unheld, self._bound, self._bounded = {}, {}, {}, {}, 0
         self._peak = np.zeros(len(pts))
         self._peak_layer = np.full(len(pts), -1)
         self._side = np.zeros(len(pts))
@@ -323,64 +357,42 @@ class ForceTracker:
 
     # per layer ------------------------------------------------------------------
     def __call__(self, layer, labels: np.ndarray, n_labels: int) -> None:
-        mask, k, h = layer.mask, int(layer.index), self.grid.pixel_mm
-        prev = self._prev
-        runs = box_runs(mask)
-        lab = labels[runs[0], runs[1]].astype(np.int64)
+        self.apply(self._recorder(layer, labels, n_labels))
+
+    def replay(self, records) -> ForceProfile:
+        """Apply recorded layers (a :class:`LayerRecorder`'s ``records``, in print order); the profile."""
+        for rec in records:
+            self.apply(rec)
+        return self.result()
+
+    def apply(self, rec: LayerRecord) -> None:
+        """The contact-dependent part of a layer: attach tips, find holders, share the loads."""
+        k, nf, n_labels = rec.index, rec.nf, rec.n_labels
         node0 = len(self._parent)
         self._parent.extend(range(node0, node0 + n_labels))
-        if prev is not None and runs[0].size and prev["runs"][0].size:  # 3-D connectivity with the layer below
-            ia, ib, _ = run_overlaps(runs, prev["runs"])
-            base = int(prev["lab"].max()) + 1
-            for code in np.unique(lab[ia] * base + prev["lab"][ib]).tolist():
-                self._union(node0 + code // base - 1, prev["node0"] + code % base - 1)
-        self._attach(layer, labels, node0)
-        suction, fmap, nf, edges = _suction(runs, lab, n_labels, None if prev is None else prev["suction"])
-        geo, cache = self._geometry(suction, nf, edges, {} if prev is None else prev["cache"])
-        area = np.array([geo[i][1] for i in range(1, nf + 1)])
-        jt = np.array([geo[i][0] for i in range(1, nf + 1)])
-        cured = np.bincount(fmap[lab] - 1, runs[2] - runs[1], nf) * h * h if nf else np.zeros(0)
+        if self._prev_node0 is not None:  # 3-D connectivity with the layer below
+            for a, b in rec.links.tolist():
+                self._union(node0 + a - 1, self._prev_node0 + b - 1)
+        self._attach(rec, node0)
         holders: list[list] = [[] for _ in range(nf + 1)]
         for a in range(1, n_labels + 1):
-            holders[fmap[a]].extend(self._held.get(self._find(node0 + a - 1), ()))
-        # pull: the bounded pressure field of each component, its resultant and first moments
-        _, _, adh = film_constants(self.settings)
-        pull = np.zeros((3, nf))
-        for i in range(1, nf + 1):
-            pts, w, da = geo[i][2], geo[i][3], geo[i][4]
-            f = capped_sample_forces(w, da, self.settings)
-            fa = adh * cured[i - 1] * da / max(float(da.sum()), EPS_ZERO)
-            f = f + fa
-            pull[:, i - 1] = f.sum(), f @ pts[:, 0], f @ pts[:, 1]
+            holders[rec.fmap[a]].extend(self._held.get(self._find(node0 + a - 1), ()))
+        pull, comp_force = rec.pull, rec.comp_force
         n = len(self.points)
         squeeze_load, load, side = np.zeros(n), np.zeros(n), np.zeros(n)
-        if self.mechanism == "tilt":
-            sweep = peel_sweep(*suction[:4], nf, h, (self.grid.x0, self.grid.y0), self.settings)
-            force, fx, fy = clamp_to_pull(*sweep, pull[0])
-            worst = int(np.argmax(force.sum(axis=0))) if force.shape[1] else 0
-            comp_force = force[:, worst] if force.shape[1] else np.zeros(nf)
-        elif self.mechanism in SIDE_LOAD:
-            comp_force = slide_force(_Areas(area), self.settings)
-        else:
-            comp_force = pull[0]
         unheld = 0.0
         for i in range(1, nf + 1):
             hold = sorted(set(holders[i]))
             if not hold:
                 unheld += comp_force[i - 1]
                 continue
-            pts, da = geo[i][2], geo[i][4]
-            spread = (
-                float(np.sqrt((da @ ((pts - da @ pts / da.sum()) ** 2).sum(axis=1)) / da.sum()))
-                if da.sum() > 0
-                else 0.0
-            )
-            g = statics_matrix(self.points[hold, :2], self._stiff[hold], spread)
+            g = statics_matrix(self.points[hold, :2], self._stiff[hold], rec.spread[i - 1])
             r_pull = g @ pull[:, i - 1]
             squeeze_load[hold] += r_pull
-            if self.mechanism == "tilt" and force.shape[1]:
+            if self.mechanism == "tilt" and rec.sweep is not None:
+                force, fx, fy = rec.sweep
                 r = g @ np.vstack([force[i - 1], fx[i - 1], fy[i - 1]])  # (n_hold, M): every front position
-                load[hold] += r[:, worst]
+                load[hold] += r[:, rec.worst]
                 up = np.maximum(r.max(axis=1), 0.0)
                 push = np.maximum(-r.min(axis=1), 0.0)
                 self._squeeze[hold] = np.maximum(self._squeeze[hold], push)
@@ -407,58 +419,36 @@ class ForceTracker:
                 up = load > self._peak
                 self._peak[up], self._peak_layer[up] = load[up], k
         self.last_unheld_n = float(unheld)
-        self.last_torsion_mm4 = jt
+        self.last_torsion_mm4 = rec.torsion_mm4
         self._force[k] = float(comp_force.sum())
-        self._area[k] = float((runs[2] - runs[1]).sum()) * h * h
+        self._area[k] = rec.area_mm2
         self._unheld[k] = float(unheld)
-        self._prev = {"runs": runs, "lab": lab, "node0": node0, "suction": suction[:3], "cache": cache}
+        self._bound[k] = rec.bound_n
+        self._bounded += rec.bounded
+        self._prev_node0 = node0
 
-    def _attach(self, layer, labels, node0) -> None:
+    def _attach(self, rec: LayerRecord, node0: int) -> None:
         """Attach pending contacts whose tip disc touches this layer's cured pixels."""
-        top = layer.z_mm + self.layer_mm / 2.0
+        top = rec.z_mm + self.layer_mm / 2.0
         pend = np.nonzero((self._node < 0) & (self.points[:, 2] <= top + EPS_REL))[0]
-        if pend.size == 0:
+        if pend.size == 0 or rec.n_labels == 0:
             return
-        ny, nx = labels.shape
         rr = self._rc[pend, 0][:, None] + self._off[0][None, :]
         cc = self._rc[pend, 1][:, None] + self._off[1][None, :]
-        ok = (rr >= 0) & (rr < ny) & (cc >= 0) & (cc < nx)
-        lab = np.where(ok, labels[np.clip(rr, 0, ny - 1), np.clip(cc, 0, nx - 1)], 0)
+        lab = rec.label_at(rr, cc)
         hit = lab > 0
         for j, row in zip(pend[hit.any(axis=1)], lab[hit.any(axis=1)]):
             node = self._find(node0 + int(row[row > 0][0]) - 1)
             self._node[j] = node
             self._held.setdefault(node, []).append(int(j))
 
-    def _geometry(self, suction, nf, edges, kept):
-        """J, area and pressure samples per suction component; solves kept by coarse block key."""
-        g = self.grid
-        rows, starts, ends, comp, cav = suction
-        order = np.argsort(comp, kind="stable")
-        cut = np.searchsorted(comp[order], np.arange(1, nf + 2))
-        geo, cache = {}, {}
-        for i in range(1, nf + 1):
-            o = order[cut[i - 1] : cut[i]]
-            *out, (key, state) = solve_runs(
-                rows[o],
-                starts[o],
-                ends[o],
-                int(edges[i - 1]),
-                g.pixel_mm,
-                (g.x0, g.y0),
-                kept,
-                cavity=cav[o] if cav[o].any() else None,
-            )
-            geo[i] = tuple(out)
-            cache[key] = state
-        return geo, cache
-
     def result(self) -> ForceProfile:
         """The :class:`ForceProfile` of the layers seen so far."""
         n = max(self._force) + 1 if self._force else 0
-        force, area, unheld = np.zeros(n), np.zeros(n), np.zeros(n)
+        force, area, unheld, bound = np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n)
         for k in self._force:
             force[k], area[k], unheld[k] = self._force[k], self._area[k], self._unheld[k]
+            bound[k] = self._bound.get(k, 0.0)
         peak = int(np.argmax(force)) if n else -1
         peak_f = float(force[peak]) if n else 0.0
         rated = self.settings.printer.rated_force_n
@@ -500,7 +490,205 @@ class ForceTracker:
             mechanism=self.mechanism,
             support_force_n=np.zeros(n),
             rated_force_n=rated,
+            strip_bound_n=bound,
+            strip_bounded=self._bounded,
         )
+
+
+@dataclass(frozen=True, eq=False)
+class LayerRecord:
+    """What the load path needs of one layer that does not depend on the contacts.
+
+    Made once per layer by :class:`LayerRecorder` (runs, components, cavities,
+    pressure solves, separation laws) and applied to any set of contacts by
+    :meth:`ForceTracker.apply`, so densifying and repair rounds share the layers and
+    the solves of the first pass (issue: no stage repeated without need).
+
+    Attributes
+    ----------
+    index, z_mm : layer index and mid-height (mm)
+    runs : (rows, starts, ends) int64 arrays, full-grid coordinates
+    lab : (runs,) int64, 8-connected label of each run (1..n_labels)
+    n_labels : int
+    links : (m, 2) int64, label pairs (this layer, layer below) that overlap
+    fmap : (n_labels + 1,) int, label -> suction component (1..nf)
+    nf : int
+    pull : (3, nf) float, each component's pull resultant and its two first moments
+    spread : (nf,) float, RMS radius of each component's pressure samples (mm)
+    comp_force : (nf,) float, each component's force under the printer's mechanism (N)
+    sweep : (force, fx, fy) of the peel sweep (tilt only), else None; ``worst`` its peak column
+    torsion_mm4 : (nf,) float, J of each suction component
+    area_mm2 : float, cured area of the layer
+    width : int, the grid's columns
+    bound_n, bounded : the most this layer's force is overstated by thin components given their
+        strip bound instead of a solve (N), and how many (``LayerRecorder._geometry``)
+    """
+
+    index: int
+    z_mm: float
+    runs: tuple
+    lab: np.ndarray
+    n_labels: int
+    links: np.ndarray
+    fmap: np.ndarray
+    nf: int
+    pull: np.ndarray
+    spread: np.ndarray
+    comp_force: np.ndarray
+    sweep: tuple | None
+    worst: int
+    torsion_mm4: np.ndarray
+    area_mm2: float
+    width: int
+    bound_n: float = 0.0
+    bounded: int = 0
+
+    def label_at(self, rr: np.ndarray, cc: np.ndarray) -> np.ndarray:
+        """Label of the pixels ``(rr, cc)`` (any shape; 0 where empty or off the grid), from the runs.
+
+        The run starting last at or before a pixel in row-major order holds it when
+        it is in that row and ends after it.  O(q log runs).
+        """
+        r, s, e = self.runs
+        out = np.zeros(np.shape(rr), np.int64)
+        if r.size == 0:
+            return out
+        ok = (rr >= 0) & (cc >= 0) & (cc < self.width)
+        key = r * (self.width + 1) + s
+        q = np.where(ok, rr * (self.width + 1) + cc, -1)
+        i = np.searchsorted(key, q, side="right") - 1
+        ic = np.clip(i, 0, r.size - 1)
+        inside = ok & (i >= 0) & (r[ic] == rr) & (cc < e[ic])
+        out[inside] = self.lab[ic[inside]]
+        return out
+
+
+class LayerRecorder:
+    """Per-layer observer that makes the :class:`LayerRecord` of every layer.
+
+    Parameters
+    ----------
+    grid : supportgen.analysis.layers.Grid
+    settings : supportgen.settings.Settings
+    keep : bool
+        Keep the records in ``records`` (to replay them against contacts later).
+
+    Notes
+    -----
+    Memory grows with the print when kept: the runs of each layer (three int64 per
+    row run) and one pressure sample per coarse cell of each component (the coarse
+    grid keeps a component to a few thousand cells, :mod:`supportgen.physics.pressure`),
+    so a few tens of MB for a 50 mm part of 1500 layers; no pixel image is kept.
+    """
+
+    def __init__(self, grid, settings, keep: bool = True):
+        self.grid, self.settings = grid, settings
+        self.mechanism = settings.printer.mechanism
+        separation(self.mechanism)  # SettingsError on an unknown name
+        self.keep = keep
+        self.records: list[LayerRecord] = []
+        self._prev = None  # the layer below: runs, labels, suction, solves
+
+    def __call__(self, layer, labels: np.ndarray, n_labels: int) -> LayerRecord:
+        mask, h = layer.mask, self.grid.pixel_mm
+        prev = self._prev
+        runs = box_runs(mask)
+        lab = labels[runs[0], runs[1]].astype(np.int64)
+        links = np.zeros((0, 2), np.int64)
+        if prev is not None and runs[0].size and prev["runs"][0].size:
+            ia, ib, _ = run_overlaps(runs, prev["runs"])
+            base = int(prev["lab"].max()) + 1
+            codes = np.unique(lab[ia] * base + prev["lab"][ib])
+            links = np.column_stack([codes // base, codes % base])
+        suction, fmap, nf, edges = _suction(runs, lab, n_labels, None if prev is None else prev["suction"])
+        geo, cache, bound_n, bounded = self._geometry(suction, nf, edges, {} if prev is None else prev["cache"])
+        area = np.array([geo[i][1] for i in range(1, nf + 1)])
+        jt = np.array([geo[i][0] for i in range(1, nf + 1)])
+        cured = np.bincount(fmap[lab] - 1, runs[2] - runs[1], nf) * h * h if nf else np.zeros(0)
+        # pull: the bounded pressure field of each component, its resultant and first moments
+        _, _, adh = film_constants(self.settings)
+        pull, spread = np.zeros((3, nf)), np.zeros(nf)
+        for i in range(1, nf + 1):
+            pts, w, da = geo[i][2], geo[i][3], geo[i][4]
+            f = capped_sample_forces(w, da, self.settings)
+            fa = adh * cured[i - 1] * da / max(float(da.sum()), EPS_ZERO)
+            f = f + fa
+            pull[:, i - 1] = f.sum(), f @ pts[:, 0], f @ pts[:, 1]
+            if da.sum() > 0:
+                spread[i - 1] = float(np.sqrt((da @ ((pts - da @ pts / da.sum()) ** 2).sum(axis=1)) / da.sum()))
+        sweep, worst = None, 0
+        if self.mechanism == "tilt":
+            raw = peel_sweep(*suction[:4], nf, h, (self.grid.x0, self.grid.y0), self.settings)
+            force, fx, fy = clamp_to_pull(*raw, pull[0])
+            sweep = (force, fx, fy)
+            worst = int(np.argmax(force.sum(axis=0))) if force.shape[1] else 0
+            comp_force = force[:, worst] if force.shape[1] else np.zeros(nf)
+            if not force.shape[1]:
+                sweep = None
+        elif self.mechanism in SIDE_LOAD:
+            comp_force = slide_force(_Areas(area), self.settings)
+        else:
+            comp_force = pull[0]
+        rec = LayerRecord(
+            int(layer.index),
+            float(layer.z_mm),
+            runs,
+            lab,
+            int(n_labels),
+            links,
+            fmap,
+            int(nf),
+            pull,
+            spread,
+            np.asarray(comp_force, float),
+            sweep,
+            worst,
+            jt,
+            float((runs[2] - runs[1]).sum()) * h * h,
+            int(self.grid.nx),
+            float(bound_n),
+            int(bounded),
+        )
+        self._prev = {"runs": runs, "lab": lab, "suction": suction[:3], "cache": cache}
+        if self.keep:
+            self.records.append(rec)
+        return rec
+
+    def _geometry(self, suction, nf, edges, kept):
+        """J, area and pressure samples per suction component; solves kept by coarse block key.
+
+        A component with no sealed cavity whose narrowest strip (:func:`strip_width`)
+        bounds its suction to at most :data:`THIN_SHARE` of its adhesion is not solved:
+        it takes that bound as a uniform pressure (:func:`strip_bound_phi`), which
+        overstates its force by no more than the bound itself, recorded per component.
+        Returns ``geo`` (per component: J, area, points, phi dA, dA), the solve cache and
+        the summed overstatement bound (N) of the components so taken, with their count.
+        """
+        g, h = self.grid, self.grid.pixel_mm
+        kp, ceiling, adh = film_constants(self.settings)
+        rows, starts, ends, comp, cav = suction
+        order = np.argsort(comp, kind="stable")
+        cut = np.searchsorted(comp[order], np.arange(1, nf + 2))
+        geo, cache, bound_n, bounded = {}, {}, 0.0, 0
+        for i in range(1, nf + 1):
+            o = order[cut[i - 1] : cut[i]]
+            r, s0, e = rows[o], starts[o], ends[o]
+            if adh > 0 and not cav[o].any():
+                phi = strip_bound_phi(strip_width(r, s0, e) * h)
+                if min(kp * phi, ceiling) <= THIN_SHARE * adh:
+                    da = (e - s0) * h * h
+                    pts = np.column_stack([g.x0 + ((s0 + e - 1) / 2) * h, g.y0 + r * h])
+                    area = float(da.sum())
+                    geo[i] = (4.0 * phi * area, area, pts, phi * da, da)
+                    bound_n += min(kp * phi, ceiling) * area
+                    bounded += 1
+                    continue
+            *out, (key, state) = solve_runs(
+                r, s0, e, int(edges[i - 1]), h, (g.x0, g.y0), kept, cavity=cav[o] if cav[o].any() else None
+            )
+            geo[i] = tuple(out)
+            cache[key] = state
+        return geo, cache, bound_n, bounded
 
 
 class _Areas:

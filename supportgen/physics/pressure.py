@@ -65,6 +65,8 @@ __all__ = [
     "solve_components",
     "sealed_cavities",
     "CELLS_ACROSS",
+    "strip_width",
+    "strip_bound_phi",
 ]
 
 #: Coarse cells across the half-width ``2A/P`` the coarse grid keeps (see Notes above).
@@ -480,3 +482,59 @@ def sealed_cavities(
     open_[lab[vented_below]] = True
     sealed[sl] = ~open_[lab]
     return sealed
+
+
+def strip_width(rows, starts, ends) -> float:
+    """Least width (pixels) of the convex hull of a region's pixels: the narrowest strip holding it.
+
+    The pixel squares' corners at the ends of each run span the region's convex hull;
+    its least width is the least, over the hull's edges, of the farthest hull point
+    from that edge's line (rotating calipers, Shamos 1978; Toussaint 1983).  Cost
+    O(runs log runs).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> strip_width(np.arange(3), np.zeros(3, int), np.full(3, 10))   # a 3 x 10 block
+    3.0
+    """
+    r, s, e = (np.asarray(a, float) for a in (rows, starts, ends))
+    pts = np.unique(np.column_stack([np.r_[s, e, s, e], np.r_[r, r, r + 1, r + 1]]), axis=0)  # (x, y) corners, sorted
+    if len(pts) < 3:
+        return 0.0
+    hull = _hull(pts)
+    edge = np.roll(hull, -1, axis=0) - hull
+    length = np.hypot(edge[:, 0], edge[:, 1])
+    normal = np.column_stack([-edge[:, 1], edge[:, 0]]) / np.maximum(length, 1e-300)[:, None]
+    dist = np.abs(np.einsum("ij,kj->ik", normal, hull) - np.einsum("ij,ij->i", normal, hull)[:, None])
+    return float(dist.max(axis=1)[length > 0].min())
+
+
+def _hull(pts: np.ndarray) -> np.ndarray:
+    """Convex hull of points sorted by (x, y), counter-clockwise (Andrew's monotone chain)."""
+
+    def half(points):
+        out: list = []
+        for p in points:
+            while len(out) >= 2:
+                (ax, ay), (bx, by) = out[-2], out[-1]
+                if (bx - ax) * (p[1] - ay) - (by - ay) * (p[0] - ax) > 0:
+                    break
+                out.pop()
+            out.append(tuple(p))
+        return out
+
+    lower, upper = half(pts), half(pts[::-1])
+    return np.array(lower[:-1] + upper[:-1], float)
+
+
+def strip_bound_phi(width_mm: float) -> float:
+    """Upper bound of the torsion function on any region inside a strip ``width_mm`` wide (mm^2).
+
+    On the strip ``|y| < t/2`` the torsion function is ``(t^2/4 - y^2)/2`` (exact:
+    ``laplacian = -1``, zero on both edges), at most ``t^2/8``; a region inside the strip
+    has a torsion function no larger at any point (domain monotonicity, from the maximum
+    principle: the difference is harmonic and non-negative on the smaller region's
+    boundary).  So its ``J = 4 int(phi dA) <= t^2 A / 2``.
+    """
+    return width_mm * width_mm / 8.0
