@@ -670,10 +670,14 @@ class LayerRecorder:
         order = np.argsort(comp, kind="stable")
         cut = np.searchsorted(comp[order], np.arange(1, nf + 2))
         geo, cache, bound_n, bounded = {}, {}, 0.0, 0
+        # widest strip whose bound passes (strip_bound_phi is t^2 / 8); none without adhesion
+        thin_mm = float(np.sqrt(8.0 * THIN_SHARE * adh / kp)) if kp > 0 else np.inf
         for i in range(1, nf + 1):
             o = order[cut[i - 1] : cut[i]]
             r, s0, e = rows[o], starts[o], ends[o]
-            if adh > 0 and not cav[o].any():
+            # width >= area / diameter for a convex region (its hull), diameter <= the box's diagonal:
+            # a component that cannot be that thin skips the hull.
+            if adh > 0 and not cav[o].any() and _may_be_thin(r, s0, e, h, thin_mm):
                 phi = strip_bound_phi(strip_width(r, s0, e) * h)
                 if min(kp * phi, ceiling) <= THIN_SHARE * adh:
                     da = (e - s0) * h * h
@@ -689,6 +693,14 @@ class LayerRecorder:
             geo[i] = tuple(out)
             cache[key] = state
         return geo, cache, bound_n, bounded
+
+
+def _may_be_thin(rows, starts, ends, pixel_mm: float, thin_mm: float) -> bool:
+    """False when a region cannot lie in a strip ``thin_mm`` wide: its convex hull's width is
+    at least its area over its diameter, and the diameter at most its box's diagonal."""
+    area = float((ends - starts).sum())
+    diag = float(np.hypot(rows.max() - rows.min() + 1, ends.max() - starts.min()))
+    return area / diag * pixel_mm <= thin_mm
 
 
 class _Areas:

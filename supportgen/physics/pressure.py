@@ -487,10 +487,10 @@ def sealed_cavities(
 def strip_width(rows, starts, ends) -> float:
     """Least width (pixels) of the convex hull of a region's pixels: the narrowest strip holding it.
 
-    The pixel squares' corners at the ends of each run span the region's convex hull;
-    its least width is the least, over the hull's edges, of the farthest hull point
-    from that edge's line (rotating calipers, Shamos 1978; Toussaint 1983).  Cost
-    O(runs log runs).
+    The hull is that of each row's outermost pixel corners (qhull, through
+    ``scipy.spatial.ConvexHull``); its least width is the least, over the hull's
+    edges, of the farthest hull vertex from that edge's line (rotating calipers,
+    Shamos 1978; Toussaint 1983).  Cost O(runs + rows log rows).
 
     Examples
     --------
@@ -498,34 +498,26 @@ def strip_width(rows, starts, ends) -> float:
     >>> strip_width(np.arange(3), np.zeros(3, int), np.full(3, 10))   # a 3 x 10 block
     3.0
     """
-    r, s, e = (np.asarray(a, float) for a in (rows, starts, ends))
-    pts = np.unique(np.column_stack([np.r_[s, e, s, e], np.r_[r, r, r + 1, r + 1]]), axis=0)  # (x, y) corners, sorted
-    if len(pts) < 3:
+    from scipy.spatial import ConvexHull
+
+    r = np.asarray(rows, np.int64)
+    if r.size == 0:
         return 0.0
-    hull = _hull(pts)
+    # each row's leftmost start and rightmost end (runs are sorted by row within a component
+    # only loosely, so reduce by row explicitly)
+    uniq, inv = np.unique(r, return_inverse=True)
+    lo = np.full(uniq.size, np.iinfo(np.int64).max)
+    hi = np.full(uniq.size, np.iinfo(np.int64).min)
+    np.minimum.at(lo, inv, np.asarray(starts, np.int64))
+    np.maximum.at(hi, inv, np.asarray(ends, np.int64))
+    y = uniq.astype(float)
+    pts = np.column_stack([np.r_[lo, hi, lo, hi], np.r_[y, y, y + 1, y + 1]]).astype(float)
+    hull = pts[ConvexHull(pts).vertices]  # counter-clockwise
     edge = np.roll(hull, -1, axis=0) - hull
     length = np.hypot(edge[:, 0], edge[:, 1])
-    normal = np.column_stack([-edge[:, 1], edge[:, 0]]) / np.maximum(length, 1e-300)[:, None]
-    dist = np.abs(np.einsum("ij,kj->ik", normal, hull) - np.einsum("ij,ij->i", normal, hull)[:, None])
-    return float(dist.max(axis=1)[length > 0].min())
-
-
-def _hull(pts: np.ndarray) -> np.ndarray:
-    """Convex hull of points sorted by (x, y), counter-clockwise (Andrew's monotone chain)."""
-
-    def half(points):
-        out: list = []
-        for p in points:
-            while len(out) >= 2:
-                (ax, ay), (bx, by) = out[-2], out[-1]
-                if (bx - ax) * (p[1] - ay) - (by - ay) * (p[0] - ax) > 0:
-                    break
-                out.pop()
-            out.append(tuple(p))
-        return out
-
-    lower, upper = half(pts), half(pts[::-1])
-    return np.array(lower[:-1] + upper[:-1], float)
+    normal = np.column_stack([-edge[:, 1], edge[:, 0]]) / length[:, None]
+    dist = np.abs(normal @ hull.T - np.einsum("ij,ij->i", normal, hull)[:, None])
+    return float(dist.max(axis=1).min())
 
 
 def strip_bound_phi(width_mm: float) -> float:
