@@ -700,3 +700,23 @@ def test_thin_layers_overstate_the_force_within_the_recorded_bound(monkeypatch):
     adhesion = s.printer.force_area_n_mm2 * bar.sum() * PX**2
     assert 0 < bound.max() <= share * adhesion + 1e-15
     assert fast.to_dict()["strip_bound"]["components"] == 2
+
+
+def test_ring_bound_holds_the_solved_torsion_function():
+    # Domain monotonicity again, with the annulus: the hollow shaft's Prandtl function with
+    # both rims at zero (Timoshenko & Goodier; derived from laplacian = -1 in polar
+    # coordinates) bounds the pixel solve of rings, an off-centre arc and a full disc, and a
+    # thin ring's bound is near the strip's t^2/8.
+    from supportgen.analysis.runlength import mask_runs
+
+    yy, xx = np.mgrid[0:240, 0:240] + 0.5
+    d2 = (xx - 120) ** 2 + (yy - 120) ** 2
+    for ri, ro in [(80, 96), (100, 108), (0, 110), (40, 110)]:
+        m = (d2 < ro**2) & (d2 >= ri**2)
+        phi = pz.pressure_shape(m, PX).max()
+        bound = pz.ring_bound_phi(*mask_runs(m), PX)
+        assert phi <= bound
+        if ri > 50:
+            assert bound <= 1.5 * ((ro - ri) * PX) ** 2 / 8
+    arc = (d2 < 96**2) & (d2 >= 80**2) & (xx > 60)
+    assert pz.pressure_shape(arc, PX).max() <= pz.ring_bound_phi(*mask_runs(arc), PX)

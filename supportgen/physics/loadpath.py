@@ -56,7 +56,7 @@ import numpy as np
 
 from ..analysis.runlength import box_runs, edge_components, run_overlaps
 from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO, STATICS_RCOND
-from .pressure import solve_runs, strip_bound_phi, strip_width
+from .pressure import ring_bound_phi, solve_runs, strip_bound_phi, strip_width
 from .separation import (
     SIDE_LOAD,
     capped_sample_forces,
@@ -247,7 +247,7 @@ def _strip_bound(profile: ForceProfile) -> dict:
         "tolerance_share_of_adhesion": THIN_SHARE,
         "max_overstatement_n": float(bound.max(initial=0.0)),
         "max_overstatement_share": float(share.max(initial=0.0)),
-        "note": "thin components (no sealed cavity) whose narrowest strip bounds their suction to at most "
+        "note": "thin components (no sealed cavity) whose narrowest strip or thinnest ring bounds their suction to at most "
         f"{THIN_SHARE:g} of their adhesion take that bound as a uniform pressure instead of a solve: "
         "each layer's force is overstated by at most max_overstatement_n, never understated",
     }
@@ -274,7 +274,7 @@ def _over_rated(force, rated) -> tuple:
 
 
 #: Largest suction, as a share of the adhesion of the same area, that a thin component may be
-#: given by its strip bound instead of a solve (see ``LayerRecorder._geometry``): the layer's
+#: given by its strip or ring bound instead of a solve (see ``LayerRecorder._geometry``): the layer's
 #: force is then overstated (never understated) by at most this share of its adhesion term:
 #: the 2 % the coarse-grid solves are held to (:mod:`supportgen.physics.pressure`), our choice.
 #: At the default film and resin a region inside a strip 1.8 mm wide takes it.
@@ -657,8 +657,8 @@ class LayerRecorder:
     def _geometry(self, suction, nf, edges, kept):
         """J, area and pressure samples per suction component; solves kept by coarse block key.
 
-        A component with no sealed cavity whose narrowest strip (:func:`strip_width`)
-        bounds its suction to at most :data:`THIN_SHARE` of its adhesion is not solved:
+        A component with no sealed cavity whose thinnest annulus about its box's centre
+        (:func:`ring_bound_phi`) or narrowest strip (:func:`strip_width`) bounds its suction to at most :data:`THIN_SHARE` of its adhesion is not solved:
         it takes that bound as a uniform pressure (:func:`strip_bound_phi`), which
         overstates its force by no more than the bound itself, recorded per component.
         Returns ``geo`` (per component: J, area, points, phi dA, dA), the solve cache and
@@ -675,10 +675,12 @@ class LayerRecorder:
         for i in range(1, nf + 1):
             o = order[cut[i - 1] : cut[i]]
             r, s0, e = rows[o], starts[o], ends[o]
-            # width >= area / diameter for a convex region (its hull), diameter <= the box's diagonal:
-            # a component that cannot be that thin skips the hull.
-            if adh > 0 and not cav[o].any() and _may_be_thin(r, s0, e, h, thin_mm):
-                phi = strip_bound_phi(strip_width(r, s0, e) * h)
+            if adh > 0 and not cav[o].any():
+                # the thinnest annulus about the box centre (O(runs)); then the narrowest strip, whose
+                # width is at least the area over the box's diagonal (skip the hull when that is wide)
+                phi = ring_bound_phi(r, s0, e, h)
+                if kp * phi > THIN_SHARE * adh and _may_be_thin(r, s0, e, h, thin_mm):
+                    phi = min(phi, strip_bound_phi(strip_width(r, s0, e) * h))
                 if min(kp * phi, ceiling) <= THIN_SHARE * adh:
                     da = (e - s0) * h * h
                     pts = np.column_stack([g.x0 + ((s0 + e - 1) / 2) * h, g.y0 + r * h])

@@ -67,6 +67,7 @@ __all__ = [
     "CELLS_ACROSS",
     "strip_width",
     "strip_bound_phi",
+    "ring_bound_phi",
 ]
 
 #: Coarse cells across the half-width ``2A/P`` the coarse grid keeps (see Notes above).
@@ -530,3 +531,33 @@ def strip_bound_phi(width_mm: float) -> float:
     boundary).  So its ``J = 4 int(phi dA) <= t^2 A / 2``.
     """
     return width_mm * width_mm / 8.0
+
+
+def ring_bound_phi(rows, starts, ends, pixel_mm: float) -> float:
+    """Upper bound of the torsion function (mm^2) of a region from the thinnest annulus about its box's centre.
+
+    Every pixel corner of the region lies between radii ``a`` and ``b`` of the centre of
+    its bounding box, so the region lies in that annulus and its torsion function is at
+    most the annulus's (domain monotonicity, as :func:`strip_bound_phi`), which is exact:
+    ``phi(r) = (b^2 - r^2)/4 - (b^2 - a^2) ln(b/r) / (4 ln(b/a))``, largest at
+    ``r^2 = (b^2 - a^2) / (2 ln(b/a))`` (Timoshenko & Goodier, Theory of Elasticity,
+    torsion of a hollow circular shaft's Prandtl function with both rims at zero;
+    derived from ``laplacian = -1`` in polar coordinates).  A thin ring of width
+    ``t = b - a`` gets about ``t^2/8``, as a strip; a region with no hole round the
+    centre gets the disc's ``b^2/4``.
+    """
+    r = np.asarray(rows, float)
+    s, e = np.asarray(starts, float), np.asarray(ends, float)
+    cy, cx = (r.min() + r.max() + 1) / 2, (s.min() + e.max()) / 2  # box centre, pixel-corner units
+    # each run is the rectangle [s, e] x [r, r + 1]: its nearest and farthest points from the centre
+    xn = np.where((s <= cx) & (cx <= e), 0.0, np.minimum(np.abs(s - cx), np.abs(e - cx)))
+    yn = np.where((r <= cy) & (cy <= r + 1), 0.0, np.minimum(np.abs(r - cy), np.abs(r + 1 - cy)))
+    xf = np.maximum(np.abs(s - cx), np.abs(e - cx))
+    yf = np.maximum(np.abs(r - cy), np.abs(r + 1 - cy))
+    a = float(np.sqrt(xn**2 + yn**2).min()) * pixel_mm
+    b = float(np.sqrt(xf**2 + yf**2).max()) * pixel_mm
+    if a <= 0:
+        return b * b / 4.0
+    log = np.log(b / a)
+    rm2 = (b * b - a * a) / (2.0 * log)
+    return float((b * b - rm2) / 4.0 - (b * b - a * a) * np.log(b / np.sqrt(rm2)) / (4.0 * log))
