@@ -165,3 +165,39 @@ def test_close_tips_on_one_flat_face_union_without_pinch_points(phase):
     assert pinch_points(mesh) == 0
     back = trimesh.load(trimesh.util.wrap_as_stream(mesh.export(file_type="stl")), file_type="stl")
     assert back.is_watertight and back.is_volume
+
+
+def test_joint_spheres_clear_the_segments_they_join():
+    # A joint sphere no wider than its segments is tangent to a segment's side along a circle
+    # where the segment runs through the node; its facets lie inside its radius, so the
+    # polygons graze each other and a union keeps coincident vertices (a frame of 0.8 mm struts
+    # failed after every turn). The rule checked here on the built solids (distances by
+    # trimesh, reference library): the sphere's faces clear the segment's corners (its
+    # vertices, at radius r from the axis) by at least 5 % of r, at every turn.
+    from supportgen.supports.geometry import PHASES, build_supports, to_trimesh
+    from supportgen.supports.plan import SupportPlan
+
+    s = Settings()
+    r = 0.25
+    nodes = np.array([[3.0, 2.0, 7.0], [3.0, 2.0, 5.0], [3.0, 2.0, 3.0]])
+    plan = SupportPlan(
+        "straight",
+        nodes,
+        np.array([[0, 1], [1, 2]]),
+        np.full(2, r),
+        np.array([[3.0, 2.0, 8.5]]),
+        np.array([0]),
+        np.array([0.3]),
+        np.array([0]),
+        np.array([2]),
+    )
+    for phase in PHASES:
+        parts, _ = build_supports(plan, s, phase * 2 * np.pi / 16)
+        meshes = [to_trimesh(p) for p in parts]
+        centre = nodes[1]
+        # the joint at node 1: the solid whose vertices all lie at one distance from it
+        sphere = next(
+            m for m in meshes if np.ptp(np.linalg.norm(m.vertices - centre, axis=1)) < 1e-6 and len(m.vertices) > 20
+        )
+        inscribed = float(np.abs(trimesh.proximity.signed_distance(sphere, [centre]))[0])
+        assert inscribed >= 1.05 * r

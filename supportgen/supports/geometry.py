@@ -211,6 +211,15 @@ def _overlapping(p0, p1, r: float):
     return p0 - u, p1 + u
 
 
+#: Radius of a joint sphere over the widest segment at its node.  A sphere of the segment's
+#: own radius is tangent to that segment's side along a whole circle where the segment runs
+#: through the node, and a union of near-tangent facets keeps coincident vertices (seen on a
+#: lattice's branch joints).  The sphere's facets lie up to 1 - cos^2(pi/16) = 3.8 % inside
+#: its radius, so it must be wider than that: at 1.15 r its facets clear the segment's
+#: corners by 10 %, the side leaves it at a clear angle (30 degrees) 0.57 r from the node,
+#: and the segments' overlapping ends (:data:`_OVERLAP`, corners at 1.03 r) stay inside it.
+_JOINT_FRACTION = 1.15
+
 #: Radius of a tip cone where it leaves its node, over the joint's: a cone of the joint's
 #: full radius meets the joint sphere tangentially along its equator, and a union of
 #: near-tangent facets keeps coincident vertices; a slightly narrower cone starts inside
@@ -267,7 +276,7 @@ def build_supports(
         parts.append(frustum(*_overlapping(plan.nodes[a], plan.nodes[b], r), r, r, phase=next(turn)))
     # A joint sphere, once, at every node where segments meet or a tip starts.
     for i in np.flatnonzero(joint):
-        parts.append(_sphere(plan.nodes[i], node_r[i], next(turn)))
+        parts.append(_sphere(plan.nodes[i], _JOINT_FRACTION * node_r[i], next(turn)))
     for p, node, d, dep in zip(plan.tip_points, plan.tip_nodes, plan.tip_diameters, depth):
         q = plan.nodes[node]
         axis = p - q
