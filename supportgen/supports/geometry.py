@@ -27,12 +27,23 @@ import numpy as np
 import shapely
 import trimesh
 
+from ..analysis.layers import HOLD_PIXELS
 from ..constants import EPS_REL, EPS_ZERO
 from ..errors import GeometryError
 from ..settings import Settings
 from .plan import SupportPlan
 
-__all__ = ["Solids", "PHASES", "to_manifold", "to_trimesh", "frustum", "build_supports", "pinch_points", "combine"]
+__all__ = [
+    "Solids",
+    "PHASES",
+    "to_manifold",
+    "to_trimesh",
+    "frustum",
+    "tip_reach",
+    "build_supports",
+    "pinch_points",
+    "combine",
+]
 
 _SEGMENTS = 16
 
@@ -237,13 +248,82 @@ _DEPTH_SPREAD = 0.1
 _FOOT_FRACTION = 0.95
 
 
+#: Farthest a tip reaches into the part beyond ``tip_depth_mm`` to find a hold (mm), as a
+#: multiple of ``tip_depth_mm``: the sharpest drips need a few tenths of a millimetre.
+_REACH_MAX = 3.0
+
+
+def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> tuple[np.ndarray, np.ndarray]:
+    """How far, and which way, each tip reaches into the part beyond its cone: ``(extra, pin)``.
+
+    A tip ending in a sharp point of the part (a drip, a cone's apex) ends where the part
+    is still narrower than a speck: the layer above is then held by fewer pixels than
+    the hold rule asks (:data:`supportgen.analysis.layers.HOLD_PIXELS`) and prints as an
+    island.  Each tip's end is moved along its axis, a layer at a time, until a ball of
+    the speck's radius plus half a pixel fits in the part around it (trimesh signed
+    distance), at most :data:`_REACH_MAX` x ``tip_depth_mm`` further.  Where the axis never
+    gets there (a tip meeting a sharp point from the side runs past it), straight up and
+    along the inward normal are tried; a tip that finds its hold that way gets a *pin*, a
+    short rod from the contact in that direction.  Where no way fits, the depth deepest
+    inside the part is kept, so a tip never leaves through a thin wall.
+
+    Returns
+    -------
+    extra : (T,) float ndarray
+        Depth added to ``tip_depth_mm`` along the tip's axis, or along its pin (mm).
+    pin : (T, 3) float ndarray
+        Unit direction of each tip's pin; zeros where the tip needs none.
+
+    Notes
+    -----
+    Cost O(T log F) per step for the tips still looking (most find their hold at once).
+    """
+    rules, pr = settings.rules, settings.printer
+    n = len(plan.tip_points)
+    extra, pin = np.zeros(n), np.zeros((n, 3))
+    if n == 0:
+        return extra, pin
+    axis = plan.tip_points - plan.nodes[plan.tip_nodes]
+    length = np.linalg.norm(axis, axis=1)
+    ok = length > EPS_REL
+    axis[ok] /= length[ok, None]
+    need = pr.pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5)
+    steps = np.arange(0.0, _REACH_MAX * rules.tip_depth_mm + EPS_REL, pr.layer_mm)
+    _, _, face = trimesh.proximity.closest_point(part, plan.tip_points)
+    inward = -np.asarray(part.face_normals)[face]
+    up = np.tile([0.0, 0.0, 1.0], (n, 1))
+    best = np.full(n, -np.inf)
+    todo = np.flatnonzero(ok)
+    for k, way in enumerate((axis, up, inward)):
+        found = np.zeros(n, bool)
+        look = todo.copy()
+        for step in steps:
+            if look.size == 0:
+                break
+            at = plan.tip_points[look] + way[look] * (rules.tip_depth_mm + step)
+            sd = trimesh.proximity.signed_distance(part, at)  # > 0 inside
+            better = sd > best[look]
+            best[look[better]], extra[look[better]] = sd[better], step
+            pin[look[better]] = 0.0 if k == 0 else way[look[better]]
+            found[look[sd >= need]] = True
+            look = look[sd < need]
+        todo = todo[~found[todo]]
+    return extra, pin
+
+
+#: Radius of a pin over its tip's radius at the contact: a little wider, so the pin's side
+#: crosses the cone's at a clear angle instead of grazing it (equal radii touch tangentially).
+_PIN_FRACTION = 1.1
+
+
 def build_supports(
-    plan: SupportPlan, settings: Settings, phase: float = 0.0
+    plan: SupportPlan, settings: Settings, phase: float = 0.0, reach: tuple | None = None
 ) -> tuple[list[m3d.Manifold], list[m3d.Manifold]]:
     """Primitive solids of a plan: (tips, posts and joints; base parts).
 
     ``phase`` turns every polygonal section by that angle (radians), which moves
-    the solids' facets without changing their size.
+    the solids' facets without changing their size.  ``reach`` is :func:`tip_reach`'s
+    ``(extra, pin)``: depth added to each tip, and the pins of tips that need one.
 
     Notes
     -----
@@ -269,6 +349,8 @@ def build_supports(
     # Each tip's own depth, from the same never-repeating sequence (offset by the turn, so a
     # retry at another phase moves the caps too).
     depth = rules.tip_depth_mm * (1 + _DEPTH_SPREAD * _fractions(len(plan.tip_points), phase * _SEGMENTS / (2 * np.pi)))
+    extra, pins = (np.zeros(len(depth)), np.zeros((len(depth), 3))) if reach is None else reach
+    depth = depth + extra
     for (a, b), r in zip(plan.edges, plan.edge_radius):
         parts.append(frustum(*_overlapping(plan.nodes[a], plan.nodes[b], r), r, r, phase=next(turn)))
     for a, b in plan.braces:
@@ -277,12 +359,18 @@ def build_supports(
     # A joint sphere, once, at every node where segments meet or a tip starts.
     for i in np.flatnonzero(joint):
         parts.append(_sphere(plan.nodes[i], _JOINT_FRACTION * node_r[i], next(turn)))
-    for p, node, d, dep in zip(plan.tip_points, plan.tip_nodes, plan.tip_diameters, depth):
+    for p, node, d, dep, way in zip(plan.tip_points, plan.tip_nodes, plan.tip_diameters, depth, pins):
         q = plan.nodes[node]
         axis = p - q
         length = np.linalg.norm(axis)
         ph = next(turn)
         if length < EPS_REL:
+            continue
+        if way.any():  # the cone to the contact (a little past it), and the pin on into the part
+            parts.append(frustum(q, p + axis / length * (d / 4), _TIP_BASE_FRACTION * node_r[node], d / 2, phase=ph))
+            parts.append(
+                frustum(p - way * (d / 2), p + way * dep, _PIN_FRACTION * d / 2, _PIN_FRACTION * d / 2, phase=ph)
+            )
             continue
         p_in = p + axis / length * dep
         parts.append(frustum(q, p_in, _TIP_BASE_FRACTION * node_r[node], d / 2, phase=ph))
@@ -354,8 +442,9 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
         # Shells that touch or overlap (two parts side by side, a doubled shell) are one
         # solid only once joined; left as separate shells they meet in coincident faces.
         whole = _union(bodies, "part's bodies")
+    reach = tip_reach(part, plan, settings)
     for phase in PHASES:
-        parts, base = build_supports(plan, settings, phase * 2 * np.pi / _SEGMENTS)
+        parts, base = build_supports(plan, settings, phase * 2 * np.pi / _SEGMENTS, reach)
         supports = _union(parts + base, "supports")
         combined = _union([whole, supports], "part and supports")
         sup_mesh, comb_mesh = to_trimesh(supports), to_trimesh(combined)
