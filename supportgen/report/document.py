@@ -171,6 +171,9 @@ def markdown(report: dict, name: str, images: dict[str, str]) -> str:
         f"| tip diameter, min / median / max (mm) | {_fmt(tip.get('min'))} / {_fmt(tip.get('median'))} / {_fmt(tip.get('max'))} |",
         f"| support volume (mm³), of which base | {_fmt(sup.get('volume_mm3'), 1)}, {_fmt(sup.get('base_volume_mm3'), 1)} |",
         f"| peak separation force (N), at layer | {_fmt(frc.get('peak_layer_force_n'))}, {frc.get('peak_layer_index')} |",
+        f"| thin regions bounded, not solved: count, most a layer's force is overstated (N) | "
+        f"{(frc.get('strip_bound') or {}).get('components', 0)}, "
+        f"{_fmt((frc.get('strip_bound') or {}).get('max_overstatement_n'))} |",
         f"| lowest tip safety factor, tips over capacity | {_fmt(frc.get('min_tip_safety_factor'))}, "
         f"{frc.get('tips_over_capacity')} |",
         f"| lowest post safety factor (tension, buckling) | {_fmt(frc.get('min_post_safety_factor'))} |",
