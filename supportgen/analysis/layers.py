@@ -398,7 +398,7 @@ def _far_distance(prev: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.nd
         margin = int(np.ceil(d.max())) + 1
 
 
-def _held(m, pw, runs, comp, n, w):
+def _held(pw, runs, comp, n):
     """Which components of a layer window the layer below holds.
 
     A component is held when it overlaps the cured pixels of the layer below in at
@@ -408,10 +408,11 @@ def _held(m, pw, runs, comp, n, w):
     to exact sections).
     """
     size = np.bincount(comp, weights=runs[2] - runs[1], minlength=n)
-    both = np.flatnonzero(m & pw)
-    if both.size == 0:
+    below = mask_runs(pw)  # overlaps counted run against run: O(runs), not O(pixels)
+    if below[0].size == 0 or runs[0].size == 0:
         return np.zeros(n, bool)
-    overlap = np.bincount(_labels_at(runs, comp, w, *np.divmod(both, w)), minlength=n)
+    ia, _, length = run_overlaps(runs, below)
+    overlap = np.bincount(comp[ia], weights=np.maximum(length, 0), minlength=n)
     return overlap >= np.minimum(HOLD_PIXELS, np.maximum(size, 1))
 
 
@@ -574,7 +575,7 @@ def analyse_layers(
             n4, comp4 = edge_components(runs[0].size, *run_overlaps((runs[0] + 1, *runs[1:]), runs)[:2])
             ln = _labels_at(runs, comp4, w, nr, nc)
             d = _near_reach(pw, new, w)
-            isl = ~_held(m, pw, runs, comp4, n4, w)[ln]
+            isl = ~_held(pw, runs, comp4, n4)[ln]
             if isl.any():
                 found = _islands(new[isl], ln[isl], k, layer.z_mm, grid, r0, c0, w)  # in label order
                 labels = np.unique(ln[isl])
