@@ -263,9 +263,10 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     the speck's radius plus half a pixel fits in the part around it (trimesh signed
     distance), at most :data:`_REACH_MAX` x ``tip_depth_mm`` further.  Where the axis never
     gets there (a tip meeting a sharp point from the side runs past it), straight up and
-    along the inward normal are tried; a tip that finds its hold that way gets a *pin*, a
-    short rod from the contact in that direction.  Where no way fits, the depth deepest
-    inside the part is kept, so a tip never leaves through a thin wall.
+    along the inward normal are tried (when more than 30 degrees off the axis: nearer, a pin
+    would be near-coaxial with the cone); a tip that finds its hold that way gets a *pin*, a
+    short rod from the contact in that direction.  Where no way finds a hold, the depth
+    along the axis deepest inside the part is kept, so a tip never leaves through a thin wall.
 
     Returns
     -------
@@ -292,24 +293,32 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     _, _, face = trimesh.proximity.closest_point(part, plan.tip_points)
     inward = -np.asarray(part.face_normals)[face]
     up = np.tile([0.0, 0.0, 1.0], (n, 1))
-    best = np.full(n, -np.inf)
+    best = np.full(n, -np.inf)  # along the axis: the deepest inside, kept where no way finds a hold
     todo = np.flatnonzero(ok)
     for k, way in enumerate((axis, up, inward)):
-        found = np.zeros(n, bool)
+        if k > 0:
+            # a pin close to the axis would be near-coaxial with the cone (grazing sides); the
+            # axis itself was tried first
+            todo = todo[np.abs(np.einsum("ij,ij->i", way[todo], axis[todo])) < _PIN_COS]
         look = todo.copy()
         for step in steps:
             if look.size == 0:
                 break
             at = plan.tip_points[look] + way[look] * (rules.tip_depth_mm + step)
             sd = trimesh.proximity.signed_distance(part, at)  # > 0 inside
-            better = sd > best[look]
-            best[look[better]], extra[look[better]] = sd[better], step
-            pin[look[better]] = 0.0 if k == 0 else way[look[better]]
-            found[look[sd >= need]] = True
-            look = look[sd < need]
-        todo = todo[~found[todo]]
+            if k == 0:
+                better = sd > best[look]
+                best[look[better]], extra[look[better]] = sd[better], step
+            hold = sd >= need
+            if k > 0:
+                extra[look[hold]], pin[look[hold]] = step, way[look[hold]]
+            look = look[~hold]
+        todo = todo[np.isin(todo, look)]  # still without a hold
     return extra, pin
 
+
+#: A pin is used only where its direction is more than 30 degrees off the tip's axis.
+_PIN_COS = float(np.cos(np.radians(30.0)))
 
 #: Radius of a pin over its tip's radius at the contact: a little wider, so the pin's side
 #: crosses the cone's at a clear angle instead of grazing it (equal radii touch tangentially).
