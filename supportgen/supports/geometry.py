@@ -265,8 +265,10 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     gets there (a tip meeting a sharp point from the side runs past it), straight up and
     along the inward normal are tried (when more than 30 degrees off the axis: nearer, a pin
     would be near-coaxial with the cone); a tip that finds its hold that way gets a *pin*, a
-    short rod from the contact in that direction.  Where no way finds a hold, the depth
-    along the axis deepest inside the part is kept, so a tip never leaves through a thin wall.
+    short rod from the contact in that direction.  The ball is also at least the tip's
+    own end (half its diameter plus half a pixel), so a tip never shows through the far
+    side of a thin wall; where no way finds a hold the tip keeps ``tip_depth_mm``.
+    Landing tips (posts standing on the part) are left as they are.
 
     Returns
     -------
@@ -288,13 +290,15 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     length = np.linalg.norm(axis, axis=1)
     ok = length > EPS_REL
     axis[ok] /= length[ok, None]
-    need = pr.pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5)
+    # the ball must hold a speck, and the tip's own end (its radius plus half a pixel) so the
+    # end never shows through the far side of a thin wall
+    need = np.maximum(pr.pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5), plan.tip_diameters / 2 + pr.pixel_mm / 2)
     steps = np.arange(0.0, _REACH_MAX * rules.tip_depth_mm + EPS_REL, pr.layer_mm)
     _, _, face = trimesh.proximity.closest_point(part, plan.tip_points)
     inward = -np.asarray(part.face_normals)[face]
     up = np.tile([0.0, 0.0, 1.0], (n, 1))
-    best = np.full(n, -np.inf)  # along the axis: the deepest inside, kept where no way finds a hold
-    todo = np.flatnonzero(ok)
+    # contact tips only: a landing stands on the part and needs no hold
+    todo = np.flatnonzero(ok & (plan.tip_contact >= 0))
     for k, way in enumerate((axis, up, inward)):
         if k > 0:
             # a pin close to the axis would be near-coaxial with the cone (grazing sides); the
@@ -306,14 +310,12 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
                 break
             at = plan.tip_points[look] + way[look] * (rules.tip_depth_mm + step)
             sd = trimesh.proximity.signed_distance(part, at)  # > 0 inside
-            if k == 0:
-                better = sd > best[look]
-                best[look[better]], extra[look[better]] = sd[better], step
-            hold = sd >= need
+            hold = sd >= need[look]
+            extra[look[hold]] = step
             if k > 0:
-                extra[look[hold]], pin[look[hold]] = step, way[look[hold]]
+                pin[look[hold]] = way[look[hold]]
             look = look[~hold]
-        todo = todo[np.isin(todo, look)]  # still without a hold
+        todo = todo[np.isin(todo, look)]  # still without a hold: keeps tip_depth_mm, as before
     return extra, pin
 
 
