@@ -28,9 +28,8 @@ import time
 import manifold3d
 import numpy as np
 import trimesh
-from scipy import ndimage
 
-from supportgen.analysis.layers import Grid, iter_layers
+from supportgen.analysis.layers import Grid, LayerLabels, iter_layers
 from supportgen.physics import pressure as pz
 from supportgen.physics.loadpath import ForceTracker
 from supportgen.settings import Settings
@@ -73,11 +72,11 @@ def bench(seed: int = 0, profile: bool = False) -> None:
         t_layers += b - a
         if layer is None:
             break
-        lab, nl = ndimage.label(layer.mask, np.ones((3, 3), bool))
+        labels = LayerLabels.of(layer.mask)
         c, cc = time.perf_counter(), time.process_time()
         if prof_:
             prof_.enable()
-        tracker(layer, lab, nl)
+        tracker(layer, labels)
         if prof_:
             prof_.disable()
         t_force += time.perf_counter() - c

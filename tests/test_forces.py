@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from supportgen.analysis.layers import Grid, Layer
+from supportgen.analysis.layers import Grid, Layer, LayerLabels
 from supportgen.analysis.runlength import mask_runs
 from supportgen.errors import SettingsError
 from supportgen.physics import loadpath
@@ -240,6 +240,13 @@ def test_unknown_mechanism_lists_valid_names():
 # --- sealed cavities and the load path ------------------------------------------
 
 
+def labelled(m):
+    """A layer's components as the tracker takes them, labelled by scipy.ndimage.label (8-connected)."""
+    lab, n = ndimage.label(m, EIGHT)
+    r, s, e = mask_runs(m)
+    return LayerLabels(r, s, e, lab[r, s].astype(np.int32), int(n), m.shape)
+
+
 def run(masks, contacts=None, settings=None, check=None):
     contacts = np.zeros((0, 3)) if contacts is None else contacts
     settings = settings or Settings()
@@ -247,8 +254,7 @@ def run(masks, contacts=None, settings=None, check=None):
     grid = Grid(-(nx // 2 - 0.5) * PX, -(ny // 2 - 0.5) * PX, PX, ny, nx)
     tr = ForceTracker(grid, PX, contacts, settings)
     for k, m in enumerate(masks):
-        lab, n = ndimage.label(m, EIGHT)
-        tr(Layer(k, (k + 0.5) * PX, m), lab, n)
+        tr(Layer(k, (k + 0.5) * PX, m), labelled(m))
         if check:
             check(tr, k)
     return tr.result()

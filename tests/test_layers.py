@@ -26,7 +26,7 @@ from shapely.geometry import LineString, Polygon
 from shapely.geometry import box as sbox
 from shapely.ops import unary_union
 
-from supportgen.analysis.layers import Grid, analyse_layers, component_stats, iter_layers
+from supportgen.analysis.layers import Grid, LayerLabels, analyse_layers, component_stats, iter_layers
 from supportgen.errors import MeshError, SettingsError
 
 m3 = pytest.importorskip("manifold3d")
@@ -157,14 +157,17 @@ def test_components_match_scipy_label():
     mesh, _ = _cones_plate()
     seen = []
 
-    def observer(layer, labels, n):
+    def observer(layer, labels):
         ref, n_ref = ndimage.label(layer.mask, S8)
-        seen.append((n == n_ref, np.array_equal(labels, ref)))
-        a, c = component_stats(labels, n, Grid.covering(mesh.bounds, 0.2))
+        image = labels.image()
+        seen.append(
+            (labels.n == n_ref, np.array_equal(image, ref), np.array_equal(LayerLabels.of(layer.mask).image(), ref))
+        )
+        a, c = component_stats(image, labels.n, Grid.covering(mesh.bounds, 0.2))
         assert a.sum() == pytest.approx(layer.mask.sum() * 0.04)
 
     stack = analyse_layers(mesh, 0.2, 0.4, 2.0, observers=(observer,))
-    assert len(seen) == len(stack.z_mm) and all(x and y for x, y in seen)
+    assert len(seen) == len(stack.z_mm) and all(all(x) for x in seen)
     assert stack.n_components.max() == 4
 
 

@@ -31,12 +31,13 @@ from scipy import ndimage
 from ..constants import EPS_ZERO
 from ..errors import MeshError, SettingsError
 from .raster import layer_count, winding_masks
-from .runlength import edge_components, mask_runs, paint_runs, run_overlaps
+from .runlength import box_runs, edge_components, mask_runs, paint_runs, run_overlaps
 
 __all__ = [
     "Grid",
     "Layer",
     "Island",
+    "LayerLabels",
     "Overreach",
     "LayerStack",
     "iter_layers",
@@ -119,6 +120,59 @@ class Layer:
     z_mm: float
     mask: np.ndarray
     inverted: int = 0
+
+
+@dataclass(frozen=True, eq=False)
+class LayerLabels:
+    """The 8-connected components of one layer as row runs (what observers receive).
+
+    Run ``i`` covers grid row ``rows[i]``, columns ``starts[i]`` to ``ends[i] - 1``;
+    runs are in row-major order and ``label[i]`` (1..``n``) is its component.
+    :meth:`image` paints the (ny, nx) label image, 0 where nothing is cured; an
+    observer that works on runs never pays for it.
+    """
+
+    rows: np.ndarray
+    starts: np.ndarray
+    ends: np.ndarray
+    label: np.ndarray
+    n: int
+    shape: tuple[int, int]
+
+    @property
+    def runs(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(rows, starts, ends) of the cured runs."""
+        return self.rows, self.starts, self.ends
+
+    def image(self) -> np.ndarray:
+        """(ny, nx) int32 label image: ``label[i]`` on run ``i``, 0 elsewhere (O(pixels))."""
+        if self.rows.size == 0:
+            return np.zeros(self.shape, np.int32)
+        r0, r1 = int(self.rows[0]), int(self.rows[-1]) + 1
+        out = np.zeros(self.shape, np.int32)
+        out[r0:r1] = paint_runs(self.rows - r0, self.starts, self.ends, self.label, (r1 - r0, self.shape[1]))
+        return out
+
+    @classmethod
+    def empty(cls, shape) -> LayerLabels:
+        """No cured pixel."""
+        z = np.zeros(0, np.int64)
+        return cls(z, z, z, np.zeros(0, np.int32), 0, tuple(shape))
+
+    @classmethod
+    def of(cls, mask: np.ndarray) -> LayerLabels:
+        """The components of a bool layer image, numbered as ``scipy.ndimage.label``
+        with a 3 x 3 structure numbers them (by their first pixel in raster order).
+
+        >>> LayerLabels.of(np.array([[1, 0, 1], [0, 0, 1]], bool)).image().tolist()
+        [[1, 0, 2], [0, 0, 2]]
+        """
+        mask = np.asarray(mask, bool)
+        runs = box_runs(mask)
+        if runs[0].size == 0:
+            return cls.empty(mask.shape)
+        comp, n, _, _ = _run_components(*runs, 1.0)
+        return cls(*runs, comp.astype(np.int32) + 1, int(n), mask.shape)
 
 
 @dataclass(frozen=True, eq=False)
@@ -480,8 +534,9 @@ def analyse_layers(
         Pixel grid (default: covering the mesh with a 2-pixel margin); its pitch must
         equal ``pixel_mm``.
     observers : iterable of callables
-        Each called as ``observer(layer, labels, n_labels)`` for every layer, with the
-        (ny, nx) int32 8-connected component labels (0 = empty).
+        Each called as ``observer(layer, labels)`` for every layer, with its
+        8-connected components as row runs (:class:`LayerLabels`; ``labels.image()``
+        paints them when an observer needs pixels).
     progress : bool or str
         Show a progress bar (a string labels it); it is cleared when done.
 
@@ -556,7 +611,7 @@ def analyse_layers(
         rr = np.flatnonzero(mask.any(axis=1))
         if rr.size == 0:
             for ob in observers:
-                ob(layer, np.zeros(grid.shape, np.int32), 0)
+                ob(layer, LayerLabels.empty(grid.shape))
             prev, specks = mask, []
             continue
         cc = np.flatnonzero(mask.any(axis=0))
@@ -597,13 +652,10 @@ def analyse_layers(
                 if (d * p > reach_limit_mm).any():
                     over.extend(_overreach(nr, nc, d, d * p > reach_limit_mm, k, layer.z_mm, grid, r0, c0))
         if observers:
-            full = np.zeros(grid.shape, np.int32)
-            rs, cs = slice(max(r0, 0), min(r1, grid.ny)), slice(max(c0, 0), min(c1, grid.nx))
-            full[rs, cs] = paint_runs(*runs, comp + 1, m.shape)[
-                rs.start - r0 : rs.stop - r0, cs.start - c0 : cs.stop - c0
-            ]
+            # the window's margin is empty, so every run lies inside the grid
+            labels = LayerLabels(runs[0] + r0, runs[1] + c0, runs[2] + c0, comp + 1, int(n), grid.shape)
             for ob in observers:
-                ob(layer, full, n)
+                ob(layer, labels)
         prev, specks = mask, grown
     reach = rows_out[:, 3] * p
     worst = int(np.argmax(reach)) if n_layers and reach.max() > 0 else -1

@@ -54,7 +54,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..analysis.runlength import box_runs, edge_components, run_overlaps
+from ..analysis.runlength import edge_components, run_overlaps
 from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO, STATICS_RCOND
 from .pressure import ring_bound_phi, solve_runs, strip_bound_phi, strip_width
 from .separation import (
@@ -303,8 +303,9 @@ class ForceTracker:
 
     Notes
     -----
-    Call ``tracker(layer, labels, n_labels)`` for every layer in print order (labels:
-    8-connected ``scipy.ndimage.label`` of ``layer.mask``), then :meth:`result`.
+    Call ``tracker(layer, labels)`` for every layer in print order (labels: the
+    8-connected components of ``layer.mask``,
+    :class:`~supportgen.analysis.layers.LayerLabels`), then :meth:`result`.
     After each call ``last_loads`` (n,) and ``last_unheld_n`` hold that layer's
     shares, which sum to its force.
     After each call ``last_torsion_mm4`` holds J of that layer's suction components.
@@ -356,8 +357,8 @@ class ForceTracker:
             self._held.setdefault(ra, []).extend(self._held.pop(rb, []))
 
     # per layer ------------------------------------------------------------------
-    def __call__(self, layer, labels: np.ndarray, n_labels: int) -> None:
-        self.apply(self._recorder(layer, labels, n_labels))
+    def __call__(self, layer, labels) -> None:
+        self.apply(self._recorder(layer, labels))
 
     def replay(self, records) -> ForceProfile:
         """Apply recorded layers (a :class:`LayerRecorder`'s ``records``, in print order); the profile."""
@@ -590,11 +591,11 @@ class LayerRecorder:
         self.records: list[LayerRecord] = []
         self._prev = None  # the layer below: runs, labels, suction, solves
 
-    def __call__(self, layer, labels: np.ndarray, n_labels: int) -> LayerRecord:
-        mask, h = layer.mask, self.grid.pixel_mm
-        prev = self._prev
-        runs = box_runs(mask)
-        lab = labels[runs[0], runs[1]].astype(np.int64)
+    def __call__(self, layer, labels) -> LayerRecord:
+        """Record ``layer`` from its components' runs (a :class:`~supportgen.analysis.layers.LayerLabels`)."""
+        h, prev = self.grid.pixel_mm, self._prev
+        runs, n_labels = labels.runs, labels.n
+        lab = labels.label.astype(np.int64)
         links = np.zeros((0, 2), np.int64)
         if prev is not None and runs[0].size and prev["runs"][0].size:
             ia, ib, _ = run_overlaps(runs, prev["runs"])
