@@ -260,8 +260,9 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     is still narrower than a speck: the layer above is then held by fewer pixels than
     the hold rule asks (:data:`supportgen.analysis.layers.HOLD_PIXELS`) and prints as an
     island.  Each tip's end is moved along its axis, a layer at a time, until a ball of
-    the speck's radius plus half a pixel fits in the part around it (trimesh signed
-    distance), at most :data:`_REACH_MAX` x ``tip_depth_mm`` further.  Where the axis never
+    the speck's radius plus half a pixel fits in the part around it (:class:`_Depth`: the
+    exact distance to the surface, inside by the winding number), at most
+    :data:`_REACH_MAX` x ``tip_depth_mm`` further.  Where the axis never
     gets there (a tip meeting a sharp point from the side runs past it), straight up and
     along the inward normal are tried (when more than 30 degrees off the axis: nearer, a pin
     would be near-coaxial with the cone); a tip that finds its hold that way gets a *pin*, a
@@ -279,7 +280,8 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
 
     Notes
     -----
-    Cost O(T log F) per step for the tips still looking (most find their hold at once).
+    Cost O(T log F) for the first step of every tip, then O(S log F) for the S steps of the
+    few tips still looking, all in one query per direction.
     """
     rules, pr = settings.rules, settings.printer
     n = len(plan.tip_points)
@@ -294,8 +296,8 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     # end never shows through the far side of a thin wall
     need = np.maximum(pr.pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5), plan.tip_diameters / 2 + pr.pixel_mm / 2)
     steps = np.arange(0.0, _REACH_MAX * rules.tip_depth_mm + EPS_REL, pr.layer_mm)
-    _, _, face = trimesh.proximity.closest_point(part, plan.tip_points)
-    inward = -np.asarray(part.face_normals)[face]
+    depth = _Depth(part)
+    inward = -np.asarray(part.face_normals)[depth.nearest_face(plan.tip_points)]
     up = np.tile([0.0, 0.0, 1.0], (n, 1))
     # contact tips only: a landing stands on the part and needs no hold
     todo = np.flatnonzero(ok & (plan.tip_contact >= 0))
@@ -304,19 +306,58 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
             # a pin close to the axis would be near-coaxial with the cone (grazing sides); the
             # axis itself was tried first
             todo = todo[np.abs(np.einsum("ij,ij->i", way[todo], axis[todo])) < _PIN_COS]
-        look = todo.copy()
-        for step in steps:
-            if look.size == 0:
+        # the first step of every tip, then every further step of the tips still looking
+        for chunk in (steps[:1], steps[1:]):
+            if todo.size == 0 or chunk.size == 0:
                 break
-            at = plan.tip_points[look] + way[look] * (rules.tip_depth_mm + step)
-            sd = trimesh.proximity.signed_distance(part, at)  # > 0 inside
-            hold = sd >= need[look]
-            extra[look[hold]] = step
+            at = plan.tip_points[todo, None] + way[todo, None] * (rules.tip_depth_mm + chunk)[None, :, None]
+            hold = depth.holds(at.reshape(-1, 3), np.repeat(need[todo], chunk.size)).reshape(todo.size, -1)
+            found = hold.any(axis=1)
+            got = todo[found]
+            extra[got] = chunk[np.argmax(hold[found], axis=1)]  # the first step that holds
             if k > 0:
-                pin[look[hold]] = way[look[hold]]
-            look = look[~hold]
-        todo = todo[np.isin(todo, look)]  # still without a hold: keeps tip_depth_mm, as before
+                pin[got] = way[got]
+            todo = todo[~found]  # still without a hold: keeps tip_depth_mm, as before
     return extra, pin
+
+
+class _Depth:
+    """Whether balls fit inside a closed part: the exact distance to its surface (libigl's
+    AABB tree) and inside by the fast winding number [1]_ (above 1/2 inside).
+
+    The winding number is evaluated only at points far enough from the surface to pass,
+    so its approximation never decides a point on the surface.
+
+    References
+    ----------
+    .. [1] G. Barill, N. Dickson, R. Schmidt, D. I. W. Levin and A. Jacobson, "Fast winding
+       numbers for soups and clouds", ACM TOG 37(4), 2018 (libigl ``fast_winding_number``).
+    """
+
+    def __init__(self, part: trimesh.Trimesh):
+        import igl
+
+        self._igl = igl
+        self.v = np.ascontiguousarray(part.vertices, dtype=np.float64)
+        self.f = np.ascontiguousarray(part.faces, dtype=np.int64)
+        self.tree = igl.AABB()
+        self.tree.init(self.v, self.f)
+
+    def nearest_face(self, points: np.ndarray) -> np.ndarray:
+        """Index of the face nearest each point."""
+        return self.tree.squared_distance(self.v, self.f, np.asarray(points, np.float64).reshape(-1, 3))[1]
+
+    def holds(self, points: np.ndarray, radius: np.ndarray) -> np.ndarray:
+        """Whether the ball of ``radius[i]`` about ``points[i]`` lies inside the part."""
+        pts = np.ascontiguousarray(points, dtype=np.float64).reshape(-1, 3)
+        out = np.zeros(len(pts), bool)
+        if len(pts) == 0:
+            return out
+        d2 = self.tree.squared_distance(self.v, self.f, pts)[0]
+        far = np.flatnonzero(d2 >= np.asarray(radius, float) ** 2)
+        if far.size:
+            out[far] = self._igl.fast_winding_number(self.v, self.f, pts[far]) > 0.5
+        return out
 
 
 #: A pin is used only where its direction is more than 30 degrees off the tip's axis.
