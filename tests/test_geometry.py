@@ -250,3 +250,19 @@ def _union_arrays(a, b):
     solid = to_manifold(a) + to_manifold(b)
     m = solid.to_mesh()
     return np.asarray(m.vert_properties)[:, :3], np.asarray(m.tri_verts)
+
+
+def test_ball_inside_test_equals_trimesh_signed_distance():
+    # Reference library: trimesh.proximity.signed_distance (closest point, sign by ray
+    # containment) on a closed torus; the tips' hold test (libigl AABB distance, inside by
+    # the fast winding number) must give the same answer at random points and radii.
+    from supportgen.supports.geometry import _Depth
+
+    torus = trimesh.creation.torus(major_radius=5.0, minor_radius=1.5, major_sections=48, minor_sections=24)
+    rng = np.random.default_rng(3)
+    pts = rng.uniform(torus.bounds[0] - 0.5, torus.bounds[1] + 0.5, (600, 3))
+    radius = rng.uniform(0.0, 1.0, len(pts))
+    want = trimesh.proximity.signed_distance(torus, pts) >= radius
+    got = _Depth(torus).holds(pts, radius)
+    assert want.sum() > 50 and (~want).sum() > 50  # both answers occur
+    np.testing.assert_array_equal(got, want)
