@@ -156,6 +156,28 @@ def test_free_space_graph_nodes_and_edges_keep_the_rules():
     np.testing.assert_allclose(hits[:, 2], 14.0)
 
 
+def test_free_space_edges_never_cut_through_a_thin_rod():
+    # A rod 0.3 mm thick lies midway between two lattice layers 4 mm apart: both ends of an
+    # edge that crosses it are about 2 mm from it, past the clearance, yet the edge passes
+    # through it.  Every edge kept that crosses the rod's height must clear it along its whole
+    # length (trimesh's exact closest-point distance at 60 points an edge, reference).
+    settings = Settings()
+    s = settings.rules
+    hz = 4.0
+    z = s.base_thickness_mm + 2.5 * hz
+    rod = trimesh.creation.cylinder(0.15, 20.0, transform=trimesh.transformations.rotation_matrix(np.pi / 2, [0, 1, 0]))
+    rod.apply_translation((0.0, 0.3, z))
+    field = clearance_field(rod, s.clearance_mm)
+    g = free_space_graph(rod, settings, field, np.array([[-6, -6, 0], [6, 6, z + 6]]), step_mm=hz)
+    e = np.array([(g.nodes[u]["pos"], g.nodes[v]["pos"]) for u, v in g.edges if isinstance(v, int)])
+    e = e[(e[:, 0, 2] > z) & (e[:, 1, 2] < z)]
+    assert len(e) > 20  # edges from above the rod's height to below it exist
+    t = np.linspace(0.0, 1.0, 60)
+    along = (e[:, None, 1] + t[None, :, None] * (e[:, 0] - e[:, 1])[:, None]).reshape(-1, 3)
+    _, d_along, _ = trimesh.proximity.closest_point(rod, along)
+    assert d_along.min() >= s.clearance_mm - 1e-9
+
+
 def test_cost_function_is_swappable():
     plate, contacts, settings = open_plate(n_side=4)
     s = settings.rules

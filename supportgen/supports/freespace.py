@@ -249,9 +249,9 @@ def free_space_graph(
     Notes
     -----
     A layer holds an x-y grid of pitch ``step tan(angle) / sqrt(2)``, so each node reaches the
-    nine nodes below it at angles within the limit.  Edges whose ends clear
-    ``clearance + length / 2`` are clear by the distance being 1-Lipschitz; the rest are checked
-    by sampling.  Cost: O(V) nodes, O(9 V) edges, each edge O(length / step) queries of O(log m).
+    nine nodes below it at angles within the limit.  An edge whose ends are ``da`` and ``db``
+    from the part is clear when ``(da + db - length) / 2`` clears, the distance being
+    1-Lipschitz; the rest are checked by sampling.  Cost: O(V) nodes, O(9 V) edges, each edge O(length / step) queries of O(log m).
     """
     s = settings.rules
     t = math.tan(math.radians(s.branch_angle_deg))
@@ -269,7 +269,9 @@ def free_space_graph(
     origin = np.array([lo[0], lo[1], z0])
     ijk = np.indices(shape).reshape(3, -1).T
     pos = origin + ijk * np.array([pitch, pitch, hz])
-    dist = field.lower(pos, s.clearance_mm + hz)
+    upto = s.clearance_mm + hz
+    # lower bounds, capped at ``upto`` (a point beyond it comes back as inf: "at least upto")
+    dist = np.minimum(field.lower(pos, upto), upto)
     keep = dist >= s.clearance_mm + field.step / 2
     lid = np.full(len(pos), -1)
     lid[keep] = np.arange(keep.sum())
@@ -287,7 +289,9 @@ def free_space_graph(
         both = grid.ravel()[src] & grid.ravel()[dst]
         src, dst = src[both], dst[both]
         length = np.linalg.norm(pos[src] - pos[dst], axis=1)
-        sure = np.minimum(dist[src], dist[dst]) >= s.clearance_mm + length / 2
+        # the distance is 1-Lipschitz: a point t along the edge is at least max(da - t, db - (L - t))
+        # from the part, which is least, (da + db - L) / 2, where the two meet
+        sure = (dist[src] + dist[dst] - length) / 2 >= s.clearance_mm
         sure[~sure] = field.clear(pos[src[~sure]], pos[dst[~sure]])
         src, dst = src[sure], dst[sure]
         w = edge_cost(pos[src], pos[dst], area, cost)
