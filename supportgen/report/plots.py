@@ -137,11 +137,12 @@ def render_view(triangles, colours, elev, azim, mid, span, size: int = 600) -> n
     count = w * h
     keep = np.flatnonzero(count > 0)
     bounds = np.searchsorted(np.cumsum(count[keep]), np.arange(1, count.sum() // _RASTER_CHUNK + 2) * _RASTER_CHUNK)
-    for part in np.split(keep, np.unique(np.minimum(bounds, len(keep)))[:-1] + 1):
-        if part.size == 0:
+    lo_z, hi_z = (float(depth.min()), float(depth.max())) if len(depth) else (0.0, 1.0)
+    for chunk in np.split(keep, np.unique(np.minimum(bounds, len(keep)))[:-1] + 1):
+        if chunk.size == 0:
             continue
-        n = count[part]
-        t = np.repeat(part, n)
+        n = count[chunk]
+        t = np.repeat(chunk, n)
         k = np.arange(int(n.sum())) - np.repeat(np.cumsum(n) - n, n)
         col = c0[t] + k % w[t]
         row = r0[t] + k // w[t]
@@ -157,7 +158,6 @@ def render_view(triangles, colours, elev, azim, mid, span, size: int = 600) -> n
         ar = area[inside]
         z = (w0[inside] * depth[t, 0] + w1[inside] * depth[t, 1] + w2[inside] * depth[t, 2]) / ar
         # per pixel, nearest first: one sort on the pixel plus a fraction below 1/2 falling with nearness
-        lo_z, hi_z = float(depth.min()), float(depth.max())
         order = np.argsort(pix + 0.5 * (hi_z - z) / max(hi_z - lo_z, EPS_FLOOR), kind="stable")
         pix, z, t = pix[order], z[order], t[order]
         first = np.r_[True, pix[1:] != pix[:-1]]

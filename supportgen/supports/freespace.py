@@ -251,7 +251,8 @@ def free_space_graph(
     A layer holds an x-y grid of pitch ``step tan(angle) / sqrt(2)``, so each node reaches the
     nine nodes below it at angles within the limit.  An edge whose ends are ``da`` and ``db``
     from the part is clear when ``(da + db - length) / 2`` clears, the distance being
-    1-Lipschitz; the rest are checked by sampling.  Cost: O(V) nodes, O(9 V) edges, each edge O(length / step) queries of O(log m).
+    1-Lipschitz; the rest are checked by sampling.  Cost: O(V) nodes, O(9 V) edges, each
+    edge O(length / step) queries of O(log m).
     """
     s = settings.rules
     t = math.tan(math.radians(s.branch_angle_deg))
