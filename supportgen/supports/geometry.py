@@ -30,6 +30,7 @@ import trimesh
 from ..analysis.layers import HOLD_PIXELS
 from ..constants import EPS_REL, EPS_ZERO
 from ..errors import GeometryError
+from ..io.winding import winding_number
 from ..settings import Settings
 from .plan import SupportPlan
 
@@ -337,7 +338,6 @@ class _Depth:
     def __init__(self, part: trimesh.Trimesh):
         import igl
 
-        self._igl = igl
         self.v = np.ascontiguousarray(part.vertices, dtype=np.float64)
         self.f = np.ascontiguousarray(part.faces, dtype=np.int64)
         self.tree = igl.AABB()
@@ -356,7 +356,7 @@ class _Depth:
         d2 = self.tree.squared_distance(self.v, self.f, pts)[0]
         far = np.flatnonzero(d2 >= np.asarray(radius, float) ** 2)
         if far.size:
-            out[far] = self._igl.fast_winding_number(self.v, self.f, pts[far]) > 0.5
+            out[far] = winding_number(self.v, self.f, pts[far]) > 0.5
         return out
 
 
