@@ -199,16 +199,18 @@ class Island:
         at least a speck (the rule :func:`analyse_layers` holds regions by): the
         island's pixels within ``radius_mm`` (a tip's reach across) of its point
         number at least 3 (all of them for a smaller island), and the point is no
-        more than ``rise_mm`` above the layer's mid-plane.  A tip beside the island
-        or higher up touches the part only after the island has cured in mid-air.
+        more than ``rise_mm`` above the layer's mid-plane nor more than twice
+        ``rise_mm`` below it.  A tip beside the island or higher up touches the part
+        only after the island has cured in mid-air; a tip lower down touches other
+        material (the island has none below it), so neither holds it.
 
         Examples
         --------
         >>> g = Grid(0.0, 0.0, 0.1, 10, 10)
         >>> isl = Island(3, 0.35, 0.04, (0.45, 0.45), np.ones((2, 2), bool), 4, 4, g)
-        >>> pts = [[0.45, 0.45, 0.35], [0.45, 0.45, 2.0], [2.0, 2.0, 0.35], [0.6, 0.6, 0.35]]
-        >>> isl.held_by(np.array(pts), 0.1, 0.1).tolist()  # the last touches one pixel only
-        [True, False, False, False]
+        >>> pts = [[0.45, 0.45, 0.35], [0.45, 0.45, 2.0], [2.0, 2.0, 0.35], [0.6, 0.6, 0.35], [0.45, 0.45, 0.05]]
+        >>> isl.held_by(np.array(pts), 0.1, 0.1).tolist()  # the 4th touches one pixel only; the 5th is on a part below
+        [True, False, False, False, False]
         """
         xyz = np.atleast_2d(np.asarray(xyz, float))
         if len(xyz) == 0:
@@ -225,7 +227,7 @@ class Island:
         inside = (i >= 0) & (j >= 0) & (i < padded.shape[0]) & (j < padded.shape[1])
         over = np.zeros(len(xyz), bool)
         over[inside] = touched[i[inside], j[inside]] >= max(need, 1)
-        return over & (xyz[:, 2] <= self.z_mm + rise_mm)
+        return over & (xyz[:, 2] <= self.z_mm + rise_mm) & (xyz[:, 2] >= self.z_mm - 2 * rise_mm)
 
     def points(self, spacing_mm: float, seed: int = 0) -> np.ndarray:
         """Points (n, 2) covering the island at about ``spacing_mm``, n >= 1.

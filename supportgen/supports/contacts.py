@@ -221,10 +221,12 @@ def add_unheld(existing: Contacts, new: Contacts, radius_mm: float, rise_mm: flo
 
     A contact at ``q`` holds a point ``p`` that must be held (an island's first
     layer, a local minimum) when its tip covers it: ``q`` lies within
-    ``radius_mm`` of ``p`` across, and no more than ``rise_mm`` above it (a tip
-    higher up touches the part only after ``p``'s layer has cured in mid-air).
-    Unlike :func:`merge_contacts`, a contact nearby but higher or off to the side
-    does not count.
+    ``radius_mm`` of ``p`` across, no more than ``rise_mm`` above it (a tip
+    higher up touches the part only after ``p``'s layer has cured in mid-air) and no
+    more than twice ``rise_mm`` below it (a tip lower down ends on other material:
+    ``p`` is the lowest point of what must be held, so nothing of it lies lower).
+    Unlike :func:`merge_contacts`, a contact nearby but higher, lower or off to the
+    side does not count.
 
     Parameters
     ----------
@@ -240,12 +242,16 @@ def add_unheld(existing: Contacts, new: Contacts, radius_mm: float, rise_mm: flo
     >>> b = Contacts([[0.1, 0, 0.5], [0.05, 0, 1.0]], [[0, 0, -1]] * 2, ["island"] * 2, [0.4] * 2)
     >>> add_unheld(a, b, 0.2, 0.05).points.tolist()      # the lower point is not held by the tip above it
     [[0.0, 0.0, 1.0], [0.1, 0.0, 0.5]]
+    >>> c = Contacts([[0, 0, 3.0]], [[0, 0, -1]], ["island"], [0.4])
+    >>> len(add_unheld(a, c, 0.2, 0.05))                 # nor a point high above by a tip on a lower surface
+    2
     """
     kept = existing
     for i in range(len(new)):
         p = new.points[i]
         across = np.hypot(*(kept.points[:, :2] - p[:2]).T) if len(kept) else np.zeros(0)
-        if not np.any((across <= radius_mm) & (kept.points[:, 2] <= p[2] + rise_mm)):
+        dz = kept.points[:, 2] - p[2]
+        if not np.any((across <= radius_mm) & (dz <= rise_mm) & (dz >= -2 * rise_mm)):
             kept = Contacts.concat([kept, new.take([i])])
     return kept
 
