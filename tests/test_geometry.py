@@ -256,13 +256,91 @@ def test_ball_inside_test_equals_trimesh_signed_distance():
     # Reference library: trimesh.proximity.signed_distance (closest point, sign by ray
     # containment) on a closed torus; the tips' hold test (libigl AABB distance, inside by
     # the fast winding number) must give the same answer at random points and radii.
-    from supportgen.supports.geometry import _Depth
+    from supportgen.io.winding import BallProbe
 
     torus = trimesh.creation.torus(major_radius=5.0, minor_radius=1.5, major_sections=48, minor_sections=24)
     rng = np.random.default_rng(3)
     pts = rng.uniform(torus.bounds[0] - 0.5, torus.bounds[1] + 0.5, (600, 3))
     radius = rng.uniform(0.0, 1.0, len(pts))
     want = trimesh.proximity.signed_distance(torus, pts) >= radius
-    got = _Depth(torus).holds(pts, radius)
+    got = BallProbe(torus).holds(pts, radius)
     assert want.sum() > 50 and (~want).sum() > 50  # both answers occur
     np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("touch", ["point", "edge"])
+def test_welds_join_solids_that_touch_at_a_point_or_along_an_edge(touch):
+    # Two solids that only touch: manifold3d keeps both sheets (duplicate vertices at the
+    # touching point or along the shared edge), which an STL reader merges into a
+    # non-manifold vertex or edge.  Welded, the float32 positions are distinct and trimesh
+    # (the reference reader) reads the written STL back as a closed volume; the volume grows
+    # by less than the welds' own volume (balls of half a pixel; a rod along the edge).
+    from supportgen.supports.geometry import _weld, pinch_points, pinch_positions, to_trimesh
+
+    if touch == "point":  # two octahedra tip to tip: an exact shared vertex
+        a = m3d.Manifold.sphere(1.0, 4).translate((0.0, 0.0, 0.0))
+        b = m3d.Manifold.sphere(1.0, 4).translate((0.0, 0.0, 2.0))
+    else:  # two cubes along one edge
+        a = m3d.Manifold.cube((1.0, 1.0, 1.0))
+        b = m3d.Manifold.cube((1.0, 1.0, 1.0)).translate((1.0, 1.0, 0.0))
+    joined = a + b
+    mesh = to_trimesh(joined)
+    points, segments = pinch_positions(mesh)
+    assert pinch_points(mesh) > 0 and len(points) > 0
+    assert len(segments) == (1 if touch == "edge" else 0)
+    r = 0.025
+    welded = _weld(joined, (points, segments), r, "test")
+    out = to_trimesh(welded)
+    assert pinch_points(out) == 0
+    back = trimesh.load(trimesh.util.wrap_as_stream(out.export(file_type="stl")), file_type="stl")
+    assert back.is_watertight and back.is_volume and back.body_count == 1
+    grown = welded.volume() - joined.volume()
+    bound = len(points) * 4 / 3 * np.pi * r**3 + sum(np.pi * r**2 * np.linalg.norm(b - a) for a, b in segments)
+    assert 0 < grown <= bound
+
+
+def test_landing_holds_only_where_the_sunk_end_stays_inside_the_part():
+    # A landing tip sinks its end tip_depth (and the spread) below the surface it stands on.
+    # On a box's top (exact geometry): held in the middle of a 2 mm block; not on a 0.2 mm
+    # plate (the end comes out of the underside), nor at the block's edge (out of the side).
+    from supportgen.supports.geometry import landing_holds
+
+    s = Settings()
+    block = trimesh.creation.box((4.0, 4.0, 2.0))  # top at z = 1
+    plate = trimesh.creation.box((4.0, 4.0, 0.2))  # top at z = 0.1
+    assert landing_holds(block, s, [[0.0, 0.0, 1.0], [0.5, -1.0, 1.0]]).tolist() == [True, True]
+    assert landing_holds(block, s, [[1.99, 0.0, 1.0], [2.0, 2.0, 1.0]]).tolist() == [False, False]
+    assert landing_holds(plate, s, [[0.0, 0.0, 0.1]]).tolist() == [False]
+
+
+def test_straight_post_over_an_edge_leans_to_a_landing_that_holds():
+    # A shelf over a lower block (exact boxes).  Posts under the shelf straight above the
+    # block's edge would land on the edge, their sunk end in the air beside the block; they
+    # lean (within the branch angle) to a spot where landing_holds does hold, or to the base.
+    # Posts over the block's middle land straight down; one beside the block reaches the base.
+    import manifold3d as m
+
+    from supportgen.supports.geometry import DEPTH_SPREAD, LANDING_SINKS, landing_holds, to_trimesh
+    from supportgen.supports.plan import Contacts
+
+    shelf = m.Manifold.cube((20, 10, 2)).translate((-10, -5, 12))
+    wall = m.Manifold.cube((2, 10, 14)).translate((-10, -5, 0))
+    block = m.Manifold.cube((8, 10, 4)).translate((0, -5, 0))
+    part = to_trimesh(shelf + wall + block)
+    s = Settings()
+    xs = [0.0, 0.02, 7.99, 4.0, -4.0]
+    c = Contacts([[x, 0.0, 12.0] for x in xs], [[0, 0, -1]] * len(xs), ["overhang"] * len(xs), [0.4] * len(xs))
+    plan = plan_straight(part, c, s)
+    land = plan.tip_contact < 0
+    shallow = LANDING_SINKS[0] * s.rules.tip_depth_mm * (1 + DEPTH_SPREAD)
+    # each post lands or stands on the base (x = -4 does; an edge post may lean off the block to it)
+    assert land.sum() + len(plan.feet) == len(xs) and 2 <= land.sum() <= 4
+    # the edge posts moved: none lands on the block's edge
+    assert not np.any(np.isclose(plan.tip_points[land, 0], 0.0, atol=0.05) | (plan.tip_points[land, 0] > 7.9))
+    assert landing_holds(part, s, plan.tip_points[land], depth=shallow).all()
+    middle = np.isclose(plan.tip_points[land, 0], 4.0)
+    assert middle.sum() == 1 and np.allclose(plan.tip_points[land][middle], [4.0, 0.0, 4.0])
+    # every post within the branch angle of vertical
+    a, b = plan.nodes[plan.edges[:, 0]], plan.nodes[plan.edges[:, 1]]
+    lean = np.degrees(np.arctan2(np.hypot(*(a - b)[:, :2].T), (a - b)[:, 2]))
+    assert (lean <= s.rules.branch_angle_deg + 1e-9).all()

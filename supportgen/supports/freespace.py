@@ -35,6 +35,7 @@ from scipy.spatial import cKDTree
 
 from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO
 from ..errors import SettingsError
+from .geometry import landing_holds
 
 __all__ = ["Penalty", "Clearance", "clearance_field", "free_space_graph", "edge_cost", "surface_below"]
 
@@ -243,8 +244,8 @@ def free_space_graph(
     networkx.DiGraph
         Integer nodes with ``pos``; edges (upper, lower) with ``weight``; sink ``"base"``
         reached from the bottom layer at zero cost, sink ``"land"`` from nodes with the part's
-        upper surface at most ``tip_length + step`` below (``weight`` = landing tip material,
-        ``hit`` = landing point).  Graph attributes ``step``, ``pitch``, ``origin``, ``shape``.
+        upper surface at most ``tip_length + step`` below where a landing tip's end stays inside
+        the part (:func:`landing_holds`; ``weight`` = landing tip material, ``hit`` = landing point).  Graph attributes ``step``, ``pitch``, ``origin``, ``shape``.
 
     Notes
     -----
@@ -305,6 +306,7 @@ def free_space_graph(
         hit, up = surface_below(mesh, xy, cols, pos[nodes, 2])
         drop = pos[nodes, 2] - hit
         land = up & (drop <= s.tip_length_mm + hz) & (hit > z0)
+        land[land] = landing_holds(mesh, settings, np.column_stack([pos[nodes[land], :2], hit[land]]))
         tip_area = math.pi * (s.tip_diameter_mm / 2) ** 2
         for n, h, d in zip(nodes[land], hit[land], drop[land]):
             g.add_edge(int(n), "land", weight=float(tip_area * d), hit=np.array([*pos[n, :2], h]))

@@ -30,7 +30,7 @@ import trimesh
 from ..analysis.layers import HOLD_PIXELS
 from ..constants import EPS_REL, EPS_ZERO
 from ..errors import GeometryError
-from ..io.winding import winding_number
+from ..io.winding import BallProbe
 from ..settings import Settings
 from .plan import SupportPlan
 
@@ -41,8 +41,11 @@ __all__ = [
     "to_trimesh",
     "frustum",
     "tip_reach",
+    "landing_holds",
+    "LANDING_SINKS",
     "build_supports",
     "pinch_points",
+    "pinch_positions",
     "combine",
 ]
 
@@ -242,7 +245,7 @@ _TIP_BASE_FRACTION = 0.9
 #: each by its own amount: tips standing on one flat face at one height would otherwise end
 #: in coplanar caps, and two caps that overlap (contacts closer than a tip's width, as an
 #: island's point beside a minimum can be) leave coincident vertices no turn removes.
-_DEPTH_SPREAD = 0.1
+DEPTH_SPREAD = 0.1
 
 #: Radius of a foot (the stub sinking a post into the base) over its post's: inside the
 #: post's polygon (whose sides are cos(pi/16) = 0.98 of its radius from the axis).
@@ -254,6 +257,42 @@ _FOOT_FRACTION = 0.95
 _REACH_MAX = 3.0
 
 
+#: Depths a landing tip's end may sink to, as fractions of its deepest reach: the deepest
+#: the part holds is taken (none: it stands on the surface).
+LANDING_SINKS = (0.25, 0.5, 1.0)
+
+
+def landing_holds(
+    mesh: trimesh.Trimesh,
+    settings: Settings,
+    points: np.ndarray,
+    depth: np.ndarray | float | None = None,
+    probe: BallProbe | None = None,
+) -> np.ndarray:
+    """Whether a landing tip standing at each surface point ``points`` (k, 3) is held by the part.
+
+    A landing sinks its end straight down by ``depth`` (default its deepest reach,
+    ``tip_depth_mm`` and the spread :func:`build_supports` adds).  Where the part below is
+    thinner than that, or the point lies on an edge or a sliver, the end comes out through
+    the part's underside or side, or stands on less than the printer cures: it cures first,
+    in mid-air, as an island.  The landing is held when a ball that holds a speck (the
+    hold rule of :func:`tip_reach`: ``HOLD_PIXELS`` pixels across, plus half a pixel) fits
+    inside the part straight below the point, centred at ``depth`` or deeper if the ball
+    needs it (:class:`~supportgen.io.winding.BallProbe`): the end then lies in the ball,
+    and the layers under the tip's end hold it.  On a slope the end's rim may stand out
+    downhill, in the same layer as the part it touches, so that does not count.
+    """
+    points = np.asarray(points, float).reshape(-1, 3)
+    if len(points) == 0:
+        return np.zeros(0, bool)
+    s, pr = settings.rules, settings.printer
+    depth = s.tip_depth_mm * (1 + DEPTH_SPREAD) if depth is None else depth
+    radius = pr.pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5)
+    below = np.maximum(np.broadcast_to(np.asarray(depth, float), len(points)), radius + pr.pixel_mm / 2)
+    centre = points - np.column_stack([np.zeros((len(points), 2)), below])
+    return (probe or BallProbe(mesh)).holds(centre, np.full(len(points), radius))
+
+
 def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> tuple[np.ndarray, np.ndarray]:
     """How far, and which way, each tip reaches into the part beyond its cone: ``(extra, pin)``.
 
@@ -261,7 +300,7 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     is still narrower than a speck: the layer above is then held by fewer pixels than
     the hold rule asks (:data:`supportgen.analysis.layers.HOLD_PIXELS`) and prints as an
     island.  Each tip's end is moved along its axis, a layer at a time, until a ball of
-    the speck's radius plus half a pixel fits in the part around it (:class:`_Depth`: the
+    the speck's radius plus half a pixel fits in the part around it (:class:`~supportgen.io.winding.BallProbe`: the
     exact distance to the surface, inside by the winding number), at most
     :data:`_REACH_MAX` x ``tip_depth_mm`` further.  Where the axis never
     gets there (a tip meeting a sharp point from the side runs past it), straight up and
@@ -297,10 +336,20 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     # end never shows through the far side of a thin wall
     need = np.maximum(pr.pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5), plan.tip_diameters / 2 + pr.pixel_mm / 2)
     steps = np.arange(0.0, _REACH_MAX * rules.tip_depth_mm + EPS_REL, pr.layer_mm)
-    depth = _Depth(part)
+    depth = BallProbe(part)
     inward = -np.asarray(part.face_normals)[depth.nearest_face(plan.tip_points)]
     up = np.tile([0.0, 0.0, 1.0], (n, 1))
-    # contact tips only: a landing stands on the part and needs no hold
+    # A landing stands on the part and needs no hold, but its sunk end must not come out
+    # below (a thin plate) or beside (an edge): it sinks only as deep as the part holds it.
+    land = np.flatnonzero(ok & (plan.tip_contact < 0))
+    if land.size:
+        deepest = rules.tip_depth_mm * (1 + DEPTH_SPREAD)
+        sink = np.zeros(land.size)
+        for frac in LANDING_SINKS:
+            held = landing_holds(part, settings, plan.tip_points[land], deepest * frac, depth)
+            sink[held] = deepest * frac
+        extra[land] = sink - deepest  # build_supports clamps the sum with the spread at zero
+    # contact tips: each reaches on until it holds
     todo = np.flatnonzero(ok & (plan.tip_contact >= 0))
     for k, way in enumerate((axis, up, inward)):
         if k > 0:
@@ -320,44 +369,6 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
                 pin[got] = way[got]
             todo = todo[~found]  # still without a hold: keeps tip_depth_mm, as before
     return extra, pin
-
-
-class _Depth:
-    """Whether balls fit inside a closed part: the exact distance to its surface (libigl's
-    AABB tree) and inside by the fast winding number [1]_ (above 1/2 inside).
-
-    The winding number is evaluated only at points far enough from the surface to pass,
-    so its approximation never decides a point on the surface.
-
-    References
-    ----------
-    .. [1] G. Barill, N. Dickson, R. Schmidt, D. I. W. Levin and A. Jacobson, "Fast winding
-       numbers for soups and clouds", ACM TOG 37(4), 2018 (libigl ``fast_winding_number``).
-    """
-
-    def __init__(self, part: trimesh.Trimesh):
-        import igl
-
-        self.v = np.ascontiguousarray(part.vertices, dtype=np.float64)
-        self.f = np.ascontiguousarray(part.faces, dtype=np.int64)
-        self.tree = igl.AABB()
-        self.tree.init(self.v, self.f)
-
-    def nearest_face(self, points: np.ndarray) -> np.ndarray:
-        """Index of the face nearest each point."""
-        return self.tree.squared_distance(self.v, self.f, np.asarray(points, np.float64).reshape(-1, 3))[1]
-
-    def holds(self, points: np.ndarray, radius: np.ndarray) -> np.ndarray:
-        """Whether the ball of ``radius[i]`` about ``points[i]`` lies inside the part."""
-        pts = np.ascontiguousarray(points, dtype=np.float64).reshape(-1, 3)
-        out = np.zeros(len(pts), bool)
-        if len(pts) == 0:
-            return out
-        d2 = self.tree.squared_distance(self.v, self.f, pts)[0]
-        far = np.flatnonzero(d2 >= np.asarray(radius, float) ** 2)
-        if far.size:
-            out[far] = winding_number(self.v, self.f, pts[far]) > 0.5
-        return out
 
 
 #: A pin is used only where its direction is more than 30 degrees off the tip's axis.
@@ -400,9 +411,9 @@ def build_supports(
     turn = iter(_phases(phase, n_prim))
     # Each tip's own depth, from the same never-repeating sequence (offset by the turn, so a
     # retry at another phase moves the caps too).
-    depth = rules.tip_depth_mm * (1 + _DEPTH_SPREAD * _fractions(len(plan.tip_points), phase * _SEGMENTS / (2 * np.pi)))
+    depth = rules.tip_depth_mm * (1 + DEPTH_SPREAD * _fractions(len(plan.tip_points), phase * _SEGMENTS / (2 * np.pi)))
     extra, pins = (np.zeros(len(depth)), np.zeros((len(depth), 3))) if reach is None else reach
-    depth = depth + extra
+    depth = np.maximum(depth + extra, 0.0)
     for (a, b), r in zip(plan.edges, plan.edge_radius):
         parts.append(frustum(*_overlapping(plan.nodes[a], plan.nodes[b], r), r, r, phase=next(turn)))
     for a, b in plan.braces:
@@ -469,6 +480,53 @@ def pinch_points(mesh: trimesh.Trimesh) -> int:
     return int(len(v32) - len(np.unique(v32, axis=0)))
 
 
+def pinch_positions(mesh: trimesh.Trimesh) -> tuple[np.ndarray, np.ndarray]:
+    """Where a file would merge a solid's sheets: ``(points, segments)``.
+
+    ``points`` (k, 3) are the single-precision positions :func:`pinch_points` counts,
+    each once; ``segments`` (m, 2, 3) are the edges that two sheets share along their
+    length (both ends pinched and the edge present twice), where sheets touch along a
+    line rather than at a point.
+    """
+    v32 = np.asarray(mesh.vertices, np.float32)
+    uniq, inverse, counts = np.unique(v32, axis=0, return_inverse=True, return_counts=True)
+    points = uniq[counts > 1].astype(float)
+    if len(points) == 0:
+        return points, np.zeros((0, 2, 3))
+    inverse = inverse.reshape(-1)
+    e = np.sort(inverse[np.asarray(mesh.edges_unique)], axis=1)
+    e = e[(counts[e[:, 0]] > 1) & (counts[e[:, 1]] > 1)]
+    pairs, seen = np.unique(e, axis=0, return_counts=True)
+    return points, uniq[pairs[seen > 1]].astype(float)
+
+
+#: Radius of a weld over the pixel: half a pixel, below what the printer resolves, and
+#: some thousand times the single-precision step of a 100 mm part (8e-6 mm).
+_WELD_PIXELS = 0.5
+#: Rounds of welds, each a half larger, before the facets are turned and all is joined again.
+_WELD_ROUNDS = 3
+
+
+def _weld(solid: m3d.Manifold, at: tuple[np.ndarray, np.ndarray], radius: float, what: str) -> m3d.Manifold:
+    """``solid`` with a small ball over each pinch point of ``at`` and a thin rod (the hull
+    of two balls) along each pinched segment (:func:`pinch_positions`).
+
+    Two sheets that touch at a pinch (a post tangent to another, a cone grazing the part)
+    meet there in a point or a line a file cannot keep.  A ball centred on the touching
+    point overlaps both sides, so their union crosses its sphere transversally and the
+    sheets join through a neck: no pinch is left there, and the solid grows by less than
+    a pixel's width.
+    """
+    points, segments = at
+    welds = []
+    for k, p in enumerate(points):
+        welds.append(_sphere(p, radius, k * _GOLDEN * 2 * np.pi / _SEGMENTS))
+    for k, (a, b) in enumerate(segments):
+        ph = (len(points) + k) * _GOLDEN * 2 * np.pi / _SEGMENTS
+        welds.append(m3d.Manifold.batch_hull([_sphere(a, radius, ph), _sphere(b, radius, ph)]))
+    return _union([solid, *welds], what)
+
+
 #: Turns of every facet tried, in order, until the solids come out without pinch
 #: points (a pinch is a coincidence of facets; turning them by a fraction of a
 #: segment removes it).
@@ -479,8 +537,9 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
     """The supports as one solid, and the part joined with them.
 
     Both come out without pinch points (see :func:`pinch_points`): where a
-    union has one, the facets of every support solid are turned by a fraction
-    of a segment (:data:`PHASES`) and the union made again.
+    union has one, a ball smaller than a pixel is welded over it (:func:`_weld`, up
+    to ``_WELD_ROUNDS`` rounds); only if pinches remain are the facets of every
+    support solid turned by a fraction of a segment (:data:`PHASES`) and all joined again.
 
     Raises
     ------
@@ -495,14 +554,28 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
         # solid only once joined; left as separate shells they meet in coincident faces.
         whole = _union(bodies, "part's bodies")
     reach = tip_reach(part, plan, settings)
+    weld_r0 = _WELD_PIXELS * settings.printer.pixel_mm
     for phase in PHASES:
         parts, base = build_supports(plan, settings, phase * 2 * np.pi / _SEGMENTS, reach)
         supports = _union(parts + base, "supports")
         combined = _union([whole, supports], "part and supports")
         sup_mesh, comb_mesh = to_trimesh(supports), to_trimesh(combined)
-        if pinch_points(sup_mesh) == 0 and pinch_points(comb_mesh) == 0:
-            base_solid = _union(base, "base")
-            return Solids(sup_mesh, comb_mesh, float(supports.volume()), float(base_solid.volume()))
+        radius = weld_r0
+        for _ in range(_WELD_ROUNDS + 1):
+            in_sup, in_comb = pinch_positions(sup_mesh), pinch_positions(comb_mesh)
+            if len(in_sup[0]) == 0 and len(in_comb[0]) == 0:
+                base_solid = _union(base, "base")
+                return Solids(sup_mesh, comb_mesh, float(supports.volume()), float(base_solid.volume()))
+            # A pinch of the supports is welded in both solids; one of the joined solid only
+            # (a post grazing the part) is welded there alone, so the supports keep no ball
+            # that stands apart from them.
+            if len(in_sup[0]):
+                supports = _weld(supports, in_sup, radius, "supports and their welds")
+                sup_mesh = to_trimesh(supports)
+            both = (np.vstack([in_sup[0], in_comb[0]]), np.concatenate([in_sup[1], in_comb[1]]))
+            combined = _weld(combined, both, radius, "part, supports and welds")
+            comb_mesh = to_trimesh(combined)
+            radius *= 1.5
     raise GeometryError(
         f"the supports touch themselves or the part at a point after {len(PHASES)} tries "
         "(pinch points a file cannot keep); change contact_spacing_mm slightly and run again"

@@ -27,6 +27,7 @@ from ..constants import EPS_SMALL, OFFSET_MM
 from ..errors import SettingsError
 from ..settings import STRATEGY_NAMES, Settings
 from .freespace import surface_below
+from .geometry import DEPTH_SPREAD, LANDING_SINKS, landing_holds
 from .plan import Contacts, SupportPlan
 
 __all__ = ["STRATEGIES", "get_strategy", "plan_straight", "join_plans"]
@@ -80,14 +81,17 @@ def plan_straight(
     below = node_top - np.array([0.0, 0.0, OFFSET_MM])
     hit_z = np.nan_to_num(surface_below(mesh, below[:, :2], np.arange(len(below)), below[:, 2])[0], nan=-np.inf)
     lands = hit_z > base_top
+    # A landing on an edge or a sliver would leave its tip's end in mid-air: such a post
+    # leans to the nearest spot below that holds its landing (or to the base).
+    low_xy, hit_z = _holding_landings(mesh, settings, node_top, hit_z, lands)
+    lands = hit_z > base_top
     if avoid is not None and lands.any():
-        land_at = np.column_stack([node_top[:, :2], hit_z])
+        land_at = np.column_stack([low_xy, hit_z])
         refused = np.zeros(n, bool)
         refused[lands] = np.asarray(avoid(land_at[lands]), bool)
         if refused.any():
             return _without_refused(mesh, contacts, settings, refused, avoid, reroute)
-    node_low = node_top.copy()
-    node_low[:, 2] = np.where(lands, hit_z + tip_len, base_top)
+    node_low = np.column_stack([low_xy, np.where(lands, hit_z + tip_len, base_top)])
     # A landing whose post would be shorter than nothing: hang the tip straight on the landing.
     node_low[:, 2] = np.minimum(node_low[:, 2], node_top[:, 2])
     nodes = np.empty((2 * n, 3))
@@ -113,6 +117,65 @@ def plan_straight(
         tip_contact=tip_contact,
         feet=2 * np.flatnonzero(~lands) + 1,
     )
+
+
+#: Distances (mm) a straight post may lean by to find a landing that holds, tried in turn,
+#: each in eight directions; at most the branch angle from vertical.
+_LEAN_MM = (0.25, 0.5, 0.75, 1.0, 1.5)
+
+
+def _holding_landings(mesh, settings: Settings, top: np.ndarray, hit_z: np.ndarray, lands: np.ndarray):
+    """The lower end of each straight post: ``(xy, hit_z)``, leaning where the landing below does not hold.
+
+    A post lands where the surface straight below its tip's node looks up, but a landing
+    on an edge or on a sliver thinner than its sunk end leaves that end curing in mid-air
+    (:func:`~supportgen.supports.geometry.landing_holds`, at the shallowest sink the solids
+    use).  Such a post leans, within ``branch_angle_deg`` of vertical, to the nearest of
+    :data:`_LEAN_MM` x 8 spots where the landing holds or the base is reached, the leaning
+    segment clear of the part (one ray each); where none is, it stays as it was.
+    """
+    s = settings.rules
+    xy, hit_z = top[:, :2].copy(), hit_z.copy()
+    weak = np.flatnonzero(lands)
+    if weak.size == 0:
+        return xy, hit_z
+    shallow = LANDING_SINKS[0] * s.tip_depth_mm * (1 + DEPTH_SPREAD)  # the least a landing sinks (tip_reach)
+    ok = landing_holds(mesh, settings, np.column_stack([xy[weak], hit_z[weak]]), depth=shallow)
+    weak = weak[~ok]
+    if weak.size == 0:
+        return xy, hit_z
+    ang = np.linspace(0.0, 2 * np.pi, 8, endpoint=False)
+    off = (np.asarray(_LEAN_MM)[:, None, None] * np.stack([np.cos(ang), np.sin(ang)], -1)[None]).reshape(-1, 2)
+    k = len(off)
+    cand = (xy[weak][:, None, :] + off[None]).reshape(-1, 2)
+    z_top = np.repeat(top[weak, 2], k)
+    h, up = surface_below(mesh, cand, np.arange(len(cand)), z_top - OFFSET_MM)
+    h = np.nan_to_num(h, nan=-np.inf)
+    base_top = s.base_thickness_mm
+    on_base = h <= base_top
+    low_z = np.minimum(np.where(on_base, base_top, h + s.tip_length_mm), z_top)
+    lean = np.hypot(*np.repeat(off[None], len(weak), 0).reshape(-1, 2).T)
+    good = (on_base | up) & (lean <= (z_top - low_z) * np.tan(np.radians(s.branch_angle_deg)))
+    land = np.flatnonzero(good & ~on_base)
+    if land.size:
+        good[land] = landing_holds(mesh, settings, np.column_stack([cand[land], h[land]]), depth=shallow)
+    idx = np.flatnonzero(good)
+    if idx.size:
+        start = np.repeat(top[weak], k, axis=0)[idx]
+        end = np.column_stack([cand[idx], low_z[idx]])
+        way = end - start
+        length = np.linalg.norm(way, axis=1)
+        locs, ray, _ = mesh.ray.intersects_location(start, way / length[:, None], multiple_hits=False)
+        cut = np.zeros(len(idx), bool)
+        cut[ray] = np.linalg.norm(locs - start[ray], axis=1) < length[ray]
+        good[idx[cut]] = False
+    choice = good.reshape(len(weak), k)
+    found = choice.any(axis=1)
+    first = np.argmax(choice, axis=1)
+    pick = np.arange(len(weak)) * k + first
+    xy[weak[found]] = cand[pick[found]]
+    hit_z[weak[found]] = h[pick[found]]
+    return xy, hit_z
 
 
 def _without_refused(mesh, contacts, settings, refused, avoid, reroute) -> SupportPlan:
