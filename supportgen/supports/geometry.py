@@ -258,7 +258,7 @@ _REACH_MAX = 3.0
 
 
 #: Depths a landing tip's end may sink to, as fractions of its deepest reach: the deepest
-#: the part holds is taken (none: it stands on the surface).
+#: the part holds is taken (none: the first, so the end still crosses the surface).
 LANDING_SINKS = (0.25, 0.5, 1.0)
 
 
@@ -344,8 +344,10 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     land = np.flatnonzero(ok & (plan.tip_contact < 0))
     if land.size:
         deepest = rules.tip_depth_mm * (1 + DEPTH_SPREAD)
-        sink = np.zeros(land.size)
-        for frac in LANDING_SINKS:
+        # where none holds, still the shallowest: an end cap left on the surface would be
+        # coplanar with the part's face, a pinch along its whole rim
+        sink = np.full(land.size, LANDING_SINKS[0] * deepest)
+        for frac in LANDING_SINKS[1:]:
             held = landing_holds(part, settings, plan.tip_points[land], deepest * frac, depth)
             sink[held] = deepest * frac
         extra[land] = sink - deepest  # build_supports clamps the sum with the spread at zero
@@ -561,11 +563,13 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
         combined = _union([whole, supports], "part and supports")
         sup_mesh, comb_mesh = to_trimesh(supports), to_trimesh(combined)
         radius = weld_r0
-        for _ in range(_WELD_ROUNDS + 1):
+        for round_ in range(_WELD_ROUNDS + 1):
             in_sup, in_comb = pinch_positions(sup_mesh), pinch_positions(comb_mesh)
             if len(in_sup[0]) == 0 and len(in_comb[0]) == 0:
                 base_solid = _union(base, "base")
                 return Solids(sup_mesh, comb_mesh, float(supports.volume()), float(base_solid.volume()))
+            if round_ == _WELD_ROUNDS:
+                break  # welds did not close them: turn the facets and join again
             # A pinch of the supports is welded in both solids; one of the joined solid only
             # (a post grazing the part) is welded there alone, so the supports keep no ball
             # that stands apart from them.
