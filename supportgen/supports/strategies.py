@@ -25,6 +25,7 @@ import trimesh
 
 from ..constants import EPS_SMALL, OFFSET_MM
 from ..errors import SettingsError
+from ..io.winding import BallProbe
 from ..settings import STRATEGY_NAMES, Settings
 from .freespace import surface_below
 from .geometry import DEPTH_SPREAD, LANDING_SINKS, landing_holds
@@ -140,7 +141,8 @@ def _holding_landings(mesh, settings: Settings, top: np.ndarray, hit_z: np.ndarr
     if weak.size == 0:
         return xy, hit_z
     shallow = LANDING_SINKS[0] * s.tip_depth_mm * (1 + DEPTH_SPREAD)  # the least a landing sinks (tip_reach)
-    ok = landing_holds(mesh, settings, np.column_stack([xy[weak], hit_z[weak]]), depth=shallow)
+    probe = BallProbe(mesh)
+    ok = landing_holds(mesh, settings, np.column_stack([xy[weak], hit_z[weak]]), shallow, probe)
     weak = weak[~ok]
     if weak.size == 0:
         return xy, hit_z
@@ -158,7 +160,7 @@ def _holding_landings(mesh, settings: Settings, top: np.ndarray, hit_z: np.ndarr
     good = (on_base | up) & (lean <= (z_top - low_z) * np.tan(np.radians(s.branch_angle_deg)))
     land = np.flatnonzero(good & ~on_base)
     if land.size:
-        good[land] = landing_holds(mesh, settings, np.column_stack([cand[land], h[land]]), depth=shallow)
+        good[land] = landing_holds(mesh, settings, np.column_stack([cand[land], h[land]]), shallow, probe)
     idx = np.flatnonzero(good)
     if idx.size:
         start = np.repeat(top[weak], k, axis=0)[idx]
