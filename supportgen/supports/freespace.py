@@ -244,8 +244,10 @@ def free_space_graph(
     networkx.DiGraph
         Integer nodes with ``pos``; edges (upper, lower) with ``weight``; sink ``"base"``
         reached from the bottom layer at zero cost, sink ``"land"`` from nodes with the part's
-        upper surface at most ``tip_length + step`` below where a landing tip's end stays inside
-        the part (:func:`landing_holds`; ``weight`` = landing tip material, ``hit`` = landing point).  Graph attributes ``step``, ``pitch``, ``origin``, ``shape``.
+        upper surface at most ``tip_length + step`` below where a landing tip's end stays
+        inside the part (:func:`~supportgen.supports.geometry.landing_holds`; ``weight`` =
+        landing tip material, ``hit`` = landing point).  Graph attributes ``step``, ``pitch``,
+        ``origin``, ``shape``.
 
     Notes
     -----

@@ -42,6 +42,8 @@ __all__ = [
     "frustum",
     "tip_reach",
     "landing_holds",
+    "speck_hold_radius",
+    "deepest_sink",
     "LANDING_SINKS",
     "build_supports",
     "pinch_points",
@@ -262,6 +264,16 @@ _REACH_MAX = 3.0
 LANDING_SINKS = (0.25, 0.5, 1.0)
 
 
+def speck_hold_radius(pixel_mm: float) -> float:
+    """Radius of a ball that holds a speck: ``HOLD_PIXELS`` pixels across, plus half a pixel."""
+    return pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5)
+
+
+def deepest_sink(settings: Settings) -> float:
+    """How deep a tip's end sinks at most before any reach: ``tip_depth_mm`` and the spread."""
+    return settings.rules.tip_depth_mm * (1 + DEPTH_SPREAD)
+
+
 def landing_holds(
     mesh: trimesh.Trimesh,
     settings: Settings,
@@ -285,9 +297,9 @@ def landing_holds(
     points = np.asarray(points, float).reshape(-1, 3)
     if len(points) == 0:
         return np.zeros(0, bool)
-    s, pr = settings.rules, settings.printer
-    depth = s.tip_depth_mm * (1 + DEPTH_SPREAD) if depth is None else depth
-    radius = pr.pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5)
+    pr = settings.printer
+    depth = deepest_sink(settings) if depth is None else depth
+    radius = speck_hold_radius(pr.pixel_mm)
     below = np.maximum(np.broadcast_to(np.asarray(depth, float), len(points)), radius + pr.pixel_mm / 2)
     centre = points - np.column_stack([np.zeros((len(points), 2)), below])
     return (probe or BallProbe(mesh)).holds(centre, np.full(len(points), radius))
@@ -334,7 +346,7 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     axis[ok] /= length[ok, None]
     # the ball must hold a speck, and the tip's own end (its radius plus half a pixel) so the
     # end never shows through the far side of a thin wall
-    need = np.maximum(pr.pixel_mm * (np.sqrt(HOLD_PIXELS / np.pi) + 0.5), plan.tip_diameters / 2 + pr.pixel_mm / 2)
+    need = np.maximum(speck_hold_radius(pr.pixel_mm), plan.tip_diameters / 2 + pr.pixel_mm / 2)
     steps = np.arange(0.0, _REACH_MAX * rules.tip_depth_mm + EPS_REL, pr.layer_mm)
     depth = BallProbe(part)
     inward = -np.asarray(part.face_normals)[depth.nearest_face(plan.tip_points)]
@@ -343,7 +355,7 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     # below (a thin plate) or beside (an edge): it sinks only as deep as the part holds it.
     land = np.flatnonzero(ok & (plan.tip_contact < 0))
     if land.size:
-        deepest = rules.tip_depth_mm * (1 + DEPTH_SPREAD)
+        deepest = deepest_sink(settings)
         # where none holds, still the shallowest: an end cap left on the surface would be
         # coplanar with the part's face, a pinch along its whole rim
         sink = np.full(land.size, LANDING_SINKS[0] * deepest)

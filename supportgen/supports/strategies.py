@@ -28,7 +28,7 @@ from ..errors import SettingsError
 from ..io.winding import BallProbe
 from ..settings import STRATEGY_NAMES, Settings
 from .freespace import surface_below
-from .geometry import DEPTH_SPREAD, LANDING_SINKS, landing_holds
+from .geometry import LANDING_SINKS, deepest_sink, landing_holds
 from .plan import Contacts, SupportPlan
 
 __all__ = ["STRATEGIES", "get_strategy", "plan_straight", "join_plans"]
@@ -140,7 +140,7 @@ def _holding_landings(mesh, settings: Settings, top: np.ndarray, hit_z: np.ndarr
     weak = np.flatnonzero(lands)
     if weak.size == 0:
         return xy, hit_z
-    shallow = LANDING_SINKS[0] * s.tip_depth_mm * (1 + DEPTH_SPREAD)  # the least a landing sinks (tip_reach)
+    shallow = LANDING_SINKS[0] * deepest_sink(settings)  # the least a landing sinks (tip_reach)
     probe = BallProbe(mesh)
     ok = landing_holds(mesh, settings, np.column_stack([xy[weak], hit_z[weak]]), shallow, probe)
     weak = weak[~ok]
@@ -156,7 +156,7 @@ def _holding_landings(mesh, settings: Settings, top: np.ndarray, hit_z: np.ndarr
     base_top = s.base_thickness_mm
     on_base = h <= base_top
     low_z = np.minimum(np.where(on_base, base_top, h + s.tip_length_mm), z_top)
-    lean = np.hypot(*np.repeat(off[None], len(weak), 0).reshape(-1, 2).T)
+    lean = np.tile(np.hypot(*off.T), len(weak))
     good = (on_base | up) & (lean <= (z_top - low_z) * np.tan(np.radians(s.branch_angle_deg)))
     land = np.flatnonzero(good & ~on_base)
     if land.size:
