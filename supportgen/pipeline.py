@@ -44,6 +44,7 @@ from .supports.contacts import (
     contacts_at,
     contacts_from_rows,
     densify_points,
+    extend_toward_loads,
     merge_contacts,
     sample_overhangs,
 )
@@ -383,6 +384,9 @@ def _generate(
             break
         with timer("contacts"):
             more = densify_points(contacts, over, part, settings)
+            if profile.contact_peak_xy is not None:  # a tip loaded by lever: contacts under the load
+                below = profile.contact_peak_layers * pr.layer_mm
+                more = extend_toward_loads(more, over, profile.contact_peak_xy, below, part, settings)
         more = hold(more, len(contacts))
         if len(more) == len(contacts):
             break

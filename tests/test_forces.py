@@ -373,6 +373,20 @@ def test_tracker_shares_an_offset_layer_by_statics():
     assert prof.contact_loads.sum() == pytest.approx(P, rel=1e-12)
 
 
+def test_each_contact_knows_where_the_pull_that_loads_it_is_centred():
+    # The same offset disc: every contact's peak comes from the disc's pull, centred at the
+    # disc's centre (x = +1 mm, y = 0, by symmetry) to within a coarse cell's offset.
+    # Densifying reads it to put contacts under a load carried by lever.
+    yy, xx = centred(120)
+    m = (xx - 20) ** 2 + yy**2 < 60**2
+    pts = np.array([[-2.0, 0.0, 0.0], [0.0, 0.0, 0.0], [2.0, 0.0, 0.0]])
+    prof = run([m], pts)
+    assert prof.contact_peak_xy == pytest.approx(np.tile([1.0, 0.0], (3, 1)), abs=0.02)
+    # a sliding film shears the tips equally: no lever, no centre
+    slide = run([m], pts, Settings().override(mechanism="slide"))
+    assert slide.contact_peak_xy is None
+
+
 def test_tilt_never_exceeds_pull_on_small_features():
     # Domain monotonicity (Polya & Szego 1951): a peel band wets part of a layer, so it can
     # never need more than pulling the layer straight off. Features smaller than the band,

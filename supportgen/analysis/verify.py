@@ -144,9 +144,15 @@ def verify(
     over = None
     if tip_safety is not None:
         # Sizing makes capacity exactly SF x load; allow for rounding in that product.
-        over = int(np.count_nonzero(np.asarray(tip_safety) < 1.0 - EPS_REL))
+        tip_safety = np.asarray(tip_safety, dtype=float)
+        over = int(np.count_nonzero(tip_safety < 1.0 - EPS_REL))
         if over:
-            failures.append(f"{name}: {over} tip(s) would tear off at the set safety factor")
+            lowest = float(tip_safety.min()) * rules.safety_factor
+            failures.append(
+                f"{name}: {over} tip(s) would tear off at the set safety factor (lowest {lowest:.2f}, "
+                f"wanted {rules.safety_factor:g}); turn the part (orient auto) or allow larger tips "
+                f"(tip_max_mm, now {rules.tip_max_mm:g} mm)"
+            )
     return Verification(
         passed=not failures,
         watertight=watertight,

@@ -161,6 +161,12 @@ class ForceProfile:
         components took their strip bound instead of a pressure solve (N).
     strip_bounded : int
         How many components (over all layers) took it.
+    contact_peak_xy : (n, 2) float ndarray or None
+        Centre (x, y, mm) of the pull on the component that gave each contact its
+        peak load; NaN where the contact carried nothing or the film slides (shear
+        is shared by tip area, with no lever).  A contact far from it carries the
+        load by lever (moment balance of the rigid part), which more contacts beside
+        it barely relieve: :func:`supportgen.supports.contacts.extend_toward_loads`.
     """
 
     force_n: np.ndarray
@@ -178,6 +184,7 @@ class ForceProfile:
     rated_force_n: float | None = None
     strip_bound_n: np.ndarray | None = None
     strip_bounded: int = 0
+    contact_peak_xy: np.ndarray | None = None
 
     @property
     def contact_tip_loads(self) -> np.ndarray:
@@ -337,6 +344,7 @@ class ForceTracker:
         self._force, self._area, self._unheld, self._bound, self._bounded = {}, {}, {}, {}, 0
         self._peak = np.zeros(len(pts))
         self._peak_layer = np.full(len(pts), -1)
+        self._peak_xy = np.full((len(pts), 2), np.nan)
         self._side = np.zeros(len(pts))
         self._squeeze = np.zeros(len(pts))
         self.last_loads, self.last_unheld_n = np.zeros(len(pts)), 0.0
@@ -381,6 +389,7 @@ class ForceTracker:
         pull, comp_force = rec.pull, rec.comp_force
         n = len(self.points)
         squeeze_load, load, side = np.zeros(n), np.zeros(n), np.zeros(n)
+        centre = np.full((n, 2), np.nan)  # centre of the pull on the component each contact holds
         unheld = 0.0
         for i in range(1, nf + 1):
             hold = sorted(set(holders[i]))
@@ -389,6 +398,8 @@ class ForceTracker:
                 continue
             g = statics_matrix(self.points[hold, :2], self._stiff[hold], rec.spread[i - 1])
             r_pull = g @ pull[:, i - 1]
+            if pull[0, i - 1] > 0:
+                centre[hold] = pull[1:, i - 1] / pull[0, i - 1]
             squeeze_load[hold] += r_pull
             if self.mechanism == "tilt" and rec.sweep is not None:
                 force, fx, fy = rec.sweep
@@ -397,9 +408,10 @@ class ForceTracker:
                 up = np.maximum(r.max(axis=1), 0.0)
                 push = np.maximum(-r.min(axis=1), 0.0)
                 self._squeeze[hold] = np.maximum(self._squeeze[hold], push)
-                better = up > self._peak[hold]
-                self._peak[np.array(hold)[better]] = up[better]
-                self._peak_layer[np.array(hold)[better]] = k
+                gain = up > self._peak[hold]
+                better = np.array(hold)[gain]
+                self._peak[better], self._peak_layer[better] = up[gain], k
+                self._peak_xy[better] = centre[better]  # the pull's centre: the sweep's moves with the front
             elif self.mechanism in SIDE_LOAD:
                 share = comp_force[i - 1] / len(hold)  # equal tips: shear shared by tip area
                 side[hold] += share
@@ -418,7 +430,7 @@ class ForceTracker:
             self.last_loads = load
             if self.mechanism != "tilt":
                 up = load > self._peak
-                self._peak[up], self._peak_layer[up] = load[up], k
+                self._peak[up], self._peak_layer[up], self._peak_xy[up] = load[up], k, centre[up]
         self.last_unheld_n = float(unheld)
         self.last_torsion_mm4 = rec.torsion_mm4
         self._force[k] = float(comp_force.sum())
@@ -493,6 +505,7 @@ class ForceTracker:
             rated_force_n=rated,
             strip_bound_n=bound,
             strip_bounded=self._bounded,
+            contact_peak_xy=None if side else self._peak_xy.copy(),
         )
 
 

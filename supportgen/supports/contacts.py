@@ -39,6 +39,7 @@ __all__ = [
     "add_unheld",
     "expected_count",
     "densify_points",
+    "extend_toward_loads",
     "contacts_from_rows",
 ]
 
@@ -316,6 +317,110 @@ def densify_points(
         return contacts
     k = len(taken)
     new = Contacts(closest[taken], normals[taken], np.full(k, "densify"), np.full(k, settings.rules.tip_diameter_mm))
+    return Contacts.concat([contacts, new])
+
+
+def extend_toward_loads(
+    contacts: Contacts,
+    over,
+    toward_xy,
+    below_z,
+    mesh: trimesh.Trimesh,
+    settings: Settings,
+    max_steps: int = 8,
+) -> Contacts:
+    """Add contacts under the part between each over-capacity contact and the load it carries by lever.
+
+    The part is a rigid body on its supports (:mod:`supportgen.physics.loadpath`):
+    when the pull on a component is centred far outside the patch of contacts that
+    hold it, moment balance makes the contacts at the patch's edge carry many times
+    the pull itself, and contacts added beside them (:func:`densify_points`) barely
+    shorten the lever.  Contacts under the load shorten it.
+
+    Parameters
+    ----------
+    contacts : Contacts
+    over : (m,) bool ndarray, m <= len(contacts)
+        The first ``m`` contacts' tips are over capacity.
+    toward_xy : (m, 2) float ndarray
+        Centre of the pull that gave each of them its peak load (mm); NaN: none
+        (:attr:`~supportgen.physics.loadpath.ForceProfile.contact_peak_xy`).
+    below_z : (m,) float ndarray
+        Height (mm) of the layer of that peak: a new contact must touch the part
+        no higher, or it would attach only after the peak.
+    mesh : trimesh.Trimesh
+        The part in build coordinates.
+    settings : Settings
+        ``contact_spacing_mm``: only a centre farther than it counts as a lever; points
+        are taken about that far apart along the way, at most ``max_steps`` per contact.
+
+    Returns
+    -------
+    Contacts
+        ``contacts`` then the new ones (kind ``"densify"``): at each point of the way
+        the highest down-facing crossing of an upward ray that lies at or below
+        ``below_z`` (the underside of the material at that layer), kept when no contact
+        lies within a quarter of the spacing (the gap :func:`densify_points` keeps).
+
+    Notes
+    -----
+    One batched ray query (trimesh's BVH intersector) for all points of the way.
+
+    Examples
+    --------
+    A 20 x 4 mm slab 2 mm thick at z 5 held at its left end and pulled at its middle:
+
+    >>> import trimesh
+    >>> from supportgen import Settings
+    >>> slab = trimesh.creation.box((20.0, 4.0, 2.0)).apply_translation((0.0, 0.0, 6.0))
+    >>> held = Contacts([[-9.5, 0.0, 5.0]], [[0, 0, -1]], ["overhang"], [0.4])
+    >>> out = extend_toward_loads(held, [True], [[0.0, 0.0]], [6.5], slab, Settings())
+    >>> bool(len(out) > 1 and (out.points[1:, 2] == 5.0).all() and out.points[1:, 0].max() == 0.0)
+    True
+    """
+    over = np.asarray(over, dtype=bool)
+    toward = np.asarray(toward_xy, float).reshape(-1, 2)
+    below = np.asarray(below_z, float).reshape(-1)
+    if not (over.shape[0] == toward.shape[0] == below.shape[0] <= len(contacts)):
+        raise SizingError(
+            f"over, toward_xy and below_z have {over.shape[0]}, {toward.shape[0]} and {below.shape[0]} rows for "
+            f"{len(contacts)} contacts; pass one row per contact checked"
+        )
+    spacing = settings.rules.contact_spacing_mm
+    start = contacts.points[: len(over), :2]
+    way = toward - start
+    dist = np.hypot(way[:, 0], way[:, 1])
+    lever = np.flatnonzero(over & np.isfinite(dist) & (dist > spacing))
+    if lever.size == 0:
+        return contacts
+    steps = np.minimum(np.ceil(dist[lever] / spacing).astype(int), max_steps)
+    owner = np.repeat(lever, steps)
+    frac = np.concatenate([np.arange(1, k + 1) / k for k in steps])
+    xy = start[owner] + frac[:, None] * way[owner]
+    origins = np.column_stack([xy, np.full(len(xy), mesh.bounds[0, 2] - 1.0)])
+    dirs = np.tile([0.0, 0.0, 1.0], (len(xy), 1))
+    locs, ray, tri = mesh.ray.intersects_location(origins, dirs, multiple_hits=True)
+    down = mesh.face_normals[tri, 2] < 0.0
+    ok = down & (locs[:, 2] <= below[owner[ray]] + EPS_REL)
+    best = np.full(len(xy), -1)
+    for h in np.flatnonzero(ok):  # the highest underside at or below the peak layer, per ray
+        if best[ray[h]] < 0 or locs[h, 2] > locs[best[ray[h]], 2]:
+            best[ray[h]] = h
+    hits = best[best >= 0]
+    if hits.size == 0:
+        return contacts
+    gap = 0.25 * spacing
+    tree, taken = cKDTree(contacts.points), []
+    for h in hits:
+        p = locs[h]
+        if tree.query(p)[0] >= gap and all(np.linalg.norm(p - locs[j]) >= gap for j in taken):
+            taken.append(h)
+    if not taken:
+        return contacts
+    k = len(taken)
+    new = Contacts(
+        locs[taken], mesh.face_normals[tri[taken]], np.full(k, "densify"), np.full(k, settings.rules.tip_diameter_mm)
+    )
     return Contacts.concat([contacts, new])
 
 
