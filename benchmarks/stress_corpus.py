@@ -532,13 +532,24 @@ def independent_check(
     out["cured_mm3"] = float(cured)
     if cured <= speck * layer_mm:
         failures.append("cures-nothing")
+    # Held material: the first layer (on the plate), then each region that overlaps held material
+    # of the layer below by a speck (a region smaller than a speck: by half a pixel, or half
+    # itself).  A region in mid-air is an island once, and counts as held above it (it is counted,
+    # not counted again per layer); a speck in mid-air is no island but holds nothing above it,
+    # so a part that starts as a speck and grows (a knife edge or a point facing down) is one.
     below = None
     for k, (z, geom, to_3d) in enumerate(layers):
-        if below is not None and not geom.is_empty:
-            comps = np.array(getattr(geom, "geoms", [geom]), dtype=object)
-            comps = comps[shapely.area(comps) >= speck]
-            held = shapely.area(shapely.intersection(comps, below)) if len(comps) else np.zeros(0)
-            for comp in comps[held < speck]:
+        comps = np.array(getattr(geom, "geoms", [geom]), dtype=object) if not geom.is_empty else np.zeros(0, object)
+        if below is None:
+            below = geom
+            continue
+        area = shapely.area(comps)
+        over = shapely.area(shapely.intersection(comps, below)) if len(comps) and not below.is_empty else area * 0
+        held = over >= np.where(area >= speck, speck, 0.5 * np.minimum(area, pixel_mm**2))
+        island = ~held & (area >= speck)
+        below = geom if (held | island).all() else shapely.union_all(comps[held | island])
+        if len(comps):
+            for comp in comps[island]:
                 out["islands"] += 1
                 if out["first_island"] is None:
                     c = comp.representative_point()
@@ -549,7 +560,6 @@ def independent_check(
                         "xy_mm": [float(xyz[0]), float(xyz[1])],
                         "area_mm2": float(comp.area),
                     }
-        below = geom
     if out["islands"]:
         failures.append("island")
     if part_volume_mm3 is not None and out["volume_mm3"] is not None and out["volume_mm3"] < 0.97 * part_volume_mm3:

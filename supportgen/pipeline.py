@@ -193,8 +193,10 @@ def _layer_contacts(part, stack: LayerStack, settings: Settings, contacts: Conta
     reach_across = rules.tip_min_mm / 2 + pr.pixel_mm
     xyz = []
     for isl in stack.islands:
-        if isl.area_mm2 < speck_area_mm2(pr.pixel_mm):
-            continue  # no tip can hold a speck; verify reports it
+        if isl.area_bound_mm2 < speck_area_mm2(pr.pixel_mm):
+            continue  # one pixel: less than a speck on any grid; verify reports it
+        # An island of two pixels or more may light a speck on the check's grid (or cover one
+        # exactly): it takes a tip, which holds it whatever its size.
         if isl.held_by(contacts.points, reach_across, pr.layer_mm).any():
             continue  # a tip already touches its first layer
         xy = isl.points(rules.contact_spacing_mm, rules.seed)

@@ -20,6 +20,28 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
 import stress_corpus as sc  # noqa: E402
 
 
+def tilted_cone(z0: float) -> trimesh.Trimesh:
+    """A cone 8 mm in radius and 20 mm tall, point down, tilted 25 degrees (more than its
+    21.8 degree half-angle): its lowest point is on the rim, a knife edge, at ``z0``."""
+    cone = trimesh.creation.cone(8.0, 20.0, sections=96)
+    cone.apply_transform(trimesh.transformations.rotation_matrix(np.pi, [1, 0, 0]))
+    cone.apply_transform(trimesh.transformations.rotation_matrix(np.radians(25.0), [0, 1, 0]))
+    return cone.apply_translation([0.0, 0.0, z0 - cone.bounds[0, 2]])
+
+
+def test_check_finds_a_part_that_grows_in_mid_air_from_a_knife_edge(tmp_path):
+    # Exact geometry: the cone's first layers are slivers under a speck, each overlapping the
+    # one below by more than a speck once it grows; nothing joins it to the block on the plate.
+    # A speck in mid-air holds nothing, so the cone is one island where it first covers a
+    # speck, a layer or two above its lowest point (z 5).
+    block = trimesh.creation.box((4, 4, 4), trimesh.transformations.translation_matrix((-20, 0, 2)))
+    path = tmp_path / "m.stl"
+    trimesh.util.concatenate([block, tilted_cone(5.0)]).export(path)
+    out = sc.independent_check(path)
+    assert out["islands"] == 1 and "island" in out["failures"], out
+    assert 5.0 < out["first_island"]["z_mm"] < 5.0 + 4 * 0.05
+
+
 def _block():
     # a box standing on the plate cures every layer from the plate up: the only failure left
     # is the one the tips' factors give
@@ -40,6 +62,27 @@ def test_tips_under_the_safety_factor_fail_with_the_lowest_factor_and_the_remedi
 def test_tips_at_the_safety_factor_pass():
     v = verify(_block(), Settings(), tip_safety=np.array([1.0, 3.0]), name="bracket")
     assert v.passed and v.tips_over_capacity == 0 and v.failures == ()
+
+
+def test_a_part_growing_from_a_knife_edge_in_mid_air_is_an_island():
+    # Exact geometry (tests/test_stress.tilted_cone): the cone's lowest point, a knife edge, is
+    # at z 5 with nothing below it.  Its first layers are specks; each later layer overlaps the
+    # one below by more than a speck, but a speck in mid-air holds nothing, so the whole cone is
+    # one island starting at its lowest layers (a speck holding the next layer passed it before).
+    v = verify(tilted_cone(5.0), Settings(), name="cone")
+    assert not v.passed and v.n_islands == 1
+    assert v.first_islands[0]["z_mm"] < 5.0 + 3 * Settings().printer.layer_mm
+
+
+def test_a_part_growing_from_a_knife_edge_is_supported_and_passes_both_checks(tmp_path):
+    # The same cone through the pipeline: it gets a tip under its knife edge, and the written
+    # solid passes our verify and the independent check (trimesh sections + shapely).
+    r = supportgen.generate(tilted_cone(5.0), name="cone")
+    assert r.report["verification"]["passed"], r.report["verification"]["failures"]
+    assert r.report["supports"]["contacts_by_kind"].get("island", 0) >= 1
+    path = tmp_path / "cone.supported.stl"
+    r.combined.export(path)
+    assert sc.independent_check(path)["failures"] == []
 
 
 @pytest.mark.skipif(not sc.corpus_available(), reason=f"the shared corpus is not at {sc.CORPUS}")

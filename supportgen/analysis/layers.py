@@ -192,6 +192,27 @@ class Island:
     col0: int
     grid: Grid
 
+    @property
+    def area_bound_mm2(self) -> float:
+        """Area (mm^2) of the pixels with a band half a pixel wide along their exposed edges.
+
+        The printer lights a pixel when the layer's section covers its centre, so the
+        section behind these pixels may reach up to half a pixel past each exposed
+        edge without lighting another: on a grid shifted by a fraction of a pixel
+        (another part's grid, the raft's) the same section may light that much more.
+        One pixel gives 3 pixel areas, less than a speck (pi); two give 5.
+
+        Examples
+        --------
+        >>> g = Grid(0.0, 0.0, 0.1, 10, 10)
+        >>> round(Island(3, 0.35, 0.02, (0.45, 0.4), np.ones((1, 2), bool), 4, 4, g).area_bound_mm2, 6)
+        0.05
+        """
+        m = np.pad(self.mask, 1)
+        edges = np.count_nonzero(m[1:] != m[:-1]) + np.count_nonzero(m[:, 1:] != m[:, :-1])
+        p = self.grid.pixel_mm
+        return float(np.count_nonzero(self.mask) * p * p + 0.5 * p * p * edges)
+
     def held_by(self, xyz: np.ndarray, radius_mm: float, rise_mm: float) -> np.ndarray:
         """Which of the points ``xyz`` (k, 3) would hold this island as tips.
 
@@ -472,6 +493,30 @@ def _held(pw, runs, comp, n):
     return overlap >= np.minimum(HOLD_PIXELS, np.maximum(size, 1))
 
 
+def _beside(ph: np.ndarray, island, r0: int, c0: int) -> bool:
+    """Whether held pixels of the layer below (window ``ph``) lie within a pixel of the
+    island's, diagonals included: a speck held only by a corner is the raster of a thin
+    feature stepping sideways (the exact sections overlap), not a speck in mid-air."""
+    r, c = island.row0 - r0 - 1, island.col0 - c0 - 1
+    near = ndimage.binary_dilation(np.pad(island.mask, 1), structure=np.ones((3, 3), bool))
+    h, w = near.shape
+    return bool((ph[r : r + h, c : c + w] & near).any())
+
+
+def _without(pw: np.ndarray, specks, r0: int, c0: int, nx: int) -> np.ndarray:
+    """The window ``pw`` of the layer below with the pixels of its speck islands cleared
+    (``pw`` itself when it has none)."""
+    if not specks:
+        return pw
+    flat = np.concatenate([f for _, f in specks])
+    r, c = np.divmod(flat, nx)
+    r, c = r - r0, c - c0
+    ok = (r >= 0) & (r < pw.shape[0]) & (c >= 0) & (c < pw.shape[1])
+    out = pw.copy()
+    out[r[ok], c[ok]] = False
+    return out
+
+
 def _flat_pixels(island) -> np.ndarray:
     """Full-grid flat indices of an island's pixels."""
     r, c = island.mask.nonzero()
@@ -600,6 +645,7 @@ def analyse_layers(
     reach_xy = np.full((n_layers, 2), np.nan)
     islands, over, inverted = [], [], 0
     specks, dropped = [], set()  # (index in islands, full-grid flat pixels) of last layer's speck islands
+    speck_mm2 = speck_area_mm2(pixel_mm)
     prev = np.zeros(grid.shape, bool)
     layers = iter_layers(mesh, grid, layer_mm)
     if progress:
@@ -624,25 +670,36 @@ def analyse_layers(
         comp, n, area, perim = _run_components(*runs, p)
         rows_out[k, :3] = area * p * p, perim, n
         new = np.flatnonzero(m & ~pw) if k > 0 else np.zeros(0, np.int64)
+        # A speck in mid-air carries no contact (no tip holds it), so it holds nothing above it:
+        # what grows on it is in mid-air too, one island with it (held pixels: ph).
+        ph = _without(pw, specks, r0, c0, grid.nx)
+        seeds = new if ph is pw else np.flatnonzero(m & ~ph)
         grown = []  # this layer's speck islands, for the next layer
-        if new.size:
-            nr, nc = np.divmod(new, w)
+        if seeds.size:
             # Holding is judged on edge-connected (4-connected) regions: pixels that meet
             # only at a corner share no area, so one does not hold the other.
             n4, comp4 = edge_components(runs[0].size, *run_overlaps((runs[0] + 1, *runs[1:]), runs)[:2])
-            ln = _labels_at(runs, comp4, w, nr, nc)
-            d = _near_reach(pw, new, w)
-            isl = ~_held(pw, runs, comp4, n4)[ln]
+            held4 = _held(ph, runs, comp4, n4)
+            ls = _labels_at(runs, comp4, w, *np.divmod(seeds, w))
+            isl = ~held4[ls]
             if isl.any():
-                found = _islands(new[isl], ln[isl], k, layer.z_mm, grid, r0, c0, w)  # in label order
-                labels = np.unique(ln[isl])
+                found = _islands(seeds[isl], ls[isl], k, layer.z_mm, grid, r0, c0, w)  # in label order
+                labels = np.unique(ls[isl])
                 for idx, lab in _grown_specks(specks, labels, m, runs, comp4, r0, c0, grid.nx):
                     # The speck was the island's first layer: one island, starting there.
                     j = int(np.searchsorted(labels, lab))
                     found[j] = dataclasses.replace(found[j], layer=islands[idx].layer, z_mm=islands[idx].z_mm)
                     dropped.add(idx)
-                grown = [(len(islands) + j, _flat_pixels(i)) for j, i in enumerate(found) if i.mask.sum() < HOLD_PIXELS]
+                grown = [
+                    (len(islands) + j, _flat_pixels(i))
+                    for j, i in enumerate(found)
+                    if i.area_mm2 < speck_mm2 and not _beside(ph, i, r0, c0)
+                ]
                 islands.extend(found)
+        if new.size:
+            nr, nc = np.divmod(new, w)
+            d = _near_reach(pw, new, w)
+            isl = ~held4[_labels_at(runs, comp4, w, nr, nc)]
             if not isl.all():
                 nr, nc, d = nr[~isl], nc[~isl], d[~isl]
                 far = np.isnan(d)
