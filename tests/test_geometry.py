@@ -344,3 +344,32 @@ def test_straight_post_over_an_edge_leans_to_a_landing_that_holds():
     a, b = plan.nodes[plan.edges[:, 0]], plan.nodes[plan.edges[:, 1]]
     lean = np.degrees(np.arctan2(np.hypot(*(a - b)[:, :2].T), (a - b)[:, 2]))
     assert (lean <= s.rules.branch_angle_deg + 1e-9).all()
+
+
+def test_straight_post_in_a_slot_narrower_than_its_tip_stays_out_of_the_part_below():
+    # Exact boxes: a 1.3 mm slab under a shelf, 0.25 mm apart (narrower than a 1.5 mm tip).
+    # A tip hung its full length from the shelf would pass through the slab and its node's
+    # joint would poke out under it, curing in mid-air (found on the stress corpus).  The node
+    # goes halfway down the slot, the post lands on the slab's top right there, and the joined
+    # solid passes our verify (no island, manifold3d union of exact boxes).
+    import manifold3d as m
+
+    from supportgen.analysis.verify import verify
+    from supportgen.supports.geometry import to_trimesh
+    from supportgen.supports.plan import Contacts
+
+    shelf = m.Manifold.cube((20, 10, 2)).translate((-10, -5, 10))  # underside z = 10
+    wall = m.Manifold.cube((2, 10, 12)).translate((-10, -5, 0))
+    slab = m.Manifold.cube((10, 10, 1.3)).translate((0, -5, 8.45))  # top z = 9.75
+    post = m.Manifold.cube((2, 2, 8.45)).translate((7, -1, 0))
+    part = to_trimesh(shelf + wall + slab + post)
+    s = Settings()
+    c = Contacts([[4.0, 0.0, 10.0]], [[0, 0, -1]], ["overhang"], [0.4])
+    plan = plan_straight(part, c, s)
+    node = plan.nodes[plan.tip_nodes[plan.tip_contact == 0][0]]
+    assert 9.75 < node[2] < 10.0  # in the slot, not in the slab
+    land = plan.tip_points[plan.tip_contact < 0]
+    assert len(land) == 1 and land[0, 2] == pytest.approx(9.75)
+    sol = combine(part, plan, s)
+    v = verify(sol.combined, s, name="slot")
+    assert v.n_islands == 0, v.failures

@@ -78,9 +78,14 @@ def plan_straight(
     # Node under each tip; a contact too close to the base gets a shorter tip.
     node_top = top - np.array([0.0, 0.0, tip_len])
     node_top[:, 2] = np.maximum(node_top[:, 2], base_top + OFFSET_MM)
-    # Start the downward ray a post radius below the node so it does not hit the tip's own face.
-    below = node_top - np.array([0.0, 0.0, OFFSET_MM])
-    hit_z = np.nan_to_num(surface_below(mesh, below[:, :2], np.arange(len(below)), below[:, 2])[0], nan=-np.inf)
+    # The first surface under each contact (the ray starts just below it, off its own face).
+    # Where the part lies closer below than a tip's length (a slot narrower than the tip), the
+    # node goes halfway down the slot so the tip does not pass through the part below, and
+    # the post lands right there: its landing tip hangs from the same node.
+    hit_z, up = surface_below(mesh, top[:, :2], np.arange(n), top[:, 2] - OFFSET_MM)
+    hit_z = np.nan_to_num(hit_z, nan=-np.inf)
+    slot = up & (hit_z >= node_top[:, 2])
+    node_top[slot, 2] = 0.5 * (top[slot, 2] + hit_z[slot])
     lands = hit_z > base_top
     # A landing on an edge or a sliver would leave its tip's end in mid-air: such a post
     # leans to the nearest spot below that holds its landing (or to the base).
