@@ -606,7 +606,11 @@ def analyse_layers(
     smaller than a speck); pixels that meet only at a corner share no area, so they
     do not hold one another.  Any other region is an island; it is recorded once, at its first layer, and counts
     as anchored above it (it will carry contacts), so every cured pixel of layer
-    k - 1 counts towards holding layer k.  The reach of a newly cured
+    k - 1 counts towards holding layer k, except those of a speck in mid-air: an
+    island smaller than a speck with no held pixel of the layer below within a pixel
+    (diagonals included) carries no contact and holds nothing, so what grows on it is
+    one island with it, starting at the speck's layer (a part growing from a knife
+    edge or a point facing down).  The reach of a newly cured
     pixel of an anchored component is its distance (pixel centre to pixel
     centre) to the nearest cured pixel of layer k - 1: searched among the pixels
     within 4 pixels, else an exact Euclidean distance transform [1]_ in a box

@@ -8,7 +8,8 @@ height, as the printer will cure it, and passes only when
   a "speck", an island smaller than a disc two pixels across, is below the
   smallest feature a printer cures reliably (2-3 pixels, common practice): no
   tip can hold it, so it is reported as a warning about the model's geometry,
-  not counted as an island),
+  not counted as an island; but it holds nothing either, so a region that grows
+  on a speck in mid-air is an island from the speck's layer),
 - no newly cured pixel lies farther than ``rules.reach_limit_mm`` from
   material cured in the layer below,
 - and, when the tips' loads and diameters are known, every tip holds its peak
