@@ -386,9 +386,11 @@ def _generate(
             break
         with timer("contacts"):
             more = densify_points(contacts, over, part, settings)
-            if profile.contact_peak_xy is not None:  # a tip loaded by lever: contacts under the load
+            if profile.contact_peak_xy is not None:  # contacts under the load: on the way to it, and around it
                 below = profile.contact_peak_layers * pr.layer_mm
-                more = extend_toward_loads(more, over, profile.contact_peak_xy, below, part, settings)
+                more = extend_toward_loads(
+                    more, over, profile.contact_peak_xy, below, part, settings, profile.contact_peak_spread
+                )
         more = hold(more, len(contacts))
         if len(more) == len(contacts):
             break

@@ -102,3 +102,23 @@ def test_tips_loaded_by_lever_get_contacts_under_the_load(tmp_path):
     assert forces["min_tip_safety_factor"] >= Settings().rules.safety_factor * (1 - 1e-9)
     r.combined.export(tmp_path / "out.stl")
     assert sc.independent_check(tmp_path / "out.stl")["failures"] == []
+
+
+def test_a_wide_part_standing_on_a_point_shares_its_pull_over_its_sides(tmp_path):
+    # Exact geometry: a square pyramid 20 mm across, point down, sides at 56 degrees (steep
+    # enough to need no contacts of their own).  Only its point is held, and its large top
+    # layers pull on the few tips there: rings around them fill up before the load is shared
+    # (a stress-corpus case was left with tips under the safety factor).  Contacts under the
+    # rest of the loaded section, on the sides, share it: no tip is under the factor, and the
+    # written solid passes our verify and the independent check.
+    a, h = 10.0, 15.0
+    v = np.array([[a, a, 0], [-a, a, 0], [-a, -a, 0], [a, -a, 0], [0, 0, -h]], float)
+    pyramid = trimesh.Trimesh(v, [[0, 1, 2], [0, 2, 3], [1, 0, 4], [2, 1, 4], [3, 2, 4], [0, 3, 4]])
+    pyramid.fix_normals()
+    r = supportgen.generate(pyramid.apply_translation((0.0, 0.0, h)), name="pyramid")
+    forces = r.report["forces"]
+    assert r.report["verification"]["passed"], r.report["verification"]["failures"]
+    assert forces["tips_over_capacity"] == 0
+    assert forces["min_tip_safety_factor"] >= Settings().rules.safety_factor * (1 - 1e-9)
+    r.combined.export(tmp_path / "out.stl")
+    assert sc.independent_check(tmp_path / "out.stl")["failures"] == []

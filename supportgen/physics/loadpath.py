@@ -167,6 +167,9 @@ class ForceProfile:
         is shared by tip area, with no lever).  A contact far from it carries the
         load by lever (moment balance of the rigid part), which more contacts beside
         it barely relieve: :func:`supportgen.supports.contacts.extend_toward_loads`.
+    contact_peak_spread : (n,) float ndarray or None
+        RMS radius (mm) of that pull about its centre (how far the loaded section
+        reaches); NaN and None as ``contact_peak_xy``.
     """
 
     force_n: np.ndarray
@@ -185,6 +188,7 @@ class ForceProfile:
     strip_bound_n: np.ndarray | None = None
     strip_bounded: int = 0
     contact_peak_xy: np.ndarray | None = None
+    contact_peak_spread: np.ndarray | None = None
 
     @property
     def contact_tip_loads(self) -> np.ndarray:
@@ -344,7 +348,7 @@ class ForceTracker:
         self._force, self._area, self._unheld, self._bound, self._bounded = {}, {}, {}, {}, 0
         self._peak = np.zeros(len(pts))
         self._peak_layer = np.full(len(pts), -1)
-        self._peak_xy = np.full((len(pts), 2), np.nan)
+        self._peak_xy = np.full((len(pts), 3), np.nan)  # centre (x, y) and RMS radius of the peak's pull
         self._side = np.zeros(len(pts))
         self._squeeze = np.zeros(len(pts))
         self.last_loads, self.last_unheld_n = np.zeros(len(pts)), 0.0
@@ -389,7 +393,7 @@ class ForceTracker:
         pull, comp_force = rec.pull, rec.comp_force
         n = len(self.points)
         squeeze_load, load, side = np.zeros(n), np.zeros(n), np.zeros(n)
-        centre = np.full((n, 2), np.nan)  # centre of the pull on the component each contact holds
+        centre = np.full((n, 3), np.nan)  # centre and RMS radius of the pull on the component each contact holds
         unheld = 0.0
         for i in range(1, nf + 1):
             hold = sorted(set(holders[i]))
@@ -399,7 +403,7 @@ class ForceTracker:
             g = statics_matrix(self.points[hold, :2], self._stiff[hold], rec.spread[i - 1])
             r_pull = g @ pull[:, i - 1]
             if pull[0, i - 1] > 0:
-                centre[hold] = pull[1:, i - 1] / pull[0, i - 1]
+                centre[hold] = [*(pull[1:, i - 1] / pull[0, i - 1]), rec.spread[i - 1]]
             squeeze_load[hold] += r_pull
             if self.mechanism == "tilt" and rec.sweep is not None:
                 force, fx, fy = rec.sweep
@@ -505,7 +509,8 @@ class ForceTracker:
             rated_force_n=rated,
             strip_bound_n=bound,
             strip_bounded=self._bounded,
-            contact_peak_xy=None if side else self._peak_xy.copy(),
+            contact_peak_xy=None if side else self._peak_xy[:, :2].copy(),
+            contact_peak_spread=None if side else self._peak_xy[:, 2].copy(),
         )
 
 

@@ -327,15 +327,19 @@ def extend_toward_loads(
     below_z,
     mesh: trimesh.Trimesh,
     settings: Settings,
+    spread=None,
     max_steps: int = 8,
 ) -> Contacts:
-    """Add contacts under the part between each over-capacity contact and the load it carries by lever.
+    """Add contacts under the load that over-capacity contacts carry: on the way to its centre, and around it.
 
     The part is a rigid body on its supports (:mod:`supportgen.physics.loadpath`):
     when the pull on a component is centred far outside the patch of contacts that
     hold it, moment balance makes the contacts at the patch's edge carry many times
     the pull itself, and contacts added beside them (:func:`densify_points`) barely
-    shorten the lever.  Contacts under the load shorten it.
+    shorten the lever.  Contacts under the load shorten it.  And where a wide section
+    is held by a small patch (a part standing on a point, its sides too steep to need
+    contacts of their own), the rings around the patch fill up before the load is
+    shared: contacts under the rest of the section share it.
 
     Parameters
     ----------
@@ -353,6 +357,11 @@ def extend_toward_loads(
     settings : Settings
         ``contact_spacing_mm``: only a centre farther than it counts as a lever; points
         are taken about that far apart along the way, at most ``max_steps`` per contact.
+    spread : (m,) float ndarray, optional
+        RMS radius (mm) of each such pull
+        (:attr:`~supportgen.physics.loadpath.ForceProfile.contact_peak_spread`); where it
+        is wider than the spacing, the centre and rings at half and all of it (6 and 12
+        points) are tried too.
 
     Returns
     -------
@@ -377,6 +386,14 @@ def extend_toward_loads(
     >>> out = extend_toward_loads(held, [True], [[0.0, 0.0]], [6.5], slab, Settings())
     >>> bool(len(out) > 1 and (out.points[1:, 2] == 5.0).all() and out.points[1:, 0].max() == 0.0)
     True
+
+    A 20 x 20 mm slab held at its middle, its pull spread 5 mm about it: rings of 6 and 12
+    contacts under it (its centre is taken already).
+
+    >>> wide = trimesh.creation.box((20.0, 20.0, 2.0)).apply_translation((0.0, 0.0, 6.0))
+    >>> mid = Contacts([[0.0, 0.0, 5.0]], [[0, 0, -1]], ["minimum"], [0.4])
+    >>> len(extend_toward_loads(mid, [True], [[0.0, 0.0]], [6.5], wide, Settings(), spread=[5.0])) - 1
+    18
     """
     over = np.asarray(over, dtype=bool)
     toward = np.asarray(toward_xy, float).reshape(-1, 2)
@@ -391,12 +408,22 @@ def extend_toward_loads(
     way = toward - start
     dist = np.hypot(way[:, 0], way[:, 1])
     lever = np.flatnonzero(over & np.isfinite(dist) & (dist > spacing))
-    if lever.size == 0:
-        return contacts
     steps = np.minimum(np.ceil(dist[lever] / spacing).astype(int), max_steps)
-    owner = np.repeat(lever, steps)
-    frac = np.concatenate([np.arange(1, k + 1) / k for k in steps])
-    xy = start[owner] + frac[:, None] * way[owner]
+    owner = [np.repeat(lever, steps)]
+    frac = np.concatenate([np.arange(1, k + 1) / k for k in steps] + [np.zeros(0)])
+    xy = [start[owner[0]] + frac[:, None] * way[owner[0]]]
+    if spread is not None:
+        spread = np.asarray(spread, float).reshape(-1)
+        wide = np.flatnonzero(over & np.isfinite(dist) & (np.nan_to_num(spread) > spacing))
+        # one set of points per distinct load (many tips share a component's pull)
+        _, first = np.unique(np.round(np.column_stack([toward[wide], below[wide]]), 6), axis=0, return_index=True)
+        wide = wide[np.sort(first)]
+        ring = np.vstack([[0.0, 0.0]] + [_circle(k, f) for k, f in ((6, 0.5), (12, 1.0))])
+        owner.append(np.repeat(wide, len(ring)))
+        xy.append((toward[wide, None, :] + spread[wide, None, None] * ring[None]).reshape(-1, 2))
+    owner, xy = np.concatenate(owner), np.vstack(xy)
+    if len(xy) == 0:
+        return contacts
     origins = np.column_stack([xy, np.full(len(xy), mesh.bounds[0, 2] - 1.0)])
     dirs = np.tile([0.0, 0.0, 1.0], (len(xy), 1))
     locs, ray, tri = mesh.ray.intersects_location(origins, dirs, multiple_hits=True)
@@ -422,6 +449,12 @@ def extend_toward_loads(
         locs[taken], mesh.face_normals[tri[taken]], np.full(k, "densify"), np.full(k, settings.rules.tip_diameter_mm)
     )
     return Contacts.concat([contacts, new])
+
+
+def _circle(count: int, radius: float) -> np.ndarray:
+    """``count`` points evenly on a circle of ``radius`` about the origin, (count, 2)."""
+    a = 2.0 * np.pi * np.arange(count) / count
+    return radius * np.column_stack([np.cos(a), np.sin(a)])
 
 
 def contacts_from_rows(rows, mesh: trimesh.Trimesh, offset, settings: Settings) -> tuple[Contacts, int]:
