@@ -10,7 +10,9 @@ Case kinds (``Case.generator``):
   30, 50 or 80 mm, turned by a random rotation, then translated so the corner of its
   bounding box is at the origin, as CAD exports arrive;
 * procedural parts of our own (``disc``, ``plate``, ``wheel``, ``cup``, ``lattice``,
-  ``shell``, ``pins``, ``voids``, ``touching``), about 30 mm, same random turn and corner;
+  ``shell``, ``pins``, ``voids``, ``touching``, and since the fourth pass ``edgedown``, a
+  body standing in mid-air on a knife edge or a point, and ``slot``, plates with gaps
+  narrower than a tip), about 30 mm, same random turn and corner;
 * messy variants of corpus and procedural parts (``hole``, ``dupfaces``, ``flipfaces``,
   ``doubled``, ``nmfan``, ``selfx``, ``f32noise``): open, non-manifold, self-intersecting
   or noisy surfaces that a printer still cures (what matters is which pixels are inside);
@@ -39,7 +41,9 @@ from scipy.spatial.transform import Rotation
 CORPUS = (Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus").resolve()
 CORPUS_MODELS = ("fandisk.obj", "spot.obj", "stanford-bunny.obj", "horse.ply")
 CORPUS_SIZES_MM = (30.0, 50.0, 80.0)
-PROCEDURAL = ("disc", "plate", "wheel", "cup", "lattice", "shell", "pins", "voids", "touching")
+#: The procedural parts messy variants are made from (fixed, so adding a kind keeps every case id).
+MESSY_BASES = ("disc", "plate", "wheel", "cup", "lattice", "shell", "pins", "voids", "touching")
+PROCEDURAL = MESSY_BASES + ("edgedown", "slot")
 MESSY = ("hole", "dupfaces", "flipfaces", "doubled", "nmfan", "selfx", "f32noise")
 REFUSE = ("units", "noinside")
 KINDS = ("corpus",) + PROCEDURAL + MESSY + REFUSE
@@ -217,7 +221,45 @@ def gen_touching(rng, size):
     return _turn_to_corner(trimesh.util.concatenate([a, b]), rng)
 
 
+def gen_edgedown(rng, size):
+    """A body whose lowest point is a knife edge or a point: a cone tilted past its half-angle
+    (the rim lowest), a pyramid point down, or a wedge edge down; turned a little."""
+    shape = int(rng.integers(3))
+    if shape == 0:
+        r, h = size * 0.3, size * rng.uniform(0.6, 0.9)
+        m = trimesh.creation.cone(r, h, sections=64)
+        m.apply_transform(trimesh.transformations.rotation_matrix(np.pi, [1, 0, 0]))
+        half = np.degrees(np.arctan2(r, h))
+        return _tilt(m, half + rng.uniform(2, 15), rng)
+    if shape == 1:
+        a = size * 0.4
+        v = np.array([[a, a, 0], [-a, a, 0], [-a, -a, 0], [a, -a, 0], [0, 0, -size * 0.6]], float)
+        m = trimesh.Trimesh(v, [[0, 1, 2], [0, 2, 3], [1, 0, 4], [2, 1, 4], [3, 2, 4], [0, 3, 4]])
+        m.fix_normals()
+        return _tilt(m, rng.uniform(0, 20), rng)
+    w, d = size * rng.uniform(0.3, 0.5), size * rng.uniform(0.5, 0.8)
+    v = np.array([[-w / 2, 0, 0], [w / 2, 0, 0], [0, 0, -d], [-w / 2, size, 0], [w / 2, size, 0], [0, size, -d]], float)
+    m = trimesh.convex.convex_hull(v)
+    return _tilt(m, rng.uniform(0, 20), rng)
+
+
+def gen_slot(rng, size):
+    """Plates stacked on a back wall with slots between them narrower than a tip's length
+    (0.1-1.4 mm): contacts under a plate have the part just below them."""
+    n, t = int(rng.integers(2, 4)), rng.uniform(1.0, 2.0)
+    gaps = rng.uniform(0.1, 1.4, n - 1)
+    depth, width = size * 0.6, size * 0.5
+    parts, z = [], 0.0
+    for k in range(n):
+        parts.append(_box((depth, width, t), (depth / 2, 0, z + t / 2)))
+        z += t + (gaps[k] if k < n - 1 else 0.0)
+    parts.append(_box((2.0, width, z), (-1.0, 0, z / 2)))
+    return _tilt(_union(parts), rng.uniform(0, 15), rng)
+
+
 PROCEDURAL_GENERATORS = {
+    "edgedown": gen_edgedown,
+    "slot": gen_slot,
     "disc": gen_disc,
     "plate": gen_plate,
     "wheel": gen_wheel,
@@ -348,7 +390,7 @@ def make_cases(
         for k in range(procedural_each):
             add(f"{kind}-{k:02d}", kind, {"size_mm": procedural_mm})
     pick = np.random.default_rng(seed)
-    bases = (list(CORPUS_MODELS) if have_corpus else []) + list(PROCEDURAL)
+    bases = (list(CORPUS_MODELS) if have_corpus else []) + list(MESSY_BASES)
     for kind in MESSY:
         for k in range(messy_each):
             base = bases[int(pick.integers(len(bases)))]
