@@ -348,7 +348,7 @@ class ForceTracker:
         self._force, self._area, self._unheld, self._bound, self._bounded = {}, {}, {}, {}, 0
         self._peak = np.zeros(len(pts))
         self._peak_layer = np.full(len(pts), -1)
-        self._peak_xy = np.full((len(pts), 3), np.nan)  # centre (x, y) and RMS radius of the peak's pull
+        self._peak_pull = np.full((len(pts), 3), np.nan)  # centre (x, y) and RMS radius of the peak's pull
         self._side = np.zeros(len(pts))
         self._squeeze = np.zeros(len(pts))
         self.last_loads, self.last_unheld_n = np.zeros(len(pts)), 0.0
@@ -415,7 +415,7 @@ class ForceTracker:
                 gain = up > self._peak[hold]
                 better = np.array(hold)[gain]
                 self._peak[better], self._peak_layer[better] = up[gain], k
-                self._peak_xy[better] = centre[better]  # the pull's centre: the sweep's moves with the front
+                self._peak_pull[better] = centre[better]  # the pull's centre: the sweep's moves with the front
             elif self.mechanism in SIDE_LOAD:
                 share = comp_force[i - 1] / len(hold)  # equal tips: shear shared by tip area
                 side[hold] += share
@@ -434,7 +434,7 @@ class ForceTracker:
             self.last_loads = load
             if self.mechanism != "tilt":
                 up = load > self._peak
-                self._peak[up], self._peak_layer[up], self._peak_xy[up] = load[up], k, centre[up]
+                self._peak[up], self._peak_layer[up], self._peak_pull[up] = load[up], k, centre[up]
         self.last_unheld_n = float(unheld)
         self.last_torsion_mm4 = rec.torsion_mm4
         self._force[k] = float(comp_force.sum())
@@ -509,8 +509,8 @@ class ForceTracker:
             rated_force_n=rated,
             strip_bound_n=bound,
             strip_bounded=self._bounded,
-            contact_peak_xy=None if side else self._peak_xy[:, :2].copy(),
-            contact_peak_spread=None if side else self._peak_xy[:, 2].copy(),
+            contact_peak_xy=None if side else self._peak_pull[:, :2].copy(),
+            contact_peak_spread=None if side else self._peak_pull[:, 2].copy(),
         )
 
 
