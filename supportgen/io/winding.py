@@ -238,12 +238,18 @@ def solid_from_winding(vertices, faces, label: str, *, cells: int = GRID_CELLS) 
         raise MeshError(f"{label}: the surface has no extent, so no inside; export the solid again")
     for shift in _SHIFTS:
         w, lo = _winding_grid(v, f, lo_v, hi_v, h, np.asarray(shift) * h)
-        if not (w >= 0.5).any():
-            raise MeshError(
-                f"{label}: the surface encloses nothing (its winding number never reaches 1/2): a "
-                "sheet or a few loose faces has no inside to print; export the solid again"
+        nothing = MeshError(
+            f"{label}: the surface encloses nothing (its winding number never passes 1/2): a "
+            "sheet or a few loose faces has no inside to print; export the solid again"
+        )
+        if not (w > 0.5).any():  # at exactly 1/2 (on a lone sheet) there is no level surface either
+            raise nothing
+        try:
+            verts, tris, _, _ = marching_cubes(
+                w, level=0.5, spacing=(h, h, h), method="lewiner", allow_degenerate=False
             )
-        verts, tris, _, _ = marching_cubes(w, level=0.5, spacing=(h, h, h), method="lewiner", allow_degenerate=False)
+        except RuntimeError as e:  # skimage: "No surface found at the given iso value"
+            raise nothing from e
         # Marching cubes shares vertices between its cells already; merging by position
         # (process=True) would join vertices of two solids that only touch and pinch them.
         mesh = _simplified(trimesh.Trimesh(verts + lo, tris, process=False), h)
