@@ -308,16 +308,7 @@ def densify_points(
     closest, _, tri = trimesh.proximity.closest_point(mesh, ring.reshape(-1, 3))
     normals = mesh.face_normals[tri]
     keep = np.flatnonzero(normals[:, 2] < 0.0)
-    tree, taken = cKDTree(contacts.points), []
-    for i in keep:
-        p = closest[i]
-        if tree.query(p)[0] >= 0.5 * r and all(np.linalg.norm(p - closest[j]) >= 0.5 * r for j in taken):
-            taken.append(i)
-    if not taken:
-        return contacts
-    k = len(taken)
-    new = Contacts(closest[taken], normals[taken], np.full(k, "densify"), np.full(k, settings.rules.tip_diameter_mm))
-    return Contacts.concat([contacts, new])
+    return _add_apart(contacts, closest[keep], normals[keep], 0.5 * r, settings)
 
 
 def extend_toward_loads(
@@ -436,18 +427,20 @@ def extend_toward_loads(
     hits = best[best >= 0]
     if hits.size == 0:
         return contacts
-    gap = 0.25 * spacing
+    return _add_apart(contacts, locs[hits], mesh.face_normals[tri[hits]], 0.25 * spacing, settings)
+
+
+def _add_apart(contacts: Contacts, points, normals, gap: float, settings: Settings) -> Contacts:
+    """``contacts`` then each candidate (in order, kind ``"densify"``) at least ``gap`` from
+    every contact and every candidate kept before it; ``contacts`` itself when none is."""
     tree, taken = cKDTree(contacts.points), []
-    for h in hits:
-        p = locs[h]
-        if tree.query(p)[0] >= gap and all(np.linalg.norm(p - locs[j]) >= gap for j in taken):
-            taken.append(h)
+    for i, p in enumerate(points):
+        if tree.query(p)[0] >= gap and all(np.linalg.norm(p - points[j]) >= gap for j in taken):
+            taken.append(i)
     if not taken:
         return contacts
     k = len(taken)
-    new = Contacts(
-        locs[taken], mesh.face_normals[tri[taken]], np.full(k, "densify"), np.full(k, settings.rules.tip_diameter_mm)
-    )
+    new = Contacts(points[taken], normals[taken], np.full(k, "densify"), np.full(k, settings.rules.tip_diameter_mm))
     return Contacts.concat([contacts, new])
 
 
