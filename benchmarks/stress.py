@@ -30,11 +30,13 @@ Usage::
 from __future__ import annotations
 
 import argparse
+import functools
 import json
 import multiprocessing as mp
 import re
 import shutil
 import statistics
+import subprocess
 import sys
 import tempfile
 import time
@@ -83,12 +85,28 @@ def _message_class(msg: str, case_id: str) -> str:
     return msg[:110]
 
 
+@functools.cache
+def code_version() -> str:
+    """The commit the supportgen package was imported from (``+dirty`` with uncommitted changes), so a
+    resumed run shows which rows came from which code."""
+    here = Path(supportgen.__file__).resolve().parent
+    try:
+        rev = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=here, capture_output=True, text=True)
+        dirty = subprocess.run(["git", "status", "--porcelain", "--", "."], cwd=here, capture_output=True, text=True)
+    except OSError:
+        return "unknown"
+    if rev.returncode != 0:
+        return "unknown"
+    return rev.stdout.strip() + ("+dirty" if dirty.stdout.strip() else "")
+
+
 def run_case(case: sc.Case, outdir: Path, keep: bool = False, full_save: bool = False, orient: str = "keep") -> dict:
     """Build, support (standing as given, or as ``orient="auto"`` chooses), save and check one case;
     never raises."""
     settings = supportgen.Settings()
     pr = settings.printer
     row = {"id": case.id, "generator": case.generator, "seed": case.seed, "params": case.params, "expect": case.expect}
+    row["code"] = code_version()
     t0 = time.perf_counter()
     try:
         mesh = sc.build_case(case)
@@ -285,6 +303,7 @@ def summarise(rows: list[dict]) -> dict:
         "worst_case": worst["id"] if worst else None,
         "classes": [{"class": c, "cases": k, "example": example[c]} for c, k in classes.most_common()],
         "failing": [r["id"] for r in rows if r["outcome"] in FAILING],
+        "code": dict(Counter(r.get("code", "unrecorded") for r in rows)),
         "by_generator": {
             g: dict(Counter(r["outcome"] for r in rows if r["generator"] == g))
             for g in sorted({r["generator"] for r in rows})
@@ -308,6 +327,7 @@ def markdown(summary: dict, machine: str, argv: str) -> str:
             if s["median_s"] is not None
             else "- no case has run"
         ),
+        "- code (rows per commit): " + ", ".join(f"{k} {v}" for k, v in s.get("code", {}).items()),
         "",
         "| outcome | cases |",
         "|---|---:|",
