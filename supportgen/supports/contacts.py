@@ -27,6 +27,7 @@ from ..analysis.overhangs import Overhangs
 from ..constants import EPS_REL
 from ..errors import SizingError
 from ..io.contactsfile import ContactRows, read_contacts
+from ..io.winding import winding_number
 from ..settings import Settings
 from .plan import CONTACT_KINDS, Contacts
 
@@ -41,6 +42,8 @@ __all__ = [
     "densify_points",
     "extend_toward_loads",
     "contacts_from_rows",
+    "RESTING_MM",
+    "faces_air",
 ]
 
 #: Samples per r^2 of a jammed random sequential addition (Feder 1980: coverage 0.547).
@@ -102,6 +105,38 @@ def poisson_disk(points: np.ndarray, radius: np.ndarray) -> np.ndarray:
     return np.asarray(kept, int)
 
 
+#: How far below a down-facing surface point the part must be empty for the point to need a
+#: tip (mm).  Shells that touch or nest (two bodies in one file, a doubled shell) leave
+#: down-facing faces that rest on other material: an exact gap of zero, or a slit of a few
+#: single-precision steps (1e-6 mm on a tilted face) that a union keeps.  A tip there would
+#: have to grow through the part below, and its cone crossing the slit's two faces makes
+#: vertices a file merges.  One micron: a hundred times the single-precision step of a
+#: 100 mm part, fifty times below a layer (a gap a printer never resolves).
+RESTING_MM = 1e-3
+
+
+def faces_air(mesh: trimesh.Trimesh, points: np.ndarray, depth: float = RESTING_MM) -> np.ndarray:
+    """Whether the part is empty ``depth`` straight below each surface point ``points`` (k, 3).
+
+    Inside is a generalised winding number above 1/2 (libigl's fast winding number, Barill
+    et al. 2018), so shells that overlap count once and a slit thinner than ``depth``
+    between two shells counts as part.
+
+    Examples
+    --------
+    >>> a = trimesh.creation.box((2, 2, 2))
+    >>> b = trimesh.creation.box((2, 2, 2)); _ = b.apply_translation((1, 0, 2))  # on a's top, half over
+    >>> two = trimesh.util.concatenate([a, b])
+    >>> faces_air(two, np.array([[0.0, 0, 1], [1.5, 0, 1], [0, 0, -1]])).tolist()
+    [False, True, True]
+    """
+    points = np.asarray(points, float).reshape(-1, 3)
+    if len(points) == 0:
+        return np.zeros(0, bool)
+    below = points - [0.0, 0.0, depth]
+    return winding_number(np.asarray(mesh.vertices, float), np.asarray(mesh.faces, np.int64), below) <= 0.5
+
+
 def expected_count(area: float, spacing: float) -> float:
     """Samples expected on a flat region of ``area`` far larger than ``spacing^2``
     (jamming density of random sequential addition; edges add a few percent)."""
@@ -152,6 +187,11 @@ def sample_overhangs(
     u[flip], v[flip] = 1 - u[flip], 1 - v[flip]
     pts = tri[:, 0] + u[:, None] * (tri[:, 1] - tri[:, 0]) + v[:, None] * (tri[:, 2] - tri[:, 0])
     normals = mesh.face_normals[faces[pick]]
+    # Down-facing faces that rest on another shell are no underside.
+    air = faces_air(mesh, pts)
+    pts, normals = pts[air], normals[air]
+    if len(pts) == 0:
+        return Contacts.empty()
     tilt = np.degrees(np.arccos(np.clip(-normals[:, 2], -1, 1)))
     radius = spacing * (1 + 0.5 * np.clip(tilt / max(angle_deg, EPS_REL), 0, 1))
     order = rng.permutation(len(pts))
@@ -167,7 +207,8 @@ def contacts_at(mesh: trimesh.Trimesh, xyz: np.ndarray, kind: str, diameter: flo
     upward ray from it (the underside a tip would reach).  A ray that meets no
     down-facing surface (a sliver thinner than the ray's aim) falls back to the
     nearest point of the surface, if that lies within ``reach_mm``; other
-    points are dropped.
+    points are dropped, and so are points that rest on another shell
+    (:func:`faces_air`).
 
     Notes
     -----
@@ -194,6 +235,7 @@ def contacts_at(mesh: trimesh.Trimesh, xyz: np.ndarray, kind: str, diameter: flo
         ok = dist <= reach_mm
         pts[miss[ok]], nrm[miss[ok]] = near[ok], mesh.face_normals[tri[ok]]
         hit[miss[ok]] = True
+    hit[hit] = faces_air(mesh, pts[hit])  # an underside resting on another shell needs no tip
     n = int(hit.sum())
     return Contacts(pts[hit], nrm[hit], np.full(n, kind), np.full(n, diameter))
 
@@ -308,7 +350,7 @@ def densify_points(
     closest, _, tri = trimesh.proximity.closest_point(mesh, ring.reshape(-1, 3))
     normals = mesh.face_normals[tri]
     keep = np.flatnonzero(normals[:, 2] < 0.0)
-    return _add_apart(contacts, closest[keep], normals[keep], 0.5 * r, settings)
+    return _add_apart(contacts, mesh, closest[keep], normals[keep], 0.5 * r, settings)
 
 
 def extend_toward_loads(
@@ -427,12 +469,15 @@ def extend_toward_loads(
     hits = best[best >= 0]
     if hits.size == 0:
         return contacts
-    return _add_apart(contacts, locs[hits], mesh.face_normals[tri[hits]], 0.25 * spacing, settings)
+    return _add_apart(contacts, mesh, locs[hits], mesh.face_normals[tri[hits]], 0.25 * spacing, settings)
 
 
-def _add_apart(contacts: Contacts, points, normals, gap: float, settings: Settings) -> Contacts:
-    """``contacts`` then each candidate (in order, kind ``"densify"``) at least ``gap`` from
-    every contact and every candidate kept before it; ``contacts`` itself when none is."""
+def _add_apart(contacts: Contacts, mesh: trimesh.Trimesh, points, normals, gap: float, settings: Settings) -> Contacts:
+    """``contacts`` then each candidate (in order, kind ``"densify"``) that faces air (:func:`faces_air`)
+    and lies at least ``gap`` from every contact and every candidate kept before it;
+    ``contacts`` itself when none is."""
+    air = faces_air(mesh, points)
+    points, normals = np.asarray(points, float)[air], np.asarray(normals, float)[air]
     tree, taken = cKDTree(contacts.points), []
     for i, p in enumerate(points):
         if tree.query(p)[0] >= gap and all(np.linalg.norm(p - points[j]) >= gap for j in taken):
