@@ -389,6 +389,26 @@ def test_winding_number_of_a_closed_mesh_is_the_inside_test():
     assert np.allclose(w[far], inside[far].astype(float), atol=0.01)
 
 
+def test_kept_winding_hierarchy_follows_the_mesh_and_matches_the_inside_test():
+    # The hierarchy kept per mesh (part_winding_number, BallProbe.of) must answer as
+    # trimesh's exact ray-parity `contains` does, and again after the mesh moves (a stale
+    # tree would answer for the old position); the mesh stays picklable for worker processes.
+    import pickle
+
+    from supportgen.io.winding import BallProbe, part_winding_number
+
+    mesh = trimesh.creation.annulus(r_min=3, r_max=8, height=6)
+    pts = np.random.default_rng(11).uniform(-9, 9, (1000, 3))
+    for _ in range(2):
+        far = np.abs(trimesh.proximity.signed_distance(mesh, pts)) > 0.05
+        assert np.all((part_winding_number(mesh, pts[far]) > 0.5) == mesh.contains(pts[far]))
+        held = BallProbe.of(mesh).holds(pts, np.full(len(pts), 0.05))
+        assert np.all(held[far] == mesh.contains(pts[far]))
+        assert BallProbe.of(mesh) is BallProbe.of(mesh)
+        mesh.apply_translation((2.5, 0.0, 1.0))
+    pickle.loads(pickle.dumps(mesh))
+
+
 def test_open_hemisphere_gives_one_half_on_its_rim_plane():
     # Jacobson et al. 2013: an open hemisphere subtends half the sphere's solid angle at
     # any point of the disc its rim bounds, so w = 1/2 there (REFERENCE.md section 8).

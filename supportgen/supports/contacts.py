@@ -27,7 +27,7 @@ from ..analysis.overhangs import Overhangs
 from ..constants import EPS_REL
 from ..errors import SizingError
 from ..io.contactsfile import ContactRows, read_contacts
-from ..io.winding import winding_number
+from ..io.winding import part_winding_number
 from ..settings import Settings
 from .plan import CONTACT_KINDS, Contacts
 
@@ -134,7 +134,7 @@ def faces_air(mesh: trimesh.Trimesh, points: np.ndarray, depth: float = RESTING_
     if len(points) == 0:
         return np.zeros(0, bool)
     below = points - [0.0, 0.0, depth]
-    return winding_number(np.asarray(mesh.vertices, float), np.asarray(mesh.faces, np.int64), below) <= 0.5
+    return part_winding_number(mesh, below) <= 0.5
 
 
 def expected_count(area: float, spacing: float) -> float:

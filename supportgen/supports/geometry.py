@@ -304,7 +304,7 @@ def landing_holds(
     radius = speck_hold_radius(pr.pixel_mm)
     below = np.maximum(np.broadcast_to(np.asarray(depth, float), len(points)), radius + pr.pixel_mm / 2)
     centre = points - np.column_stack([np.zeros((len(points), 2)), below])
-    return (probe or BallProbe(mesh)).holds(centre, np.full(len(points), radius))
+    return (probe or BallProbe.of(mesh)).holds(centre, np.full(len(points), radius))
 
 
 def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> tuple[np.ndarray, np.ndarray]:
@@ -350,7 +350,7 @@ def tip_reach(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> t
     # end never shows through the far side of a thin wall
     need = np.maximum(speck_hold_radius(pr.pixel_mm), plan.tip_diameters / 2 + pr.pixel_mm / 2)
     steps = np.arange(0.0, _REACH_MAX * rules.tip_depth_mm + EPS_REL, pr.layer_mm)
-    depth = BallProbe(part)
+    depth = BallProbe.of(part)
     inward = -np.asarray(part.face_normals)[depth.nearest_face(plan.tip_points)]
     up = np.tile([0.0, 0.0, 1.0], (n, 1))
     # A landing stands on the part and needs no hold, but its sunk end must not come out

@@ -146,7 +146,7 @@ def _holding_landings(mesh, settings: Settings, top: np.ndarray, hit_z: np.ndarr
     if weak.size == 0:
         return xy, hit_z
     shallow = LANDING_SINKS[0] * deepest_sink(settings)  # the least a landing sinks (tip_reach)
-    probe = BallProbe(mesh)
+    probe = BallProbe.of(mesh)
     ok = landing_holds(mesh, settings, np.column_stack([xy[weak], hit_z[weak]]), shallow, probe)
     weak = weak[~ok]
     if weak.size == 0:
