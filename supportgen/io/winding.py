@@ -40,6 +40,7 @@ __all__ = [
     "BallProbe",
     "winding_number",
     "part_winding_number",
+    "distance_tree",
     "solid_from_winding",
     "surface_points",
 ]
@@ -100,8 +101,9 @@ def winding_number(vertices: np.ndarray, faces: np.ndarray, points: np.ndarray) 
 
 def part_winding_number(mesh: trimesh.Trimesh, points: np.ndarray) -> np.ndarray:
     """:func:`winding_number` of a mesh at ``points``, with libigl's hierarchy (its
-    ``FastWindingNumberBVH``) built once per mesh and kept while the mesh is unchanged: many small queries on one part (every contact
-    sampled, every densify round) then cost O(q log m) each, not a tree build each.
+    ``FastWindingNumberBVH``) built once per mesh and kept while the mesh is unchanged:
+    many small queries on one part (every contact sampled, every densify round) then cost
+    O(q log m) each, not a tree build each.
 
     Examples
     --------
@@ -113,16 +115,39 @@ def part_winding_number(mesh: trimesh.Trimesh, points: np.ndarray) -> np.ndarray
     if len(q) == 0:
         return np.zeros(0)
 
+    return np.asarray(_winding_tree(mesh).winding_number(q), float)
+
+
+def _arrays(mesh: trimesh.Trimesh) -> tuple[np.ndarray, np.ndarray]:
+    return np.ascontiguousarray(mesh.vertices, dtype=np.float64), np.ascontiguousarray(mesh.faces, dtype=np.int64)
+
+
+def _winding_tree(mesh: trimesh.Trimesh):
+    """libigl's fast-winding-number hierarchy of ``mesh``, kept while the mesh is unchanged."""
+
     def build():
         import igl
 
         bvh = igl.FastWindingNumberBVH()
-        bvh.init(
-            np.ascontiguousarray(mesh.vertices, dtype=np.float64), np.ascontiguousarray(mesh.faces, dtype=np.int64)
-        )
+        bvh.init(*_arrays(mesh))
         return bvh
 
-    return np.asarray(_kept(mesh, "winding", build).winding_number(q), float)
+    return _kept(mesh, "winding", build)
+
+
+def distance_tree(mesh: trimesh.Trimesh):
+    """``(tree, v, f)``: libigl's AABB tree of ``mesh`` and the arrays it answers for
+    (``tree.squared_distance(v, f, points)``), kept while the mesh is unchanged."""
+
+    def build():
+        import igl
+
+        v, f = _arrays(mesh)
+        tree = igl.AABB()
+        tree.init(v, f)
+        return tree, v, f
+
+    return _kept(mesh, "distance", build)
 
 
 #: Per-mesh objects built from its geometry (libigl trees), dropped with the mesh.  Kept
@@ -345,14 +370,10 @@ class BallProbe:
     """
 
     def __init__(self, part: trimesh.Trimesh):
-        import igl
-
-        self.v = np.ascontiguousarray(part.vertices, dtype=np.float64)
-        self.f = np.ascontiguousarray(part.faces, dtype=np.int64)
-        self.tree = igl.AABB()
-        self.tree.init(self.v, self.f)
-        self.winding = igl.FastWindingNumberBVH()
-        self.winding.init(self.v, self.f)
+        # The trees are the mesh's kept ones (shared with part_winding_number); the probe
+        # holds them, not the mesh, so the kept table can drop the mesh with its last user.
+        self.tree, self.v, self.f = distance_tree(part)
+        self.winding = _winding_tree(part)
 
     @classmethod
     def of(cls, part: trimesh.Trimesh) -> BallProbe:

@@ -30,7 +30,7 @@ import trimesh
 from ..analysis.layers import HOLD_PIXELS
 from ..constants import EPS_REL, EPS_ZERO
 from ..errors import GeometryError
-from ..io.winding import BallProbe
+from ..io.winding import BallProbe, distance_tree
 from ..settings import Settings
 from .plan import SupportPlan
 
@@ -546,8 +546,6 @@ def fuse_bodies(part: trimesh.Trimesh) -> m3d.Manifold:
     bodies = whole.decompose()
     if len(bodies) == 1:
         return whole
-    import igl
-
     meshes = [to_trimesh(b) for b in bodies]
     lo = np.array([m.bounds[0] for m in meshes]) - 2 * FUSE_MM
     hi = np.array([m.bounds[1] for m in meshes]) + 2 * FUSE_MM
@@ -556,10 +554,7 @@ def fuse_bodies(part: trimesh.Trimesh) -> m3d.Manifold:
         near = np.flatnonzero((lo <= hi[j]).all(axis=1) & (hi >= lo[j]).all(axis=1) & (np.arange(len(meshes)) != j))
         if near.size == 0:
             continue
-        v = np.ascontiguousarray(other.vertices, np.float64)
-        f = np.ascontiguousarray(other.faces, np.int64)
-        tree = igl.AABB()
-        tree.init(v, f)
+        tree, v, f = distance_tree(other)
         for i in near[~touch[near]]:
             d2 = tree.squared_distance(v, f, np.ascontiguousarray(meshes[i].vertices, np.float64))[0]
             touch[i] = bool((d2 <= (2 * FUSE_MM) ** 2).any())
