@@ -203,7 +203,7 @@ class Island:
         One pixel gives 3 pixel areas, less than a speck (pi); two give 5.  This bounds
         sections at least a pixel wide; a sliver narrower than a pixel can run between
         pixel centres and be larger than it shows (or light nothing at all), so the
-        bound is not one for such slivers (the stress corpus's one open disagreement).
+        bound is not one for such slivers.
 
         Examples
         --------
@@ -484,8 +484,8 @@ def _held(pw, runs, comp, n):
     A component is held when it overlaps the cured pixels of the layer below in at
     least :data:`HOLD_PIXELS` (a speck), or, when it is itself smaller than that, in
     at least one: one pixel of contact does not hold a larger region
-    (the independent check in ``benchmarks/stress_corpus.py`` applies the same rule
-    to exact sections).
+    (the independent check in ``benchmarks/stress_corpus.py`` applies a like rule to
+    exact sections, asking less of a region just over a speck: three quarters of it).
     """
     size = np.bincount(comp, weights=runs[2] - runs[1], minlength=n)
     below = mask_runs(pw)  # overlaps counted run against run: O(runs), not O(pixels)
