@@ -445,3 +445,29 @@ def test_open_and_non_manifold_parts_are_rebuilt_not_refused(tmp_path, make):
     if make is _edge_touching_boxes_stl:
         # Two unit boxes meeting along an edge: their union's volume is exactly 2 mm3.
         assert part.mesh.volume == pytest.approx(2.0, rel=0.02)
+
+
+def test_shell_ray_candidates_and_vertex_groups_match_rtree_and_numpy():
+    # The repair's two fast paths against the general-purpose libraries they replace:
+    # boxes over a point, tested directly for few points, are the R-tree's answer (rtree,
+    # through trimesh.util.bounds_tree, bounds included), and the many-point path is that
+    # R-tree itself; rows grouped by one lexicographic sort are np.unique(axis=0)'s groups.
+    from supportgen.io import repair
+
+    rng = np.random.default_rng(7)
+    lo = rng.uniform(0, 10, (2000, 2))
+    boxes = np.column_stack([lo, lo + rng.uniform(0, 2, (2000, 2))])
+    pts = np.vstack([rng.uniform(0, 12, (300, 2)), boxes[:20, :2]])  # some on a corner exactly
+    tree = trimesh.util.bounds_tree(boxes)
+    for n in (5, repair._DIRECT_RAYS + 1):
+        ids, per = repair._boxes_over(boxes, pts[:n], {})
+        assert per.sum() == len(ids)
+        got = np.split(ids, np.cumsum(per)[:-1])
+        for p, g in zip(pts[:n], got):
+            assert sorted(g.tolist()) == sorted(tree.intersection([p[0], p[1], p[0], p[1]]))
+    rows = np.round(rng.uniform(0, 3, (5000, 3)), 0)
+    rows[::7] = -0.0  # negative zero equals zero, as np.unique treats it
+    _, first, inverse = np.unique(rows, axis=0, return_index=True, return_inverse=True)
+    f, i = repair._unique_rows(rows)
+    assert f.tolist() == first.tolist() and i.tolist() == inverse.ravel().tolist()
+    assert repair._used(np.array([[4, 1, 1]]), 6).tolist() == [1, 4]

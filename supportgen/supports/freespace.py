@@ -65,8 +65,11 @@ class Clearance:
     clearance: float
 
     def lower(self, points: np.ndarray, upto: float = np.inf) -> np.ndarray:
-        """Lower bound of each point's distance to the surface (capped near ``upto``)."""
-        d, _ = self.tree.query(np.asarray(points, float).reshape(-1, 3), distance_upper_bound=upto + self.slack)
+        """Lower bound of each point's distance to the surface (capped near ``upto``).
+
+        The queries run on every core (``workers=-1``): the answers do not depend on it."""
+        pts = np.asarray(points, float).reshape(-1, 3)
+        d, _ = self.tree.query(pts, distance_upper_bound=upto + self.slack, workers=-1 if len(pts) > 4096 else 1)
         return d - self.slack
 
     def clear(self, upper: np.ndarray, lower: np.ndarray) -> np.ndarray:
