@@ -435,6 +435,30 @@ def test_a_hole_too_large_to_fill_still_gives_the_solid(tmp_path):
     assert any("generalised winding number" in r and "before" in r for r in part.repairs)
 
 
+@pytest.mark.parametrize("mess", ["hole", "fan"])
+def test_an_inside_out_soup_is_rebuilt_as_the_solid_it_encloses(tmp_path, mess):
+    # Every face wound inward (as the shared corpus's horse is: trimesh gives it a negative
+    # volume) and then broken so the surface route cannot close it: a 10 mm cap cut off, or
+    # a fin of two triangles on one edge (a non-manifold edge).  The winding number is -1
+    # inside; the rebuild keeps the inside, within 2 % of the closed sphere's volume (exact
+    # volume of the icosphere, from trimesh), where it used to say the soup enclosed nothing.
+    s = _sphere(radius=20, subdivisions=5)
+    v, f = s.vertices, s.faces[:, ::-1]
+    if mess == "hole":
+        f = f[s.triangles_center[:, 2] <= 0.985 * 20]
+    else:
+        a, b = f[0, 0], f[0, 1]
+        tip = v[[a, b]].mean(axis=0) * 1.2
+        v = np.vstack([v, tip, tip + [0.0, 0.0, 1.0]])
+        f = np.vstack([f, [[a, b, len(v) - 2], [b, a, len(v) - 1]]])
+    path = tmp_path / f"inverted-{mess}.ply"
+    path.write_bytes(trimesh.Trimesh(v, f, process=False).export(file_type="ply"))
+    part = load_mesh(path, hole_fraction=0.0)
+    assert part.mesh.is_watertight and part.mesh.is_winding_consistent
+    assert part.mesh.volume == pytest.approx(s.volume, rel=0.02)
+    assert any("generalised winding number" in r for r in part.repairs)
+
+
 @pytest.mark.parametrize("make", [_bowl_ply, _edge_touching_boxes_stl], ids=["bowl", "touching"])
 def test_open_and_non_manifold_parts_are_rebuilt_not_refused(tmp_path, make):
     path = tmp_path / ("x.ply" if make is _bowl_ply else "x.stl")

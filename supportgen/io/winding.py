@@ -263,7 +263,11 @@ def _simplified(mesh: trimesh.Trimesh, h: float) -> trimesh.Trimesh:
 
 
 def solid_from_winding(vertices, faces, label: str, *, cells: int = GRID_CELLS) -> tuple[trimesh.Trimesh, str]:
-    """The closed solid ``{w >= 1/2}`` of a triangle soup, and a repair line saying so.
+    """The closed solid ``{|w| >= 1/2}`` of a triangle soup, and a repair line saying so.
+
+    The size of the winding number counts, not its sign: a soup wound inside out (every
+    face facing in, as some exports and scans are) has ``w = -1`` inside, and its inside
+    prints the same; the surface route flips such shells too (:mod:`supportgen.io.repair`).
 
     Parameters
     ----------
@@ -284,7 +288,7 @@ def solid_from_winding(vertices, faces, label: str, *, cells: int = GRID_CELLS) 
     Raises
     ------
     MeshError
-        The soup has no inside (``w`` never reaches 1/2: a flat sheet, a single
+        The soup has no inside (``|w|`` never reaches 1/2: a flat sheet, a single
         triangle, nothing).
 
     Notes
@@ -316,8 +320,9 @@ def solid_from_winding(vertices, faces, label: str, *, cells: int = GRID_CELLS) 
         raise MeshError(f"{label}: the surface has no extent, so no inside; export the solid again")
     for shift in _SHIFTS:
         w, lo = _winding_grid(v, f, lo_v, hi_v, h, np.asarray(shift) * h)
+        w = np.abs(w)  # inside out encloses as much as outside out
         nothing = MeshError(
-            f"{label}: the surface encloses nothing (its winding number never passes 1/2): a "
+            f"{label}: the surface encloses nothing (its winding number never passes 1/2 in size): a "
             "sheet or a few loose faces has no inside to print; export the solid again"
         )
         if not (w > 0.5).any():  # at exactly 1/2 (on a lone sheet) there is no level surface either
@@ -339,7 +344,7 @@ def solid_from_winding(vertices, faces, label: str, *, cells: int = GRID_CELLS) 
         raise MeshError(
             f"{label}: could not build a closed solid from the surface; close it in a modeller and export again"
         )
-    # An open sheet has w -> 1/2 on both sides of it, so a sliver of {w >= 1/2} can cling to
+    # An open sheet has |w| -> 1/2 on both sides of it, so a sliver of {|w| >= 1/2} can cling to
     # it; a solid is thicker than a cell on average (mean thickness 2V/A of a slab).
     thickness = 2 * float(mesh.volume) / float(mesh.area)
     if thickness < h:
