@@ -113,17 +113,18 @@ def test_check_finds_an_open_mesh_and_a_speck_is_no_island(tmp_path):
     assert sc.independent_check(_write(tmp_path, trimesh.util.concatenate([box, pin]), "pin.stl"))["islands"] == 0
 
 
-def test_check_holds_a_tapering_tip_a_little_over_a_speck_and_not_one_reaching_out(tmp_path):
+def test_check_holds_a_leaning_tip_a_little_over_a_speck_and_not_one_reaching_out(tmp_path):
     # Exact geometry, 0.05 mm pixels and layers: on a column, a 0.095 mm square (0.0090 mm^2,
     # 1.15 specks of pi * 0.05^2 = 0.00785) cures one layer, and a second square one layer above,
-    # shifted sideways by s.  Shifted 0.013 mm it rests 86 % on the first (0.0078 mm^2 shared,
-    # just under a speck): the top of a tapering tip, held.  Shifted 0.04 mm it rests 58 %
-    # (0.0052 mm^2): it reaches out, and starts in mid-air.  (Before, any region over a speck
-    # needed a whole speck shared, so the first was an island and a region just under a speck
-    # sharing half a pixel was not.)
+    # shifted sideways by s.  Shifted 0.013 mm it rests 86 % on the first (0.0078 mm^2 shared, just
+    # under a speck); shifted 0.035 mm, a lean of 35 degrees from vertical, it rests 63 %: both are
+    # the top of a leaning tip, held (common practice prints leans up to 45 degrees unsupported).
+    # Shifted 0.06 mm, a lean of 50 degrees, it rests 37 % (0.0033 mm^2): it reaches out and
+    # starts in mid-air.  (Before, any region over a speck needed a whole speck shared, so the
+    # first two were islands, while a region just under a speck sharing half a pixel was not.)
     column = trimesh.creation.box((2, 2, 5), trimesh.transformations.translation_matrix((0, 0, 2.5)))
     a = trimesh.creation.box((0.095, 0.095, 0.05), trimesh.transformations.translation_matrix((0, 0, 5.025)))
-    for shift, islands in ((0.013, 0), (0.04, 1)):
+    for shift, islands in ((0.013, 0), (0.035, 0), (0.06, 1)):
         b = trimesh.creation.box((0.095, 0.095, 0.05), trimesh.transformations.translation_matrix((shift, 0, 5.075)))
         out = sc.independent_check(_write(tmp_path, trimesh.util.concatenate([column, a, b]), f"tip{shift}.stl"))
         assert out["islands"] == islands, (shift, out)
