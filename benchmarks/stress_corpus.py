@@ -539,7 +539,7 @@ def independent_check(
 
     Fails (``failures`` lists why) when the file does not read back watertight (trimesh),
     when it cures nothing, when a layer region larger than a speck overlaps held material of
-    the layer below by less than a speck and less than half of itself (an island: it starts in mid-air, or grows on a
+    the layer below by less than a speck and overhangs it past a 45 degree step by a speck or more (an island: it starts in mid-air, or grows on a
     speck in mid-air; regions closer than one pixel are one region, as the printer cures them), when its first layer does not sit
     on the plate, or when it holds less volume than the input part (``part_volume_mm3``).
     """
@@ -575,13 +575,11 @@ def independent_check(
     if cured <= speck * layer_mm:
         failures.append("cures-nothing")
     # Held material: the first layer (on the plate), then each region that overlaps held material
-    # of the layer below by a speck, or by half of itself when that is less (a region smaller
-    # than a speck: by half a pixel, or half itself).  A speck of overlap is what a large region
-    # needs; a small one at the top of a tip that leans (each layer shifted sideways on the one
-    # below) rests on less: a region a pixel in radius shifted 0.8 of a pixel per layer of a
-    # pixel's height, a lean of 39 degrees from vertical, still rests half on the layer below,
-    # inside the 45 degrees that print without support (common practice), while a region reaching
-    # out farther than that starts in mid-air.  A region
+    # of the layer below by a speck, or that overlaps it by half a pixel and overhangs it by no
+    # more than a 45 degree step (one layer height sideways, common practice for what prints
+    # without support) except for less than a speck; a region smaller than a speck is held by
+    # half a pixel, or half itself.  A speck of overlap is what a large region hanging from a
+    # bridge needs; the top of a tip that narrows and leans rests on less, and prints.  A region
     # in mid-air is an island once, and counts as held above it (it is counted, not counted
     # again per layer); a speck in mid-air is no island but holds nothing above it, so a part
     # that starts as a speck and grows (a knife edge or a point facing down) is one.
@@ -593,7 +591,10 @@ def independent_check(
             continue
         area = shapely.area(comps)
         over = shapely.area(shapely.intersection(comps, below)) if len(comps) and not below.is_empty else area * 0
-        held = over >= np.where(area >= speck, np.minimum(speck, 0.5 * area), 0.5 * np.minimum(area, pixel_mm**2))
+        held = over >= np.where(area >= speck, speck, 0.5 * np.minimum(area, pixel_mm**2))
+        for i in np.flatnonzero(~held & (area >= speck) & (over >= 0.5 * pixel_mm**2)):
+            near = shapely.intersection(below, comps[i].buffer(2 * layer_mm))  # held material nearby
+            held[i] = shapely.area(shapely.difference(comps[i], near.buffer(layer_mm))) < speck
         island = ~held & (area >= speck)
         below = geom if (held | island).all() else shapely.union_all(comps[held | island])
         if len(comps):

@@ -113,24 +113,25 @@ def test_check_finds_an_open_mesh_and_a_speck_is_no_island(tmp_path):
     assert sc.independent_check(_write(tmp_path, trimesh.util.concatenate([box, pin]), "pin.stl"))["islands"] == 0
 
 
-def test_check_holds_a_leaning_tip_a_little_over_a_speck_and_not_one_reaching_out(tmp_path):
+def test_check_holds_a_leaning_tip_a_little_over_a_speck_and_not_a_bar_reaching_out(tmp_path):
     # Exact geometry, 0.05 mm pixels and layers: on a column, a 0.095 mm square (0.0090 mm^2,
     # 1.15 specks of pi * 0.05^2 = 0.00785) cures one layer, and a second square one layer above,
-    # shifted sideways by s.  Shifted 0.013 mm it rests 86 % on the first (0.0078 mm^2 shared, just
-    # under a speck); shifted 0.035 mm, a lean of 35 degrees from vertical, it rests 63 %: both are
-    # the top of a leaning tip, held (common practice prints leans up to 45 degrees unsupported).
-    # Shifted 0.06 mm, a lean of 50 degrees, it rests 37 % (0.0033 mm^2): it reaches out and
-    # starts in mid-air.  (Before, any region over a speck needed a whole speck shared, so the
-    # first two were islands, while a region just under a speck sharing half a pixel was not.)
+    # shifted sideways by s.  Shifted 0.013, 0.035 or 0.06 mm it rests 86 %, 63 % or 37 % on the
+    # first (all under a speck) and overhangs it past a 45 degree step (0.05 mm at 0.05 mm layers,
+    # common practice for what prints unsupported) by nothing, nothing and 0.0010 mm^2: the top of
+    # a leaning tip, held.  A 0.3 mm bar resting 0.02 mm on the square (0.0019 mm^2) reaches
+    # 0.23 mm past that step (0.022 mm^2, 2.8 specks): it starts in mid-air, one island.
+    # (Before, any region over a speck needed a whole speck shared: the three tips were islands.)
     column = trimesh.creation.box((2, 2, 5), trimesh.transformations.translation_matrix((0, 0, 2.5)))
     a = trimesh.creation.box((0.095, 0.095, 0.05), trimesh.transformations.translation_matrix((0, 0, 5.025)))
-    for shift, islands in ((0.013, 0), (0.035, 0), (0.06, 1)):
-        b = trimesh.creation.box((0.095, 0.095, 0.05), trimesh.transformations.translation_matrix((shift, 0, 5.075)))
-        out = sc.independent_check(_write(tmp_path, trimesh.util.concatenate([column, a, b]), f"tip{shift}.stl"))
-        assert out["islands"] == islands, (shift, out)
+    tips = [((0.095, 0.095, 0.05), shift, 0) for shift in (0.013, 0.035, 0.06)]
+    for size, x, islands in [*tips, ((0.3, 0.095, 0.05), 0.0475 - 0.02 + 0.15, 1)]:
+        b = trimesh.creation.box(size, trimesh.transformations.translation_matrix((x, 0, 5.075)))
+        out = sc.independent_check(_write(tmp_path, trimesh.util.concatenate([column, a, b]), f"tip{x}.stl"))
+        assert out["islands"] == islands, (x, out)
         if islands:
             assert out["first_island"]["z_mm"] == pytest.approx(5.075)
-            assert out["first_island"]["area_mm2"] == pytest.approx(0.095**2, rel=1e-4)  # closing rounds by 1e-7
+            assert out["first_island"]["area_mm2"] == pytest.approx(0.3 * 0.095, rel=1e-4)  # closing rounds by 1e-7
 
 
 def test_check_joins_regions_under_a_pixel_apart_and_not_farther(tmp_path):

@@ -485,7 +485,8 @@ def _held(pw, runs, comp, n):
     least :data:`HOLD_PIXELS` (a speck), or, when it is itself smaller than that, in
     at least one: one pixel of contact does not hold a larger region
     (the independent check in ``benchmarks/stress_corpus.py`` applies a like rule to
-    exact sections, asking less of a region under two specks: half of it).
+    exact sections, holding too a region that shares half a pixel and overhangs by no more
+    than a 45 degree step except for less than a speck).
     """
     size = np.bincount(comp, weights=runs[2] - runs[1], minlength=n)
     below = mask_runs(pw)  # overlaps counted run against run: O(runs), not O(pixels)
