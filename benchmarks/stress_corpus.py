@@ -539,8 +539,9 @@ def independent_check(
 
     Fails (``failures`` lists why) when the file does not read back watertight (trimesh),
     when it cures nothing, when a layer region larger than a speck overlaps held material of
-    the layer below by less than a speck and overhangs it past a 45 degree step by a speck or more (an island: it starts in mid-air, or grows on a
-    speck in mid-air; regions closer than one pixel are one region, as the printer cures them), when its first layer does not sit
+    the layer below by less than a speck and overhangs it past a 45 degree step by a speck or
+    more (an island: it starts in mid-air, or grows on a speck in mid-air; regions closer than
+    one pixel are one region, as the printer cures them), when its first layer does not sit
     on the plate, or when it holds less volume than the input part (``part_volume_mm3``).
     """
     import shapely

@@ -67,7 +67,10 @@ class Clearance:
     def lower(self, points: np.ndarray, upto: float = np.inf) -> np.ndarray:
         """Lower bound of each point's distance to the surface (capped near ``upto``).
 
-        The queries run on every core (``workers=-1``): the answers do not depend on it."""
+        Batches of more than 4096 points run on every core (``workers=-1``; 50k points against
+        a 50 mm scan's samples took 0.43 s instead of 0.82 s on 2 cores); smaller ones stay on
+        one, sparing the threads' start-up (the 4096 is our choice, not measured).  The answers
+        do not depend on it."""
         pts = np.asarray(points, float).reshape(-1, 3)
         d, _ = self.tree.query(pts, distance_upper_bound=upto + self.slack, workers=-1 if len(pts) > 4096 else 1)
         return d - self.slack
