@@ -24,7 +24,7 @@ import trimesh
 from .analysis.layers import Grid, LayerStack, analyse_layers
 from .analysis.overhangs import find_overhangs
 from .analysis.placement import check_cures, place
-from .analysis.verify import Verification, check, speck_area_mm2, verify
+from .analysis.verify import Verification, check, room_for_helper, speck_area_mm2, verify
 from .constants import OFFSET_MM
 from .errors import SupportGenError
 from .io.budget import check_memory
@@ -370,6 +370,7 @@ def _generate(
             grid=recorder.grid,
             observers=(recorder,),
             progress=progress and f"{name}: layers",
+            workers=2 if room_for_helper(len(part.faces), part.bounds, settings) else 1,
         )
         check_cures(stack.area_mm2, settings, name)
     if file_info is None:

@@ -171,6 +171,28 @@ def test_components_match_scipy_label():
     assert stack.n_components.max() == 4
 
 
+@hsettings(max_examples=200, deadline=None)
+@given(st.integers(0, 60), st.lists(st.tuples(st.integers(0, 59), st.integers(0, 59)), max_size=120), st.booleans())
+def test_edge_components_match_scipy_connected_components(n, pairs, chain):
+    # Reference library: scipy.sparse.csgraph.connected_components, count and numbering
+    # (components numbered by their smallest node), on random graphs and on long chains
+    # (the deepest trees the union-find must flatten).
+    import scipy.sparse as sparse
+    from scipy.sparse.csgraph import connected_components
+
+    from supportgen.analysis.runlength import edge_components
+
+    if chain and n > 1:
+        order = np.random.default_rng(n).permutation(n)
+        pairs = list(zip(order[:-1].tolist(), order[1:].tolist()))[: max(1, len(pairs))]
+    e = np.array([(a, b) for a, b in pairs if a < n and b < n], np.int64).reshape(-1, 2)
+    graph = sparse.coo_matrix((np.ones(len(e)), (e[:, 0], e[:, 1])), shape=(n, n))
+    n_ref, ref = connected_components(graph, directed=False) if n else (0, np.zeros(0, np.int32))
+    count, comp = edge_components(n, e[:, 0], e[:, 1])
+    assert count == n_ref
+    assert comp.tolist() == ref.tolist()
+
+
 # ---------------------------------------------------------------- reference library on the corpus
 
 
@@ -332,3 +354,86 @@ def test_bad_inputs_raise_clear_errors():
         analyse_layers(mesh, 0.1, 0.1, 1.0, grid=Grid(0, 0, 0.2, 10, 10))
     with pytest.raises(MeshError, match="no faces"):
         analyse_layers(trimesh.Trimesh(), 0.1, 0.1, 1.0)
+
+
+# ---------------------------------------------------------------- two processes, one result
+
+
+def _same_stack(a, b):
+    for f in ("z_mm", "area_mm2", "perimeter_mm", "n_components", "reach_mm"):
+        assert np.array_equal(getattr(a, f), getattr(b, f)), f
+    assert np.array_equal(a.reach_xy, b.reach_xy, equal_nan=True)
+    assert [(i.layer, i.z_mm, i.area_mm2, i.centroid_xy, i.row0, i.col0) for i in a.islands] == [
+        (i.layer, i.z_mm, i.area_mm2, i.centroid_xy, i.row0, i.col0) for i in b.islands
+    ]
+    assert all(np.array_equal(i.mask, j.mask) for i, j in zip(a.islands, b.islands))
+    assert a.overreach == b.overreach
+    assert (a.max_unsupported_reach_mm, a.max_unsupported_reach_layer, a.inverted_pixels) == (
+        b.max_unsupported_reach_mm,
+        b.max_unsupported_reach_layer,
+        b.inverted_pixels,
+    )
+
+
+@pytest.mark.parametrize("where", ["above the tips", "at a tip", "over a tip"])
+def test_a_walk_split_over_two_processes_gives_the_walk_of_one(monkeypatch, where):
+    # The reference is the one-process walk, itself checked above against scipy labels and
+    # trimesh/shapely sections.  Each downward cone starts as a speck in mid-air that grows
+    # into an island: a cut just over a tip's first layer leaves a speck at the seam (the
+    # upper half is walked again); a cut at it joins the helper's half, whose islands and
+    # dropped specks are numbered after the lower half's; a cut above the tips joins too.
+    import supportgen.analysis.layers as L
+
+    if not L.may_fork():
+        pytest.skip("no fork or a single CPU here: analyse_layers walks in one process")
+    mesh, _ = _cones_plate()
+    p, h = 0.1, 0.1
+    one = analyse_layers(mesh, p, h, 1.0)
+    first = sorted(i.layer for i in one.islands)
+    cut = {"above the tips": first[-1] + 10, "at a tip": first[2], "over a tip": first[2] + 1}[where]
+    joins = []
+    monkeypatch.setattr(L, "_balanced_cut", lambda *a: cut)
+    monkeypatch.setattr(L._Walk, "join", lambda self, part, _j=L._Walk.join: joins.append(1) or _j(self, part))
+    two = analyse_layers(mesh, p, h, 1.0, workers=2)
+    _same_stack(one, two)
+    assert len(one.z_mm) >= L.SPLIT_MIN_LAYERS
+    assert joins == ([] if where == "over a tip" else [1])
+
+
+def test_a_failed_helper_leaves_the_walk_to_this_process(monkeypatch):
+    # A helper that raises (or dies) sends no half: this process walks it, same result.
+    import supportgen.analysis.layers as L
+
+    if not L.may_fork():
+        pytest.skip("no fork or a single CPU here")
+    mesh, _ = _cones_plate()
+    one = analyse_layers(mesh, 0.1, 0.1, 1.0)
+
+    def broken(*args):
+        raise MemoryError("no room")
+
+    monkeypatch.setattr(L, "_upper_walk", broken)
+    _same_stack(one, analyse_layers(mesh, 0.1, 0.1, 1.0, workers=2))
+
+
+def test_the_force_recorder_run_in_a_helper_makes_the_same_records():
+    # The load path's records (runs, cavities, pressure solves) made in the helper and
+    # pickled back are byte for byte those of the recorder called in the walk.
+    import pickle
+
+    import supportgen.analysis.layers as L
+    from supportgen.physics.loadpath import LayerRecorder
+    from supportgen.settings import Settings
+
+    if not L.may_fork():
+        pytest.skip("no fork or a single CPU here")
+    mesh, _ = _cones_plate()
+    grid = Grid.covering(mesh.bounds, 0.1)
+    made = []
+    for workers in (1, 2):
+        rec = LayerRecorder(grid, Settings())
+        stack = analyse_layers(mesh, 0.1, 0.1, 1.0, grid=grid, observers=(rec,), workers=workers)
+        made.append((stack, rec.records))
+    _same_stack(made[0][0], made[1][0])
+    assert len(made[0][1]) == len(made[0][0].z_mm)
+    assert pickle.dumps(made[0][1]) == pickle.dumps(made[1][1])

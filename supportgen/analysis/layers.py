@@ -30,7 +30,8 @@ from scipy import ndimage
 
 from ..constants import EPS_ZERO
 from ..errors import MeshError, SettingsError
-from .raster import layer_count, winding_masks
+from ..io.forked import Helper, may_fork
+from .raster import SortedCrossings, layer_count, ray_crossings, winding_masks
 from .runlength import box_runs, edge_components, mask_runs, paint_runs, run_overlaps
 
 __all__ = [
@@ -570,6 +571,7 @@ def analyse_layers(
     grid: Grid | None = None,
     observers: Iterable[Callable] = (),
     progress: bool | str = False,
+    workers: int = 1,
 ) -> LayerStack:
     """Area, perimeter, components, islands and unsupported reach of every layer, in one pass.
 
@@ -590,6 +592,14 @@ def analyse_layers(
         paints them when an observer needs pixels).
     progress : bool or str
         Show a progress bar (a string labels it); it is cleared when done.
+    workers : int
+        2 or more: share the work with a forked helper process (:func:`_run_split`):
+        it walks the upper half of the layers while this one walks the lower half, or,
+        with observers, it calls them while this one walks.  The result is the same as
+        one walk's.  Taken from 96 layers, on a POSIX system with two CPUs for us, not
+        in a daemon process (a batch worker), and only with observers that are marked
+        ``runs_in_helper`` (the helper's copy of each gives ``handover()``, pickled back,
+        and the caller's copy ``take(state)``s it); else one walk.
 
     Returns
     -------
@@ -647,29 +657,71 @@ def analyse_layers(
             f"layers: grid pitch {grid.pixel_mm} mm differs from pixel_mm={pixel_mm}; "
             "pass a grid of the same pitch or none"
         )
-    observers, p = tuple(observers), grid.pixel_mm
+    observers = tuple(observers)
     n_layers = layer_count(float(mesh.bounds[1, 2]), layer_mm)
-    rows_out = np.zeros((n_layers, 4))  # area, perimeter, components, reach (pixels)
-    reach_xy = np.full((n_layers, 2), np.nan)
-    islands, over, inverted = [], [], 0
-    specks, dropped = [], set()  # (index in islands, full-grid flat pixels) of last layer's speck islands
-    speck_mm2 = speck_area_mm2(pixel_mm)
-    prev = np.zeros(grid.shape, bool)
-    layers = iter_layers(mesh, grid, layer_mm)
+    bar = None
     if progress:
         from tqdm import tqdm
 
         label = progress if isinstance(progress, str) else "layers"
-        layers = tqdm(layers, total=n_layers, desc=label, unit="layer", leave=False)
-    for layer in layers:
+        bar = tqdm(total=n_layers, desc=label, unit="layer", leave=False)
+    try:
+        walk = _Walk(grid, n_layers, reach_limit_mm)
+        helped = all(getattr(ob, "runs_in_helper", False) for ob in observers)
+        if not helped or int(workers) < 2 or n_layers < SPLIT_MIN_LAYERS or not may_fork():
+            walk.run(iter_layers(mesh, grid, layer_mm), observers, bar)
+        else:
+            _run_split(walk, mesh, grid, layer_mm, bar, observers)
+    finally:
+        if bar is not None:
+            bar.close()
+    return walk.stack(layer_mm)
+
+
+#: Fewest layers worth a second process (:func:`analyse_layers` ``workers``): below this a
+#: fork and the second rasterisation cost about as much as the half of the walk they save.
+SPLIT_MIN_LAYERS = 96
+
+
+class _Walk:
+    """The state of the walk up the layers (:func:`analyse_layers`) and one step of it.
+
+    ``prev`` is the cured mask of the layer below and ``specks`` last layer's speck
+    islands in mid-air (index in ``islands``, full-grid flat pixels); nothing else
+    carries from one layer to the next, so a walk started at layer k with the true
+    ``prev`` and ``specks`` of layer k - 1 gives the layers from k on exactly as one
+    walk from the plate does (what :func:`_run_split` relies on).
+    """
+
+    def __init__(self, grid: Grid, n_layers: int, reach_limit_mm: float):
+        self.grid, self.reach_limit_mm = grid, reach_limit_mm
+        self.rows_out = np.zeros((n_layers, 4))  # area, perimeter, components, reach (pixels)
+        self.reach_xy = np.full((n_layers, 2), np.nan)
+        self.islands: list[Island] = []
+        self.over: list[Overreach] = []
+        self.inverted = 0
+        self.specks: list = []  # (index in islands, full-grid flat pixels) of last layer's speck islands
+        self.dropped: set[int] = set()
+        self.prev = np.zeros(grid.shape, bool)
+
+    def run(self, layers: Iterable[Layer], observers=(), bar=None) -> None:
+        for layer in layers:
+            self.step(layer, observers)
+            if bar is not None:
+                bar.update(1)
+
+    def step(self, layer: Layer, observers=()) -> None:
+        grid, p, prev, specks = self.grid, self.grid.pixel_mm, self.prev, self.specks
+        rows_out, reach_xy, islands, reach_limit_mm = self.rows_out, self.reach_xy, self.islands, self.reach_limit_mm
+        speck_mm2 = speck_area_mm2(p)
         k, mask = layer.index, layer.mask
-        inverted += layer.inverted
+        self.inverted += layer.inverted
         rr = np.flatnonzero(mask.any(axis=1))
         if rr.size == 0:
             for ob in observers:
                 ob(layer, LayerLabels.empty(grid.shape))
-            prev, specks = mask, []
-            continue
+            self.prev, self.specks = mask, []
+            return
         cc = np.flatnonzero(mask.any(axis=0))
         r0, r1, c0, c1 = rr[0] - _MARGIN, rr[-1] + _MARGIN + 1, cc[0] - _MARGIN, cc[-1] + _MARGIN + 1
         m, pw = _window(mask, r0, r1, c0, c1), _window(prev, r0, r1, c0, c1)
@@ -697,7 +749,7 @@ def analyse_layers(
                     # The speck was the island's first layer: one island, starting there.
                     j = int(np.searchsorted(labels, lab))
                     found[j] = dataclasses.replace(found[j], layer=islands[idx].layer, z_mm=islands[idx].z_mm)
-                    dropped.add(idx)
+                    self.dropped.add(idx)
                 grown = [
                     (len(islands) + j, _flat_pixels(i))
                     for j, i in enumerate(found)
@@ -717,30 +769,142 @@ def analyse_layers(
                 rows_out[k, 3] = d[j]
                 reach_xy[k] = grid.xy(nr[j] + r0, nc[j] + c0)[0]
                 if (d * p > reach_limit_mm).any():
-                    over.extend(_overreach(nr, nc, d, d * p > reach_limit_mm, k, layer.z_mm, grid, r0, c0))
+                    self.over.extend(_overreach(nr, nc, d, d * p > reach_limit_mm, k, layer.z_mm, grid, r0, c0))
         if observers:
             # the window's margin is empty, so every run lies inside the grid
             labels = LayerLabels(runs[0] + r0, runs[1] + c0, runs[2] + c0, comp + 1, int(n), grid.shape)
             for ob in observers:
                 ob(layer, labels)
-        prev, specks = mask, grown
-    reach = rows_out[:, 3] * p
-    worst = int(np.argmax(reach)) if n_layers and reach.max() > 0 else -1
-    return LayerStack(
-        grid,
-        float(layer_mm),
-        (np.arange(n_layers) + 0.5) * layer_mm,
-        rows_out[:, 0],
-        rows_out[:, 1],
-        rows_out[:, 2].astype(int),
-        tuple(i for j, i in enumerate(islands) if j not in dropped),
-        reach,
-        reach_xy,
-        tuple(over),
-        float(reach.max(initial=0.0)),
-        worst,
-        int(inverted),
-    )
+        self.prev, self.specks = mask, grown
+
+    def part(self, first: int) -> tuple:
+        """What the walk found from layer ``first`` on (for :meth:`join`)."""
+        return (
+            first,
+            self.rows_out[first:],
+            self.reach_xy[first:],
+            self.islands,
+            self.over,
+            self.inverted,
+            self.dropped,
+        )
+
+    def join(self, part: tuple) -> None:
+        """Take over the layers another walk found, started where this one stopped."""
+        first, rows, xy, islands, over, inverted, dropped = part
+        self.rows_out[first:], self.reach_xy[first:] = rows, xy
+        self.dropped |= {len(self.islands) + j for j in dropped}
+        self.islands.extend(islands)
+        self.over.extend(over)
+        self.inverted += inverted
+
+    def stack(self, layer_mm: float) -> LayerStack:
+        n_layers, p = len(self.rows_out), self.grid.pixel_mm
+        reach = self.rows_out[:, 3] * p
+        worst = int(np.argmax(reach)) if n_layers and reach.max() > 0 else -1
+        return LayerStack(
+            self.grid,
+            float(layer_mm),
+            (np.arange(n_layers) + 0.5) * layer_mm,
+            self.rows_out[:, 0],
+            self.rows_out[:, 1],
+            self.rows_out[:, 2].astype(int),
+            tuple(i for j, i in enumerate(self.islands) if j not in self.dropped),
+            reach,
+            self.reach_xy,
+            tuple(self.over),
+            float(reach.max(initial=0.0)),
+            worst,
+            int(self.inverted),
+        )
+
+
+def _upper_walk(found: SortedCrossings, grid: Grid, layer_mm: float, cut: int, n_layers: int, reach_limit_mm: float):
+    """In the helper: walk layers ``cut..`` from the true mask of layer ``cut - 1`` and no
+    speck in mid-air; what it found (:meth:`_Walk.part`)."""
+    walk = _Walk(grid, n_layers, reach_limit_mm)
+    wind = found.winding_before(cut)
+    walk.prev = (wind > 0).reshape(grid.shape)  # the cured mask of layer cut - 1
+    walk.run(_layers_from(found, layer_mm, cut, n_layers - 1, wind))
+    return walk.part(cut)
+
+
+def _observe(found: SortedCrossings, layer_mm: float, n_layers: int, observers) -> list:
+    """In the helper: call the observers on every layer with its components, as the walk
+    would (:meth:`LayerLabels.of` numbers them as the walk does); what each hands over."""
+    for layer in _layers_from(found, layer_mm, 0, n_layers - 1):
+        labels = LayerLabels.of(layer.mask)
+        for ob in observers:
+            ob(layer, labels)
+    return [ob.handover() for ob in observers]
+
+
+def _layers_from(found: SortedCrossings, layer_mm: float, first: int, last: int, wind=None) -> Iterator[Layer]:
+    """:func:`iter_layers` from ``first`` to ``last`` over crossings already sorted (a checked mesh)."""
+    for index, mask, inverted in found.masks(first, last, wind):
+        yield Layer(index, (index + 0.5) * layer_mm, mask, inverted)
+
+
+def _balanced_cut(zmin: np.ndarray, zmax: np.ndarray, layer_mm: float, n_layers: int) -> int:
+    """The first layer of the upper half: the layer walk's cost split evenly, each layer
+    costing a fixed share plus the faces crossing its sample plane (the runs and
+    components it has grow with them); at least a quarter of the layers each side."""
+    planes = (np.arange(n_layers) + 0.5) * layer_mm
+    spans = np.searchsorted(np.sort(zmin), planes, "right") - np.searchsorted(np.sort(zmax), planes, "left")
+    cost = spans + max(float(spans.mean()), 1.0)
+    cut = int(np.searchsorted(np.cumsum(cost), cost.sum() / 2))
+    return int(np.clip(cut, n_layers // 4, n_layers - n_layers // 4))
+
+
+def _run_split(walk: _Walk, mesh, grid: Grid, layer_mm: float, bar, observers=()) -> None:
+    """:meth:`_Walk.run` over all layers with a forked helper (:mod:`supportgen.io.forked`),
+    with the same result as one walk.
+
+    Without observers, the helper walks the upper half of the layers from the true mask
+    of the layer below it, taking no speck in mid-air there, while this process walks the
+    lower half.  If the lower half ends with a speck in mid-air (what grows on it above is
+    an island from the speck's layer), the upper half is walked here again.  With
+    observers (each marked ``runs_in_helper``), the helper calls them on every layer while
+    this process walks all layers, and their states come back from it.  Whenever the
+    helper fails, this process does its work, so the result is always that of one walk.
+    The crossings are found and sorted once, before the fork, and shared.
+    """
+    n_layers = len(walk.rows_out)
+    found = SortedCrossings(ray_crossings(mesh, grid), grid, layer_mm)
+    if observers:
+        try:
+            helper = Helper(_observe, found, layer_mm, n_layers, observers, name="supportgen-observers")
+        except OSError:  # no process to be had: one walk
+            walk.run(_layers_from(found, layer_mm, 0, n_layers - 1), observers, bar)
+            return
+        with helper:
+            walk.run(_layers_from(found, layer_mm, 0, n_layers - 1), (), bar)
+            states = helper.result()
+        if states is None:
+            walk_obs = _Walk(walk.grid, n_layers, walk.reach_limit_mm)  # the observers' calls, here
+            walk_obs.run(_layers_from(found, layer_mm, 0, n_layers - 1), observers)
+        else:
+            for ob, state in zip(observers, states):
+                ob.take(state)
+        return
+    tri_z = np.asarray(mesh.vertices, float)[np.asarray(mesh.faces)][..., 2]
+    cut = _balanced_cut(tri_z.min(axis=1), tri_z.max(axis=1), layer_mm, n_layers)
+    try:
+        helper = Helper(
+            _upper_walk, found, grid, layer_mm, cut, n_layers, walk.reach_limit_mm, name="supportgen-layers"
+        )
+    except OSError:
+        walk.run(_layers_from(found, layer_mm, 0, n_layers - 1), (), bar)
+        return
+    with helper:
+        walk.run(_layers_from(found, layer_mm, 0, cut - 1), (), bar)
+        upper = None if walk.specks else helper.result()
+    if upper is not None:
+        walk.join(upper)
+        if bar is not None:
+            bar.update(n_layers - cut)
+    else:
+        walk.run(_layers_from(found, layer_mm, cut, n_layers - 1), (), bar)
 
 
 def _islands(pix, pl, k, z, grid, r0, c0, w):

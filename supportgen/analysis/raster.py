@@ -31,7 +31,7 @@ from collections.abc import Iterator
 import numpy as np
 import trimesh
 
-__all__ = ["layer_count", "ray_crossings", "winding_masks"]
+__all__ = ["layer_count", "ray_crossings", "winding_masks", "SortedCrossings"]
 
 _CHUNK = 1 << 20  # candidate pixel-triangle pairs per rasteriser chunk
 
@@ -146,7 +146,7 @@ def ray_crossings(mesh: trimesh.Trimesh, grid) -> tuple[np.ndarray, np.ndarray, 
 
 
 def winding_masks(
-    mesh: trimesh.Trimesh, grid, layer_mm: float, first: int = 0, last: int | None = None
+    mesh: trimesh.Trimesh, grid, layer_mm: float, first: int = 0, last: int | None = None, crossings=None
 ) -> Iterator[tuple[int, np.ndarray, int]]:
     """Cured masks of layers ``first..last``, streamed in print order.
 
@@ -161,6 +161,9 @@ def winding_masks(
     first, last : int
         First and last (inclusive) layer; ``last=None`` stops at the last layer
         sampled below the mesh's top.
+    crossings : tuple, optional
+        :func:`ray_crossings` of ``mesh`` on ``grid``, when already found (it is not
+        changed); found here if None.
 
     Yields
     ------
@@ -191,31 +194,54 @@ def winding_masks(
     >>> [(k, int(m.sum()), n) for k, m, n in winding_masks(box, Grid(0.125, 0.125, 0.25, 4, 4), 0.5)]
     [(0, 16, 0), (1, 16, 0)]
     """
-    top = layer_count(float(mesh.bounds[1, 2]), layer_mm)
-    last = top - 1 if last is None else int(last)
-    idx, zc, sg = ray_crossings(mesh, grid)
-    k = np.floor(zc / layer_mm - 0.5).astype(np.int64) + 1  # first layer sampled above the crossing
-    del zc
-    np.maximum(k, first, out=k)
-    sel = k <= last
-    key = (k[sel] - first) * (grid.ny * grid.nx) + idx[sel]
-    order = np.argsort(key, kind="stable")
-    key, sg = key[order], sg[sel][order].astype(np.int32)
-    del idx, k, sel, order
-    bounds = np.searchsorted(key, np.arange(0, last - first + 2) * (grid.ny * grid.nx))
-    wind = np.zeros(grid.ny * grid.nx, np.int32)
-    flat = np.zeros(grid.ny * grid.nx, bool)
-    neg = 0
-    for n, layer in enumerate(range(first, last + 1)):
-        a, b = bounds[n], bounds[n + 1]
-        if b > a:
-            kk = key[a:b]
-            head = np.flatnonzero(np.concatenate([[True], kk[1:] != kk[:-1]]))
-            cols = kk[head] - n * (grid.ny * grid.nx)
-            w = wind[cols]
-            neg -= np.count_nonzero(w < 0)
-            w += np.add.reduceat(sg[a:b], head)
-            wind[cols] = w
-            neg += np.count_nonzero(w < 0)
-            flat[cols] = w > 0
-        yield layer, flat.reshape(grid.shape).copy(), int(neg)
+    last = layer_count(float(mesh.bounds[1, 2]), layer_mm) - 1 if last is None else int(last)
+    found = SortedCrossings(ray_crossings(mesh, grid) if crossings is None else crossings, grid, layer_mm)
+    yield from found.masks(first, last)
+
+
+class SortedCrossings:
+    """The crossings of a mesh (:func:`ray_crossings`) sorted by the layer whose sample
+    height they lie under and by pixel, so the layers stream from any layer on.
+
+    Crossing ``i`` counts from layer ``k_i = floor(z_i / h - 1/2) + 1`` (the first sampled
+    above it).  Sorting costs O(c log c) once; :meth:`winding_before` and :meth:`masks`
+    then cost O(c) and O(P) a layer.  Memory: 12 bytes a crossing.
+    """
+
+    def __init__(self, crossings, grid, layer_mm: float):
+        idx, zc, sg = crossings
+        k = np.floor(zc / layer_mm - 0.5).astype(np.int64) + 1  # first layer sampled above the crossing
+        np.maximum(k, 0, out=k)
+        self.grid, self.n_px = grid, grid.ny * grid.nx
+        key = k * self.n_px + idx
+        del k
+        order = np.argsort(key, kind="stable")
+        self.key, self.sign = key[order], np.asarray(sg)[order].astype(np.int32)
+
+    def winding_before(self, first: int) -> np.ndarray:
+        """Winding number (flat, int32) of every pixel's ray below layer ``first``'s sample height."""
+        m = int(np.searchsorted(self.key, first * self.n_px))
+        w = np.bincount(self.key[:m] % self.n_px, weights=self.sign[:m], minlength=self.n_px)
+        return np.rint(w).astype(np.int32)
+
+    def masks(self, first: int, last: int, wind: np.ndarray | None = None) -> Iterator[tuple[int, np.ndarray, int]]:
+        """``(layer, mask, inverted)`` for layers ``first..last`` as :func:`winding_masks` yields them;
+        ``wind`` is :meth:`winding_before` of ``first`` when already found (it is updated in place)."""
+        n_px, key, sg = self.n_px, self.key, self.sign
+        wind = self.winding_before(first) if wind is None else wind
+        flat = wind > 0
+        neg = int(np.count_nonzero(wind < 0))
+        bounds = np.searchsorted(key, np.arange(first, last + 2) * n_px)
+        for n, layer in enumerate(range(first, last + 1)):
+            a, b = bounds[n], bounds[n + 1]
+            if b > a:
+                kk = key[a:b]
+                head = np.flatnonzero(np.concatenate([[True], kk[1:] != kk[:-1]]))
+                cols = kk[head] - layer * n_px
+                w = wind[cols]
+                neg -= np.count_nonzero(w < 0)
+                w += np.add.reduceat(sg[a:b], head)
+                wind[cols] = w
+                neg += np.count_nonzero(w < 0)
+                flat[cols] = w > 0
+            yield layer, flat.reshape(self.grid.shape).copy(), int(neg)

@@ -31,7 +31,7 @@ from ..constants import EPS_REL
 from ..settings import Settings, resolve_settings
 from .layers import LayerStack, analyse_layers, speck_area_mm2
 
-__all__ = ["Verification", "verify", "check", "speck_area_mm2"]
+__all__ = ["Verification", "verify", "check", "room_for_helper", "speck_area_mm2"]
 
 
 @dataclass(frozen=True)
@@ -105,7 +105,14 @@ def verify(
     """
     pr, rules = settings.printer, settings.rules
     watertight = bool(mesh.is_watertight and mesh.is_volume)
-    stack = analyse_layers(mesh, pr.pixel_mm, pr.layer_mm, rules.reach_limit_mm, progress=progress)
+    stack = analyse_layers(
+        mesh,
+        pr.pixel_mm,
+        pr.layer_mm,
+        rules.reach_limit_mm,
+        progress=progress,
+        workers=2 if room_for_helper(len(mesh.faces), mesh.bounds, settings) else 1,
+    )
     failures = []
     if not watertight:
         failures.append(f"{name}: the solid is not closed and oriented; it cannot be sliced reliably")
@@ -168,6 +175,19 @@ def verify(
         failures=tuple(failures),
         layers=stack,
     )
+
+
+def room_for_helper(faces: int, bounds, settings: Settings) -> bool:
+    """Whether a second process may walk half the layers (:func:`analyse_layers` ``workers=2``):
+    only without a ``memory_mb`` limit, and while the machine's available memory holds
+    another whole run's estimate (:func:`supportgen.io.budget.estimate_peak_mb`; the helper
+    shares the crossings and needs far less)."""
+    from ..io.budget import available_memory_mb, estimate_peak_mb
+
+    if settings.limits.memory_mb:
+        return False
+    free = available_memory_mb()
+    return free is not None and free >= estimate_peak_mb(faces, bounds, settings)
 
 
 def check(mesh, settings=None, *, progress: bool = False, **overrides) -> Verification:

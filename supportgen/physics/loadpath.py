@@ -601,6 +601,10 @@ class LayerRecorder:
     CAD part (1380 layers), against about 1 GB for the layer grid's working set; no pixel image is kept.
     """
 
+    #: :func:`~supportgen.analysis.layers.analyse_layers` may call it in a forked helper
+    #: (its records come back through :meth:`handover` and :meth:`take`).
+    runs_in_helper = True
+
     def __init__(self, grid, settings, keep: bool = True):
         self.grid, self.settings = grid, settings
         self.mechanism = settings.printer.mechanism
@@ -673,6 +677,14 @@ class LayerRecorder:
         if self.keep:
             self.records.append(rec)
         return rec
+
+    def handover(self) -> list[LayerRecord]:
+        """The records, from a copy that ran in a helper process (the solver state stays there)."""
+        return self.records
+
+    def take(self, records: list[LayerRecord]) -> None:
+        """Take the records a helper's copy made over all the layers."""
+        self.records, self._prev = records, None
 
     def _geometry(self, suction, nf, edges, kept):
         """J, area and pressure samples per suction component; solves kept by coarse block key.
