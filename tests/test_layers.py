@@ -379,9 +379,10 @@ def _same_stack(a, b):
 def test_a_walk_split_over_two_processes_gives_the_walk_of_one(monkeypatch, where):
     # The reference is the one-process walk, itself checked above against scipy labels and
     # trimesh/shapely sections.  Each downward cone starts as a speck in mid-air that grows
-    # into an island: a cut just over a tip's first layer leaves a speck at the seam (the
-    # upper half is walked again); a cut at it joins the helper's half, whose islands and
-    # dropped specks are numbered after the lower half's; a cut above the tips joins too.
+    # into an island: a cut just over a tip's first layer leaves a speck at the seam (this
+    # process walks on until the chain ends and its state meets the helper's, whose
+    # specks there are mapped to its own); a cut at it joins the helper's half at once,
+    # its islands and dropped specks numbered after the lower half's; so does one above.
     import supportgen.analysis.layers as L
 
     if not L.may_fork():
@@ -391,13 +392,54 @@ def test_a_walk_split_over_two_processes_gives_the_walk_of_one(monkeypatch, wher
     one = analyse_layers(mesh, p, h, 1.0)
     first = sorted(i.layer for i in one.islands)
     cut = {"above the tips": first[-1] + 10, "at a tip": first[2], "over a tip": first[2] + 1}[where]
-    joins = []
+    joined = []
+
+    def join(self, part, after, _join=L._Walk.join):
+        ok = _join(self, part, after)
+        if ok:
+            joined.append(after)
+        return ok
+
     monkeypatch.setattr(L, "_balanced_cut", lambda *a: cut)
-    monkeypatch.setattr(L._Walk, "join", lambda self, part, _j=L._Walk.join: joins.append(1) or _j(self, part))
+    monkeypatch.setattr(L._Walk, "join", join)
     two = analyse_layers(mesh, p, h, 1.0, workers=2)
     _same_stack(one, two)
     assert len(one.z_mm) >= L.SPLIT_MIN_LAYERS
-    assert joins == ([] if where == "over a tip" else [1])
+    assert len(joined) == 1
+    # over a tip, this process walks on past the seam until the speck chain ends
+    assert (joined[0] > cut - 1) == (where == "over a tip")
+
+
+def test_a_seam_inside_two_speck_chains_maps_the_helpers_specks_to_this_walks(monkeypatch):
+    # Two downward cones whose apexes are two layers apart: a cut just over the first
+    # apex leaves its speck chain at the seam; this process walks on until that chain
+    # has grown into an island, while the second chain (started above the cut, the same
+    # in both walks) is still a speck: the walks meet with a speck in mid-air, and the
+    # helper's speck (dropped when it grows) is mapped to this walk's.  Reference: the
+    # one-process walk, as above.
+    import supportgen.analysis.layers as L
+
+    if not L.may_fork():
+        pytest.skip("no fork or a single CPU here")
+    parts = [m3.Manifold.cube((16.0, 16.0, 2.0)).translate((0.0, 0.0, 8.0))]
+    for x, y, z in ((3.0, 3.0, 2.0), (12.0, 12.0, 2.25)):
+        parts.append(m3.Manifold.cylinder(8.5 - z, 0.0, 1.2, 32).translate((x, y, z)))
+    mesh = _mesh(m3.Manifold.batch_boolean(parts, m3.OpType.Add))
+    one = analyse_layers(mesh, 0.1, 0.1, 1.0)
+    assert len(one.islands) == 2
+    cut = min(i.layer for i in one.islands) + 1
+    met = []
+
+    def join(self, part, after, _join=L._Walk.join):
+        ok = _join(self, part, after)
+        if ok:
+            met.append(len(self.specks))
+        return ok
+
+    monkeypatch.setattr(L, "_balanced_cut", lambda *a: cut)
+    monkeypatch.setattr(L._Walk, "join", join)
+    _same_stack(one, analyse_layers(mesh, 0.1, 0.1, 1.0, workers=2))
+    assert met == [1]
 
 
 def test_a_failed_helper_leaves_the_walk_to_this_process(monkeypatch):

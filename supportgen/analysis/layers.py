@@ -702,7 +702,10 @@ class _Walk:
         self.inverted = 0
         self.specks: list = []  # (index in islands, full-grid flat pixels) of last layer's speck islands
         self.dropped: set[int] = set()
+        self.drops: list[tuple[int, int]] = []  # (layer, island index) of each speck dropped into a later island
         self.prev = np.zeros(grid.shape, bool)
+        # after each layer, when kept: layer, islands, overreach, inverted, signature, speck islands
+        self.log: list | None = None
 
     def run(self, layers: Iterable[Layer], observers=(), bar=None) -> None:
         for layer in layers:
@@ -721,6 +724,7 @@ class _Walk:
             for ob in observers:
                 ob(layer, LayerLabels.empty(grid.shape))
             self.prev, self.specks = mask, []
+            self._note(k)
             return
         cc = np.flatnonzero(mask.any(axis=0))
         r0, r1, c0, c1 = rr[0] - _MARGIN, rr[-1] + _MARGIN + 1, cc[0] - _MARGIN, cc[-1] + _MARGIN + 1
@@ -750,6 +754,7 @@ class _Walk:
                     j = int(np.searchsorted(labels, lab))
                     found[j] = dataclasses.replace(found[j], layer=islands[idx].layer, z_mm=islands[idx].z_mm)
                     self.dropped.add(idx)
+                    self.drops.append((k, idx))
                 grown = [
                     (len(islands) + j, _flat_pixels(i))
                     for j, i in enumerate(found)
@@ -776,9 +781,21 @@ class _Walk:
             for ob in observers:
                 ob(layer, labels)
         self.prev, self.specks = mask, grown
+        self._note(k)
+
+    def signature(self) -> tuple:
+        """What the next layer takes from this walk besides the mask below: each speck in
+        mid-air's pixels and the layer and height its island started at."""
+        return tuple((flat.tobytes(), self.islands[i].layer, self.islands[i].z_mm) for i, flat in self.specks)
+
+    def _note(self, k: int) -> None:
+        if self.log is not None:
+            self.log.append(
+                (k, len(self.islands), len(self.over), self.inverted, self.signature(), [i for i, _ in self.specks])
+            )
 
     def part(self, first: int) -> tuple:
-        """What the walk found from layer ``first`` on (for :meth:`join`)."""
+        """What the walk found from layer ``first`` on, with its log (for :meth:`join`)."""
         return (
             first,
             self.rows_out[first:],
@@ -786,17 +803,39 @@ class _Walk:
             self.islands,
             self.over,
             self.inverted,
-            self.dropped,
+            self.drops,
+            self.log,
         )
 
-    def join(self, part: tuple) -> None:
-        """Take over the layers another walk found, started where this one stopped."""
-        first, rows, xy, islands, over, inverted, dropped = part
-        self.rows_out[first:], self.reach_xy[first:] = rows, xy
-        self.dropped |= {len(self.islands) + j for j in dropped}
-        self.islands.extend(islands)
-        self.over.extend(over)
-        self.inverted += inverted
+    def join(self, part: tuple, after: int) -> bool:
+        """Take over the layers above ``after`` from a walk started at layer ``part[0]``
+        (``<= after + 1``), if its state after layer ``after`` was this walk's; False if not.
+
+        The two walks agree from there on when the other one's specks in mid-air after
+        ``after`` are this one's (:meth:`signature`): its islands and overreach found
+        higher up come over, numbered after this walk's, and its specks dropped into
+        islands above ``after`` are mapped to this walk's specks of the same pixels.
+        """
+        first, rows, xy, islands, over, inverted, drops, log = part
+        if after < first - 1:
+            return False
+        if after == first - 1:
+            n_isl, n_over, inv, sig, idx_at = 0, 0, 0, (), []
+        else:
+            _, n_isl, n_over, inv, sig, idx_at = log[after - first]
+        if sig != self.signature():
+            return False
+        theirs = {other: mine for (mine, _), other in zip(self.specks, idx_at)}
+        base = len(self.islands)
+        for k, idx in drops:
+            if k > after:
+                self.dropped.add(base + idx - n_isl if idx >= n_isl else theirs[idx])
+        self.rows_out[after + 1 :] = rows[after + 1 - first :]
+        self.reach_xy[after + 1 :] = xy[after + 1 - first :]
+        self.islands.extend(islands[n_isl:])
+        self.over.extend(over[n_over:])
+        self.inverted += inverted - inv
+        return True
 
     def stack(self, layer_mm: float) -> LayerStack:
         n_layers, p = len(self.rows_out), self.grid.pixel_mm
@@ -823,6 +862,7 @@ def _upper_walk(found: SortedCrossings, grid: Grid, layer_mm: float, cut: int, n
     """In the helper: walk layers ``cut..`` from the true mask of layer ``cut - 1`` and no
     speck in mid-air; what it found (:meth:`_Walk.part`)."""
     walk = _Walk(grid, n_layers, reach_limit_mm)
+    walk.log = []
     wind = found.winding_before(cut)
     walk.prev = (wind > 0).reshape(grid.shape)  # the cured mask of layer cut - 1
     walk.run(_layers_from(found, layer_mm, cut, n_layers - 1, wind))
@@ -863,7 +903,9 @@ def _run_split(walk: _Walk, mesh, grid: Grid, layer_mm: float, bar, observers=()
     Without observers, the helper walks the upper half of the layers from the true mask
     of the layer below it, taking no speck in mid-air there, while this process walks the
     lower half.  If the lower half ends with a speck in mid-air (what grows on it above is
-    an island from the speck's layer), the upper half is walked here again.  With
+    an island from the speck's layer), this process walks on until its state meets the
+    helper's (:meth:`_Walk.join`; the speck chain ends within a few layers) and takes the
+    rest from it.  With
     observers (each marked ``runs_in_helper``), the helper calls them on every layer while
     this process walks all layers, and their states come back from it.  Whenever the
     helper fails, this process does its work, so the result is always that of one walk.
@@ -898,13 +940,21 @@ def _run_split(walk: _Walk, mesh, grid: Grid, layer_mm: float, bar, observers=()
         return
     with helper:
         walk.run(_layers_from(found, layer_mm, 0, cut - 1), (), bar)
-        upper = None if walk.specks else helper.result()
-    if upper is not None:
-        walk.join(upper)
+        upper = helper.result()
+    # Walk on here until this walk's state meets the helper's (at once, unless the lower
+    # half ends on a speck in mid-air), then take the helper's layers from there.
+    layers = _layers_from(found, layer_mm, cut, n_layers - 1)
+    after = cut - 1
+    while not (upper is not None and walk.join(upper, after)):
+        layer = next(layers, None)
+        if layer is None:
+            return
+        walk.step(layer)
+        after += 1
         if bar is not None:
-            bar.update(n_layers - cut)
-    else:
-        walk.run(_layers_from(found, layer_mm, cut, n_layers - 1), (), bar)
+            bar.update(1)
+    if bar is not None:
+        bar.update(n_layers - 1 - after)
 
 
 def _islands(pix, pl, k, z, grid, r0, c0, w):
