@@ -479,3 +479,20 @@ def test_the_force_recorder_run_in_a_helper_makes_the_same_records():
     _same_stack(made[0][0], made[1][0])
     assert len(made[0][1]) == len(made[0][0].z_mm)
     assert pickle.dumps(made[0][1]) == pickle.dumps(made[1][1])
+
+
+def test_crossings_rasterised_in_two_halves_are_those_of_one_call(monkeypatch):
+    # Reference: one ray_crossings call over the whole mesh (itself checked against
+    # trimesh sections through the layer areas above); the halves joined must be its
+    # arrays element for element, in the same order.
+    import supportgen.analysis.layers as L
+    from supportgen.analysis.raster import ray_crossings
+
+    if not L.may_fork():
+        pytest.skip("no fork or a single CPU here")
+    mesh, _ = _cones_plate()
+    grid = Grid.covering(mesh.bounds, 0.1)
+    monkeypatch.setattr(L, "SPLIT_MIN_FACES", 0)
+    joined, whole = L._crossings(mesh, grid), ray_crossings(mesh, grid)
+    assert len(whole[0]) > 1000
+    assert all(a.dtype == b.dtype and np.array_equal(a, b) for a, b in zip(joined, whole))

@@ -879,6 +879,34 @@ def _observe(found: SortedCrossings, layer_mm: float, n_layers: int, observers) 
     return [ob.handover() for ob in observers]
 
 
+#: Fewest faces whose rasterisation is shared with a helper (:func:`_crossings`).
+SPLIT_MIN_FACES = 20_000
+
+
+def _crossings(mesh, grid: Grid):
+    """:func:`~supportgen.analysis.raster.ray_crossings` of ``mesh``, the second half of its
+    faces rasterised in a forked helper.
+
+    Each triangle's crossings depend on that triangle alone and come out in face order,
+    so the two halves joined are the one call's arrays, element for element.
+    """
+    faces = np.asarray(mesh.faces)
+    if len(faces) < SPLIT_MIN_FACES:
+        return ray_crossings(mesh, grid)
+    half = len(faces) // 2
+    lower, upper = (trimesh.Trimesh(mesh.vertices, f, process=False) for f in (faces[:half], faces[half:]))
+    try:
+        helper = Helper(ray_crossings, upper, grid, name="supportgen-raster")
+    except OSError:
+        return ray_crossings(mesh, grid)
+    with helper:
+        first = ray_crossings(lower, grid)
+        second = helper.result()
+    if second is None:
+        second = ray_crossings(upper, grid)
+    return tuple(np.concatenate([a, b]) for a, b in zip(first, second))
+
+
 def _layers_from(found: SortedCrossings, layer_mm: float, first: int, last: int, wind=None) -> Iterator[Layer]:
     """:func:`iter_layers` from ``first`` to ``last`` over crossings already sorted (a checked mesh)."""
     for index, mask, inverted in found.masks(first, last, wind):
@@ -909,10 +937,11 @@ def _run_split(walk: _Walk, mesh, grid: Grid, layer_mm: float, bar, observers=()
     observers (each marked ``runs_in_helper``), the helper calls them on every layer while
     this process walks all layers, and their states come back from it.  Whenever the
     helper fails, this process does its work, so the result is always that of one walk.
-    The crossings are found and sorted once, before the fork, and shared.
+    The crossings are found (half the faces in a first helper, :func:`_crossings`) and
+    sorted once, before the fork, and shared.
     """
     n_layers = len(walk.rows_out)
-    found = SortedCrossings(ray_crossings(mesh, grid), grid, layer_mm)
+    found = SortedCrossings(_crossings(mesh, grid), grid, layer_mm)
     if observers:
         try:
             helper = Helper(_observe, found, layer_mm, n_layers, observers, name="supportgen-observers")
