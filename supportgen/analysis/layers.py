@@ -678,8 +678,9 @@ def analyse_layers(
     return walk.stack(layer_mm)
 
 
-#: Fewest layers worth a second process (:func:`analyse_layers` ``workers``): below this a
-#: fork and the second rasterisation cost about as much as the half of the walk they save.
+#: Fewest layers worth a second process (:func:`analyse_layers` ``workers``): our choice, not
+#: measured; a fork and pickling the helper's half back cost tens of milliseconds, a few
+#: layers' walk, so only stacks of many layers gain.
 SPLIT_MIN_LAYERS = 96
 
 
@@ -701,8 +702,8 @@ class _Walk:
         self.over: list[Overreach] = []
         self.inverted = 0
         self.specks: list = []  # (index in islands, full-grid flat pixels) of last layer's speck islands
-        self.dropped: set[int] = set()
         self.drops: list[tuple[int, int]] = []  # (layer, island index) of each speck dropped into a later island
+        self.speck_mm2 = speck_area_mm2(grid.pixel_mm)
         self.prev = np.zeros(grid.shape, bool)
         # after each layer, when kept: layer, islands, overreach, inverted, signature, speck islands
         self.log: list | None = None
@@ -716,7 +717,7 @@ class _Walk:
     def step(self, layer: Layer, observers=()) -> None:
         grid, p, prev, specks = self.grid, self.grid.pixel_mm, self.prev, self.specks
         rows_out, reach_xy, islands, reach_limit_mm = self.rows_out, self.reach_xy, self.islands, self.reach_limit_mm
-        speck_mm2 = speck_area_mm2(p)
+        speck_mm2 = self.speck_mm2
         k, mask = layer.index, layer.mask
         self.inverted += layer.inverted
         rr = np.flatnonzero(mask.any(axis=1))
@@ -753,7 +754,6 @@ class _Walk:
                     # The speck was the island's first layer: one island, starting there.
                     j = int(np.searchsorted(labels, lab))
                     found[j] = dataclasses.replace(found[j], layer=islands[idx].layer, z_mm=islands[idx].z_mm)
-                    self.dropped.add(idx)
                     self.drops.append((k, idx))
                 grown = [
                     (len(islands) + j, _flat_pixels(i))
@@ -827,9 +827,7 @@ class _Walk:
             return False
         theirs = {other: mine for (mine, _), other in zip(self.specks, idx_at)}
         base = len(self.islands)
-        for k, idx in drops:
-            if k > after:
-                self.dropped.add(base + idx - n_isl if idx >= n_isl else theirs[idx])
+        self.drops += [(k, base + idx - n_isl if idx >= n_isl else theirs[idx]) for k, idx in drops if k > after]
         self.rows_out[after + 1 :] = rows[after + 1 - first :]
         self.reach_xy[after + 1 :] = xy[after + 1 - first :]
         self.islands.extend(islands[n_isl:])
@@ -839,6 +837,7 @@ class _Walk:
 
     def stack(self, layer_mm: float) -> LayerStack:
         n_layers, p = len(self.rows_out), self.grid.pixel_mm
+        dropped = {idx for _, idx in self.drops}
         reach = self.rows_out[:, 3] * p
         worst = int(np.argmax(reach)) if n_layers and reach.max() > 0 else -1
         return LayerStack(
@@ -848,7 +847,7 @@ class _Walk:
             self.rows_out[:, 0],
             self.rows_out[:, 1],
             self.rows_out[:, 2].astype(int),
-            tuple(i for j, i in enumerate(self.islands) if j not in self.dropped),
+            tuple(i for j, i in enumerate(self.islands) if j not in dropped),
             reach,
             self.reach_xy,
             tuple(self.over),
