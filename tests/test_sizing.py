@@ -338,6 +338,7 @@ def test_slender_post_gets_braced():
     # two directions per braced post; a pair of posts is joined once (a reverse brace would
     # cross the first), so the last post of a 2 x 2 grid finds no new direction
     assert sized.braces_added == len(p.braces) >= 6
+    assert len(np.unique(np.sort(p.braces, axis=1), axis=0)) == len(p.braces)  # no pair braced twice
     lo, hi = p.nodes[p.braces[:, 0]], p.nodes[p.braces[:, 1]]
     rise = np.degrees(np.arctan2(hi[:, 2] - lo[:, 2], np.linalg.norm(hi[:, :2] - lo[:, :2], axis=1)))
     assert np.all(rise >= 45.0)  # printable brace (common practice)

@@ -330,5 +330,11 @@ def add_braces(
     new[swap] = new[swap][:, ::-1]  # lower end first
     if len(new) == 0:
         return plan, 0
+    # two requests can land on the same pair of nodes (points within a pixel of a node
+    # reuse it): one brace there, as the first of them
     braces = np.concatenate([plan.braces.reshape(-1, 2), new])
-    return plan.replace(nodes=nodes, edges=edges, edge_radius=radius, braces=braces), len(new)
+    _, first = np.unique(np.sort(braces, axis=1), axis=0, return_index=True)
+    braces = braces[np.sort(first)]
+    if len(braces) == len(plan.braces):
+        return plan, 0
+    return plan.replace(nodes=nodes, edges=edges, edge_radius=radius, braces=braces), len(braces) - len(plan.braces)
