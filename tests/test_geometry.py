@@ -180,7 +180,8 @@ def test_joint_spheres_clear_the_segments_they_join():
 
     s = Settings()
     r = 0.25
-    nodes = np.array([[3.0, 2.0, 7.0], [3.0, 2.0, 5.0], [3.0, 2.0, 3.0]])
+    # the run turns by 10 degrees at node 1 (a straight run passes through without a joint)
+    nodes = np.array([[3.0, 2.0, 7.0], [3.0, 2.0, 5.0], [3.0 + 2.0 * np.tan(np.radians(10.0)), 2.0, 3.0]])
     plan = SupportPlan(
         "straight",
         nodes,
@@ -435,3 +436,114 @@ def test_touching_shells_get_no_tip_on_the_face_they_share_and_print():
     assert result.combined.is_watertight and pinch_points(result.combined) == 0
     tips = result.contacts.points
     assert len(tips) > 10 and faces_air(result.part, tips).all()
+
+
+def test_grouped_union_equals_one_batch_and_a_turn_rejoins_only_its_group():
+    # manifold3d's batch union of all primitives (reference library) against the grouped
+    # union: 600 random posts (four groups of 150), then again after turning those at one point.
+    from supportgen.supports import geometry as g
+
+    rng = np.random.default_rng(7)
+    a = rng.uniform(0, 20, (600, 3))
+    b = a + rng.normal(0, 1.5, (600, 3))
+    solids = [frustum(p, q, 0.3, 0.3, phase=float(t)) for p, q, t in zip(a, b, rng.uniform(0, 1, 600))]
+    pieces = g._Pieces(solids)
+    assert len(np.unique(pieces.group)) == 4 and np.bincount(pieces.group).max() <= g._GROUP  # halved twice
+    ref = m3d.Manifold.batch_boolean(solids, m3d.OpType.Add)
+    out = pieces.union("posts")
+    assert out.volume() == pytest.approx(ref.volume(), rel=1e-9)
+    assert (out - ref).volume() < 1e-9 * ref.volume() and (ref - out).volume() < 1e-9 * ref.volume()
+    turned = pieces.near(a[:1], 0.0)
+    assert 0 in turned and all(
+        np.all(pieces.lo[i] <= a[0]) and np.all(a[0] <= pieces.hi[i]) for i in turned
+    )  # boxes holding the point
+    new = [frustum(p, q, 0.3, 0.3, phase=0.5) for p, q in zip(a, b)]
+    pieces.replace(turned, new)
+    assert set(pieces.joined) == set(np.unique(pieces.group)) - set(pieces.group[turned])
+    expect = [new[i] if i in set(turned) else s for i, s in enumerate(solids)]
+    ref2 = m3d.Manifold.batch_boolean(expect, m3d.OpType.Add)
+    out2 = pieces.union("posts")
+    assert out2.volume() == pytest.approx(ref2.volume(), rel=1e-9)
+    assert (out2 - ref2).volume() < 1e-9 * ref2.volume() and (ref2 - out2).volume() < 1e-9 * ref2.volume()
+
+
+def _run_plan():
+    from supportgen.supports.plan import SupportPlan
+
+    # a vertical post from a tip node (0) down to a foot (3), split at nodes 1 and 2 where
+    # braces from a second post (4 to 5) end
+    nodes = np.array(
+        [[0.0, 0.0, 9.0], [0.0, 0.0, 6.0], [0.0, 0.0, 3.0], [0.0, 0.0, 1.0], [2.5, 0.0, 9.0], [2.5, 0.0, 1.0]]
+    )
+    return SupportPlan(
+        "straight",
+        nodes,
+        np.array([[0, 1], [1, 2], [2, 3], [4, 5]]),
+        np.full(4, 0.25),
+        np.array([[0.0, 0.0, 10.5], [2.5, 0.0, 10.5]]),
+        np.array([0, 4]),
+        np.array([0.3, 0.3]),
+        np.array([0, 1]),
+        np.array([3, 5]),
+        braces=np.array([[2, 4], [1, 4]]),
+    )
+
+
+def test_a_straight_post_split_by_braces_is_one_prism_and_braces_hold_their_circles():
+    # The post's primitive is one 16-sided prism from its top node to its foot, each end
+    # 0.25 r into the joint and foot there: its volume is the regular polygon's area
+    # n/2 r^2 sin(2 pi/n) (handbook formula) times that length, and no joint sphere sits at
+    # the two nodes it passes through.  A brace's octagon contains the circle of the radius
+    # sizing gave it (half its posts'): its section across the axis (trimesh) covers the disc
+    # (shapely).  The whole unions without pinch points.
+    from supportgen.supports.geometry import build_supports, pinch_points, to_trimesh
+
+    s = Settings()
+    plan, r = _run_plan(), 0.25
+    parts, base = build_supports(plan, s, 0.0)
+    length = 8.0 + 2 * 0.25 * r
+    prism = 16 / 2 * r**2 * np.sin(2 * np.pi / 16) * length
+    vols = np.array([p.volume() for p in parts])
+    assert np.isclose(vols, prism, rtol=1e-9).sum() == 2  # the post and the second post, one each
+    meshes = [to_trimesh(p) for p in parts]
+    for node in plan.nodes[[1, 2]]:  # no solid centred there
+        assert not any(np.ptp(np.linalg.norm(m.vertices - node, axis=1)) < 1e-6 for m in meshes)
+    for a, b in plan.braces:
+        p, q = plan.nodes[a], plan.nodes[b]
+        mid, axis = (p + q) / 2, (q - p) / np.linalg.norm(q - p)
+        brace = next(m for m in meshes if len(m.vertices) == 16 and np.allclose(m.centroid, mid, atol=1e-6))
+        cut = brace.section(plane_origin=mid, plane_normal=axis)
+        flat, to_3d = cut.to_2D()
+        poly = shapely.Polygon(flat.vertices[flat.entities[0].points])
+        centre = trimesh.transform_points([mid], np.linalg.inv(to_3d))[0, :2]
+        assert poly.buffer(1e-9).contains(shapely.Point(centre).buffer(0.5 * r, quad_segs=64))
+    solid = m3d.Manifold.batch_boolean(parts + base, m3d.OpType.Add)
+    assert solid.status() == m3d.Error.NoError and pinch_points(to_trimesh(solid)) == 0
+
+
+def test_the_fused_part_keeps_no_facet_narrower_than_a_ten_thousandth_of_a_millimetre():
+    # Boxes joined into a turned lattice leave facets a few ten-millionths of a millimetre
+    # wide; a tip crossing one is cut at two points a file merges.  Folded: no facet of the
+    # fused part is narrower than SLIVER_MM (facet heights from trimesh areas and edges),
+    # every vertex stays within SLIVER_MM of the part's surface (trimesh closest points),
+    # and the volume is kept (reference library: trimesh).
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
+    import speed
+
+    from supportgen.supports.geometry import SLIVER_MM, fuse_bodies, to_trimesh
+
+    def narrowest(m):
+        tri = m.triangles
+        edges = np.linalg.norm(np.roll(tri, -1, axis=1) - tri, axis=2)
+        return float((2 * m.area_faces / edges.max(axis=1)).min())
+
+    part = speed.kind_lattice(np.random.default_rng(27))  # the speed benchmark's lattice kind
+    assert narrowest(part) < 1e-5  # the case this guards (checked before folding)
+    fused = to_trimesh(fuse_bodies(part))
+    assert narrowest(fused) >= SLIVER_MM
+    _, dist, _ = trimesh.proximity.closest_point(part, fused.vertices)
+    assert dist.max() < SLIVER_MM
+    assert fused.volume == pytest.approx(part.volume, rel=1e-6)
