@@ -496,3 +496,34 @@ def test_crossings_rasterised_in_two_halves_are_those_of_one_call(monkeypatch):
     joined, whole = L._crossings(mesh, grid), ray_crossings(mesh, grid)
     assert len(whole[0]) > 1000
     assert all(a.dtype == b.dtype and np.array_equal(a, b) for a, b in zip(joined, whole))
+
+
+def test_crossings_of_long_thin_faces_are_trimeshs_ray_hits():
+    # Columns are bounded row by row from the edges (a superset, the exact edge test
+    # decides); long thin faces across the grid (a turned thin rod, like a brace) are where
+    # a wrong bound would drop pixels.  Reference: trimesh's ray-triangle intersector
+    # (reference library), a vertical ray up through every pixel centre: the same pixels
+    # are crossed, at the same heights, entering or leaving as the face normal says.
+    from trimesh.ray.ray_triangle import RayMeshIntersector
+
+    from supportgen.analysis.raster import ray_crossings
+
+    rod = trimesh.creation.cylinder(radius=0.15, height=9.0, sections=8)
+    rod.apply_transform(trimesh.transformations.rotation_matrix(1.1, [0.3, 1.0, 0.2]))
+    ball = trimesh.creation.icosphere(subdivisions=2, radius=1.3)
+    ball.apply_translation([2.0, -1.0, 0.5])
+    mesh = trimesh.util.concatenate([rod, ball])
+    mesh.apply_translation(-mesh.bounds[0] + 0.5)
+    grid = Grid.covering(mesh.bounds, 0.037)
+    index, z, sign = ray_crossings(mesh, grid)
+    r, c = np.divmod(np.arange(grid.nx * grid.ny), grid.nx)
+    origins = np.column_stack([grid.xy(r, c), np.full(r.size, -1.0)])
+    locs, rays, tri = RayMeshIntersector(mesh).intersects_location(
+        origins, np.tile([0.0, 0.0, 1.0], (r.size, 1)), multiple_hits=True
+    )
+    assert len(index) > 2000 and len(locs) == len(index)
+    ours = np.lexsort((z, index))
+    ref = np.lexsort((locs[:, 2], rays))
+    assert np.array_equal(index[ours], rays[ref])
+    assert np.allclose(z[ours], locs[ref, 2], atol=1e-9)
+    assert np.array_equal(sign[ours], np.where(mesh.face_normals[tri[ref], 2] < 0, 1, -1))
