@@ -439,8 +439,8 @@ def test_touching_shells_get_no_tip_on_the_face_they_share_and_print():
 
 
 def test_grouped_union_equals_one_batch_and_a_turn_rejoins_only_its_group():
-    # manifold3d's batch union of all primitives (reference library) against the grouped
-    # union: 600 random posts (four groups of 150), then again after turning those at one point.
+    # manifold3d's batch union of all primitives (reference library) against the union by
+    # groups: 600 random posts (four groups of 150), turned at one point, then at another.
     from supportgen.supports import geometry as g
 
     rng = np.random.default_rng(7)
@@ -449,22 +449,24 @@ def test_grouped_union_equals_one_batch_and_a_turn_rejoins_only_its_group():
     solids = [frustum(p, q, 0.3, 0.3, phase=float(t)) for p, q, t in zip(a, b, rng.uniform(0, 1, 600))]
     pieces = g._Pieces(solids)
     assert len(np.unique(pieces.group)) == 4 and np.bincount(pieces.group).max() <= g._GROUP  # halved twice
-    ref = m3d.Manifold.batch_boolean(solids, m3d.OpType.Add)
-    out = pieces.union("posts")
-    assert out.volume() == pytest.approx(ref.volume(), rel=1e-9)
-    assert (out - ref).volume() < 1e-9 * ref.volume() and (ref - out).volume() < 1e-9 * ref.volume()
-    turned = pieces.near(a[:1], 0.0)
-    assert 0 in turned and all(
-        np.all(pieces.lo[i] <= a[0]) and np.all(a[0] <= pieces.hi[i]) for i in turned
-    )  # boxes holding the point
-    new = [frustum(p, q, 0.3, 0.3, phase=0.5) for p, q in zip(a, b)]
-    pieces.replace(turned, new)
-    assert set(pieces.joined) == set(np.unique(pieces.group)) - set(pieces.group[turned])
-    expect = [new[i] if i in set(turned) else s for i, s in enumerate(solids)]
-    ref2 = m3d.Manifold.batch_boolean(expect, m3d.OpType.Add)
-    out2 = pieces.union("posts")
-    assert out2.volume() == pytest.approx(ref2.volume(), rel=1e-9)
-    assert (out2 - ref2).volume() < 1e-9 * ref2.volume() and (ref2 - out2).volume() < 1e-9 * ref2.volume()
+
+    def same(out, prims):
+        ref = m3d.Manifold.batch_boolean(prims, m3d.OpType.Add)
+        assert out.volume() == pytest.approx(ref.volume(), rel=1e-9)
+        assert (out - ref).volume() < 1e-9 * ref.volume() and (ref - out).volume() < 1e-9 * ref.volume()
+
+    same(pieces.union("posts"), solids)
+    current = list(solids)
+    for k, phase in ((0, 0.5), (300, 0.7)):
+        turned = pieces.near(a[k : k + 1], 0.0)
+        assert k in turned and all(np.all(pieces.lo[i] <= a[k]) and np.all(a[k] <= pieces.hi[i]) for i in turned)
+        new = [frustum(p, q, 0.3, 0.3, phase=phase) for p, q in zip(a, b)]
+        pieces.replace(turned, new)
+        if k:  # the groups joined at the first turn are kept, but for those turned now
+            assert set(pieces.joined) == set(np.unique(pieces.group)) - set(pieces.group[turned])
+        current = [new[i] if i in set(turned) else p for i, p in enumerate(current)]
+        same(pieces.union("posts"), current)
+        assert set(pieces.joined) == set(np.unique(pieces.group))
 
 
 def _run_plan():

@@ -681,10 +681,10 @@ def _weld(solid: m3d.Manifold, at: tuple[np.ndarray, np.ndarray], radius: float,
 #: primitives at the pinches left (:class:`_Pieces`).
 PHASES = (0.0, 0.37, 0.61, 0.83)
 
-#: Primitives per group of :class:`_Pieces`: a retry joins again one group of this many
-#: and the groups' unions, not every primitive (on a lattice's 6,500 primitives, 32 groups
-#: joined then combined took as long as one batch of all, 16.4 s against 16.5 s, and a
-#: group about 0.4 s).
+#: Primitives per group of :class:`_Pieces`: after the first retry, a retry joins again
+#: the groups of the primitives it turned and then the groups' unions, not every primitive
+#: (a lattice's 6,500 primitives: 32 groups 14.0 s, their union 3.4 s, one batch of all
+#: 15-16 s; a group about 0.5 s).
 _GROUP = 256
 
 
@@ -693,8 +693,9 @@ class _Pieces:
     few primitives joins again only their groups.
 
     Groups halve the primitives at the median of their bounding-box centres along the
-    widest axis until each holds at most :data:`_GROUP`; with one group the union is the
-    plain batch of all primitives.
+    widest axis until each holds at most :data:`_GROUP`.  Until a primitive is turned,
+    and with one group, the union is the plain batch of all primitives (groups and their
+    union cost a fifth more than one batch; only retries gain from them).
     """
 
     def __init__(self, solids: list[m3d.Manifold]):
@@ -714,11 +715,13 @@ class _Pieces:
             order = idx[np.argsort(c[:, int(np.argmax(np.ptp(c, axis=0)))], kind="stable")]
             stack += [order[len(order) // 2 :], order[: len(order) // 2]]
         self.joined: dict[int, m3d.Manifold] = {}
+        self.turned = False
 
     def union(self, what: str) -> m3d.Manifold:
-        """The union of all primitives; groups changed since the last call are joined again."""
+        """The union of all primitives: at first in one batch; once some were turned, by
+        groups, those changed since the last call joined again."""
         groups = np.unique(self.group)
-        if len(groups) <= 1:
+        if len(groups) <= 1 or not self.turned:
             return _union(self.solids, what)
         for g in groups:
             if g not in self.joined:
@@ -739,6 +742,7 @@ class _Pieces:
         for i in idx:
             self.solids[i] = solids[i]
             self.joined.pop(int(self.group[i]), None)
+        self.turned = True
 
 
 def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Solids:
