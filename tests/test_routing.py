@@ -264,3 +264,35 @@ def test_corpus_part_is_routed_within_the_rules():
     d = plan.nodes[plan.tip_nodes[plan.tip_contact >= 0]] - plan.tip_points[plan.tip_contact >= 0]
     assert np.all(d[:, 2] < 0)
     assert np.degrees(np.arctan2(np.linalg.norm(d[:, :2], axis=1), -d[:, 2])).max() <= s.branch_angle_deg + 1e-6
+
+
+def test_ways_down_are_networkx_shortest_paths():
+    # The lattice's cheapest ways down (scipy's Dijkstra over arrays) against networkx's
+    # Dijkstra on the same lattice as a graph (reference library): the same distance to
+    # each sink from every node, and each way followed edge by edge costs that distance.
+    import networkx as nx
+
+    from supportgen.supports.freespace import free_space_lattice
+    from supportgen.supports.routing import _ways_down
+
+    part = box((10, 10, 4), (0, 0, 12))
+    settings = Settings()
+    field = clearance_field(part, settings.rules.clearance_mm)
+    lat = free_space_lattice(part, settings, field, np.array([[-10, -10, 0], [10, 10, 20]]), step_mm=2.0)
+    g = lat.graph()
+    ways = _ways_down(lat)
+    assert set(ways) == {"base", "land"} and len(lat.land) > 0
+    weight = {(int(u), int(v)): w for u, v, w in zip(lat.src, lat.dst, lat.weight)}
+    land_w = dict(zip(lat.land.tolist(), lat.land_weight.tolist()))
+    for sink, (dist, nxt) in ways.items():
+        ref = nx.single_source_dijkstra_path_length(g.reverse(copy=False), sink)
+        for k, n in enumerate(lat.kept.tolist()):
+            assert dist[k] == pytest.approx(ref.get(n, np.inf), rel=1e-12, abs=0)
+            if not np.isfinite(dist[k]):
+                continue
+            total, at = 0.0, k
+            while nxt[at] >= 0:
+                total += weight[(int(lat.kept[at]), int(lat.kept[nxt[at]]))]
+                at = nxt[at]
+            total += land_w[int(lat.kept[at])] if sink == "land" else 0.0
+            assert total == pytest.approx(dist[k], rel=1e-9, abs=1e-12)

@@ -37,7 +37,16 @@ from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO
 from ..errors import SettingsError
 from .geometry import landing_holds
 
-__all__ = ["Penalty", "Clearance", "clearance_field", "free_space_graph", "edge_cost", "surface_below"]
+__all__ = [
+    "Penalty",
+    "Clearance",
+    "clearance_field",
+    "FreeLattice",
+    "free_space_lattice",
+    "free_space_graph",
+    "edge_cost",
+    "surface_below",
+]
 
 #: ``cost(upper, lower) -> penalty``: (k, 3) upper and lower segment ends to (k,) extra cost (mm^3).
 Penalty = Callable[[np.ndarray, np.ndarray], np.ndarray]
@@ -214,6 +223,41 @@ def edge_cost(upper, lower, area, cost):
     return material if cost is None else material + np.asarray(cost(upper, lower), float)
 
 
+@dataclass(frozen=True)
+class FreeLattice:
+    """The free-space lattice as arrays (:func:`free_space_lattice`).
+
+    Nodes are numbered ``(i * shape[1] + j) * shape[2] + k`` over the whole grid; ``kept``
+    lists those that clear the part (ascending) and ``pos`` holds every grid point.  Edges
+    run from ``src`` down to ``dst`` with ``weight``; ``bottom`` nodes reach the base at no
+    cost; ``land`` nodes reach a landing tip at ``land_weight``, landing at ``land_hit``.
+    """
+
+    step: float
+    pitch: float
+    origin: np.ndarray
+    shape: tuple
+    pos: np.ndarray
+    kept: np.ndarray
+    src: np.ndarray
+    dst: np.ndarray
+    weight: np.ndarray
+    bottom: np.ndarray
+    land: np.ndarray
+    land_weight: np.ndarray
+    land_hit: np.ndarray
+
+    def graph(self) -> nx.DiGraph:
+        """The lattice as a networkx graph (see :func:`free_space_graph`)."""
+        g = nx.DiGraph(step=self.step, pitch=self.pitch, origin=self.origin, shape=self.shape)
+        g.add_nodes_from((int(n), {"pos": self.pos[n]}) for n in self.kept)
+        g.add_weighted_edges_from(zip(self.src.tolist(), self.dst.tolist(), self.weight.tolist()))
+        g.add_edges_from((int(n), "base", {"weight": 0.0}) for n in self.bottom)
+        for n, w, h in zip(self.land, self.land_weight, self.land_hit):
+            g.add_edge(int(n), "land", weight=float(w), hit=h)
+        return g
+
+
 def free_space_graph(
     mesh: trimesh.Trimesh,
     settings,
@@ -224,6 +268,29 @@ def free_space_graph(
     cost: Penalty | None = None,
     max_nodes: int = 60_000,
 ) -> nx.DiGraph:
+    """:func:`free_space_lattice` as a networkx graph.
+
+    Returns
+    -------
+    networkx.DiGraph
+        Integer nodes with ``pos``; edges (upper, lower) with ``weight``; sink ``"base"``
+        reached from the bottom layer at zero cost, sink ``"land"`` from the landing nodes
+        (``weight`` = landing tip material, ``hit`` = landing point).  Graph attributes
+        ``step``, ``pitch``, ``origin``, ``shape``.
+    """
+    return free_space_lattice(mesh, settings, field, bounds, step_mm=step_mm, cost=cost, max_nodes=max_nodes).graph()
+
+
+def free_space_lattice(
+    mesh: trimesh.Trimesh,
+    settings,
+    field: Clearance,
+    bounds: np.ndarray,
+    *,
+    step_mm: float | None = None,
+    cost: Penalty | None = None,
+    max_nodes: int = 60_000,
+) -> FreeLattice:
     """A lattice of free space: downward edges within the branch angle, clear of the part.
 
     Parameters
@@ -247,13 +314,12 @@ def free_space_graph(
 
     Returns
     -------
-    networkx.DiGraph
-        Integer nodes with ``pos``; edges (upper, lower) with ``weight``; sink ``"base"``
-        reached from the bottom layer at zero cost, sink ``"land"`` from nodes with the part's
-        upper surface at most ``tip_length + step`` below where a landing tip's end stays
-        inside the part (:func:`~supportgen.supports.geometry.landing_holds`; ``weight`` =
-        landing tip material, ``hit`` = landing point).  Graph attributes ``step``, ``pitch``,
-        ``origin``, ``shape``.
+    FreeLattice
+        Kept nodes, downward edges with ``weight``; the bottom layer reaches the base at
+        zero cost; landing nodes are those with the part's upper surface at most
+        ``tip_length + step`` below where a landing tip's end stays inside the part
+        (:func:`~supportgen.supports.geometry.landing_holds`; weight = landing tip
+        material, and the landing point).
 
     Notes
     -----
@@ -283,15 +349,12 @@ def free_space_graph(
     # lower bounds, capped at ``upto`` (a point beyond it comes back as inf: "at least upto")
     dist = np.minimum(field.lower(pos, upto), upto)
     keep = dist >= s.clearance_mm + field.step / 2
-    lid = np.full(len(pos), -1)
-    lid[keep] = np.arange(keep.sum())
-    g = nx.DiGraph(step=hz, pitch=pitch, origin=origin, shape=tuple(shape))
     nodes = np.flatnonzero(keep)
-    g.add_nodes_from((int(n), {"pos": pos[n]}) for n in nodes)
-    grid = lid.reshape(shape) >= 0
+    grid = keep.reshape(shape)
     area = math.pi * (s.post_diameter_mm / 2) ** 2
     offsets = [(di, dj) for di in (-1, 0, 1) for dj in (-1, 0, 1) if t > EPS_SMALL or di == dj == 0]
     flat = np.arange(len(pos)).reshape(shape)
+    srcs, dsts, weights = [np.zeros(0, np.int64)], [np.zeros(0, np.int64)], [np.zeros(0)]
     for di, dj in offsets:
         src = flat[max(0, -di) : shape[0] - max(0, di), max(0, -dj) : shape[1] - max(0, dj), 1:]
         dst = flat[max(0, di) : shape[0] - max(0, -di), max(0, dj) : shape[1] - max(0, -dj), :-1]
@@ -304,10 +367,11 @@ def free_space_graph(
         sure = (dist[src] + dist[dst] - length) / 2 >= s.clearance_mm
         sure[~sure] = field.clear(pos[src[~sure]], pos[dst[~sure]])
         src, dst = src[sure], dst[sure]
-        w = edge_cost(pos[src], pos[dst], area, cost)
-        g.add_weighted_edges_from(zip(src.tolist(), dst.tolist(), w.tolist()))
+        srcs.append(src)
+        dsts.append(dst)
+        weights.append(np.asarray(edge_cost(pos[src], pos[dst], area, cost), float).reshape(-1))
     bottom = nodes[ijk[nodes, 2] == 0]
-    g.add_edges_from((int(n), "base", {"weight": 0.0}) for n in bottom)
+    land_n, land_w, land_hit = np.zeros(0, np.int64), np.zeros(0), np.zeros((0, 3))
     if len(nodes):
         cols = ijk[nodes, 0] * shape[1] + ijk[nodes, 1]
         xy = origin[:2] + np.indices(shape[:2]).reshape(2, -1).T * pitch
@@ -316,6 +380,20 @@ def free_space_graph(
         land = up & (drop <= s.tip_length_mm + hz) & (hit > z0)
         land[land] = landing_holds(mesh, settings, np.column_stack([pos[nodes[land], :2], hit[land]]))
         tip_area = math.pi * (s.tip_diameter_mm / 2) ** 2
-        for n, h, d in zip(nodes[land], hit[land], drop[land]):
-            g.add_edge(int(n), "land", weight=float(tip_area * d), hit=np.array([*pos[n, :2], h]))
-    return g
+        land_n, land_w = nodes[land], tip_area * drop[land]
+        land_hit = np.column_stack([pos[land_n, :2], hit[land]])
+    return FreeLattice(
+        hz,
+        pitch,
+        origin,
+        tuple(shape),
+        pos,
+        nodes,
+        np.concatenate(srcs),
+        np.concatenate(dsts),
+        np.concatenate(weights),
+        bottom,
+        land_n,
+        np.asarray(land_w, float),
+        land_hit,
+    )

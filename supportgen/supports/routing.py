@@ -30,9 +30,11 @@ import math
 import networkx as nx
 import numpy as np
 import trimesh
+from scipy import sparse
+from scipy.sparse import csgraph
 
 from ..constants import EPS_REL, EPS_SMALL, EPS_ZERO
-from .freespace import Clearance, Penalty, clearance_field, edge_cost, free_space_graph
+from .freespace import Clearance, FreeLattice, Penalty, clearance_field, edge_cost, free_space_graph, free_space_lattice
 from .plan import Contacts, SupportPlan
 
 __all__ = ["Clearance", "clearance_field", "free_space_graph", "plan_tree"]
@@ -191,29 +193,61 @@ def _merge(tips: np.ndarray, s, field: Clearance, cost, b: _Builder):
     return blocked
 
 
+def _ways_down(lat: FreeLattice, avoid=None) -> dict:
+    """Each kept lattice node's cheapest way down, per sink: ``{sink: (dist, next)}``.
+
+    ``dist`` and ``next`` are indexed by position in ``lat.kept``; ``next`` is the next
+    node's position on the way (-1: the way ends here, on the base or at a landing), and
+    ``dist`` is inf where the sink is not reached.  One Dijkstra search over the reversed
+    edges (``scipy.sparse.csgraph.dijkstra``) from the bottom layer for ``"base"`` (all at
+    distance 0) and from a landing sink for ``"land"``.  ``avoid(hits)`` drops landings.
+    """
+    n = len(lat.kept)
+    at = np.full(len(lat.pos), -1)
+    at[lat.kept] = np.arange(n)
+    src, dst = at[lat.src], at[lat.dst]
+    out = {}
+    if len(lat.bottom):
+        rev = sparse.csr_matrix((lat.weight, (dst, src)), shape=(n, n))
+        dist, pred = csgraph.dijkstra(rev, indices=at[lat.bottom], min_only=True, return_predecessors=True)[:2]
+        out["base"] = (dist, np.where(pred < 0, -1, pred))
+    land, w = lat.land, lat.land_weight
+    if avoid is not None and len(land):
+        ok = ~np.asarray(avoid(lat.land_hit), bool)
+        land, w = land[ok], w[ok]
+    if len(land):
+        sink = n  # the landing sink, one past the nodes
+        rev = sparse.csr_matrix(
+            (
+                np.concatenate([lat.weight, w]),
+                (np.concatenate([dst, np.full(len(land), sink)]), np.concatenate([src, at[land]])),
+            ),
+            shape=(n + 1, n + 1),
+        )
+        dist, pred = csgraph.dijkstra(rev, indices=sink, return_predecessors=True)
+        out["land"] = (dist[:n], np.where((pred[:n] < 0) | (pred[:n] == sink), -1, pred[:n]))
+    return out
+
+
 def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, max_nodes, avoid=None):
-    """Route nodes whose straight drop is blocked through the free-space graph.
+    """Route nodes whose straight drop is blocked through the free-space lattice.
 
     Each node joins the lattice nodes of the two layers below it inside its cone; one
-    reverse Dijkstra per sink gives every lattice node its cheapest way down, so routes
-    that meet share their way from there.  Returns the nodes left unrouted.
-    Cost: O(E + V log V) for the two searches on a lattice of V nodes and E edges.
+    reverse Dijkstra per sink (:func:`_ways_down`) gives every lattice node its cheapest
+    way down, so routes that meet share their way from there.  Returns the nodes left
+    unrouted.  Cost: O(E + V log V) for the two searches on a lattice of V nodes and E edges.
     """
     s = settings.rules
     start = np.array([b.nodes[i] for i in blocked])
     lo = np.minimum(mesh.bounds[0], start.min(axis=0)) - 2 * s.clearance_mm - s.tip_length_mm
     hi = np.maximum(mesh.bounds[1], start.max(axis=0)) + 2 * s.clearance_mm + s.tip_length_mm
     hi[2] = start[:, 2].max()
-    g = free_space_graph(mesh, settings, field, np.array([lo, hi]), step_mm=step_mm, cost=cost, max_nodes=max_nodes)
-    hz, pitch, origin, shape = g.graph["step"], g.graph["pitch"], g.graph["origin"], g.graph["shape"]
-    if avoid is not None and "land" in g:
-        # No post may stand on a protected face: drop the landings there.
-        into = list(g.predecessors("land"))
-        if into:
-            hits = np.array([g.edges[n, "land"]["hit"] for n in into])
-            g.remove_edges_from([(n, "land") for n, bad in zip(into, avoid(hits)) if bad])
-    rev = g.reverse(copy=False)
-    search = {sink: nx.dijkstra_predecessor_and_distance(rev, sink) for sink in ("base", "land") if sink in g}
+    lat = free_space_lattice(mesh, settings, field, np.array([lo, hi]), step_mm=step_mm, cost=cost, max_nodes=max_nodes)
+    hz, pitch, origin, shape = lat.step, lat.pitch, lat.origin, lat.shape
+    at = np.full(len(lat.pos), -1)
+    at[lat.kept] = np.arange(len(lat.kept))
+    hit_of = {int(at[n]): h for n, h in zip(lat.land, lat.land_hit)}
+    search = _ways_down(lat, avoid)
     t = math.tan(math.radians(s.branch_angle_deg))
     area = math.pi * (s.post_diameter_mm / 2) ** 2
     lattice_node: dict[int, int] = {}
@@ -227,40 +261,45 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
             reach = (p[2] - (origin[2] + k * hz)) * t
             i0, j0 = np.floor((p[:2] - reach - origin[:2]) / pitch).astype(int)
             i1, j1 = np.ceil((p[:2] + reach - origin[:2]) / pitch).astype(int)
-            for i in range(max(i0, 0), min(i1, shape[0] - 1) + 1):
-                for j in range(max(j0, 0), min(j1, shape[1] - 1) + 1):
-                    n = (i * shape[1] + j) * shape[2] + k
-                    if n in g and np.linalg.norm(g.nodes[n]["pos"][:2] - p[:2]) <= reach * (1 - EPS_REL):
-                        cands.append(n)
+            i, j = np.meshgrid(
+                np.arange(max(i0, 0), min(i1, shape[0] - 1) + 1),
+                np.arange(max(j0, 0), min(j1, shape[1] - 1) + 1),
+                indexing="ij",
+            )
+            flat = ((i * shape[1] + j) * shape[2] + k).ravel()
+            flat = flat[at[flat] >= 0]
+            near = np.linalg.norm(lat.pos[flat, :2] - p[:2], axis=1) <= reach * (1 - EPS_REL)
+            cands.extend(at[flat[near]].tolist())
         chosen = None
         if cands:
-            cpos = np.array([g.nodes[n]["pos"] for n in cands])
+            cands = np.array(cands)
+            cpos = lat.pos[lat.kept[cands]]
             ok = field.clear(np.broadcast_to(p, cpos.shape), cpos)
             first = edge_cost(np.broadcast_to(p, cpos.shape), cpos, area, cost)
             for sink in ("base", "land"):
                 if sink not in search:
                     continue
-                dist = search[sink][1]
-                total = np.array([first[c] + dist.get(n, np.inf) if ok[c] else np.inf for c, n in enumerate(cands)])
+                total = np.where(ok, first + search[sink][0][cands], np.inf)
                 if np.isfinite(total).any():
-                    chosen = (cands[int(np.argmin(total))], sink)
+                    chosen = (int(cands[int(np.argmin(total))]), sink)
                     break
         if chosen is None:
             unrouted.append(nid)
             continue
         n, sink = chosen
-        pred = search[sink][0]
+        nxt = search[sink][1]
         upper = nid
-        while n != sink:
+        while n >= 0:
             if n not in lattice_node:
-                lattice_node[n] = b.node(g.nodes[n]["pos"])
+                lattice_node[n] = b.node(lat.pos[lat.kept[n]])
             b.edge(upper, lattice_node[n])
-            upper, nxt = lattice_node[n], pred[n][0]
-            if nxt == "base":
-                b.feet.append(upper)
-            elif nxt == "land":
-                b.landings[upper] = g.edges[n, "land"]["hit"]
-            n = nxt
+            upper = lattice_node[n]
+            if nxt[n] < 0:  # the way ends here
+                if sink == "base":
+                    b.feet.append(upper)
+                else:
+                    b.landings[upper] = hit_of[n]
+            n = int(nxt[n])
     return unrouted
 
 
