@@ -657,14 +657,17 @@ def test_banded_factors_solve_as_sparse_lu_on_random_regions():
         if a.shape[0] == 0:
             continue
         b = rng.uniform(0.5, 1.5, a.shape[0])
-        factors = pz._factorise(a, inside)
+        factors = pz._banded(*pz._cells(frac))
         assert isinstance(factors, pz._BandedCholesky)
         kinds.add(factors.order is None)
         ref = spl.splu(a.tocsc()).solve(b)
         assert factors.solve(b) == pytest.approx(ref, rel=1e-10, abs=1e-12 * np.abs(ref).max())
     assert kinds == {True, False}  # both numberings were used
     # a lumped cavity couples its whole rim: sparse LU, not a band
-    assert not isinstance(pz._factorise(a, None), pz._BandedCholesky)
+    yy, xx = centred(16)
+    ring = np.clip(13.4 - np.hypot(xx, yy), 0, 1)
+    _, state = pz._factor_solve(ring, 0.4, None, np.hypot(xx, yy) < 6.0)
+    assert isinstance(state[2], spl.SuperLU)
 
 
 @pytest.mark.parametrize("offset", [0, 3, 7, 11, 17, 23])

@@ -75,12 +75,10 @@ CELLS_ACROSS = 12
 _STEPS = ((-1, 0), (0, -1), (0, 1), (1, 0))  # up, left, right, down: index order
 
 
-def _system(frac: np.ndarray):
-    """Cells solved (``frac >= 1/2``) and the SPD matrix of the scheme (Notes above), scaled by H^2.
-
-    Built column by column in index order (up, left, self, right, down), so the CSC
-    arrays come out sorted without a sort; O(cells).
-    """
+def _cells(frac: np.ndarray):
+    """Cells solved (``frac >= 1/2``), and per cell (in row-major order) the diagonal of the
+    scheme's matrix (Notes above, scaled by H^2) and its five columns in index order (up,
+    left, self, right, down) with a flag for each neighbour inside; O(cells)."""
     inside = frac >= 0.5
     n = int(inside.sum())
     pin, pfr = np.pad(inside, 1), np.pad(frac, 1)
@@ -89,7 +87,6 @@ def _system(frac: np.ndarray):
     f = frac[inside]
     diag = np.zeros(n)
     cols, ok = np.zeros((n, 5), np.int64), np.zeros((n, 5), bool)
-    vals = np.full((n, 5), -1.0)
     ny, nx = pin.shape
     for slot, (dr, dc) in zip((0, 1, 3, 4), _STEPS):
         sl = (slice(1 + dr, ny - 1 + dr), slice(1 + dc, nx - 1 + dc))
@@ -97,9 +94,24 @@ def _system(frac: np.ndarray):
         d = np.clip(f + pfr[sl][inside] - 0.5, 0.02, 1.0)
         diag += np.where(nb, 1.0, 1.0 / d)
         cols[:, slot], ok[:, slot] = index[sl][inside], nb
-    cols[:, 2], vals[:, 2], ok[:, 2] = np.arange(n), diag, True
+    cols[:, 2], ok[:, 2] = np.arange(n), True
+    return inside, diag, cols, ok
+
+
+def _csc(diag: np.ndarray, cols: np.ndarray, ok: np.ndarray):
+    """The SPD matrix of :func:`_cells` as CSC, built column by column in index order, so
+    its arrays come out sorted without a sort."""
+    n = len(diag)
+    vals = np.full((n, 5), -1.0)
+    vals[:, 2] = diag
     indptr = np.concatenate([[0], np.cumsum(ok.sum(axis=1))])
-    return inside, sparse.csc_matrix((vals[ok], cols[ok], indptr), shape=(n, n))
+    return sparse.csc_matrix((vals[ok], cols[ok], indptr), shape=(n, n))
+
+
+def _system(frac: np.ndarray):
+    """Cells solved (``frac >= 1/2``) and the SPD matrix of the scheme (Notes above), scaled by H^2."""
+    inside, diag, cols, ok = _cells(frac)
+    return inside, _csc(diag, cols, ok)
 
 
 def _solve_fraction(frac: np.ndarray, cell_mm: float) -> np.ndarray:
@@ -153,8 +165,9 @@ def _factor_solve(frac: np.ndarray, cell_mm: float, kept=None, cav: np.ndarray |
     cells) returns its phi unchanged; the same solved cells (``frac >= 1/2``, the
     coarse mask) keep its LU factors as the preconditioner of conjugate gradients
     (the matrices differ only in boundary diagonal terms, so a few steps reach
-    ``REFINE_TOL``); otherwise, or if CG has not converged in ``REFINE_STEPS``,
-    ``scipy.sparse.linalg.splu`` factorises afresh.
+    ``REFINE_TOL``); otherwise, or if CG has not converged in ``REFINE_STEPS``, the
+    system is factorised afresh: banded Cholesky (:func:`_banded`), or
+    ``scipy.sparse.linalg.splu`` for lumped cavities and wide bands.
 
     ``cav`` (bool per cell, optional): cells of sealed cavities.  A deep cavity's
     resin moves freely, so its pressure is uniform: the cells of each 4-connected
@@ -177,22 +190,28 @@ def _factor_solve(frac: np.ndarray, cell_mm: float, kept=None, cav: np.ndarray |
     ):
         return kept[3], kept
     phi = np.zeros(frac.shape)
-    inside, a = _system(frac)
-    n = a.shape[0]
+    inside, diag, cols, ok = _cells(frac)
+    n = len(diag)
     if n == 0:
         return phi, (frac, inside, None, phi, cav)
     b = np.full(n, cell_mm * cell_mm)
     lump = _lump(inside, cav)
-    if lump is not None:
-        a = (lump.T @ a @ lump).tocsc()
-        b = lump.T @ b
     kept_cav = kept[4] if kept is not None and len(kept) > 4 else None
-    if kept is not None and kept[2] is not None and np.array_equal(kept[1], inside) and same_cav(kept_cav, cav):
+    reuse = kept is not None and kept[2] is not None and np.array_equal(kept[1], inside) and same_cav(kept_cav, cav)
+    a = None  # the sparse matrix, built only where conjugate gradients, a lump or LU need it
+    if lump is not None or reuse:
+        a = _csc(diag, cols, ok)
+        if lump is not None:
+            a = (lump.T @ a @ lump).tocsc()
+            b = lump.T @ b
+    if reuse:
         x = _pcg(a, b, kept[2])
         if x is not None:
             phi[inside] = x if lump is None else lump @ x
             return phi, (frac, inside, kept[2], phi, cav)
-    lu = _factorise(a, inside if lump is None else None)
+    lu = _banded(inside, diag, cols, ok) if lump is None else None
+    if lu is None:
+        lu = _sparse_lu(_csc(diag, cols, ok) if a is None else a)
     x = lu.solve(b)
     phi[inside] = x if lump is None else lump @ x
     return phi, (frac, inside, lu, phi, cav)
@@ -221,35 +240,40 @@ class _BandedCholesky:
         return x
 
 
-def _factorise(a, inside: np.ndarray | None):
-    """Factors of the scheme's matrix ``a`` with a ``solve`` method.
+def _banded(inside: np.ndarray, diag: np.ndarray, cols: np.ndarray, ok: np.ndarray):
+    """Banded Cholesky factors of the matrix of :func:`_cells`, or None where the band is too wide.
 
     Cells numbered row by row (``inside``'s order) have their neighbours above and below
     one row of cells apart; numbered down the columns when the box is wider than tall,
     that distance is at most the short side, and a banded Cholesky factorisation costs
-    ``n b^2`` for ``n`` unknowns and half-bandwidth ``b``.  Systems with lumped cavities
-    (``inside`` None: a cavity's unknown couples its whole rim) or too wide a band go to
-    ``scipy.sparse.linalg.splu`` with a minimum-degree order.
+    ``n b^2`` for ``n`` unknowns and half-bandwidth ``b``.  In either numbering a cell's
+    right and lower neighbours come after it, so they are the band below the diagonal.
     """
-    if inside is not None:
-        coo = a.tocoo()
-        row, col = coo.row, coo.col
-        order = None
-        if inside.shape[1] > inside.shape[0]:
-            r, c = np.nonzero(inside)
-            order = np.lexsort((r, c))  # new position k holds old unknown order[k]
-            where = np.empty_like(order)
-            where[order] = np.arange(len(order))
-            row, col = where[row], where[col]
-        low = row >= col
-        band = int((row - col)[low].max())
-        if a.shape[0] * band * band <= _BANDED_WORK:
-            ab = np.zeros((band + 1, a.shape[0]))
-            ab[(row - col)[low], col[low]] = coo.data[low]
-            try:
-                return _BandedCholesky(linalg.cholesky_banded(ab, lower=True, check_finite=False), order)
-            except linalg.LinAlgError:
-                pass  # not positive definite to round-off: LU below
+    n = len(diag)
+    order = None
+    at = np.arange(n)
+    if inside.shape[1] > inside.shape[0]:
+        r, c = np.nonzero(inside)
+        order = np.lexsort((r, c))  # new position k holds old unknown order[k]
+        at = np.empty_like(order)
+        at[order] = np.arange(n)
+    later = ok[:, 3:]  # right and down neighbours
+    own = np.broadcast_to(at[:, None], later.shape)[later]
+    offset = at[cols[:, 3:][later]] - own
+    band = int(offset.max(initial=0))
+    if n * band * band > _BANDED_WORK:
+        return None
+    ab = np.zeros((band + 1, n))
+    ab[0, at] = diag
+    ab[offset, own] = -1.0
+    try:
+        return _BandedCholesky(linalg.cholesky_banded(ab, lower=True, check_finite=False), order)
+    except linalg.LinAlgError:
+        return None  # not positive definite to round-off: sparse LU instead
+
+
+def _sparse_lu(a):
+    """``scipy.sparse.linalg.splu`` of a symmetric matrix with a minimum-degree order."""
     return spl.splu(a, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
 
 
