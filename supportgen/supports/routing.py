@@ -12,10 +12,11 @@ The ``tree`` strategy (:func:`plan_tree`) works in three steps:
    the two cones share, when that saves material and the new segments keep
    the clearance; otherwise it drops straight to the base.
 3. *Free-space graph.*  Nodes whose straight drop is blocked by the part are
-   routed through a coarse networkx lattice of free space (nodes at least the
-   clearance from the part, strictly downward edges within the branch angle,
-   edge cost = material + a penalty passed in) to the base, or, where no path
-   reaches the base, to a landing tip on the part's upper surface below.
+   routed through a coarse lattice of free space (nodes at least the clearance
+   from the part, strictly downward edges within the branch angle, edge cost =
+   material + a penalty passed in; searched with scipy's Dijkstra) to the base,
+   or, where no path reaches the base, to a landing tip on the part's upper
+   surface below.
 
 Distances to the part come from :class:`Clearance`: a k-d tree over points
 sampled on every triangle, corrected by the samples' covering radius so that
