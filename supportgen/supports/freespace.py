@@ -12,7 +12,8 @@ drop to the base is blocked.  This module provides both.
   true distance, so every "clear" answer is a proof, never an estimate.  A
   segment is proven clear by samples at most ``step`` apart that each clear
   ``clearance + step / 2``, because the distance to a surface is 1-Lipschitz.
-* :func:`free_space_graph` lays a lattice over a box: layers ``step`` apart,
+* :func:`free_space_lattice` (as arrays; :func:`free_space_graph` gives the same as a
+  networkx graph) lays a lattice over a box: layers ``step`` apart,
   an x-y grid of pitch ``step tan(angle) / sqrt(2)`` so that each node reaches
   the nine below it within the branch angle, only nodes that clear the part,
   and only strictly downward edges proven clear.  Edge weight is material
