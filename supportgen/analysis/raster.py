@@ -31,6 +31,8 @@ from collections.abc import Iterator
 import numpy as np
 import trimesh
 
+from .runlength import ranks
+
 __all__ = ["layer_count", "ray_crossings", "winding_masks", "SortedCrossings"]
 
 _CHUNK = 1 << 20  # candidate pixel-triangle pairs (of whole bounding boxes) per rasteriser chunk
@@ -133,7 +135,7 @@ def ray_crossings(mesh: trimesh.Trimesh, grid) -> tuple[np.ndarray, np.ndarray, 
         t = np.repeat(np.arange(a, b), nr)
         if t.size == 0:
             continue
-        rr = r0[t] + np.arange(t.size) - np.repeat(np.cumsum(nr) - nr, nr)
+        rr = r0[t] + ranks(nr)
         lo, hi = c0[t].astype(float), c1[t].astype(float)
         fv = rr.astype(float)
         for a_, b_, c_, _ in edges:
@@ -148,7 +150,7 @@ def ray_crossings(mesh: trimesh.Trimesh, grid) -> tuple[np.ndarray, np.ndarray, 
         first = lo.astype(np.int64)
         k = np.maximum(hi.astype(np.int64) - first + 1, 0)
         t, rr = np.repeat(t, k), np.repeat(rr, k)
-        cc = np.repeat(first, k) + np.arange(t.size) - np.repeat(np.cumsum(k) - k, k)
+        cc = np.repeat(first, k) + ranks(k)
         fu, fv = cc.astype(float), rr.astype(float)
         ok = np.ones(t.size, bool)
         e = []

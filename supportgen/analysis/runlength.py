@@ -22,7 +22,17 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["mask_runs", "box_runs", "run_overlaps", "paint_runs", "edge_components"]
+__all__ = ["mask_runs", "box_runs", "run_overlaps", "paint_runs", "edge_components", "ranks"]
+
+
+def ranks(counts: np.ndarray) -> np.ndarray:
+    """Each element's place in its group, for groups of ``counts`` laid end to end.
+
+    >>> ranks(np.array([2, 0, 3])).tolist()
+    [0, 1, 0, 1, 2]
+    """
+    counts = np.asarray(counts)
+    return np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts, counts)
 
 
 def mask_runs(mask: np.ndarray, r0: int = 0, c0: int = 0):
@@ -85,7 +95,7 @@ def run_overlaps(a, b, shift: int = 0):
     hi = np.searchsorted(rb * width + sb, ra * width + ea, "left")  # b starting before a ends
     cnt = np.maximum(hi - lo, 0)
     ia = np.repeat(np.arange(ra.size), cnt)
-    ib = np.arange(int(cnt.sum())) - np.repeat(np.cumsum(cnt) - cnt - lo, cnt)
+    ib = np.repeat(lo, cnt) + ranks(cnt)
     return ia, ib, np.minimum(ea[ia], eb[ib]) - np.maximum(sa[ia], sb[ib])
 
 

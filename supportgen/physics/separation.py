@@ -42,7 +42,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..analysis.runlength import mask_runs
+from ..analysis.runlength import mask_runs, ranks
 from ..errors import SettingsError
 from ..settings import MECHANISMS
 
@@ -247,7 +247,7 @@ def peel_sweep(rows, starts, ends, comp, n: int, pixel_mm: float, origin, settin
     hi = np.minimum(m_count - 1, (ends - 1 - first) // step)  # last position meeting it
     cnt = np.maximum(hi - lo + 1, 0)
     run = np.repeat(np.arange(rows.size), cnt)
-    pos = lo[run] + (np.arange(run.size) - np.repeat(np.cumsum(cnt) - cnt, cnt))
+    pos = lo[run] + ranks(cnt)
     j = first + pos * step
     a, b = np.maximum(starts[run], j), np.minimum(ends[run], j + nb)
     w = (b - a) * h

@@ -11,6 +11,7 @@ import io
 
 import numpy as np
 
+from ..analysis.runlength import ranks
 from ..constants import EPS_FLOOR
 
 __all__ = ["plot_layers", "plot_tips", "plot_preview", "render_view", "PREVIEW_VIEWS", "new_figure", "png_bytes"]
@@ -143,7 +144,7 @@ def render_view(triangles, colours, elev, azim, mid, span, size: int = 600) -> n
             continue
         n = count[chunk]
         t = np.repeat(chunk, n)
-        k = np.arange(int(n.sum())) - np.repeat(np.cumsum(n) - n, n)
+        k = ranks(n)
         col = c0[t] + k % w[t]
         row = r0[t] + k // w[t]
         px, py = col + 0.5, row + 0.5
