@@ -108,12 +108,6 @@ def _csc(diag: np.ndarray, cols: np.ndarray, ok: np.ndarray):
     return sparse.csc_matrix((vals[ok], cols[ok], indptr), shape=(n, n))
 
 
-def _system(frac: np.ndarray):
-    """Cells solved (``frac >= 1/2``) and the SPD matrix of the scheme (Notes above), scaled by H^2."""
-    inside, diag, cols, ok = _cells(frac)
-    return inside, _csc(diag, cols, ok)
-
-
 def _solve_fraction(frac: np.ndarray, cell_mm: float) -> np.ndarray:
     """phi on cells of side ``cell_mm`` covered by fraction ``frac`` (0 outside)."""
     return _factor_solve(frac, cell_mm)[0]

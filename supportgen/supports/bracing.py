@@ -328,8 +328,6 @@ def add_braces(
     new = new[new[:, 0] != new[:, 1]]
     swap = nodes[new[:, 0], 2] > nodes[new[:, 1], 2]
     new[swap] = new[swap][:, ::-1]  # lower end first
-    if len(new) == 0:
-        return plan, 0
     # two requests can land on the same pair of nodes (points within a pixel of a node
     # reuse it): one brace there, as the first of them
     braces = np.concatenate([plan.braces.reshape(-1, 2), new])
