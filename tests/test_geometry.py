@@ -14,12 +14,16 @@ from supportgen.supports.geometry import combine, frustum, to_manifold
 from supportgen.supports.strategies import plan_straight
 
 
-def _supported(part, s):
+def _planned(part, s):
     part = place(part, s).mesh
     rules = s.rules
     oh = find_overhangs(part, rules.overhang_angle_deg, floor_z=0.0)
     c = sample_overhangs(part, oh, rules.contact_spacing_mm, rules.overhang_angle_deg, rules.tip_diameter_mm)
-    plan = plan_straight(part, c, s)
+    return part, plan_straight(part, c, s)
+
+
+def _supported(part, s):
+    part, plan = _planned(part, s)
     return part, plan, combine(part, plan, s)
 
 
@@ -549,3 +553,36 @@ def test_the_fused_part_keeps_no_facet_narrower_than_a_ten_thousandth_of_a_milli
     _, dist, _ = trimesh.proximity.closest_point(part, fused.vertices)
     assert dist.max() < SLIVER_MM
     assert fused.volume == pytest.approx(part.volume, rel=1e-6)
+
+
+def test_a_pinch_the_welds_leave_turns_only_the_primitives_there(monkeypatch):
+    # Fault injected: the first attempt's pinch checks all report one pinch at a post's
+    # node, as if no weld closed it.  The retry must turn the primitives whose boxes hold
+    # that point, not all of them, and the result is then checked as usual: one closed
+    # solid (trimesh) with the union's volume (manifold3d, reference libraries).
+    from supportgen.supports import geometry as g
+
+    s = Settings()
+    part, plan = _planned(trimesh.creation.box((12, 10, 4)), s)
+    at = plan.nodes[plan.feet[0]]
+    real, calls, turned = g.pinch_positions, [0], []
+
+    def pinched(mesh):
+        calls[0] += 1
+        if calls[0] <= 2 * (g._WELD_ROUNDS + 1):
+            return at[None, :], np.zeros((0, 2, 3))
+        return real(mesh)
+
+    replace = g._Pieces.replace
+
+    def record(self, idx, solids):
+        turned.append((len(idx), len(self.solids)))
+        return replace(self, idx, solids)
+
+    monkeypatch.setattr(g, "pinch_positions", pinched)
+    monkeypatch.setattr(g._Pieces, "replace", record)
+    sol = g.combine(part, plan, s)
+    assert len(turned) == 1 and 0 < turned[0][0] < turned[0][1] / 2
+    assert sol.combined.is_watertight and sol.combined.is_volume
+    ref = to_manifold(part) + to_manifold(sol.supports)
+    assert sol.combined.volume == pytest.approx(ref.volume(), rel=1e-6)

@@ -780,11 +780,11 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
         radius = weld_r0
         for round_ in range(_WELD_ROUNDS + 1):
             in_sup, in_comb = pinch_positions(sup_mesh), pinch_positions(comb_mesh)
+            left = np.vstack([left, in_sup[0], in_comb[0], in_sup[1].reshape(-1, 3), in_comb[1].reshape(-1, 3)])
             if len(in_sup[0]) == 0 and len(in_comb[0]) == 0:
                 base_solid = _union(pieces.solids[len(pieces.solids) - n_base :], "base")
                 return Solids(sup_mesh, comb_mesh, float(supports.volume()), float(base_solid.volume()))
             if round_ == _WELD_ROUNDS:
-                left = np.vstack([left, in_sup[0], in_comb[0], in_sup[1].reshape(-1, 3), in_comb[1].reshape(-1, 3)])
                 break  # welds did not close them: turn the facets there and join again
             # A pinch of the supports is welded in both solids; one of the joined solid only
             # (a post grazing the part) is welded there alone, so the supports keep no ball
@@ -793,7 +793,6 @@ def combine(part: trimesh.Trimesh, plan: SupportPlan, settings: Settings) -> Sol
                 supports = _weld(supports, in_sup, radius, "supports and their welds")
                 sup_mesh = to_trimesh(supports)
             both = (np.vstack([in_sup[0], in_comb[0]]), np.concatenate([in_sup[1], in_comb[1]]))
-            left = np.vstack([left, both[0], both[1].reshape(-1, 3)])
             combined = _weld(combined, both, radius, "part, supports and welds")
             comb_mesh = to_trimesh(combined)
             radius *= 1.5
