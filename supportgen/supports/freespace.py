@@ -28,6 +28,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
+from functools import cached_property
 
 import networkx as nx
 import numpy as np
@@ -247,6 +248,13 @@ class FreeLattice:
     land: np.ndarray
     land_weight: np.ndarray
     land_hit: np.ndarray
+
+    @cached_property
+    def at(self) -> np.ndarray:
+        """Each grid node's position in ``kept`` (-1 where the node was not kept)."""
+        at = np.full(len(self.pos), -1)
+        at[self.kept] = np.arange(len(self.kept))
+        return at
 
     def graph(self) -> nx.DiGraph:
         """The lattice as a networkx graph (see :func:`free_space_graph`)."""

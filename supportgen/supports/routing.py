@@ -203,9 +203,7 @@ def _ways_down(lat: FreeLattice, avoid=None) -> dict:
     edges (``scipy.sparse.csgraph.dijkstra``) from the bottom layer for ``"base"`` (all at
     distance 0) and from a landing sink for ``"land"``.  ``avoid(hits)`` drops landings.
     """
-    n = len(lat.kept)
-    at = np.full(len(lat.pos), -1)
-    at[lat.kept] = np.arange(n)
+    n, at = len(lat.kept), lat.at
     src, dst = at[lat.src], at[lat.dst]
     out = {}
     if len(lat.bottom):
@@ -245,8 +243,7 @@ def _route_blocked(mesh, settings, field, cost, b: _Builder, blocked, step_mm, m
     hi[2] = start[:, 2].max()
     lat = free_space_lattice(mesh, settings, field, np.array([lo, hi]), step_mm=step_mm, cost=cost, max_nodes=max_nodes)
     hz, pitch, origin, shape = lat.step, lat.pitch, lat.origin, lat.shape
-    at = np.full(len(lat.pos), -1)
-    at[lat.kept] = np.arange(len(lat.kept))
+    at = lat.at
     hit_of = {int(at[n]): h for n, h in zip(lat.land, lat.land_hit)}
     search = _ways_down(lat, avoid)
     t = math.tan(math.radians(s.branch_angle_deg))
